@@ -1,0 +1,1 @@
+"""Synthetic scenes with analytically known truth, for the demo, the examples and the tests."""
