@@ -98,11 +98,12 @@ def _demodulate_block(image, weights, q, sigma_px, pixel_size, offset, boundary,
     work[core] = weights
     norm = np.fft.ifft2(np.fft.fft2(work) * _gaussian_transfer(padded_shape, sigma_px)).real[core]
     # Below this the normalised convolution has almost nothing to average: report NaN.
-    norm = np.where(norm > 1e-3, norm, np.nan)
+    inverse = np.full(norm.shape, np.nan)
+    np.divide(1.0, norm, out=inverse, where=norm > 1e-3)
     for j, qj in enumerate(q):
         shift = (qj[1] * dy, qj[0] * dx)
         filtered = np.fft.ifft2(spectrum * _gaussian_transfer(padded_shape, sigma_px, shift))[core]
-        out[j] = filtered * _reference_wave(qj, (ny, nx), pixel_size, offset) / norm
+        out[j] = filtered * _reference_wave(qj, (ny, nx), pixel_size, offset) * inverse
     return out
 
 
@@ -189,6 +190,8 @@ def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized
             raise InputError(f"mask shape {mask.shape} differs from the image shape {tuple(image.shape)}")
     if lazy:
         result = _lockin_dask(image, q, sigma_px, pixel_size, mask, boundary, pad)
+        if image.dtype == np.float32:
+            result = result.astype(np.complex64)
     else:
         if np.iscomplexobj(image) or image.dtype.kind not in "biuf":
             raise InputError(f"lockin needs a real image, got dtype {image.dtype}")
@@ -261,7 +264,7 @@ def amplitude(a):
 
     Examples
     --------
-    >>> float(amplitude(np.array(0.85 * np.exp(0.9j))))
+    >>> round(float(amplitude(np.array(0.85 * np.exp(0.9j)))), 12)
     1.7
     """
     return 2 * abs(a)

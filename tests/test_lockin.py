@@ -1,0 +1,277 @@
+"""Tests of the spatial lock-in against analytic waves, a real-space reference filter and its dask path."""
+
+import math
+
+import dask.array as da
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+from scipy import ndimage
+
+import domains
+from domains import InputError, amplitude, choose_sigma, local_wavevector, lockin, phase, trusted_mask
+
+N = 256
+
+
+def wave(q_px, amplitude_=1.0, phi=0.0, shape=(N, N)):
+    """A0 cos(q . r + phi) with x = col, y = row, q in rad/px (pixel size 1 nm)."""
+    rows, cols = np.mgrid[: shape[0], : shape[1]].astype(float)
+    return amplitude_ * np.cos(q_px[0] * cols + q_px[1] * rows + phi)
+
+
+def inner(shape, margin):
+    """Pixels at least `margin` pixels from every edge."""
+    keep = np.zeros(shape, bool)
+    keep[margin : shape[0] - margin, margin : shape[1] - margin] = True
+    return keep
+
+
+def real_space_reference(image, q, sigma_px, pixel_size):
+    """G * [I cos(q.r)] - i G * [I sin(q.r)] with scipy's Gaussian filter (zero outside the frame)."""
+    dy, dx = pixel_size
+    rows, cols = np.mgrid[: image.shape[0], : image.shape[1]].astype(float)
+    arg = q[0] * cols * dx + q[1] * rows * dy
+    filt = lambda f: ndimage.gaussian_filter(f, sigma_px, mode="constant", truncate=8)  # noqa: E731
+    return filt(image * np.cos(arg)) - 1j * filt(image * np.sin(arg))
+
+
+# --- METHODS §1 check values --------------------------------------------------------------------
+
+
+def test_methods_check_values():
+    q = 2 * np.pi * np.array([20, 7]) / N
+    a = lockin(wave(q, 1.7, 0.9), q, sigma_nm=8, pixel_size_nm=1, boundary="periodic")
+    # METHODS §1 [derived]: 2|A| = A0 = 1.7 and arg A = phi = 0.9 to 1e-9 on a periodic image.
+    assert_allclose(amplitude(a), 1.7, rtol=0, atol=1e-9)
+    assert_allclose(phase(a), 0.9, rtol=0, atol=1e-9)
+
+
+def test_detuned_wave_and_local_wavevector():
+    q_ref = 2 * np.pi * np.array([20, 7]) / N
+    q_true = q_ref + np.array([2 * np.pi * 1.5 / N, 0.0])  # 1.5 bins off: not periodic in the frame
+    a = lockin(wave(q_true, 1.7, 0.9), q_ref, sigma_nm=8, pixel_size_nm=1)
+    deep = inner(a.shape, 48)  # >= 6 sigma from the edges: the normalised filter is the full Gaussian there
+    expected = 1.7 * math.exp(-(8**2) * (2 * np.pi * 1.5 / N) ** 2 / 2)
+    assert_allclose(expected, 1.62784, atol=5e-6)  # METHODS §1 check value [derived]
+    # derived: 2|A| = A0 exp(-sigma^2 dq^2 / 2); Gaussian mass beyond 6 sigma is 1.5e-8.
+    assert_allclose(amplitude(a)[deep], expected, rtol=1e-6)
+    k = local_wavevector(a, q_ref, pixel_size_nm=1)
+    # derived: q_ref + grad(phi) = q_true; central differences return sin(dq)/1 for dq, a bias of
+    # dq^3 / 6 = 8.3e-6 rad/px at dq = 0.0368 rad/px.
+    assert_allclose(k[0][deep], q_true[0], rtol=0, atol=1e-5)
+    assert_allclose(k[1][deep], q_true[1], rtol=0, atol=1e-5)
+
+
+# --- real-space reference, several q, noise -----------------------------------------------------
+
+
+@pytest.mark.parametrize("pixel_size", [1.0, (0.05, 0.04)])
+def test_matches_real_space_gaussian_filter(pixel_size):
+    rng = np.random.default_rng(11)
+    shape = (128, 96)
+    dy, dx = domains.pixel_size_pair(pixel_size)
+    q = np.array([[2 * np.pi * 13 / (96 * dx), 2 * np.pi * 5 / (128 * dy)], [-0.3 / dx, 0.9 / dy], [0.7 / dx, -0.2 / dy]])
+    rows, cols = np.mgrid[:128, :96].astype(float)
+    image = sum((1 + j) * np.cos(qj[0] * cols * dx + qj[1] * rows * dy + j) for j, qj in enumerate(q))
+    image += rng.normal(scale=0.5, size=shape)
+    sigma_nm = 3 * max(dy, dx)
+    a = lockin(image, q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size)
+    assert a.shape == (3,) + shape
+    sigma_px = (sigma_nm / dy, sigma_nm / dx)
+    # Away from the edges (>= 6 sigma, Gaussian tail 1.5e-8) the normalised filter and scipy's
+    # constant-mode filter are both the full convolution (reference library: scipy.ndimage).
+    deep = np.zeros(shape, bool)
+    my, mx = math.ceil(6 * sigma_px[0]), math.ceil(6 * sigma_px[1])
+    deep[my:-my, mx:-mx] = True
+    for j, qj in enumerate(q):
+        ref = real_space_reference(image, qj, sigma_px, (dy, dx))
+        assert_allclose(a[j][deep], ref[deep], rtol=0, atol=1e-6)
+
+
+def test_crop_phase_differs_by_q_dot_r0():
+    rng = np.random.default_rng(5)
+    q = 2 * np.pi * np.array([0.11, -0.07])
+    image = wave(q, 1.0, 0.3, (160, 160)) + rng.normal(scale=0.3, size=(160, 160))
+    full = lockin(image, q, sigma_nm=4, pixel_size_nm=0.5)
+    r0 = (37, 21)  # (row, col) of the crop origin
+    crop = lockin(image[r0[0] :, r0[1] :], q, sigma_nm=4, pixel_size_nm=0.5)
+    # derived: A_crop(r') = exp(i q . r0) A_full(r' + r0), r0 = (x0, y0) = (21, 37) * 0.5 nm.
+    shift = np.exp(1j * (q[0] * r0[1] * 0.5 + q[1] * r0[0] * 0.5))
+    sub = full[r0[0] :, r0[1] :]
+    deep = inner(crop.shape, 48)  # 6 sigma (8 px each) from the crop's and the frame's edges
+    assert_allclose(crop[deep], shift * sub[deep], rtol=0, atol=1e-9)
+
+
+# --- dask path --------------------------------------------------------------------------------
+
+
+CHUNKS = ((50, 70, 36, 100), (33, 90, 133))
+
+
+@pytest.mark.parametrize("with_mask", [False, True])
+def test_dask_equals_memory(with_mask):
+    rng = np.random.default_rng(7)
+    q = 2 * np.pi * np.array([[20, 7], [-5, 30], [11, -13]]) / N
+    image = (sum(wave(qj, 1.0 + j, j) for j, qj in enumerate(q)) + rng.normal(scale=0.5, size=(N, N))).astype(np.float32)
+    mask = None
+    if with_mask:
+        rows, cols = np.mgrid[:N, :N]
+        # Straddles chunk borders; radius 6 px = 3 sigma keeps some weight at its centre (exp(-4.5) = 0.011).
+        mask = (rows - 120) ** 2 + (cols - 88) ** 2 < 6**2
+        mask[200:203, :] = True
+    memory = lockin(image, q, sigma_nm=2.0, pixel_size_nm=1.0, mask=mask)
+    lazy = lockin(da.from_array(image, chunks=CHUNKS), q, sigma_nm=2.0, pixel_size_nm=1.0, mask=mask)
+    assert isinstance(lazy, da.Array)
+    result = lazy.compute()
+    # DESIGN.md: chunked and in-memory results agree to float32 precision.
+    scale = np.nanmax(np.abs(memory))
+    assert_allclose(result, memory, rtol=1e-6, atol=1e-6 * scale, equal_nan=True)
+
+
+def test_dask_keeps_float32_dtype():
+    image = np.zeros((64, 64), np.float32)
+    lazy = lockin(da.from_array(image, chunks=32), [0.5, 0.0], sigma_nm=2.0, pixel_size_nm=1.0)
+    memory = lockin(image, [0.5, 0.0], sigma_nm=2.0, pixel_size_nm=1.0)
+    assert lazy.dtype == memory.dtype  # STYLE.md: float32 in, complex64 out (scikit-image practice)
+
+
+def test_wide_mask_gives_nan_without_warning():
+    image = wave(2 * np.pi * np.array([20, 7]) / N, shape=(64, 64))
+    mask = np.zeros((64, 64), bool)
+    mask[20:44, 20:44] = True  # 12 px = 6 sigma to its centre: no weight left there
+    a = lockin(image, 2 * np.pi * np.array([20, 7]) / N, sigma_nm=2.0, pixel_size_nm=1.0, mask=mask)
+    assert np.isnan(a[32, 32])  # documented: NaN where almost no valid neighbours (no warning, which pytest raises)
+
+
+# --- edges ------------------------------------------------------------------------------------
+
+
+def test_normalized_edge_keeps_amplitude():
+    q = 2 * np.pi * np.array([20, 7]) / N
+    sigma = 8.0
+    image = wave(q, 1.7, 0.9)
+    a = lockin(image, q, sigma_nm=sigma, pixel_size_nm=1)
+    cols = slice(48, N - 48)  # away from the side edges
+    # derived: the normalised average of the constant term 1/2 A0 exp(i phi) is exact at the edge; the
+    # conjugate term at 2q is cut by exp(-(2 q_x sigma)^2 / 2) = 4e-14 along the top edge.
+    assert_allclose(amplitude(a)[0, cols], 1.7, rtol=1e-9)
+    # derived: at the corner the conjugate term escapes only through two half-Gaussians,
+    # |half transform| <= sqrt(2/pi) / (2 q sigma) each: product < 0.03.
+    assert abs(amplitude(a)[0, 0] - 1.7) < 1.7 * 0.03
+    # Contrast, plain zero padding (METHODS §1: halves at an edge, quarters at a corner). On the pixel grid
+    # the kept mass at the top row is sum_{n>=0} g(n) = (1 + g(0)) / 2, g(0) = 1 / (sqrt(2 pi) sigma) [derived].
+    zero = real_space_reference(image, q, sigma, (1.0, 1.0))
+    kept = (1 + 1 / (math.sqrt(2 * math.pi) * sigma)) / 2
+    assert_allclose(2 * np.abs(zero[0, cols]), 1.7 * kept, rtol=1e-6)
+    assert_allclose(2 * np.abs(zero[0, 0]), 1.7 * kept**2, rtol=0.03)  # same conjugate leakage as above
+
+
+# --- noise ------------------------------------------------------------------------------------
+
+
+def test_phase_noise_matches_analytic():
+    rng = np.random.default_rng(2024)
+    q = 2 * np.pi * np.array([20, 7]) / N
+    a0, s, sigma = 1.0, 0.5, 4.0  # amplitude SNR A0/s = 2 per pixel
+    samples = []
+    for _ in range(2):
+        image = wave(q, a0, 0.9) + rng.normal(scale=s, size=(N, N))
+        a = lockin(image, q, sigma_nm=sigma, pixel_size_nm=1, boundary="periodic")
+        # Pixels 4 sigma apart: their filtered noise correlates by exp(-16 / 4) = 0.018, i.e. independent.
+        samples.append(np.angle(a[::16, ::16] * np.exp(-0.9j)).ravel())
+    samples = np.concatenate(samples)
+    # derived: each quadrature of A has variance s^2 / 2 * sum G^2, sum G^2 = 1 / (4 pi sigma^2), so
+    # std(phi) = s sqrt(1 / (8 pi sigma^2)) / (A0 / 2) = 0.0499 rad.
+    expected = s * math.sqrt(1 / (8 * math.pi * sigma**2)) / (a0 / 2)
+    measured = np.std(samples)
+    # 512 samples: the std estimate scatters by 1 / sqrt(2 * 512) = 3 %; the brief's 1.5x bound, both ways.
+    assert expected / 1.5 < measured < 1.5 * expected
+    assert abs(measured / expected - 1) < 0.15  # 5 standard errors of the estimate (derived)
+
+
+# --- masks ------------------------------------------------------------------------------------
+
+
+def test_mask_does_not_bias():
+    q = 2 * np.pi * np.array([20, 7]) / N
+    sigma = 6.0
+    image = wave(q, 1.7, 0.9, (160, 160))
+    mask = np.zeros((160, 160), bool)
+    mask[60:90, 50:75] = True
+    dirty = image.copy()
+    dirty[mask] = 1e3  # garbage under the mask
+    dirty[100, 120] = np.nan  # a NaN counts as masked
+    a = lockin(dirty, q, sigma_nm=sigma, pixel_size_nm=1, mask=mask)
+    trusted = trusted_mask((160, 160), sigma_nm=sigma, pixel_size_nm=1, mask=mask | np.isnan(dirty))
+    # derived: the constant term is exact after normalisation; the conjugate term leaks at most the
+    # Gaussian mass m cut away, relative to the kept mass: a trusted pixel is >= 2.5 sigma from the mask and
+    # from the frame edge, two half-planes at most, m <= 2 Phi(-2.5) = 0.0124, bound m / (1 - m).
+    m = 2 * 0.5 * math.erfc(2.5 / math.sqrt(2))
+    bound = m / (1 - m)
+    assert_allclose(amplitude(a)[trusted], 1.7, rtol=bound)
+    assert np.max(np.abs(phase(a)[trusted] - 0.9)) < bound
+    unmasked = lockin(np.nan_to_num(dirty), q, sigma_nm=sigma, pixel_size_nm=1)
+    assert np.max(np.abs(amplitude(unmasked)[trusted] - 1.7)) > 1.0  # contrast: the garbage would show
+
+
+def test_trusted_mask_margins():
+    sigma, pixel = 2.0, 0.5  # sigma = 4 px, 2.5 sigma = 10 px
+    mask = np.zeros((80, 80), bool)
+    mask[40, 40] = True
+    t = trusted_mask((80, 80), sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
+    rows, cols = np.mgrid[:80, :80]
+    to_mask = np.hypot(rows - 40, cols - 40) * pixel
+    to_edge = (np.minimum.reduce([rows, cols, 79 - rows, 79 - cols]) + 0.5) * pixel  # edge: half a pixel out
+    distance = np.minimum(to_mask, to_edge)
+    # METHODS §1 (2-3 sigma, common practice): nothing closer than 2.5 sigma is trusted; everything
+    # more than 2.5 sigma + 1 pixel away is.
+    assert not np.any(t & (distance < 2.5 * sigma))
+    assert np.all(t[distance >= 2.5 * sigma + pixel])
+
+
+# --- choose_sigma -----------------------------------------------------------------------------
+
+
+def test_choose_sigma_leakage():
+    q1 = 2 * np.pi * np.array([40, 0]) / N
+    q2 = 2 * np.pi * np.array([40, 12]) / N  # the nearest neighbour of q1, 12 bins away
+    sigma, dk = choose_sigma([q1, q2], leakage=0.01)
+    # METHODS §1 [derived]: sigma dk = sqrt(2 ln 100) = 3.035 for 1 % leakage.
+    assert_allclose(sigma * dk, math.sqrt(2 * math.log(100)), rtol=1e-12)
+    assert_allclose(round(sigma * dk, 2), 3.03, atol=0.005)
+    assert_allclose(dk, 2 * np.pi * 12 / N, rtol=1e-12)
+    a = lockin(wave(q1) + wave(q2), q1, sigma_nm=sigma, pixel_size_nm=1, boundary="periodic")
+    # Measured: the neighbour appears as a ripple of relative size exp(-sigma^2 dk^2 / 2) = 1 % (derived);
+    # the other peaks (-q1, -q2) are >= 80 bins away and add < 1e-30.
+    ripple = np.max(np.abs(2 * a - 1))
+    assert ripple <= 0.01 * (1 + 1e-9)
+    assert_allclose(ripple, 0.01, rtol=1e-6)
+
+
+# --- bad arguments ----------------------------------------------------------------------------
+
+
+def test_bad_arguments():
+    image = np.zeros((64, 64))
+    with pytest.raises(InputError, match="Nyquist"):
+        lockin(image, [4.0, 0.0], sigma_nm=2, pixel_size_nm=1)  # pi rad/px is the limit
+    with pytest.raises(InputError, match="sigma_nm must be positive"):
+        lockin(image, [1.0, 0.0], sigma_nm=0, pixel_size_nm=1)
+    with pytest.raises(InputError, match="sigma_nm must be positive"):
+        lockin(image, [1.0, 0.0], sigma_nm=-1, pixel_size_nm=1)
+    with pytest.raises(InputError, match="larger than half the image"):
+        lockin(image, [1.0, 0.0], sigma_nm=33, pixel_size_nm=1)
+    with pytest.raises(InputError, match="2 x 2|2-D"):
+        lockin(np.zeros((0, 5)), [1.0, 0.0], sigma_nm=1, pixel_size_nm=1)
+    with pytest.raises(InputError, match="2-D"):
+        lockin(np.zeros(64), [1.0, 0.0], sigma_nm=1, pixel_size_nm=1)
+    with pytest.raises(InputError, match="mask shape"):
+        lockin(image, [1.0, 0.0], sigma_nm=2, pixel_size_nm=1, mask=np.zeros((64, 63), bool))
+    with pytest.raises(InputError, match="boundary"):
+        lockin(image, [1.0, 0.0], sigma_nm=2, pixel_size_nm=1, boundary="mirror")
+    with pytest.raises(InputError, match="periodic"):
+        lockin(da.zeros((64, 64), chunks=32), [1.0, 0.0], sigma_nm=2, pixel_size_nm=1, boundary="periodic")
+    with pytest.raises(InputError, match="leakage"):
+        choose_sigma([[1.0, 0.0]], leakage=1.5)
+    assert issubclass(InputError, ValueError)  # DESIGN.md: bad input is a ValueError
