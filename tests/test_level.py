@@ -1,0 +1,323 @@
+"""Tests of domains.level: polynomial backgrounds, per-line offsets, NaN masking and levelling of scans."""
+
+from __future__ import annotations
+
+import warnings
+
+import dask.array as da
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose, assert_array_equal
+
+import domains.level as level_module
+from domains import InputError, Scan
+from domains.level import level, line_offsets, nan_to_mask, polynomial_background, subtract_background
+
+ROWS, COLS = np.mgrid[0:48, 0:64].astype(float)
+PLANE = 0.7 + 0.013 * COLS - 0.021 * ROWS
+QUADRIC = PLANE + 3e-4 * COLS**2 - 2e-4 * COLS * ROWS + 5e-4 * ROWS**2
+
+
+def _offsets(n=48, seed=0):
+    return np.random.default_rng(seed).normal(0.0, 0.3, n)
+
+
+def _plane_fit_residual(image, order=1):
+    """Reference least squares with numpy.linalg.lstsq on raw monomials (independent of the module)."""
+    terms = [(d - j, j) for d in range(order + 1) for j in range(d + 1)]
+    design = np.stack([(COLS**i * ROWS**j).ravel() for i, j in terms], axis=1)
+    coefficients, *_ = np.linalg.lstsq(design, image.ravel(), rcond=None)
+    return image - (design @ coefficients).reshape(image.shape)
+
+
+# --------------------------------------------------------------------------- backgrounds
+
+
+def test_plane_removed_exactly():
+    # derived: least squares reproduces a background that lies in the model space exactly
+    assert_allclose(polynomial_background(PLANE), PLANE, rtol=0, atol=1e-12)
+    assert_allclose(subtract_background(PLANE), 0.0, rtol=0, atol=1e-12)
+
+
+def test_second_order_removed_exactly():
+    # derived: as above, for an exactly representable quadric
+    assert_allclose(subtract_background(QUADRIC, order=2), 0.0, rtol=0, atol=1e-12)
+    # derived: a plane cannot represent the quadric, so order 1 leaves a residual
+    assert np.abs(subtract_background(QUADRIC, order=1)).max() > 1e-2
+
+
+def test_order_zero_is_the_mean():
+    image = np.random.default_rng(1).normal(size=(10, 12))
+    assert_allclose(polynomial_background(image, order=0), image.mean(), rtol=0, atol=1e-12)  # derived: LS constant
+
+
+def test_fit_matches_reference_least_squares_on_noisy_image():
+    noisy = QUADRIC + np.random.default_rng(2).normal(0, 0.1, QUADRIC.shape)
+    # reference: numpy.linalg.lstsq on unscaled monomials; the fitted surface does not depend on scaling
+    assert_allclose(subtract_background(noisy, order=2), _plane_fit_residual(noisy, 2), rtol=0, atol=1e-10)
+
+
+def test_masked_bump_does_not_bias_the_fit():
+    mask = (ROWS - 20) ** 2 + (COLS - 30) ** 2 < 10.0**2
+    bump = np.where(mask, 5.0 * np.exp(-((ROWS - 20) ** 2 + (COLS - 30) ** 2) / (2 * 4.0**2)), 0.0)
+    image = PLANE + bump
+    assert_allclose(polynomial_background(image, mask=mask), PLANE, rtol=0, atol=1e-12)  # derived: the rest is exact
+    assert np.abs(polynomial_background(image) - PLANE).max() > 0.01  # derived: unmasked, the bump biases it
+
+
+def test_nan_pixels_left_out_of_the_fit():
+    image = PLANE.copy()
+    image[3, 4] = np.nan
+    image[10, :] = np.inf
+    background = polynomial_background(image)
+    assert_allclose(background, PLANE, rtol=0, atol=1e-12)  # derived: finite pixels are exact
+    assert np.isnan(subtract_background(image)[3, 4])  # NaN stays NaN
+
+
+@pytest.mark.parametrize(
+    "dtype, expected",
+    [(np.float32, np.float32), (np.float64, np.float64), (np.float16, np.float32), (np.int16, np.float64),
+     (np.uint8, np.float64)],
+)
+def test_dtypes(dtype, expected):
+    image = (10 + 2 * COLS // 8 + ROWS // 8).astype(dtype)
+    assert polynomial_background(image).dtype == expected  # common practice, no source (float in, float out)
+    assert subtract_background(image).dtype == expected
+    assert line_offsets(image, warn=False)[0].dtype == expected
+
+
+def test_float32_values():
+    image = PLANE.astype(np.float32)
+    # derived: float32 rounding of the input (~1e-7 relative) is the only error
+    assert_allclose(subtract_background(image), 0.0, rtol=0, atol=2e-6)
+
+
+def test_background_errors():
+    with pytest.raises(InputError, match="order must be an integer"):
+        polynomial_background(PLANE, order=1.5)
+    with pytest.raises(InputError, match="order must be an integer"):
+        polynomial_background(PLANE, order=-1)
+    with pytest.raises(InputError, match="2-D"):
+        polynomial_background(np.zeros(5))
+    with pytest.raises(InputError, match="mask shape"):
+        polynomial_background(PLANE, mask=np.zeros((3, 3), bool))
+    only_row = np.ones(PLANE.shape, bool)
+    only_row[5, :] = False
+    with pytest.raises(InputError, match="do not determine"):  # derived: one row cannot fix the y slope
+        polynomial_background(PLANE, mask=only_row)
+    with pytest.raises(InputError, match="unmasked finite pixels"):
+        polynomial_background(PLANE, mask=np.ones(PLANE.shape, bool))
+
+
+# --------------------------------------------------------------------------- line offsets
+
+
+@pytest.mark.parametrize("method", ["median", "mean"])
+def test_line_offsets_found(method):
+    offsets = _offsets()
+    image = np.ones(PLANE.shape) * 2.0 + offsets[:, None]
+    corrected, found = line_offsets(image, method=method, warn=False)
+    # derived: every row is constant, so its statistic is 2 + offset; offsets are relative to the typical row
+    reference = (np.median if method == "median" else np.mean)(offsets)
+    assert_allclose(found, offsets - reference, rtol=0, atol=1e-12)
+    assert_allclose(corrected, 2.0 + reference, rtol=0, atol=1e-12)
+
+
+@pytest.mark.parametrize("method", ["median", "mean"])
+def test_offsets_and_plane_removed_exactly(method):
+    image = PLANE + _offsets()[:, None]
+    scan = Scan(image, pixel_size_nm=0.05)
+    flat = level(scan, order=1, lines=method, warn=False)
+    # derived: per-row statistics absorb the offsets and the y slope; the plane fit removes the x slope
+    assert_allclose(flat.data, 0.0, rtol=0, atol=1e-12)
+
+
+def test_difference_removes_sparse_jumps_and_plane_exactly():
+    offsets = np.zeros(48)
+    offsets[12:] += 0.8  # a tip change
+    offsets[30] -= 1.5  # one glitched line
+    offsets[40:] -= 0.4
+    image = PLANE + offsets[:, None]
+    corrected, found = line_offsets(image, method="difference")
+    # derived: the jumps are the only steps that differ from the y slope of the plane
+    assert_allclose(found - found[0], offsets - offsets[0], rtol=0, atol=1e-12)
+    assert_allclose(level(Scan(image, pixel_size_nm=0.1), lines="difference").data, 0.0, rtol=0, atol=1e-12)
+
+
+def test_median_and_mean_warn_at_the_caller():
+    with pytest.warns(UserWarning, match="slow-scan axis") as record:
+        line_offsets(PLANE, method="median")
+    assert record[0].filename == __file__  # stacklevel=2 points at the caller (common practice, no source)
+    with pytest.warns(UserWarning, match="slow-scan axis") as record:
+        level(Scan(PLANE, pixel_size_nm=0.1), lines="mean")
+    assert record[0].filename == __file__
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        line_offsets(PLANE, method="mean", warn=False)
+        line_offsets(PLANE, method="difference")
+
+
+WAVELENGTH_PX = 16.0
+WAVE_Y = np.cos(2 * np.pi * ROWS / WAVELENGTH_PX)
+
+
+def test_row_mean_deletes_a_modulation_along_y():
+    corrected, _ = line_offsets(WAVE_Y, method="mean", warn=False)
+    # derived (METHODS §7): every row of cos(2 pi y / lambda) is constant, so the row mean removes it entirely
+    assert_allclose(corrected - corrected.mean(), 0.0, rtol=0, atol=1e-12)
+
+
+def test_difference_keeps_a_modulation_along_y():
+    corrected, found = line_offsets(WAVE_Y, method="difference")
+    # derived: a smooth modulation has no outlying line-to-line step, so nothing is removed
+    assert_allclose(found, 0.0, rtol=0, atol=1e-12)
+    assert_allclose(corrected, WAVE_Y, rtol=0, atol=1e-12)
+
+
+def test_difference_keeps_the_modulation_while_removing_jumps():
+    offsets = np.zeros(48)
+    offsets[17:] += 1.2
+    offsets[33] += 2.0
+    image = WAVE_Y + PLANE + offsets[:, None]
+    flat = level(Scan(image, pixel_size_nm=0.1), order=1, lines="difference").data
+    expected = _plane_fit_residual(WAVE_Y)
+    # derived: the amplitude of the wave, by projection on cos(2 pi y / lambda), survives
+    survival = np.sum(flat * WAVE_Y) / np.sum(expected * WAVE_Y)
+    assert survival > 0.95
+    # derived: each jump estimate is off by the curvature of the wave over the neighbouring
+    # steps, of order (2 pi/16)**2 * 2 sin(pi/16) = 0.06 of its amplitude; bound 0.1 for three jumps
+    # after the plane fit (tolerance: common practice, no source)
+    assert np.abs(flat - expected).max() < 0.1
+    mean_levelled = level(Scan(image, pixel_size_nm=0.1), order=1, lines="mean", warn=False).data
+    assert np.abs(np.sum(mean_levelled * WAVE_Y)) < 1e-9  # derived (METHODS §7): the row mean deletes it
+
+
+def test_line_offsets_with_mask_and_empty_row():
+    offsets = _offsets()
+    image = 1.0 + offsets[:, None] + np.zeros(PLANE.shape)
+    image[5, 10:20] = 50.0  # a bright feature, masked
+    mask = np.zeros(PLANE.shape, bool)
+    mask[5, 10:20] = True
+    mask[7, :] = True  # a line with no trusted pixel keeps its level
+    corrected, found = line_offsets(image, method="mean", mask=mask, warn=False)
+    trusted_rows = np.ones(48, bool)
+    trusted_rows[7] = False
+    reference = offsets[trusted_rows].mean()
+    assert_allclose(found[trusted_rows], offsets[trusted_rows] - reference, rtol=0, atol=1e-12)  # derived
+    assert found[7] == 0.0
+
+
+def test_line_offsets_errors():
+    with pytest.raises(InputError, match="method must be one of"):
+        line_offsets(PLANE, method="mode")
+    with pytest.raises(InputError, match="jump_threshold"):
+        line_offsets(PLANE, method="difference", jump_threshold=0)
+
+
+# --------------------------------------------------------------------------- nan_to_mask
+
+
+def test_nan_to_mask():
+    image = np.array([[1.0, np.nan, 3.0], [np.inf, 5.0, 6.0]], dtype=np.float32)
+    user = np.zeros((2, 3), bool)
+    user[1, 2] = True
+    filled, mask = nan_to_mask(image, user)
+    assert filled.dtype == np.float32
+    assert_allclose(filled, [[1, 3.75, 3], [3.75, 5, 6]], rtol=0, atol=1e-6)  # derived: mean of 1, 3, 5, 6
+    assert_array_equal(mask, [[False, True, False], [True, False, True]])
+    assert np.isnan(image[0, 1])  # input not modified
+    with pytest.raises(InputError, match="no finite pixel"):
+        nan_to_mask(np.full((3, 3), np.nan))
+    assert nan_to_mask(np.ones((2, 2)))[1] is None
+
+
+# --------------------------------------------------------------------------- level()
+
+
+def test_level_keeps_the_input_and_carries_the_mask():
+    # Rows constant apart from NaN: a row statistic over any subset of its columns is exact.
+    image = 0.7 - 0.021 * ROWS + _offsets()[:, None]
+    image[4, 4] = np.nan
+    user = np.zeros(PLANE.shape, bool)
+    user[10:12, 10:12] = True
+    scan = Scan(image.copy(), pixel_size_nm=(0.05, 0.04), bias_V=0.2, mask=user.copy(), metadata={"k": 1})
+    flat = level(scan, order=1, lines="median", warn=False)
+    assert_array_equal(scan.data, image)  # the input is never modified
+    assert_array_equal(scan.mask, user)
+    expected_mask = user.copy()
+    expected_mask[4, 4] = True
+    assert_array_equal(flat.mask, expected_mask)  # derived: NaN joins the mask
+    assert np.all(np.isfinite(flat.data))
+    assert_allclose(flat.data[~expected_mask], 0.0, rtol=0, atol=1e-12)  # derived: offsets + plane only
+    assert (flat.pixel_size_nm, flat.bias_V, flat.metadata) == ((0.05, 0.04), 0.2, {"k": 1})
+
+
+def test_level_float32_kept():
+    flat = level(Scan(PLANE.astype(np.float32), pixel_size_nm=0.1))
+    assert flat.data.dtype == np.float32  # common practice, no source (float in, float out)
+    assert_allclose(flat.data, 0.0, rtol=0, atol=2e-6)  # derived: float32 rounding only
+
+
+def test_level_grid_slice_by_slice():
+    grid = np.stack([PLANE, 2 * PLANE + 1, QUADRIC])
+    grid[1, 3, 3] = np.nan
+    scan = Scan(grid.copy(), pixel_size_nm=0.1, energies_V=[-0.1, 0.0, 0.1])
+    flat = level(scan, order=2)
+    assert_allclose(flat.data, 0.0, rtol=0, atol=1e-12)  # derived: each slice is an exact quadric
+    assert flat.mask[3, 3] and flat.mask.sum() == 1
+    assert np.isnan(scan.data[1, 3, 3])  # the input keeps its NaN
+
+
+def test_level_lazy_matches_in_memory():
+    image = PLANE + _offsets()[:, None] + np.random.default_rng(3).normal(0, 0.05, PLANE.shape)
+    lazy = Scan(da.from_array(image, chunks=(13, 21)), pixel_size_nm=0.1)
+    flat = level(lazy, order=1, lines="mean", warn=False)
+    assert flat.is_lazy
+    eager = level(Scan(image, pixel_size_nm=0.1), order=1, lines="mean", warn=False)
+    # derived: with the whole image under FIT_MAX_PIXELS the lazy fit uses every pixel, as in memory
+    assert_allclose(flat.data.compute(), eager.data, rtol=0, atol=1e-12)
+
+
+def test_level_lazy_subsampled_fit(monkeypatch):
+    monkeypatch.setattr(level_module, "FIT_MAX_PIXELS", 200)  # forces a strided subsample
+    monkeypatch.setattr(level_module, "LINES_MAX_PIXELS", 500)
+    for lines in ("median", "mean", "difference"):
+        # "difference" removes sparse jumps only (documented), so it gets a sparse pattern
+        offsets = _offsets() if lines != "difference" else np.where(np.arange(48) >= 20, 0.9, 0.0)
+        lazy = Scan(da.from_array(PLANE + offsets[:, None], chunks=(16, 16)), pixel_size_nm=0.1)
+        flat = level(lazy, order=1, lines=lines, warn=False)
+        assert flat.is_lazy
+        # derived: on offsets + plane, a row statistic over any fixed set of columns is the
+        # row's offset plus the same constant for every row; the plane fit removes the rest
+        assert_allclose(flat.data.compute(), 0.0, rtol=0, atol=1e-12)
+    flat = level(Scan(da.from_array(PLANE, chunks=(16, 16)), pixel_size_nm=0.1), order=1)
+    # derived: an exact plane is fixed by any non-degenerate subsample
+    assert_allclose(flat.data.compute(), 0.0, rtol=0, atol=1e-12)
+
+
+def test_level_lazy_nan_stays_nan():
+    image = PLANE.copy()
+    image[2, 2] = np.nan
+    flat = level(Scan(da.from_array(image, chunks=16), pixel_size_nm=0.1))
+    result = flat.data.compute()
+    assert np.isnan(result[2, 2])  # documented: lazy data keeps NaN, later steps treat it as masked
+    assert_allclose(np.nan_to_num(result, nan=0.0), 0.0, rtol=0, atol=1e-12)
+
+
+def test_level_lazy_grid():
+    grid = np.stack([PLANE, QUADRIC])
+    flat = level(Scan(da.from_array(grid, chunks=(1, 16, 32)), pixel_size_nm=0.1, energies_V=[0, 1]), order=2)
+    assert flat.is_lazy
+    assert_allclose(flat.data.compute(), 0.0, rtol=0, atol=1e-12)  # derived: exact quadrics
+
+
+def test_level_errors():
+    scan = Scan(PLANE, pixel_size_nm=0.1, source="topo.npy")
+    with pytest.raises(InputError, match="lines must be"):
+        level(scan, lines="rows")
+    with pytest.raises(InputError, match="order must be"):
+        level(scan, order=9)
+    with pytest.raises(InputError, match="topo.npy.*unmasked"):
+        level(scan.with_data(PLANE, mask=np.ones(PLANE.shape, bool)))
+    with pytest.raises(InputError, match="domains.Scan"):
+        level(PLANE)
