@@ -1,0 +1,1428 @@
+"""Compare maps of one area at several biases: registration, per-domain contrast, phase shifts, inversion verdicts."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import ndimage, stats
+
+from ._errors import InputError
+from ._lockin import choose_sigma, lockin, trusted_mask
+from ._scan import Scan, _is_dask, pixel_size_pair
+
+__all__ = [
+    "BiasComparison",
+    "ContrastVerdict",
+    "DomainPhaseShift",
+    "Fingerprints",
+    "Registration",
+    "apply_shift",
+    "classify_contrast",
+    "compare_biases",
+    "domain_contrast",
+    "fingerprint_peaks",
+    "grid_fingerprints",
+    "phase_difference",
+    "phase_shifts",
+    "register",
+    "undo_displacement",
+]
+
+#: Systematic allowance added in quadrature to the statistical error of every
+#: per-component phase shift before testing 0 or pi: registration error times |q|,
+#: setpoint effects, residual drift. 10 degrees is a judgement (common practice, no source).
+DEFAULT_TOLERANCE_RAD = math.radians(10.0)
+
+VERDICTS = ("inverted", "not inverted", "dephased", "shifted", "undetermined")
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+def _wrap(angle):
+    """Wrap angles to (-pi, pi]."""
+    return -((-np.asarray(angle) + np.pi) % (2 * np.pi) - np.pi)
+
+
+def _image(array, name, *, ndim=2):
+    """A real numpy float array of the expected number of dimensions, or InputError."""
+    if isinstance(array, Scan):
+        array = array.data
+    if _is_dask(array):
+        array = array.compute()
+    try:
+        array = np.asarray(array)
+    except Exception as err:  # noqa: BLE001 - any conversion failure is bad input
+        raise InputError(f"{name} could not be read as an array: {err}") from None
+    if array.ndim != ndim:
+        raise InputError(f"{name} must be a {ndim}-D array, got shape {tuple(array.shape)}")
+    if array.dtype.kind not in "biuf":
+        raise InputError(f"{name} must hold real numbers, got dtype {array.dtype}")
+    return array.astype(float)
+
+
+def _labels(labels, shape):
+    labels = np.asarray(labels)
+    if labels.shape != tuple(shape):
+        raise InputError(f"labels shape {labels.shape} differs from the image shape {tuple(shape)}")
+    if labels.dtype.kind not in "iu":
+        raise InputError(f"labels must be integers (0 = wall or unassigned, 1..N domains), got dtype {labels.dtype}")
+    if labels.size and labels.min() < 0:
+        raise InputError(f"labels must be >= 0 (0 = wall or unassigned), got a minimum of {labels.min()}")
+    return labels.astype(np.int64)
+
+
+def _mask(mask, shape):
+    if mask is None:
+        return np.zeros(shape, dtype=bool)
+    mask = np.asarray(mask)
+    if mask.shape != tuple(shape):
+        raise InputError(f"mask shape {mask.shape} differs from the image shape {tuple(shape)}")
+    return mask.astype(bool)
+
+
+def _q(q, name="q"):
+    q = np.asarray(q, dtype=float)
+    if q.ndim == 1:
+        q = q[None, :]
+    if q.ndim != 2 or q.shape[1] != 2 or q.shape[0] < 1:
+        raise InputError(f"{name} must be (qx, qy) or an array of shape (k, 2) in rad/nm, got shape {q.shape}")
+    if not np.all(np.isfinite(q)) or np.any(np.hypot(*q.T) == 0):
+        raise InputError(f"{name} must hold finite, nonzero wavevectors, got {q.tolist()}")
+    return q
+
+
+def _sigma(sigma_nm):
+    try:
+        sigma_nm = float(sigma_nm)
+    except (TypeError, ValueError):
+        raise InputError(f"sigma_nm must be a number in nm, got {sigma_nm!r}") from None
+    if not np.isfinite(sigma_nm) or sigma_nm <= 0:
+        raise InputError(f"sigma_nm must be positive, got {sigma_nm}")
+    return sigma_nm
+
+
+def _fill_invalid(image, invalid):
+    """Replace invalid pixels by the mean of the valid ones, so FFTs and splines stay finite."""
+    if not invalid.any():
+        return image
+    out = image.copy()
+    out[invalid] = image[~invalid].mean() if (~invalid).any() else 0.0
+    return out
+
+
+def _interior_labels(labels, *, sigma_nm, pixel_size, mask, margin_sigma):
+    """Domain labels kept only where the lock-in sees one domain alone.
+
+    A pixel is kept when it lies at least ``margin_sigma`` sigma from any pixel of
+    another label (walls included), from the frame edge and from masked pixels:
+    the lock-in's Gaussian then draws less than 0.5 erfc(margin/sqrt 2) of its
+    weight from beyond a straight wall (0.6 % at 2.5 sigma; derived).
+    """
+    dy, dx = pixel_size
+    out = np.zeros_like(labels)
+    limit = margin_sigma * sigma_nm + 0.5 * min(dy, dx)
+    extra = int(math.ceil(limit / min(dy, dx))) + 2
+    for d, sl in enumerate(ndimage.find_objects(labels), start=1):
+        if sl is None:
+            continue
+        r0, r1 = max(sl[0].start - extra, 0), min(sl[0].stop + extra, labels.shape[0])
+        c0, c1 = max(sl[1].start - extra, 0), min(sl[1].stop + extra, labels.shape[1])
+        inside = labels[r0:r1, c0:c1] == d
+        # Padding with False puts the frame edge (or a point beyond the crop margin) outside.
+        dist = ndimage.distance_transform_edt(np.pad(inside, 1), sampling=(dy, dx))[1:-1, 1:-1]
+        keep = inside & (dist >= limit)
+        out[r0:r1, c0:c1][keep] = d
+    trusted = trusted_mask(labels.shape, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=mask,
+                           margin_sigma=margin_sigma)
+    out[~trusted] = 0
+    return out
+
+
+def _independent_areas(weight_sum, weight_sq_sum, sigma_nm, pixel_size):
+    """Number of statistically independent samples in a weighted mean of a lock-in field.
+
+    The lock-in of white noise has the autocorrelation exp(-r^2 / 4 sigma^2), whose
+    integral is 4 pi sigma^2 (derived), so a mean over an area S holds about
+    S / (4 pi sigma^2) independent samples. Kish's (sum w)^2 / sum w^2 gives the
+    effective pixel count of a weighted mean (Kish, Survey Sampling, 1965; from memory).
+    """
+    dy, dx = pixel_size
+    with np.errstate(invalid="ignore", divide="ignore"):
+        n_pix = np.where(weight_sq_sum > 0, weight_sum**2 / np.where(weight_sq_sum > 0, weight_sq_sum, 1), 0.0)
+    n_eff = n_pix * dy * dx / (4 * math.pi * sigma_nm**2)
+    return np.where(n_pix > 0, np.clip(n_eff, 1.0, np.maximum(n_pix, 1.0)), 0.0)
+
+
+def _sums(index, values, n):
+    """Per-label sums of values (real) over pixels with index > 0."""
+    return np.bincount(index, weights=values, minlength=n)
+
+
+# --------------------------------------------------------------------------- registration
+
+
+@dataclass(frozen=True)
+class Registration:
+    """The rigid shift that brings a moving image onto a reference image.
+
+    Attributes
+    ----------
+    shift_px : tuple of float
+        (row, col) shift in pixels to apply to the moving image
+        (``apply_shift(moving, shift_px)`` lands on the reference), the
+        convention of ``skimage.registration.phase_cross_correlation``.
+    shift_nm : tuple of float
+        The same shift as (x, y) in nm.
+    method : str
+        "bragg-phase", "cross-correlation" or "phase-correlation".
+    residual : float
+        For "bragg-phase": the amplitude-weighted RMS, in rad, of the per-pixel
+        Bragg phase differences left after the rigid shift (noise plus any
+        non-rigid distortion); above about 1 rad the phases are unrelated and
+        the shift is not to be trusted. Otherwise: the normalised RMS error
+        returned by scikit-image (dimensionless).
+    residual_kind : str
+        "phase_rms_rad" or "correlation_error".
+    contrast_sign : int
+        -1 when the Bragg contrast of the moving image is inverted with
+        respect to the reference (every Bragg phase differs by pi beyond the
+        shift), else +1. Always +1 for correlation, which is blind to the sign.
+    coarse_shift_px : tuple of float
+        The correlation shift that picked the lattice translation.
+    """
+
+    shift_px: tuple
+    shift_nm: tuple
+    method: str
+    residual: float
+    residual_kind: str
+    contrast_sign: int = 1
+    coarse_shift_px: tuple = (0.0, 0.0)
+
+    def to_dict(self) -> dict:
+        """JSON-ready dictionary (lengths in px and nm)."""
+        return {
+            "method": self.method,
+            "shift_px": [float(v) for v in self.shift_px],
+            "shift_nm_xy": [float(v) for v in self.shift_nm],
+            "residual": _json_float(self.residual),
+            "residual_kind": self.residual_kind,
+            "contrast_sign": int(self.contrast_sign),
+            "coarse_shift_px": [float(v) for v in self.coarse_shift_px],
+        }
+
+
+def register(reference, moving, *, pixel_size_nm, bragg_q=None, sigma_nm=None, upsample_factor=100,
+             mask=None, coarse_shift_px=None, coarse_sigma_nm=None, displacement_nm=None, normalization=None):
+    """Rigid sub-pixel shift between two images of the same area.
+
+    Without ``bragg_q`` the shift is the peak of the cross-correlation,
+    upsampled around its maximum [1]_
+    (``skimage.registration.phase_cross_correlation``). With ``bragg_q`` it
+    comes from the Bragg lock-in phases [2]_: a shift s changes the phase of
+    the component at Q_j by theta_j = Q_j . s, so the amplitude-weighted
+    circular mean of arg(A_j(moving) conj A_j(reference)) over the trusted
+    region gives theta_j, and s follows by least squares over
+    the peaks. The Bragg phases fix s only modulo a lattice vector; the
+    lattice translation is taken from the correlation (or from
+    ``coarse_shift_px``): each theta_j is unwrapped to lie within pi of
+    Q_j . s_coarse before the least-squares solve.
+
+    Parameters
+    ----------
+    reference, moving : (row, col) array_like
+        The two images, same shape. NaN pixels count as masked.
+    pixel_size_nm : float or (float, float)
+        Pixel size in nm, one value or (row, col).
+    bragg_q : (k, 2) array_like, optional
+        Bragg wavevectors (qx, qy) in rad/nm, at least two non-collinear.
+    sigma_nm : float, optional
+        Lock-in width for the Bragg phases; default
+        ``choose_sigma(bragg_q)`` (1 % leakage).
+    upsample_factor : int
+        Upsampling of the correlation peak (precision 1/upsample_factor px).
+    mask : (row, col) array of bool, optional
+        True where pixels are untrusted (in either image).
+    coarse_shift_px : (float, float), optional
+        A shift known to within a quarter of a lattice period, used instead of
+        the correlation to pick the lattice translation, e.g. (0, 0) for
+        images recorded in the same scan.
+    coarse_sigma_nm : float, optional
+        With ``bragg_q``: width of the Gaussian low-pass applied to both images
+        before the correlation that picks the lattice translation. Periodic
+        patterns correlate equally well at every lattice translation, so only
+        the non-periodic content (topographic landscape, defects, domain
+        layout) can pick one; the low-pass keeps that content and drops the
+        peaks. Default ``choose_sigma(bragg_q)`` (Bragg peaks below 1 %);
+        pass a wider one when an order with smaller wavevectors is present.
+        Set 0 to correlate the raw images.
+    displacement_nm : (2, row, col) array_like, optional
+        Displacement field (ux, uy) in nm of the moving image (its own drift),
+        undone first with :func:`undo_displacement`.
+    normalization : {None, "phase"}
+        Passed to scikit-image. None (default): plain cross-correlation,
+        weighted by the signal's power. "phase": phase correlation, which
+        gives every Fourier bin unit weight; with the white noise of STM
+        images the noise bins then outnumber the signal bins and the peak
+        can land on a wrong lattice translation (common practice, no source).
+
+    Returns
+    -------
+    Registration
+        The shift (apply it to ``moving`` with :func:`apply_shift`), the
+        method and the residual.
+
+    Raises
+    ------
+    InputError
+        If the images are not 2-D, differ in shape, or ``bragg_q`` has fewer
+        than two non-collinear wavevectors.
+
+    Notes
+    -----
+    The correlation is blind to the sign of the contrast (scikit-image
+    takes the largest absolute correlation), but when part of the pattern
+    inverts and part does not (e.g. a charge order that inverts on a lattice
+    that does not) it may prefer a wrong lattice translation. Pass
+    ``coarse_shift_px`` when the shift is known to be small.
+
+    References
+    ----------
+    .. [1] M. Guizar-Sicairos, S. T. Thurman, J. R. Fienup, "Efficient subpixel
+       image registration algorithms", Opt. Lett. 33, 156 (2008).
+       doi:10.1364/OL.33.000156
+    .. [2] M. J. Lawler et al., "Intra-unit-cell electronic nematicity of the
+       high-Tc copper-oxide pseudogap states", Nature 466, 347 (2010).
+       doi:10.1038/nature09169
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from scipy import ndimage
+    >>> rng = np.random.default_rng(0)
+    >>> ref = ndimage.gaussian_filter(rng.normal(size=(64, 64)), 2, mode="wrap")
+    >>> mov = np.fft.ifft2(ndimage.fourier_shift(np.fft.fft2(ref), (1.3, -0.6))).real
+    >>> reg = register(ref, mov, pixel_size_nm=0.1)
+    >>> reg.method, [round(v, 1) for v in reg.shift_px]
+    ('cross-correlation', [-1.3, 0.6])
+    """
+    from skimage.registration import phase_cross_correlation
+
+    pixel_size = pixel_size_pair(pixel_size_nm)
+    reference = _image(reference, "reference")
+    moving = _image(moving, "moving")
+    if reference.shape != moving.shape:
+        raise InputError(f"moving image shape {moving.shape} differs from the reference shape {reference.shape}")
+    if displacement_nm is not None:
+        moving = undo_displacement(moving, displacement_nm, pixel_size_nm=pixel_size)
+    bad = _mask(mask, reference.shape) | ~np.isfinite(reference) | ~np.isfinite(moving)
+    if bad.all():
+        raise InputError("register: every pixel is masked or NaN")
+    try:
+        upsample_factor = int(upsample_factor)
+    except (TypeError, ValueError):
+        raise InputError(f"upsample_factor must be a positive integer, got {upsample_factor!r}") from None
+    if upsample_factor < 1:
+        raise InputError(f"upsample_factor must be a positive integer, got {upsample_factor}")
+    ref_f, mov_f = _fill_invalid(reference, bad), _fill_invalid(moving, bad)
+    if normalization not in (None, "phase"):
+        raise InputError(f"normalization must be None or 'phase', got {normalization!r}")
+    dy, dx = pixel_size
+    if bragg_q is not None:
+        bragg_q = _q(bragg_q, "bragg_q")
+        if bragg_q.shape[0] < 2 or np.linalg.matrix_rank(bragg_q, tol=1e-9 * np.abs(bragg_q).max()) < 2:
+            raise InputError(f"bragg_q needs at least two non-collinear wavevectors, got {bragg_q.tolist()}")
+        sigma_nm = choose_sigma(bragg_q)[0] if sigma_nm is None else _sigma(sigma_nm)
+        coarse_sigma_nm = choose_sigma(bragg_q)[0] if coarse_sigma_nm is None else float(coarse_sigma_nm)
+        if not np.isfinite(coarse_sigma_nm) or coarse_sigma_nm < 0:
+            raise InputError(f"coarse_sigma_nm must be >= 0, got {coarse_sigma_nm}")
+        if coarse_sigma_nm > 0:
+            low = (coarse_sigma_nm / dy, coarse_sigma_nm / dx)
+            ref_f, mov_f = ndimage.gaussian_filter(ref_f, low), ndimage.gaussian_filter(mov_f, low)
+        # A Hann window keeps the frame's own edges (the same in both images) from
+        # pulling the correlation peak towards zero shift.
+        window = np.outer(np.hanning(ref_f.shape[0]), np.hanning(ref_f.shape[1]))
+        ref_f = (ref_f - ref_f.mean()) * window
+        mov_f = (mov_f - mov_f.mean()) * window
+    pc_shift, pc_error, _ = phase_cross_correlation(ref_f - ref_f.mean(), mov_f - mov_f.mean(),
+                                                    upsample_factor=upsample_factor,
+                                                    normalization=normalization)
+    pc_shift = (float(pc_shift[0]), float(pc_shift[1]))
+    if bragg_q is None:
+        method = "phase-correlation" if normalization == "phase" else "cross-correlation"
+        return Registration(pc_shift, (pc_shift[1] * dx, pc_shift[0] * dy), method,
+                            float(pc_error), "correlation_error", 1, pc_shift)
+
+    if coarse_shift_px is None:
+        coarse = pc_shift
+    else:
+        coarse = tuple(float(v) for v in np.asarray(coarse_shift_px, dtype=float).reshape(2))
+    a_ref = lockin(reference, bragg_q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad)
+    a_mov = lockin(moving, bragg_q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad)
+    trusted = trusted_mask(reference.shape, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad)
+    if not trusted.any():
+        raise InputError(f"register: no pixel lies 2.5 sigma (sigma_nm = {sigma_nm:g}) from the edge and the mask")
+    z = a_mov[:, trusted] * np.conj(a_ref[:, trusted])
+    theta = np.angle(z.sum(axis=1))
+    coarse_xy = np.array([coarse[1] * dx, coarse[0] * dy])
+    predicted = bragg_q @ coarse_xy
+    best = None
+    # A shift moves each Bragg phase by Q.s; an inverted Bragg contrast adds pi to all of them.
+    for sign, offset in ((1, 0.0), (-1, np.pi)):
+        th = theta + offset
+        disagreement = float(np.sqrt(np.mean(_wrap(th - predicted) ** 2)))
+        unwrapped = th + 2 * np.pi * np.round((predicted - th) / (2 * np.pi))
+        s_xy = np.linalg.lstsq(bragg_q, unwrapped, rcond=None)[0]
+        if best is None or disagreement < best[0]:
+            best = (disagreement, sign, offset, s_xy)
+    _, sign, offset, s_xy = best
+    dev = _wrap(np.angle(z) + offset - (bragg_q @ s_xy)[:, None])
+    w = np.abs(z)
+    residual = float(np.sqrt(np.sum(w * dev**2) / np.sum(w)))
+    shift_px = (float(s_xy[1] / dy), float(s_xy[0] / dx))
+    return Registration(shift_px, (float(s_xy[0]), float(s_xy[1])), "bragg-phase", residual,
+                        "phase_rms_rad", sign, coarse)
+
+
+def _resample(image, rows, cols, order):
+    """Spline resampling at (rows, cols); points outside the frame or next to NaN become NaN."""
+    invalid = ~np.isfinite(image)
+    filled = _fill_invalid(image, invalid)
+    out = ndimage.map_coordinates(filled, [rows, cols], order=order, mode="nearest")
+    ny, nx = image.shape
+    outside = (rows < -0.5) | (rows > ny - 0.5) | (cols < -0.5) | (cols > nx - 0.5)
+    if invalid.any():
+        # Any sample whose interpolation footprint touches a NaN pixel is not trusted.
+        near = ndimage.map_coordinates(invalid.astype(float), [rows, cols], order=1, mode="nearest") > 0
+        outside |= near
+    out[outside] = np.nan
+    return out
+
+
+def apply_shift(image, shift_px, *, mode="spline", order=3):
+    """Shift an image by a sub-pixel amount: out(r) = image(r - shift).
+
+    Parameters
+    ----------
+    image : (row, col) array_like
+        The image.
+    shift_px : (float, float)
+        (row, col) shift in pixels, as in :attr:`Registration.shift_px`.
+    mode : {"spline", "fourier"}
+        "spline" (default): cubic spline interpolation
+        (``scipy.ndimage.map_coordinates``); its error stays local, so it suits
+        real scans, which are not periodic; pixels brought in from outside the
+        frame, or next to NaN pixels, become NaN. "fourier":
+        ``scipy.ndimage.fourier_shift``, exact for a periodic band-limited
+        image, but a non-periodic frame wraps around and rings from its edges.
+    order : int
+        Spline order for ``mode="spline"``.
+
+    Returns
+    -------
+    ndarray
+        The shifted image (float).
+
+    Raises
+    ------
+    InputError
+        If the image is not 2-D, the shift is not two numbers or the mode is unknown.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> image = np.cos(2 * np.pi * np.arange(32) / 8)[None, :].repeat(4, 0)
+    >>> out = apply_shift(image, (0, 2), mode="fourier")
+    >>> bool(np.allclose(out, np.roll(image, 2, axis=1)))
+    True
+    """
+    image = _image(image, "image")
+    shift = np.asarray(shift_px, dtype=float).reshape(-1)
+    if shift.size != 2 or not np.all(np.isfinite(shift)):
+        raise InputError(f"shift_px must be a finite (row, col) pair, got {shift_px!r}")
+    if mode == "fourier":
+        if not np.all(np.isfinite(image)):
+            raise InputError("apply_shift: mode='fourier' needs an image without NaN; use mode='spline'")
+        return np.fft.ifft2(ndimage.fourier_shift(np.fft.fft2(image), shift)).real
+    if mode != "spline":
+        raise InputError(f"mode must be 'spline' or 'fourier', got {mode!r}")
+    rows, cols = np.mgrid[: image.shape[0], : image.shape[1]].astype(float)
+    return _resample(image, rows - shift[0], cols - shift[1], order)
+
+
+def undo_displacement(image, displacement_nm, *, pixel_size_nm, order=3):
+    """Resample an image through a displacement field: T'(r) = T(r - u(r)).
+
+    This is the resampling step of drift correction [1]_ (METHODS §2): with u
+    the field measured on the scan, it puts every channel of that scan on an
+    undistorted grid.
+
+    Parameters
+    ----------
+    image : (row, col) array_like
+        The image.
+    displacement_nm : (2, row, col) array_like
+        (ux, uy) in nm at every pixel.
+    pixel_size_nm : float or (float, float)
+        Pixel size in nm.
+    order : int
+        Spline order (``scipy.ndimage.map_coordinates``).
+
+    Returns
+    -------
+    ndarray
+        The resampled image; pixels sampled from outside the frame are NaN.
+
+    Raises
+    ------
+    InputError
+        If the field's shape is not (2, row, col) of the image.
+
+    References
+    ----------
+    .. [1] M. J. Lawler et al., Nature 466, 347 (2010). doi:10.1038/nature09169
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> image = np.tile(np.arange(16.0), (16, 1))
+    >>> u = np.zeros((2, 16, 16)); u[0] = 0.2          # ux = 2 px at 0.1 nm
+    >>> round(float(undo_displacement(image, u, pixel_size_nm=0.1)[8, 8]), 6)
+    6.0
+    """
+    image = _image(image, "image")
+    pixel_size = pixel_size_pair(pixel_size_nm)
+    u = np.asarray(displacement_nm, dtype=float)
+    if u.shape != (2,) + image.shape:
+        raise InputError(f"displacement_nm must have shape (2, row, col) = {(2,) + image.shape}, got {u.shape}")
+    if not np.all(np.isfinite(u)):
+        raise InputError("displacement_nm holds NaN or infinite values")
+    rows, cols = np.mgrid[: image.shape[0], : image.shape[1]].astype(float)
+    return _resample(image, rows - u[1] / pixel_size[0], cols - u[0] / pixel_size[1], order)
+
+
+# --------------------------------------------------------------------------- phase shifts
+
+
+def phase_difference(a1, a2):
+    """Local phase shift between two lock-in fields: arg(A1 conj A2), in (-pi, pi].
+
+    Parameters
+    ----------
+    a1, a2 : complex array, same shape
+        Lock-in fields (from :func:`domains.lockin`) of the same wavevector(s)
+        at two biases.
+
+    Returns
+    -------
+    ndarray
+        Delta phi in radians.
+
+    Examples
+    --------
+    >>> round(float(phase_difference(np.exp(2.0j), np.exp(0.5j))), 6)
+    1.5
+    """
+    a1, a2 = np.asarray(a1), np.asarray(a2)
+    if a1.shape != a2.shape:
+        raise InputError(f"a1 and a2 must have the same shape, got {a1.shape} and {a2.shape}")
+    return np.angle(a1 * np.conj(a2))
+
+
+@dataclass(frozen=True)
+class ContrastVerdict:
+    """What the per-component phase shifts of one domain say about its contrast.
+
+    Attributes
+    ----------
+    verdict : str
+        "inverted" (every Delta phi_j compatible with pi, not with 0),
+        "not inverted" (compatible with 0, not with pi), "dephased" (the
+        components disagree among themselves), "shifted" (they agree on a
+        common shift that is neither 0 nor pi) or "undetermined" (both 0 and
+        pi compatible, or no data).
+    confidence : float
+        1 - p of the hypothesis the verdict rejects: of "not inverted" for
+        "inverted", of "inverted" for "not inverted", of "all components
+        equal" for "dephased", of the more compatible of 0 and pi for
+        "shifted"; 0 for "undetermined".
+    p_inverted, p_not_inverted, p_consistent : float
+        chi-square p-values of Delta phi_j = pi for all j, = 0 for all j, and
+        of all Delta phi_j equal to their common (weighted circular) mean.
+    sigmas_from_inverted, sigmas_from_not_inverted : float
+        Largest |Delta phi_j - h| / sigma_j over the components, h = pi or 0,
+        sigma_j the error including the tolerance.
+    common_phase_rad : float
+        The weighted circular mean of the Delta phi_j.
+    """
+
+    verdict: str
+    confidence: float
+    p_inverted: float
+    p_not_inverted: float
+    p_consistent: float
+    sigmas_from_inverted: float
+    sigmas_from_not_inverted: float
+    common_phase_rad: float
+
+    def to_dict(self) -> dict:
+        """JSON-ready dictionary (angles in degrees)."""
+        return {
+            "verdict": self.verdict,
+            "confidence": _json_float(self.confidence),
+            "p_inverted": _json_float(self.p_inverted),
+            "p_not_inverted": _json_float(self.p_not_inverted),
+            "p_consistent": _json_float(self.p_consistent),
+            "sigmas_from_inverted": _json_float(self.sigmas_from_inverted),
+            "sigmas_from_not_inverted": _json_float(self.sigmas_from_not_inverted),
+            "common_phase_deg": _json_float(math.degrees(self.common_phase_rad)),
+        }
+
+
+def classify_contrast(delta_phi_rad, se_rad, *, tolerance_rad=DEFAULT_TOLERANCE_RAD, alpha=0.01):
+    """Decide whether a domain's contrast inverts between two biases, from its phase shifts.
+
+    Filled- and empty-state images of a charge-density wave are often
+    complementary [1]_, but not always, so inversion is tested, not assumed.
+    Each hypothesis h (pi: inverted; 0: not inverted) is tested with
+    chi^2 = sum_j wrap(Delta phi_j - h)^2 / (se_j^2 + tolerance^2) on k
+    degrees of freedom; the components' mutual consistency with the same
+    statistic around their weighted circular mean, on k - 1 degrees of
+    freedom. A hypothesis is compatible when its p-value is at least
+    ``alpha``.
+
+    Parameters
+    ----------
+    delta_phi_rad : (k,) array_like
+        Per-component circular-mean phase shifts, radians.
+    se_rad : (k,) array_like
+        Their standard errors, radians (NaN or inf: no information).
+    tolerance_rad : float
+        Systematic allowance added in quadrature to each error (default 10 degrees).
+    alpha : float
+        Significance level, 0 < alpha < 1.
+
+    Returns
+    -------
+    ContrastVerdict
+
+    Raises
+    ------
+    InputError
+        If the arrays differ in length, a tolerance is negative or alpha is outside (0, 1).
+
+    References
+    ----------
+    .. [1] J. M. Carpinelli, H. H. Weitering, E. W. Plummer, R. Stumpf,
+       "Direct observation of a surface charge density wave", Nature 381,
+       398 (1996). doi:10.1038/381398a0
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> classify_contrast([np.pi, -3.1, 3.12], [0.02, 0.02, 0.02]).verdict
+    'inverted'
+    >>> classify_contrast([np.pi, np.pi, np.pi / 3], [0.02, 0.02, 0.02]).verdict
+    'dephased'
+    """
+    dphi = np.atleast_1d(np.asarray(delta_phi_rad, dtype=float))
+    se = np.atleast_1d(np.asarray(se_rad, dtype=float))
+    if dphi.ndim != 1 or dphi.shape != se.shape or dphi.size == 0:
+        raise InputError(f"delta_phi_rad and se_rad must be 1-D of the same length, got {dphi.shape} and {se.shape}")
+    if not (np.isfinite(tolerance_rad) and tolerance_rad >= 0):
+        raise InputError(f"tolerance_rad must be >= 0, got {tolerance_rad}")
+    if not 0 < alpha < 1:
+        raise InputError(f"alpha must lie between 0 and 1, got {alpha}")
+    usable = np.isfinite(dphi) & np.isfinite(se)
+    if not usable.any():
+        return ContrastVerdict("undetermined", 0.0, math.nan, math.nan, math.nan, math.nan, math.nan, math.nan)
+    dphi, se = dphi[usable], se[usable]
+    err = np.sqrt(se**2 + tolerance_rad**2)
+    if np.any(err == 0):
+        raise InputError("classify_contrast: a zero standard error needs a positive tolerance_rad")
+    k = dphi.size
+    weights = 1 / err**2
+    common = float(np.angle(np.sum(weights * np.exp(1j * dphi))))
+
+    def test(h, dof):
+        z = _wrap(dphi - h) / err
+        chi2 = float(np.sum(z**2))
+        p = float(stats.chi2.sf(chi2, dof)) if dof > 0 else 1.0
+        return p, float(np.max(np.abs(z)))
+
+    p_pi, z_pi = test(np.pi, k)
+    p_0, z_0 = test(0.0, k)
+    p_cons, _ = test(common, k - 1)
+    if p_cons < alpha:
+        verdict, confidence = "dephased", 1 - p_cons
+    elif p_pi >= alpha and p_0 < alpha:
+        verdict, confidence = "inverted", 1 - p_0
+    elif p_0 >= alpha and p_pi < alpha:
+        verdict, confidence = "not inverted", 1 - p_pi
+    elif p_0 < alpha and p_pi < alpha:
+        verdict, confidence = "shifted", 1 - max(p_0, p_pi)
+    else:
+        verdict, confidence = "undetermined", 0.0
+    return ContrastVerdict(verdict, float(confidence), p_pi, p_0, p_cons, z_pi, z_0, common)
+
+
+@dataclass(frozen=True)
+class DomainPhaseShift:
+    """Per-component phase shift of one domain between two biases.
+
+    Attributes
+    ----------
+    domain : int
+        Domain label.
+    n_pixels : int
+        Interior pixels used (at least ``margin_sigma`` sigma from other labels,
+        the edge and the mask).
+    n_independent : float
+        Independent areas in the weighted mean, about area / (4 pi sigma^2).
+    delta_phi_rad : ndarray (k,)
+        Amplitude-weighted circular mean of arg(A_j(V1) conj A_j(V2)).
+    se_rad : ndarray (k,)
+        Standard error of that mean.
+    spread_rad : ndarray (k,)
+        Circular standard deviation sqrt(-2 ln R) over the domain's pixels.
+    verdict : ContrastVerdict
+    """
+
+    domain: int
+    n_pixels: int
+    n_independent: float
+    delta_phi_rad: np.ndarray
+    se_rad: np.ndarray
+    spread_rad: np.ndarray
+    verdict: ContrastVerdict
+
+    def to_dict(self) -> dict:
+        """JSON-ready dictionary (angles in degrees)."""
+        deg = lambda v: [_json_float(math.degrees(x)) for x in v]  # noqa: E731
+        return {
+            "domain": int(self.domain),
+            "n_pixels": int(self.n_pixels),
+            "n_independent": _json_float(self.n_independent),
+            "delta_phi_deg": deg(self.delta_phi_rad),
+            "delta_phi_deg_se": deg(self.se_rad),
+            "spread_deg": deg(self.spread_rad),
+            "verdict": self.verdict.to_dict(),
+        }
+
+
+def _phase_shift_stats(a1, a2, interior, ids, sigma_nm, pixel_size, tolerance_rad, alpha):
+    flat = interior.ravel()
+    n = int(max(ids.max() if ids.size else 0, flat.max() if flat.size else 0)) + 1
+    k = a1.shape[0]
+    mean = np.full((k, n), np.nan)
+    se = np.full((k, n), np.nan)
+    spread = np.full((k, n), np.nan)
+    neff = np.zeros((k, n))
+    sel = flat > 0
+    idx = flat[sel]
+    counts = np.bincount(idx, minlength=n)
+    for j in range(k):
+        z = (a1[j] * np.conj(a2[j])).ravel()[sel]
+        ok = np.isfinite(z)
+        zi, ii = z[ok], idx[ok]
+        w = np.abs(zi)
+        unit = np.where(w > 0, zi / np.where(w > 0, w, 1), 0)
+        W = _sums(ii, w, n)
+        S1 = _sums(ii, zi.real, n) + 1j * _sums(ii, zi.imag, n)
+        # sum w exp(2i dphi) = sum z^2 / |z|, for the second trigonometric moment.
+        z2 = zi * unit
+        S2 = _sums(ii, z2.real, n) + 1j * _sums(ii, z2.imag, n)
+        W2 = _sums(ii, w**2, n)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            R = np.abs(S1) / W
+            m = np.angle(S1)
+            m2 = np.real(S2 * np.exp(-2j * m)) / W
+            neff[j] = _independent_areas(W, W2, sigma_nm, pixel_size)
+            # Circular standard error of the mean (Fisher, Statistical Analysis of
+            # Circular Data, 1993, §4.4; from memory): sqrt((1 - m2) / (2 n R^2)).
+            se_j = np.sqrt(np.clip(1 - m2, 0, None) / (2 * neff[j] * R**2))
+            spread_j = np.sqrt(-2 * np.log(np.clip(R, 1e-300, 1)))
+        good = W > 0
+        mean[j, good], se[j, good], spread[j, good] = m[good], se_j[good], spread_j[good]
+    out = []
+    for d in ids:
+        verdict = classify_contrast(mean[:, d], se[:, d], tolerance_rad=tolerance_rad, alpha=alpha)
+        out.append(DomainPhaseShift(int(d), int(counts[d]) if d < counts.size else 0, float(np.min(neff[:, d])),
+                                    mean[:, d].copy(), se[:, d].copy(), spread[:, d].copy(), verdict))
+    return out
+
+
+def phase_shifts(a1, a2, labels, *, sigma_nm, pixel_size_nm, mask=None, margin_sigma=2.5,
+                 tolerance_rad=DEFAULT_TOLERANCE_RAD, alpha=0.01):
+    """Per-domain, per-component phase shift Delta phi_j = arg(A_j(V1) conj A_j(V2)) and its verdict.
+
+    In each domain's interior the shift is the circular mean of Delta phi_j
+    weighted by |A_j(V1)| |A_j(V2)|, i.e. arg sum A_j(V1) conj A_j(V2).
+    Its standard error is the circular standard error [1]_ with the number
+    of independent areas area / (4 pi sigma^2) (the correlation area of a
+    Gaussian lock-in; derived) in place of the pixel count. For a pure wave
+    of amplitude A0 with white noise sigma_n per pixel this gives
+    2 sigma_n / (A0 sqrt(N)) over N pixels, whatever sigma (derived).
+
+    Parameters
+    ----------
+    a1, a2 : (k, row, col) or (row, col) complex array
+        Lock-in fields (:func:`domains.lockin`) at the same wavevectors for
+        bias V1 and bias V2, on registered pixel grids.
+    labels : (row, col) int array
+        Domain labels, 0 = wall or unassigned, 1..N domains.
+    sigma_nm : float
+        The lock-in width used for ``a1`` and ``a2``, nm.
+    pixel_size_nm : float or (float, float)
+        Pixel size in nm.
+    mask : (row, col) array of bool, optional
+        True where pixels are untrusted.
+    margin_sigma : float
+        Pixels closer than this many sigma to another label, the frame edge or
+        the mask are left out.
+    tolerance_rad, alpha : float
+        Passed to :func:`classify_contrast`.
+
+    Returns
+    -------
+    list of DomainPhaseShift
+        One per domain label present, in increasing label order.
+
+    Raises
+    ------
+    InputError
+        If shapes disagree or labels are not non-negative integers.
+
+    References
+    ----------
+    .. [1] N. I. Fisher, Statistical Analysis of Circular Data (Cambridge
+       University Press, 1993). doi:10.1017/CBO9780511564345
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> a1 = np.full((1, 40, 40), 0.5 + 0j)
+    >>> labels = np.ones((40, 40), dtype=np.int32)
+    >>> [r.verdict.verdict for r in phase_shifts(a1, -a1, labels, sigma_nm=0.2, pixel_size_nm=0.1)]
+    ['inverted']
+    """
+    a1, a2 = np.asarray(a1), np.asarray(a2)
+    if a1.ndim == 2 and a2.ndim == 2:
+        a1, a2 = a1[None], a2[None]
+    if a1.shape != a2.shape or a1.ndim != 3:
+        raise InputError(f"a1 and a2 must both be (k, row, col) lock-in fields, got {a1.shape} and {a2.shape}")
+    pixel_size = pixel_size_pair(pixel_size_nm)
+    sigma_nm = _sigma(sigma_nm)
+    labels = _labels(labels, a1.shape[1:])
+    mask = _mask(mask, a1.shape[1:])
+    interior = _interior_labels(labels, sigma_nm=sigma_nm, pixel_size=pixel_size, mask=mask,
+                                margin_sigma=margin_sigma)
+    ids = np.unique(labels[labels > 0])
+    return _phase_shift_stats(a1, a2, interior, ids, sigma_nm, pixel_size, tolerance_rad, alpha)
+
+
+# --------------------------------------------------------------------------- per-domain contrast
+
+
+def _contrast_rows(image, a, labels, interior, ids, bias_V, sigma_nm, pixel_size):
+    """Rows of per-domain mean amplitude (per component, total) and mean map value."""
+    dy, dx = pixel_size
+    k = a.shape[0]
+    n = int(labels.max()) + 1
+    amp = 2 * np.abs(a)
+    total = np.sqrt(np.sum(amp**2, axis=0))
+    flat_int = interior.ravel()
+    sel_int = flat_int > 0
+    ii = flat_int[sel_int]
+    n_int = np.bincount(ii, minlength=n)
+
+    def mean_se(values, index, sel, neff_fn):
+        v = values.ravel()[sel]
+        ok = np.isfinite(v)
+        c = np.bincount(index[ok], minlength=n).astype(float)
+        s = _sums(index[ok], v[ok], n)
+        s2 = _sums(index[ok], v[ok] ** 2, n)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mu = s / c
+            var = np.clip(s2 / c - mu**2, 0, None) * c / np.maximum(c - 1, 1)
+            se = np.sqrt(var / neff_fn(c))
+        return mu, se
+
+    def lockin_neff(c):
+        # Independent areas of a lock-in field: area / (4 pi sigma^2), derived.
+        return np.clip(c * dy * dx / (4 * math.pi * sigma_nm**2), 1, np.maximum(c, 1))
+
+    amp_stats = [mean_se(amp[j], ii, sel_int, lockin_neff) for j in range(k)]
+    tot_mu, tot_se = mean_se(total, ii, sel_int, lockin_neff)
+    flat = labels.ravel()
+    sel = flat > 0
+    # Map values are averaged pixel by pixel over the whole domain; their error
+    # treats pixels as independent (std / sqrt n).
+    g_mu, g_se = mean_se(image, flat[sel], sel, lambda c: np.maximum(c, 1))
+    n_all = np.bincount(flat[sel], minlength=n)
+    rows = []
+    for d in ids:
+        row = {"domain": int(d), "bias_V": float(bias_V), "n_pixels": int(n_all[d]),
+               "n_pixels_interior": int(n_int[d]), "area_nm2": float(n_all[d] * dy * dx)}
+        for j, (mu, se) in enumerate(amp_stats, start=1):
+            row[f"amplitude_q{j}"] = _json_float(mu[d])
+            row[f"amplitude_q{j}_se"] = _json_float(se[d])
+        row["amplitude_total"] = _json_float(tot_mu[d])
+        row["amplitude_total_se"] = _json_float(tot_se[d])
+        row["map_mean"] = _json_float(g_mu[d])
+        row["map_mean_se"] = _json_float(g_se[d])
+        rows.append(row)
+    return rows
+
+
+def _check_maps(maps, shape, pixel_size, like="the topograph"):
+    if not isinstance(maps, dict) or not maps:
+        raise InputError(f"maps must be a non-empty dict {{bias_V: image}}, got {type(maps).__name__}")
+    out = {}
+    for key, value in maps.items():
+        try:
+            bias = float(key)
+        except (TypeError, ValueError):
+            raise InputError(f"maps keys must be biases in V, got {key!r}") from None
+        if not np.isfinite(bias):
+            raise InputError(f"maps keys must be finite biases in V, got {key!r}")
+        if bias in out:
+            raise InputError(f"maps holds bias {bias:g} V twice")
+        name = f"map at {bias:g} V"
+        if isinstance(value, Scan):
+            if not np.allclose(value.pixel_size_nm, pixel_size, rtol=1e-6):
+                raise InputError(f"{name} ({value.source}): pixel size {value.pixel_size_nm} nm differs from "
+                                 f"pixel_size_nm = {pixel_size} nm")
+            if value.bias_V is not None and not np.isclose(value.bias_V, bias):
+                raise InputError(f"{name} ({value.source}): the scan says bias_V = {value.bias_V:g} V, "
+                                 f"but it is filed under {bias:g} V")
+        image = _image(value, name)
+        if shape is not None and image.shape != tuple(shape):
+            raise InputError(f"{name} has shape {image.shape}, expected {tuple(shape)} like {like}")
+        out[bias] = image
+    return out
+
+
+def domain_contrast(maps, labels, q, *, sigma_nm, pixel_size_nm, mask=None, margin_sigma=2.5):
+    """Per-domain contrast at each bias: order amplitude per component and in total, and the mean map value.
+
+    The order amplitude is the lock-in amplitude 2|A_j| [1]_ averaged over the
+    domain's interior (``margin_sigma`` sigma from other labels, edges and
+    masks); the total is sqrt(sum_j (2|A_j|)^2) per pixel, averaged. Its
+    standard error is the pixel standard deviation over sqrt(area / (4 pi
+    sigma^2)) (the independent areas of a Gaussian lock-in; derived). The mean
+    map value (e.g. conductance) is averaged over all the domain's pixels,
+    with error std / sqrt(n).
+
+    Parameters
+    ----------
+    maps : dict {bias_V: (row, col) array or Scan}
+        One registered map per bias (e.g. dI/dV), all on one pixel grid.
+    labels : (row, col) int array
+        0 = wall or unassigned, 1..N domains.
+    q : (k, 2) array_like
+        Order wavevectors (qx, qy) in rad/nm.
+    sigma_nm : float
+        Lock-in width in nm.
+    pixel_size_nm : float or (float, float)
+        Pixel size in nm.
+    mask : (row, col) array of bool, optional
+        True where pixels are untrusted.
+    margin_sigma : float
+        Interior margin in units of sigma.
+
+    Returns
+    -------
+    list of dict
+        One row per domain and bias, for ``contrast.csv``: ``domain``,
+        ``bias_V``, ``n_pixels``, ``n_pixels_interior``, ``area_nm2``,
+        ``amplitude_q1`` ... ``amplitude_qk`` and ``amplitude_total`` (in the
+        map's units) with ``_se`` errors, ``map_mean`` and ``map_mean_se``.
+
+    Raises
+    ------
+    InputError
+        On mismatched shapes or pixel sizes, a bias given twice, or bad labels.
+
+    References
+    ----------
+    .. [1] J. A. Slezak et al., PNAS 105, 3203 (2008). doi:10.1073/pnas.0706795105
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> y, x = np.mgrid[:64, :64] * 0.1
+    >>> q = [[2 * np.pi / 0.8, 0.0]]
+    >>> maps = {-0.3: 1 + 0.4 * np.cos(q[0][0] * x), 0.3: 1 - 0.2 * np.cos(q[0][0] * x)}
+    >>> rows = domain_contrast(maps, np.ones((64, 64), np.int32), q, sigma_nm=0.4, pixel_size_nm=0.1)
+    >>> [(r["bias_V"], round(r["amplitude_q1"], 2)) for r in rows]
+    [(-0.3, 0.4), (0.3, 0.2)]
+    """
+    pixel_size = pixel_size_pair(pixel_size_nm)
+    sigma_nm = _sigma(sigma_nm)
+    q = _q(q)
+    labels = np.asarray(labels)
+    maps = _check_maps(maps, labels.shape, pixel_size, like="the labels")
+    labels = _labels(labels, labels.shape)
+    bad = _mask(mask, labels.shape)
+    for image in maps.values():
+        bad |= ~np.isfinite(image)
+    interior = _interior_labels(labels, sigma_nm=sigma_nm, pixel_size=pixel_size, mask=bad,
+                                margin_sigma=margin_sigma)
+    ids = np.unique(labels[labels > 0])
+    rows = []
+    for bias in sorted(maps):
+        a = lockin(maps[bias], q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad)
+        rows.extend(_contrast_rows(np.where(bad, np.nan, maps[bias]), a, labels, interior, ids, bias,
+                                   sigma_nm, pixel_size))
+    return rows
+
+
+# --------------------------------------------------------------------------- grids
+
+
+@dataclass
+class Fingerprints:
+    """Per-domain order amplitude and phase at every energy of a spectroscopic grid.
+
+    Attributes
+    ----------
+    energies_V : ndarray (E,)
+    domains : ndarray (N,)
+        Domain labels.
+    amplitude : ndarray (N, E, k)
+        Mean lock-in amplitude 2|A_j| over each domain's interior.
+    phase_rad : ndarray (N, E, k)
+        Amplitude-weighted circular mean of arg A_j, referenced to pixel (0, 0).
+    n_pixels : ndarray (N,)
+        Interior pixels used per domain.
+    """
+
+    energies_V: np.ndarray
+    domains: np.ndarray
+    amplitude: np.ndarray
+    phase_rad: np.ndarray
+    n_pixels: np.ndarray
+
+    @property
+    def amplitude_total(self) -> np.ndarray:
+        """(N, E) total amplitude sqrt(sum_j amplitude_j^2)."""
+        return np.sqrt(np.sum(self.amplitude**2, axis=-1))
+
+    def rows(self) -> list[dict]:
+        """One row per domain and energy for ``fingerprint.csv`` (phases in degrees)."""
+        out = []
+        k = self.amplitude.shape[-1]
+        total = self.amplitude_total
+        for i, d in enumerate(self.domains):
+            for e, energy in enumerate(self.energies_V):
+                row = {"domain": int(d), "energy_V": float(energy), "n_pixels_interior": int(self.n_pixels[i])}
+                for j in range(k):
+                    row[f"amplitude_q{j + 1}"] = _json_float(self.amplitude[i, e, j])
+                    row[f"phase_q{j + 1}_deg"] = _json_float(math.degrees(self.phase_rad[i, e, j]))
+                row["amplitude_total"] = _json_float(total[i, e])
+                out.append(row)
+        return out
+
+
+def grid_fingerprints(grid, energies_V, labels, q, *, sigma_nm, pixel_size_nm, mask=None, margin_sigma=2.5,
+                      progress=False):
+    """Per-domain order amplitude and phase at every energy of a grid (energy, row, col).
+
+    Each energy slice is demodulated on its own (spatial lock-in [1]_) and
+    averaged over each domain's interior; a dask grid is read one chunk of
+    energies at a time and never held whole in memory.
+
+    Parameters
+    ----------
+    grid : (energy, row, col) array or dask array
+        Spectroscopic grid, e.g. dI/dV.
+    energies_V : (energy,) array_like
+        Bias of each slice, V.
+    labels : (row, col) int array
+        0 = wall or unassigned, 1..N domains.
+    q : (k, 2) array_like
+        Order wavevectors in rad/nm.
+    sigma_nm : float
+        Lock-in width in nm.
+    pixel_size_nm : float or (float, float)
+        Pixel size in nm.
+    mask : (row, col) array of bool, optional
+        True where pixels are untrusted.
+    margin_sigma : float
+        Interior margin in units of sigma.
+    progress : bool or None
+        Show a progress bar over the energies (None: only on a terminal).
+
+    Returns
+    -------
+    Fingerprints
+
+    Raises
+    ------
+    InputError
+        If the grid is not 3-D, the energies do not match its first axis, or
+        the labels' shape differs from a slice.
+
+    References
+    ----------
+    .. [1] J. A. Slezak et al., PNAS 105, 3203 (2008). doi:10.1073/pnas.0706795105
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> x = np.arange(48)[None, :] * 0.1 * np.ones((48, 1))
+    >>> q = [[2 * np.pi / 0.6, 0.0]]
+    >>> grid = np.stack([s * np.cos(q[0][0] * x) for s in (0.1, 0.5, 0.2)])
+    >>> fp = grid_fingerprints(grid, [-0.1, 0.0, 0.1], np.ones((48, 48), np.int32), q,
+    ...                        sigma_nm=0.3, pixel_size_nm=0.1)
+    >>> np.round(fp.amplitude[0, :, 0], 3).tolist()
+    [0.1, 0.5, 0.2]
+    """
+    from tqdm import tqdm
+
+    pixel_size = pixel_size_pair(pixel_size_nm)
+    sigma_nm = _sigma(sigma_nm)
+    q = _q(q)
+    lazy = _is_dask(grid)
+    if not lazy:
+        grid = np.asarray(grid)
+    if grid.ndim != 3:
+        raise InputError(f"grid must be 3-D (energy, row, col), got shape {tuple(grid.shape)}")
+    if grid.dtype.kind not in "biuf":
+        raise InputError(f"grid must hold real numbers, got dtype {grid.dtype}")
+    energies = np.asarray(energies_V, dtype=float).reshape(-1)
+    if energies.size != grid.shape[0] or not np.all(np.isfinite(energies)):
+        raise InputError(f"energies_V must hold {grid.shape[0]} finite values (one per slice), got {energies.size}")
+    labels = _labels(labels, grid.shape[1:])
+    bad = _mask(mask, grid.shape[1:])
+    interior = _interior_labels(labels, sigma_nm=sigma_nm, pixel_size=pixel_size, mask=bad,
+                                margin_sigma=margin_sigma)
+    ids = np.unique(labels[labels > 0])
+    n = int(labels.max()) + 1
+    flat = interior.ravel()
+    sel = flat > 0
+    idx = flat[sel]
+    k = q.shape[0]
+    amp = np.full((ids.size, energies.size, k), np.nan)
+    ph = np.full((ids.size, energies.size, k), np.nan)
+    # A dask grid is read one chunk of energies at a time (a chunk holds a few slices),
+    # so each stored chunk is read once and the whole grid never sits in memory.
+    bounds = np.cumsum((0,) + tuple(grid.chunks[0])) if lazy else np.arange(energies.size + 1)
+    block, block_start = None, None
+
+    def energy_slice(e):
+        nonlocal block, block_start
+        if not lazy:
+            return np.asarray(grid[e], dtype=float)
+        c = int(np.searchsorted(bounds, e, side="right")) - 1
+        if block_start != bounds[c]:
+            block, block_start = np.asarray(grid[bounds[c]:bounds[c + 1]].compute(), dtype=float), bounds[c]
+        return block[e - block_start]
+
+    for e in tqdm(range(energies.size), disable=(not progress) if progress is not None else None,
+                  desc="energies", unit="slice"):
+        image = energy_slice(e)
+        a = lockin(image, q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad)
+        for j in range(k):
+            z = a[j].ravel()[sel]
+            ok = np.isfinite(z)
+            c = np.bincount(idx[ok], minlength=n)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                amp[:, e, j] = (2 * _sums(idx[ok], np.abs(z[ok]), n) / c)[ids]
+            s = _sums(idx[ok], z[ok].real, n) + 1j * _sums(idx[ok], z[ok].imag, n)
+            ph[:, e, j] = np.where(c[ids] > 0, np.angle(s[ids]), np.nan)
+    counts = np.bincount(idx, minlength=n)[ids]
+    return Fingerprints(energies, ids, amp, ph, counts)
+
+
+def fingerprint_peaks(fingerprints, *, component=None):
+    """Energy of the largest order amplitude in each domain, refined by a parabola through three points.
+
+    Parameters
+    ----------
+    fingerprints : Fingerprints
+        From :func:`grid_fingerprints`.
+    component : int, optional
+        Component index j (0-based); default the total amplitude.
+
+    Returns
+    -------
+    list of dict
+        Per domain: ``domain``, ``peak_energy_V`` (vertex of the parabola
+        through the maximum and its two neighbours, kept between them),
+        ``peak_energy_V_grid`` (the sampled energy of the maximum),
+        ``peak_amplitude`` and ``at_edge`` (maximum on the first or last
+        energy: not refined, possibly outside the range).
+
+    Raises
+    ------
+    InputError
+        If ``component`` is out of range.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> e = np.linspace(-0.5, 0.5, 21)                     # 50 mV steps
+    >>> amp = 1 / (1 + ((e - 0.13) / 0.1) ** 2)            # Lorentzian peak at 0.13 V
+    >>> fp = Fingerprints(e, np.array([1]), amp[None, :, None], np.zeros((1, 21, 1)), np.array([100]))
+    >>> peak = fingerprint_peaks(fp)[0]
+    >>> round(peak["peak_energy_V_grid"], 2), round(peak["peak_energy_V"], 2)
+    (0.15, 0.13)
+    """
+    amp = fingerprints.amplitude
+    if component is None:
+        curve = fingerprints.amplitude_total
+    else:
+        if not (isinstance(component, (int, np.integer)) and 0 <= component < amp.shape[-1]):
+            raise InputError(f"component must be an index 0..{amp.shape[-1] - 1}, got {component!r}")
+        curve = amp[:, :, component]
+    energies = np.asarray(fingerprints.energies_V, dtype=float)
+    order = np.argsort(energies)
+    energies, curve = energies[order], curve[:, order]
+    out = []
+    for i, d in enumerate(fingerprints.domains):
+        c = curve[i]
+        row = {"domain": int(d), "peak_energy_V": None, "peak_energy_V_grid": None,
+               "peak_amplitude": None, "at_edge": None}
+        if np.all(~np.isfinite(c)):
+            out.append(row)
+            continue
+        m = int(np.nanargmax(c))
+        e_peak, a_peak = float(energies[m]), float(c[m])
+        at_edge = m == 0 or m == len(c) - 1
+        if not at_edge and np.all(np.isfinite(c[m - 1:m + 2])):
+            coef = np.polyfit(energies[m - 1:m + 2], c[m - 1:m + 2], 2)
+            if coef[0] < 0:
+                vertex = -coef[1] / (2 * coef[0])
+                e_peak = float(np.clip(vertex, energies[m - 1], energies[m + 1]))
+                a_peak = float(np.polyval(coef, e_peak))
+        row.update(peak_energy_V=e_peak, peak_energy_V_grid=float(energies[m]), peak_amplitude=a_peak,
+                   at_edge=bool(at_edge))
+        out.append(row)
+    return out
+
+
+# --------------------------------------------------------------------------- top level
+
+
+@dataclass
+class BiasComparison:
+    """Everything :func:`compare_biases` found: registrations, per-pair phase shifts and verdicts, contrast table.
+
+    Attributes
+    ----------
+    biases_V : list of float
+        The biases, sorted.
+    reference_bias_V : float
+        V1 of every pair (V1, V2).
+    q_rad_per_nm : ndarray (k, 2)
+    sigma_nm : float
+    registrations : dict {bias_V: Registration or None}
+        None where registration was not asked for.
+    pairs : dict {(V1, V2): list of DomainPhaseShift}
+    tolerance_rad, alpha : float
+        The classification settings.
+    """
+
+    biases_V: list
+    reference_bias_V: float
+    q_rad_per_nm: np.ndarray
+    sigma_nm: float
+    registrations: dict
+    pairs: dict
+    tolerance_rad: float
+    alpha: float
+    _rows: list = field(default_factory=list, repr=False)
+
+    def contrast_rows(self) -> list[dict]:
+        """Per-domain, per-bias rows for ``contrast.csv`` (see :func:`domain_contrast`)."""
+        return [dict(r) for r in self._rows]
+
+    def verdicts(self, pair=None) -> dict:
+        """{domain: verdict string} for one pair (default: the first)."""
+        key = next(iter(self.pairs)) if pair is None else (float(pair[0]), float(pair[1]))
+        if key not in self.pairs:
+            raise InputError(f"no pair {pair!r}; the pairs are {list(self.pairs)}")
+        return {r.domain: r.verdict.verdict for r in self.pairs[key]}
+
+    def summary(self) -> dict:
+        """JSON-ready dict for the ``bias_comparison`` block of ``summary.json`` (angles in degrees)."""
+        return {
+            "biases_V": [float(b) for b in self.biases_V],
+            "reference_bias_V": float(self.reference_bias_V),
+            "q_rad_per_nm": np.asarray(self.q_rad_per_nm, dtype=float).tolist(),
+            "sigma_nm": float(self.sigma_nm),
+            "tolerance_deg": float(math.degrees(self.tolerance_rad)),
+            "alpha": float(self.alpha),
+            "registration": [
+                {"bias_V": float(b), **(reg.to_dict() if reg is not None else {"method": "none"})}
+                for b, reg in self.registrations.items()
+            ],
+            "pairs": [
+                {"bias_1_V": float(v1), "bias_2_V": float(v2), "domains": [r.to_dict() for r in rows]}
+                for (v1, v2), rows in self.pairs.items()
+            ],
+        }
+
+
+def compare_biases(topograph, maps, labels, q, *, sigma_nm, pixel_size_nm, bragg_q=None, reference_bias=None,
+                   mask=None, register_maps=True, map_topographs=None, displacement_nm=None, margin_sigma=2.5,
+                   tolerance_rad=DEFAULT_TOLERANCE_RAD, alpha=0.01):
+    """Register maps at several biases to the topograph and compare their order domain by domain.
+
+    Steps: undo each map's own displacement field (if given), register it to
+    the topograph (:func:`register`; Bragg phases when ``bragg_q`` is given,
+    else cross-correlation) and shift it (cubic spline), demodulate every map
+    at the order wavevectors ``q``, then for each pair (reference bias, other
+    bias) measure per domain and per component the phase shift
+    Delta phi_j = arg(A_j(V1) conj A_j(V2)) and classify it
+    (:func:`classify_contrast`): whether the contrast inverts is measured,
+    never assumed [1]_.
+
+    Parameters
+    ----------
+    topograph : (row, col) array or Scan
+        The topograph the labels were drawn on.
+    maps : dict {bias_V: (row, col) array or Scan}
+        One map per bias (e.g. dI/dV) of the same area.
+    labels : (row, col) int array
+        0 = wall or unassigned, 1..N domains, on the topograph's pixel grid.
+    q : (k, 2) array_like
+        Order wavevectors (qx, qy) in rad/nm.
+    sigma_nm : float
+        Lock-in width in nm.
+    pixel_size_nm : float or (float, float)
+        Pixel size in nm; a Scan passed in must agree with it.
+    bragg_q : (k, 2) array_like, optional
+        Bragg wavevectors for Bragg-phase registration.
+    reference_bias : float, optional
+        V1 of every pair; default the lowest bias.
+    mask : (row, col) array of bool, optional
+        True where pixels are untrusted.
+    register_maps : bool
+        False for maps recorded in the same scan as the topograph (no shift to find).
+    map_topographs : dict {bias_V: (row, col) array}, optional
+        The topograph recorded together with each map. When given, the shift
+        is found between topographs (whose lattice contrast does not change
+        with the map's bias) and applied to the map; this is safer than
+        registering a map whose contrast may invert onto the topograph.
+    displacement_nm : (2, row, col) array or dict {bias_V: (2, row, col) array}, optional
+        Displacement field(s) (ux, uy) in nm of the maps' own scans, undone
+        before registration (T'(r) = T(r - u)).
+    margin_sigma : float
+        Interior margin, in units of sigma, from walls, edges and the mask.
+    tolerance_rad, alpha : float
+        Classification settings (:func:`classify_contrast`).
+
+    Returns
+    -------
+    BiasComparison
+
+    Raises
+    ------
+    InputError
+        On mismatched shapes or pixel sizes, a reference bias not among the
+        maps, an empty ``maps`` or a displacement field for a missing bias.
+
+    References
+    ----------
+    .. [1] J. M. Carpinelli et al., Nature 381, 398 (1996). doi:10.1038/381398a0
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> y, x = np.mgrid[:64, :64] * 0.1
+    >>> qx = 2 * np.pi / 0.8
+    >>> labels = np.ones((64, 64), np.int32)
+    >>> topo = np.cos(qx * x)
+    >>> res = compare_biases(topo, {-0.3: topo, 0.3: -topo}, labels, [[qx, 0.0]], sigma_nm=0.4,
+    ...                      pixel_size_nm=0.1, register_maps=False)
+    >>> res.verdicts()
+    {1: 'inverted'}
+    """
+    pixel_size = pixel_size_pair(pixel_size_nm)
+    if isinstance(topograph, Scan) and not np.allclose(topograph.pixel_size_nm, pixel_size, rtol=1e-6):
+        raise InputError(f"topograph ({topograph.source}): pixel size {topograph.pixel_size_nm} nm differs "
+                         f"from pixel_size_nm = {pixel_size} nm")
+    topograph = _image(topograph, "topograph")
+    sigma_nm = _sigma(sigma_nm)
+    q = _q(q)
+    labels = _labels(labels, topograph.shape)
+    maps = _check_maps(maps, topograph.shape, pixel_size)
+    biases = sorted(maps)
+    if reference_bias is None:
+        reference = biases[0]
+    else:
+        try:
+            reference = float(reference_bias)
+        except (TypeError, ValueError):
+            raise InputError(f"reference_bias must be a bias in V, got {reference_bias!r}") from None
+        if reference not in maps:
+            raise InputError(f"reference_bias = {reference:g} V is not among the maps' biases "
+                             f"{[float(b) for b in biases]} V")
+    if len(biases) < 2:
+        raise InputError(f"compare_biases needs maps at two biases at least, got {[float(b) for b in biases]} V")
+    bad = _mask(mask, topograph.shape) | ~np.isfinite(topograph)
+    if displacement_nm is not None:
+        fields = displacement_nm if isinstance(displacement_nm, dict) else {b: displacement_nm for b in biases}
+        for key in fields:
+            if float(key) not in maps:
+                raise InputError(f"displacement_nm is given for bias {float(key):g} V, which has no map")
+        for key, u in fields.items():
+            maps[float(key)] = undo_displacement(maps[float(key)], u, pixel_size_nm=pixel_size)
+    if map_topographs is not None:
+        if not isinstance(map_topographs, dict):
+            raise InputError(f"map_topographs must be a dict {{bias_V: image}}, got {type(map_topographs).__name__}")
+        map_topographs = _check_maps(map_topographs, topograph.shape, pixel_size)
+        missing = [b for b in biases if b not in map_topographs]
+        if missing:
+            raise InputError(f"map_topographs has no topograph for the map(s) at {missing} V")
+        if displacement_nm is not None:
+            for key, u in fields.items():
+                map_topographs[float(key)] = undo_displacement(map_topographs[float(key)], u,
+                                                               pixel_size_nm=pixel_size)
+    reg_sigma = None
+    if bragg_q is not None:
+        # Lock-in and low-pass widths that keep both the Bragg and the order peaks
+        # apart (below 1 % leakage, METHODS §1).
+        reg_sigma = choose_sigma(np.vstack([_q(bragg_q, "bragg_q"), q]))[0]
+    registrations = {}
+    for bias in biases:
+        if not register_maps:
+            registrations[bias] = None
+            continue
+        moving = maps[bias] if map_topographs is None else map_topographs[bias]
+        reg = register(topograph, moving, pixel_size_nm=pixel_size, bragg_q=bragg_q, mask=bad,
+                       sigma_nm=reg_sigma, coarse_sigma_nm=reg_sigma)
+        registrations[bias] = reg
+        maps[bias] = apply_shift(maps[bias], reg.shift_px, mode="spline")
+    # One region for every bias, so each pair compares the same pixels.
+    for image in maps.values():
+        bad |= ~np.isfinite(image)
+    interior = _interior_labels(labels, sigma_nm=sigma_nm, pixel_size=pixel_size, mask=bad,
+                                margin_sigma=margin_sigma)
+    ids = np.unique(labels[labels > 0])
+    fields_a = {b: lockin(maps[b], q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad) for b in biases}
+    rows = []
+    for b in biases:
+        rows.extend(_contrast_rows(np.where(bad, np.nan, maps[b]), fields_a[b], labels, interior, ids, b,
+                                   sigma_nm, pixel_size))
+    pairs = {}
+    for b in biases:
+        if b == reference:
+            continue
+        pairs[(reference, b)] = _phase_shift_stats(fields_a[reference], fields_a[b], interior, ids, sigma_nm,
+                                                   pixel_size, tolerance_rad, alpha)
+    return BiasComparison(biases, reference, q, sigma_nm, registrations, pairs, tolerance_rad, alpha, rows)
+
+
+def _json_float(value):
+    """A float for JSON: NaN and infinities become None."""
+    if value is None:
+        return None
+    value = float(value)
+    return value if math.isfinite(value) else None
