@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from scipy import fft as sfft
 from scipy import ndimage
 
 from ._errors import InputError
@@ -83,26 +84,28 @@ def _demodulate_block(image, weights, q, sigma_px, pixel_size, offset, boundary,
     ny, nx = image.shape
     out = np.empty((len(q), ny, nx), dtype=np.complex128)
     if boundary == "periodic":
-        spectrum = np.fft.fft2(image)
+        spectrum = sfft.fft2(image, workers=-1)
         for j, qj in enumerate(q):
             shift = (qj[1] * dy, qj[0] * dx)
-            filtered = np.fft.ifft2(spectrum * _gaussian_transfer((ny, nx), sigma_px, shift))
+            filtered = sfft.ifft2(spectrum * _gaussian_transfer((ny, nx), sigma_px, shift), workers=-1)
             out[j] = filtered * _reference_wave(qj, (ny, nx), pixel_size, offset)
         return out
-    padded_shape = (ny + 2 * pad[0], nx + 2 * pad[1])
+    # At least `pad` zeros on each side (linear, not circular, convolution), rounded up to a
+    # size the FFT handles fast.
+    padded_shape = (sfft.next_fast_len(ny + 2 * pad[0]), sfft.next_fast_len(nx + 2 * pad[1]))
     core = (slice(pad[0], pad[0] + ny), slice(pad[1], pad[1] + nx))
     work = np.zeros(padded_shape)
     work[core] = np.where(weights > 0, image, 0.0) * weights
-    spectrum = np.fft.fft2(work)
+    spectrum = sfft.fft2(work, workers=-1)
     work[:] = 0.0
     work[core] = weights
-    norm = np.fft.ifft2(np.fft.fft2(work) * _gaussian_transfer(padded_shape, sigma_px)).real[core]
+    norm = sfft.ifft2(sfft.fft2(work, workers=-1) * _gaussian_transfer(padded_shape, sigma_px), workers=-1).real[core]
     # Below this the normalised convolution has almost nothing to average: report NaN.
     inverse = np.full(norm.shape, np.nan)
     np.divide(1.0, norm, out=inverse, where=norm > 1e-3)
     for j, qj in enumerate(q):
         shift = (qj[1] * dy, qj[0] * dx)
-        filtered = np.fft.ifft2(spectrum * _gaussian_transfer(padded_shape, sigma_px, shift))[core]
+        filtered = sfft.ifft2(spectrum * _gaussian_transfer(padded_shape, sigma_px, shift), workers=-1)[core]
         out[j] = filtered * _reference_wave(qj, (ny, nx), pixel_size, offset) * inverse
     return out
 

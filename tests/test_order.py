@@ -80,6 +80,18 @@ def test_nine_translations_give_nine_variants():
     assert len(found) == 9
 
 
+def test_sqrt3_superlattice_has_three_variants():
+    # derived: Q = (1/3, 1/3)-type coefficients; translations shift phases by multiples of
+    # 2 pi / 3 jointly, giving |det M| = 3 variants
+    coefficients = np.array([[1, 1], [-2, 1], [1, -2]]) / 3
+    v, p = variant_templates(coefficients)
+    assert len(v) == 3
+    _, templates = variant_templates(coefficients)
+    a = np.exp(1j * (templates[2][:, None, None] + 0.2)) * np.ones((3, 5, 5))
+    order = commensurate_order(a, coefficients)
+    assert_allclose(order.score, 1.0, atol=1e-12)
+
+
 def test_variant_templates_match_the_scene_convention():
     v, p = variant_templates(3)
     for (m1, m2), phases in zip(v, p):
@@ -87,13 +99,18 @@ def test_variant_templates_match_the_scene_convention():
 
 
 def test_relative_phase_removes_drift_without_false_walls():
-    # A Bragg phase that winds by many 2 pi (a drift of several lattice constants) divided by n
-    # must not draw walls: derived, phi_CDW = theta/n + phi_0 exactly when theta is unwrapped.
-    theta = np.linspace(0, 9 * np.pi, 200)[None, None, :] * np.ones((3, 4, 1))
-    a = np.exp(1j * (theta / 3 + 0.4))
+    # A drift of several lattice constants winds the Bragg phases theta_i = b_i . u by many 2 pi.
+    # derived: the CDW at Q_j = G_j / 3 carries (h_j theta_1 + k_j theta_2), so the relative
+    # phase is the constant 0.4 exactly when theta is unwrapped ...
+    u = np.linspace(0, 1.5, 200)  # nm along x
+    b = domains._lattice.reciprocal_basis(domains._lattice.real_basis("hexagonal", 0.34))
+    theta = (b @ np.array([1.0, 0.0]))[:, None, None] * u[None, None, :] * np.ones((2, 4, 1))
+    coefficients = np.array([[1, 0], [0, 1], [-1, -1]]) / 3
+    a = np.exp(1j * (np.einsum("ji,irc->jrc", coefficients, theta) + 0.4))
+    assert np.ptp(theta) > 4 * np.pi
     assert_allclose(relative_phase(a, 3, bragg_phase=theta), 0.4, atol=1e-12)
-    wrapped = np.angle(np.exp(1j * theta))
-    assert np.ptp(relative_phase(a, 3, bragg_phase=wrapped)) > 2  # the trap: wrapped phases jump
+    # ... and the trap: dividing the wrapped phase draws false 2 pi / 3 jumps
+    assert np.ptp(relative_phase(a, 3, bragg_phase=np.angle(np.exp(1j * theta)))) > 2
 
 
 def test_global_offset_keeps_domains_off_the_quantisation_boundary():
@@ -190,7 +207,7 @@ def test_thin_walls_between_three_domains():
 
 
 def test_bad_inputs():
-    with pytest.raises(domains.InputError, match="three CDW components"):
+    with pytest.raises(domains.InputError, match="needs 3 CDW components"):
         commensurate_order(np.ones((2, 4, 4), complex), 3)
     with pytest.raises(domains.InputError, match="integer >= 2"):
         variant_templates(1)

@@ -1,0 +1,148 @@
+"""The `domains` command: demo, analyze, peaks, scene."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import traceback
+from pathlib import Path
+
+from ._errors import InputError
+
+SCENES = ("cdw", "cdw2x2", "stripes", "moire", "plain")
+
+
+def _parser() -> argparse.ArgumentParser:
+    from . import __version__
+
+    parser = argparse.ArgumentParser(
+        prog="domains",
+        description="Domains, walls, drift, twist angle and bias contrast of periodic electronic order "
+        "in STM topographs, dI/dV maps and spectroscopic grids.",
+    )
+    parser.add_argument("--version", action="version", version=f"%(prog)s {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show the full traceback of any error")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    demo = sub.add_parser("demo", help="analyse a built-in synthetic scene and write a report")
+    demo.add_argument("--out", type=Path, default=Path("demo-output"), help="bundle folder (default: demo-output)")
+    demo.add_argument("--scene", choices=("cdw", "stripes", "moire"), default="cdw",
+                      help="which built-in scene (default: cdw)")
+    demo.add_argument("--seed", type=int, default=7, help="random seed of the scene")
+    demo.add_argument("--overwrite", action="store_true", help="replace an existing bundle")
+
+    analyze = sub.add_parser("analyze", help="the whole analysis of a topograph (and maps, and a grid)")
+    analyze.add_argument("topo", metavar="TOPO", help="topograph file (.npy .npz .tif .h5[:/dataset] .zarr .txt .csv)")
+    analyze.add_argument("--map", dest="maps", action="append", default=[], metavar="FILE",
+                         help="conductance map at one bias (repeat for several biases)")
+    analyze.add_argument("--grid", metavar="FILE", help="spectroscopic grid (energy, row, col) with energies_V")
+    analyze.add_argument("--pixel-size", type=float, metavar="NM", help="pixel size in nm (overrides the sidecar)")
+    analyze.add_argument("--config", type=Path, metavar="FILE.toml", help="analysis parameters")
+    analyze.add_argument("--out", type=Path, default=None, metavar="DIR",
+                         help="bundle folder (default: TOPO's name + '-domains')")
+    analyze.add_argument("--scheduler", metavar="ADDRESS", help="dask.distributed scheduler address")
+    analyze.add_argument("--overwrite", action="store_true", help="replace an existing bundle")
+
+    peaks = sub.add_parser("peaks", help="the indexed peak table of an image")
+    peaks.add_argument("file", metavar="FILE")
+    peaks.add_argument("--pixel-size", type=float, metavar="NM", help="pixel size in nm (overrides the sidecar)")
+    peaks.add_argument("--json", action="store_true", help="print JSON instead of a table")
+
+    scene = sub.add_parser("scene", help="write a synthetic scene (input files + truth) for trying the tool")
+    scene.add_argument("kind", choices=SCENES, metavar="KIND", help="one of: " + ", ".join(SCENES))
+    scene.add_argument("--out", type=Path, required=True, metavar="DIR")
+    scene.add_argument("--seed", type=int, default=7)
+    scene.add_argument("--overwrite", action="store_true", help="replace existing files")
+    return parser
+
+
+def _demo(args, command_line):
+    from .pipeline import run_demo
+
+    report = run_demo(args.out, scene=args.scene, seed=args.seed, overwrite=args.overwrite, command_line=command_line)
+    print(report)
+
+
+def _analyze(args, command_line):
+    from .pipeline import analyze_files
+
+    out = args.out if args.out is not None else Path(Path(args.topo.split(":")[0]).stem + "-domains")
+    bundle = analyze_files(args.topo, maps=args.maps, grid=args.grid, pixel_size_nm=args.pixel_size,
+                           config=args.config, out=out, scheduler=args.scheduler, overwrite=args.overwrite,
+                           command_line=command_line)
+    print(Path(bundle) / "report.html")
+
+
+def _peaks(args, command_line):
+    from .fourier import analyze_spectrum, format_peak_table
+    from .io import load_scan
+    from .level import level
+
+    scan = level(load_scan(args.file, pixel_size_nm=args.pixel_size))
+    if scan.is_grid:
+        raise InputError(f"{args.file}: 'peaks' takes a 2-D image; this is a 3-D grid")
+    data = scan.data.compute() if scan.is_lazy else scan.data
+    result = analyze_spectrum(data, pixel_size_nm=scan.pixel_size_nm, mask=scan.mask)
+    if args.json:
+        from .io import json_safe
+
+        print(json.dumps(json_safe(result.to_dict()), indent=2))
+    else:
+        print(format_peak_table(result))
+
+
+def _scene(args, command_line):
+    from .pipeline import write_scene
+
+    for path in write_scene(args.kind, args.out, seed=args.seed, overwrite=args.overwrite):
+        print(path)
+
+
+def main(argv=None) -> int:
+    """Run the command line; returns the exit status (0 ok, 2 bad input or usage, 1 internal error).
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        Arguments (default: ``sys.argv[1:]``).
+
+    Returns
+    -------
+    int
+        Exit status.
+
+    Examples
+    --------
+    >>> main(["scene", "nonsense", "--out", "x"])  # doctest: +SKIP
+    2
+    """
+    argv = list(sys.argv[1:] if argv is None else argv)
+    parser = _parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as stop:  # argparse exits 2 on usage errors, 0 on --help/--version
+        return int(stop.code or 0)
+    command_line = ["domains"] + argv
+    handlers = {"demo": _demo, "analyze": _analyze, "peaks": _peaks, "scene": _scene}
+    try:
+        handlers[args.command](args, command_line)
+    except InputError as err:
+        if args.debug:
+            traceback.print_exc()
+        print(f"domains {args.command}: error: {err}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("domains: interrupted", file=sys.stderr)
+        return 130
+    except Exception as err:  # noqa: BLE001 - the last line of defence: say what happened, exit 1
+        if args.debug:
+            traceback.print_exc()
+        print(f"domains {args.command}: internal error: {type(err).__name__}: {err} "
+              "(run again with --debug for the traceback, and please report it)", file=sys.stderr)
+        return 1
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

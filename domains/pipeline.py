@@ -1,0 +1,918 @@
+"""The whole analysis from a configuration: level, peaks, drift, lock-in, order, segment, measure, compare, bundle."""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from dataclasses import asdict, dataclass, field, fields
+from pathlib import Path
+
+import numpy as np
+
+from . import report
+from ._errors import InputError
+from ._lockin import amplitude, choose_sigma, lockin, trusted_mask
+from ._scan import Scan
+
+ORDER_KINDS = ("auto", "commensurate", "stripes", "moire", "none")
+
+
+@dataclass
+class Config:
+    """Analysis parameters. ``None`` means: choose automatically (and report the choice).
+
+    Attributes
+    ----------
+    level_order : int
+        Order of the polynomial background removed (1 = plane).
+    line_method : str or None
+        Scan-line offset removal: None, "median", "mean" or "difference" (see :func:`domains.level.line_offsets`).
+    lattice : dict or None
+        Override of the atomic lattice: ``{"kind": "hexagonal", "a_nm": 0.34, "angle_deg": 8.0}``.
+    superlattice : str or None
+        Override of the superlattice: "3x3", "2x2", ..., or "none".
+    q_rad_per_nm : list or None
+        Explicit order wavevectors [[qx, qy], ...] in rad/nm (skips peak detection for the order).
+    order : str
+        "auto", "commensurate", "stripes", "moire" or "none".
+    sigma_nm : float or None
+        Lock-in width for the order maps; default from the leakage bound (METHODS §1).
+    leakage : float
+        Largest leakage of a neighbouring peak allowed by the automatic sigma.
+    drift : bool
+        Correct drift from the Bragg peaks (Lawler–Fujita) when a lattice is resolved.
+    drift_sigma_nm : float or None
+        Lock-in width for the drift field; default twice the order's sigma.
+    false_alarm : float
+        Probability per pixel that noise alone passes the "order present" threshold.
+    confidence : float or None
+        Score a pixel needs to seed a domain; default cos(pi / 2n) for an n x n CDW
+        (halfway between a variant's centre and its cell boundary), and the
+        anisotropy threshold for stripes.
+    anisotropy_threshold : float
+        Smallest anisotropy for a stripe orientation (METHODS §6).
+    min_domain_area_nm2 : float or None
+        Smallest domain kept; default the area of a disc of radius 2 sigma (the resolution).
+    a_nm : float or None
+        Atomic lattice constant for a moiré whose atoms are not resolved.
+    twist_tolerance_deg : float or None
+        Twist range of one twist domain; default from the twist uncertainty.
+    """
+
+    level_order: int = 1
+    line_method: str | None = "median"
+    lattice: dict | None = None
+    superlattice: str | None = None
+    q_rad_per_nm: list | None = None
+    order: str = "auto"
+    sigma_nm: float | None = None
+    leakage: float = 0.01
+    drift: bool = True
+    drift_sigma_nm: float | None = None
+    false_alarm: float = 1e-3
+    confidence: float | None = None
+    anisotropy_threshold: float = 0.5
+    min_domain_area_nm2: float | None = None
+    a_nm: float | None = None
+    twist_tolerance_deg: float | None = None
+
+    def validate(self, where="configuration"):
+        """Raise InputError on values that are out of range or contradict each other."""
+        if self.order not in ORDER_KINDS:
+            raise InputError(f"{where}: order must be one of {ORDER_KINDS}, got {self.order!r}")
+        if self.line_method not in (None, "median", "mean", "difference"):
+            raise InputError(f"{where}: line_method must be median, mean, difference or none, got {self.line_method!r}")
+        for name in ("sigma_nm", "drift_sigma_nm", "min_domain_area_nm2", "a_nm", "twist_tolerance_deg"):
+            value = getattr(self, name)
+            if value is not None and (not isinstance(value, (int, float)) or not value > 0):
+                raise InputError(f"{where}: {name} must be a positive number, got {value!r}")
+        if not 0 < self.leakage < 1 or not 0 < self.false_alarm < 1:
+            raise InputError(f"{where}: leakage and false_alarm must lie between 0 and 1")
+        sup = (self.superlattice or "").lower()
+        if self.order == "none" and sup not in ("", "none"):
+            raise InputError(f"{where}: order = 'none' contradicts superlattice = {self.superlattice!r}")
+        if self.order == "commensurate" and sup in ("none", "incommensurate"):
+            raise InputError(f"{where}: order = 'commensurate' contradicts superlattice = {self.superlattice!r}")
+        if self.q_rad_per_nm is not None and sup not in ("", "none"):
+            raise InputError(f"{where}: give either q_rad_per_nm or superlattice, not both "
+                             f"(q fixes the order's wavevectors, superlattice derives them from the lattice)")
+        if self.lattice is not None:
+            if not isinstance(self.lattice, dict) or "kind" not in self.lattice:
+                raise InputError(f"{where}: lattice must be a table with kind, a_nm, angle_deg; got {self.lattice!r}")
+            if self.lattice["kind"] == "square" and sup.startswith("sqrt3"):
+                raise InputError(f"{where}: a sqrt3 x sqrt3 superlattice needs a hexagonal lattice, not a square one")
+        if self.order == "moire" and self.lattice is not None and self.lattice.get("kind") == "square":
+            raise InputError(f"{where}: the moiré analysis needs a hexagonal lattice")
+        return self
+
+
+def load_config(path) -> Config:
+    """Read a TOML configuration file into a :class:`Config` (unknown keys are an error).
+
+    Parameters
+    ----------
+    path : str or Path
+        A TOML file with the :class:`Config` fields as top-level keys (or under ``[analysis]``).
+
+    Returns
+    -------
+    Config
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.TemporaryDirectory() as d:
+    ...     p = Path(d) / "c.toml"
+    ...     _ = p.write_text('superlattice = "3x3"\\nsigma_nm = 0.5\\n')
+    ...     load_config(p).sigma_nm
+    0.5
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: configuration file not found")
+    try:
+        data = tomllib.loads(path.read_text())
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as err:
+        raise InputError(f"{path}: not valid TOML: {err}") from None
+    data = data.get("analysis", data)
+    known = {f.name for f in fields(Config)}
+    unknown = sorted(set(data) - known)
+    if unknown:
+        raise InputError(f"{path}: unknown key(s) {', '.join(unknown)}; known keys: {', '.join(sorted(known))}")
+    if data.get("line_method") == "none":
+        data["line_method"] = None
+    try:
+        return Config(**data).validate(str(path))
+    except TypeError as err:
+        raise InputError(f"{path}: {err}") from None
+
+
+@dataclass
+class Analysis:
+    """Everything one run found: numbers, maps, tables, figures and the choices made."""
+
+    config: Config
+    summary: dict
+    maps: dict
+    tables: dict
+    figures: dict
+    sections: list
+    notes: list = field(default_factory=list)
+    choices: dict = field(default_factory=dict)
+
+
+def _progress(total, enabled):
+    from tqdm.auto import tqdm
+
+    return tqdm(total=total, desc="domains", unit="step", disable=not enabled, leave=False)
+
+
+def _materialise(scan: Scan) -> Scan:
+    if scan.is_lazy:
+        return scan.with_data(np.asarray(scan.data.compute()))
+    return scan
+
+
+def analyze(topography: Scan, *, maps=(), grid: Scan | None = None, config: Config | None = None, progress=True):
+    """Run the whole chain on one topograph (and its maps and grid); return an :class:`Analysis`.
+
+    Steps: level → spectrum and lattice indexing → drift (Lawler–Fujita) → lock-in
+    at the order's wavevectors → order (translational variants or stripe
+    orientation) → domains, walls, defects → tables and summary → bias
+    comparison (maps, grid) → moiré maps (when a moiré is found) → figures.
+
+    Parameters
+    ----------
+    topography : Scan
+        The topograph (2-D).
+    maps : sequence of Scan
+        Conductance maps of the same area, one per bias.
+    grid : Scan, optional
+        A spectroscopic grid (energy, row, col) on the same pixel grid.
+    config : Config, optional
+        Parameters; defaults choose everything automatically.
+    progress : bool
+        Show a progress bar.
+
+    Returns
+    -------
+    Analysis
+
+    Examples
+    --------
+    >>> from domains.synth import cdw_scene
+    >>> scene = cdw_scene(shape=(192, 192), n_domains=2, rng=3)
+    >>> result = analyze(scene.topography, progress=False)  # doctest: +SKIP
+    >>> result.summary["superlattice"]["order"]  # doctest: +SKIP
+    '3x3'
+    """
+    config = (config or Config()).validate()
+    if topography.is_grid:
+        raise InputError(f"{topography.source}: the topograph must be a 2-D image, got a 3-D grid")
+    for m in maps:
+        if m.is_grid:
+            raise InputError(f"{m.source}: a map must be a 2-D image; give grids with --grid")
+        if m.shape != topography.shape:
+            raise InputError(f"{m.source}: shape {m.shape} differs from the topograph's {topography.shape}")
+        if not np.allclose(m.pixel_size_nm, topography.pixel_size_nm, rtol=1e-6):
+            raise InputError(f"{m.source}: pixel size {m.pixel_size_nm} nm differs from the topograph's "
+                             f"{topography.pixel_size_nm} nm")
+        if m.bias_V is None:
+            raise InputError(f"{m.source}: the map has no bias; give bias_V in its sidecar")
+    if grid is not None:
+        if not grid.is_grid:
+            raise InputError(f"{grid.source}: --grid needs a 3-D array (energy, row, col)")
+        if grid.shape[1:] != topography.shape:
+            raise InputError(f"{grid.source}: grid slices {grid.shape[1:]} differ from the topograph's {topography.shape}")
+    return _run(_materialise(topography), [_materialise(m) for m in maps], grid, config, progress)
+
+
+def _component_names(prefix, k):
+    return [f"{prefix}_{j + 1}" for j in range(k)]
+
+
+def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analysis:
+    from . import drift as drift_mod
+    from . import measure, order, segment
+    from .level import level
+
+    pixel = topography.pixel_size_nm
+    notes, choices = [], {}
+    bar = _progress(9, progress)
+
+    # 1. Level: background plane and scan-line offsets (the mask travels along).
+    # The warning about per-line levelling becomes a note once the peaks are known (see _spectrum_step).
+    levelled = level(topography, order=config.level_order, lines=config.line_method, warn=False)
+    image = np.asarray(levelled.data, dtype=float)
+    mask = levelled.mask
+    choices["level"] = {"order": config.level_order, "line_method": config.line_method}
+    bar.update()
+
+    # 2. Spectrum, lattice and superlattice.
+    spec = _spectrum_step(image, pixel, mask, config)
+    bar.update()
+    lattice_q = spec["bragg_q"]
+
+    # 3. Drift (Lawler–Fujita) from the Bragg peaks; the same field straightens every map.
+    drift_result = None
+    corrected, corrected_maps, u = image, [np.asarray(m.data, float) for m in maps], None
+    if config.drift and lattice_q is not None:
+        first_sigma, _ = _choose_sigma(config, spec["order_q"], lattice_q, spec["moire_q"], image.shape, pixel)
+        drift_sigma = config.drift_sigma_nm or 2 * first_sigma
+        drift_sigma = min(drift_sigma, 0.2 * min(image.shape[0] * pixel[0], image.shape[1] * pixel[1]))
+        drift_result = drift_mod.correct_drift(image, lattice_q, sigma_nm=drift_sigma, pixel_size_nm=pixel, mask=mask)
+        corrected = drift_result.corrected
+        u = drift_result.u_nm
+        mask = drift_result.mask
+        if corrected_maps:
+            corrected_maps = list(drift_mod.correct_channels(np.stack(corrected_maps), drift_result, pixel_size_nm=pixel))
+        choices["drift"] = {"sigma_nm": drift_sigma, "iterations": drift_result.iterations,
+                            "converged": drift_result.converged, "note": drift_result.note}
+        # Drift smears every peak into sidebands; index the superlattice again on the straightened image.
+        fill_corrected = np.where(np.isfinite(corrected), corrected, np.nanmean(corrected))
+        spec = _spectrum_step(fill_corrected, pixel, mask, config, lattice=spec["result"].lattice)
+    elif lattice_q is None:
+        notes.append("No atomic lattice resolved: drift was not corrected.")
+    choices["spectrum"] = spec["choices"]
+    notes += spec["notes"]
+    bar.update()
+
+    order_q = spec["order_q"]
+    kind = spec["order_kind"]
+    sigma_nm, sigma_reason = _choose_sigma(config, order_q, lattice_q, spec["moire_q"], image.shape, pixel)
+    choices["sigma_nm"] = {"value": sigma_nm, "why": sigma_reason}
+
+    trusted = trusted_mask(image.shape, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask)
+    fill = np.where(np.isfinite(corrected), corrected, np.nanmean(corrected))
+    summary = {
+        "input": {"source": topography.source, "shape": list(image.shape), "pixel_size_nm": list(pixel),
+                  "channel": topography.channel, "bias_V": topography.bias_V, "setpoint_A": topography.setpoint_A},
+        "lattice": spec["lattice_summary"],
+        "superlattice": spec["superlattice_summary"],
+        "order_kind": kind,
+        "moire": None,
+        "domains": None,
+        "defects": None,
+        "bias_comparison": None,
+        "drift": _drift_summary(drift_result),
+        "sigma_nm": sigma_nm,
+        "trusted_fraction": float(trusted.mean()),
+    }
+    out_maps = {}
+    tables = {}
+    figures = {}
+    sections = []
+    attrs = {"pixel_size_nm": list(pixel)}
+    figures["topography"] = report.image_figure(image, pixel_size_nm=pixel, title="Topograph (levelled)",
+                                                units=topography.metadata.get("units", ""))
+    figures["spectrum"] = report.spectrum_figure(*spec["power"], peaks=spec["marked_peaks"])
+    overview = [("topography", "The levelled topograph."),
+                ("spectrum", "Log power spectrum (Hann window) with the indexed peaks: "
+                             + ", ".join(sorted({r for *_, r in spec["marked_peaks"]})) + ".")]
+    if u is not None:
+        out_maps["displacement/ux"] = (u[0].astype(np.float32), {**attrs, "units": "nm"})
+        out_maps["displacement/uy"] = (u[1].astype(np.float32), {**attrs, "units": "nm"})
+        figures["drift"] = report.image_figure(np.hypot(u[0], u[1]), pixel_size_nm=pixel, cmap="viridis",
+                                               title="Drift |u| (Lawler–Fujita)", units="nm")
+        overview.append(("drift", "Magnitude of the displacement field removed from every channel."))
+    sections.append(("Overview", overview))
+    bar.update()
+
+    labels = np.zeros(image.shape, np.int32)
+    walls = np.zeros(image.shape, bool)
+    fields_used = None
+    if kind in ("commensurate", "stripes", "incommensurate"):
+        names = _component_names("cdw" if kind != "stripes" else "stripe", len(order_q))
+        a_order = lockin(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask)
+        floor = order.noise_floor(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel,
+                                  avoid_q=lattice_q if lattice_q is not None else (), mask=mask, trusted=trusted,
+                                  false_alarm=config.false_alarm)
+        choices["order_threshold"] = {"value": floor.threshold, "rayleigh_scale": floor.rayleigh_scale,
+                                      "false_alarm_per_pixel": floor.false_alarm,
+                                      "why": "Rayleigh tail of the lock-in amplitude measured at empty wavevectors"}
+        bar.update()
+        min_area = config.min_domain_area_nm2 or math.pi * (2 * sigma_nm) ** 2
+        if kind == "commensurate":
+            coefficients = spec["coefficients"]
+            bragg_phase = None
+            if drift_result is not None:
+                # After correction the Bragg phase is a small residual: safe to scale by the coefficients.
+                bragg_phase = np.nan_to_num(drift_result.residual_phase_rad)
+            state = order.commensurate_order(a_order, coefficients, bragg_phase=bragg_phase,
+                                             threshold=floor.threshold, trusted=trusted)
+            n_variants = len(state.variants)
+            # Halfway between a variant's centre and its cell boundary (pi / n for n x n).
+            confidence = config.confidence or math.cos(math.pi / (2 * math.sqrt(n_variants)))
+            seg = segment.segment_states(state.variant, state.score, state.ordered, pixel_size_nm=pixel,
+                                         min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted)
+            relative = order.relative_phase(a_order, coefficients, bragg_phase=bragg_phase)
+            fields_used = state.amplitude / 2 * np.exp(1j * (relative - state.offset_rad[:, None, None]))
+            state_names = {lab: "m=({},{})".format(*state.variants[v]) for lab, v in seg.state.items()}
+            choices["variant_offset_rad"] = state.offset_rad.tolist()
+            ordered = state.ordered
+        elif kind == "stripes":
+            state = order.orientation_order(a_order, threshold=floor.threshold,
+                                            anisotropy_threshold=config.anisotropy_threshold)
+            confidence = config.confidence or config.anisotropy_threshold
+            seg = segment.segment_states(state.orientation, state.anisotropy, state.ordered, pixel_size_nm=pixel,
+                                         min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted)
+            fields_used = a_order
+            state_names = {lab: f"q{v + 1}" for lab, v in seg.state.items()}
+            ordered = state.ordered
+        else:
+            ordered = amplitude(a_order).min(axis=0) > floor.threshold
+            seg = segment.segment_states(np.where(ordered, 0, -1), ordered.astype(float), ordered,
+                                         pixel_size_nm=pixel, min_area_nm2=min_area, confidence_threshold=0.5,
+                                         trusted=trusted)
+            fields_used = a_order
+            state_names = {lab: "ordered" for lab in seg.state}
+            notes.append("Incommensurate order: no translational variants; regions show where order is present.")
+        choices["segmentation"] = {**seg.parameters, "islands_dropped": seg.islands,
+                                   "min_area_why": "disc of radius 2 sigma (the resolution)" if config.min_domain_area_nm2 is None else "given"}
+        bar.update()
+        labels, walls = seg.labels, seg.walls
+        defects = segment.phase_defects(fields_used, pixel_size_nm=pixel, ordered=ordered & trusted, sigma_nm=sigma_nm)
+        amp = amplitude(a_order)
+        domain_rows = measure.domain_table(labels, pixel_size_nm=pixel, state_names=state_names, amplitude=amp,
+                                           fields=fields_used)
+        wall_rows = measure.wall_table(seg.grown, walls, pixel_size_nm=pixel, fields=fields_used, sigma_nm=sigma_nm)
+        tables["domains"] = (measure.DOMAIN_COLUMNS, domain_rows)
+        tables["walls"] = (measure.WALL_COLUMNS, wall_rows)
+        summary["domains"] = measure.domain_summary(domain_rows, wall_rows, defects=defects)
+        summary["defects"] = {"count": len(defects), "positive": sum(d["winding"] > 0 for d in defects),
+                              "negative": sum(d["winding"] < 0 for d in defects), "list": defects}
+        if not domain_rows:
+            notes.append("Order was found but no domain passed the thresholds.")
+        for name, a_j in zip(names, a_order):
+            out_maps[f"amplitude/{name}"] = (amplitude(a_j).astype(np.float32), {**attrs, "units": topography.metadata.get("units", "image units")})
+            out_maps[f"phase/{name}"] = (np.angle(a_j).astype(np.float32), {**attrs, "units": "rad"})
+        bar.update()
+        figures["amplitude"] = report.image_figure(amp.mean(axis=0), pixel_size_nm=pixel, cmap="viridis",
+                                                   title=f"Order amplitude (mean of {len(names)}), sigma = {sigma_nm:.3g} nm",
+                                                   units=topography.metadata.get("units", ""))
+        figures["phase"] = report.image_figure(np.angle(fields_used[0]), pixel_size_nm=pixel, cmap="twilight",
+                                               limits=(-math.pi, math.pi),
+                                               title=f"Phase of {names[0]}" + (" (drift-free, relative)" if kind == "commensurate" else ""),
+                                               units="rad")
+        figures["domains"] = report.domain_figure(image, labels, walls, pixel_size_nm=pixel, defects=defects)
+        figures["areas"] = report.histogram_figure([r["area_nm2"] for r in domain_rows], xlabel="domain area (nm²)",
+                                                   title=f"{len(domain_rows)} domains")
+        sections.append(("Order and domains", [
+            ("amplitude", "Lock-in amplitude 2|A| averaged over the order's components."),
+            ("phase", "Phase of the first component (cyclic colour map)."),
+            ("domains", "Domains (colours) over the topograph; walls in black; defects: + winding +1, x winding -1."),
+            ("areas", "Histogram of domain areas (domains cut by the frame are lower bounds)."),
+            (None, "<h3>Domains</h3>" + report.html_table(measure.DOMAIN_COLUMNS, domain_rows)),
+            (None, "<h3>Walls</h3>" + report.html_table(measure.WALL_COLUMNS, wall_rows)),
+        ]))
+    else:
+        bar.update(3)
+        if kind == "none":
+            notes.append("No superlattice found: no CDW or stripe peaks beyond the lattice.")
+    out_maps["labels"] = (labels.astype(np.int32), {**attrs, "units": "label"})
+    out_maps["walls"] = (walls.astype(bool), {**attrs, "units": "bool"})
+
+    if maps and kind in ("commensurate", "stripes", "incommensurate"):
+        _bias_step(summary, tables, figures, sections, corrected, corrected_maps, maps, labels, order_q, sigma_nm,
+                   pixel, lattice_q, mask)
+    if grid is not None and kind in ("commensurate", "stripes", "incommensurate"):
+        _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_nm, pixel, mask)
+    if spec["moire_q"] is not None and kind in ("moire", "none") or config.order == "moire":
+        _moire_step(summary, out_maps, figures, sections, choices, notes, fill, spec, sigma_nm, pixel, mask, config)
+        if summary["moire"] is not None:
+            summary["order_kind"] = "moire"
+    bar.update()
+    bar.close()
+    summary["choices"] = choices
+    summary["notes"] = notes
+    return Analysis(config, summary, out_maps, tables, figures, sections, notes, choices)
+
+
+def _choose_sigma(config, order_q, lattice_q, moire_q, shape, pixel):
+    if config.sigma_nm:
+        return float(config.sigma_nm), "given"
+    peaks = [q for q in (order_q, lattice_q, moire_q) if q is not None and len(q)]
+    if not peaks:
+        sigma = 8 * max(pixel)
+        return sigma, "no peaks: 8 pixels"
+    sigma, nearest = choose_sigma(np.vstack(peaks), leakage=config.leakage)
+    why = (f"leakage of the nearest peak (dk = {nearest:.4g} rad/nm) below {config.leakage:g}: "
+           f"sigma = sqrt(2 ln(1/leakage)) / dk (METHODS §1)")
+    floor = 1.5 * max(pixel)
+    if sigma < floor:
+        sigma, why = floor, why + f"; raised to 1.5 pixels ({floor:.3g} nm)"
+    return float(sigma), why
+
+
+def _drift_summary(result):
+    if result is None:
+        return None
+    u = np.hypot(*result.u_nm)
+    return {
+        "max_displacement_nm": float(np.nanmax(u)),
+        "rms_displacement_nm": float(np.sqrt(np.nanmean(u**2))),
+        "residual_phase_rms_rad": [float(v) for v in result.residual_rms_rad],
+        "residual_phase_max_rad": [float(v) for v in result.residual_max_rad],
+        "phase_sum_rms_rad": result.phase_sum_rms_rad,
+        "sigma_nm": result.sigma_nm,
+        "converged": bool(result.converged),
+        "note": result.note,
+    }
+
+
+def write_analysis(analysis: Analysis, out, *, command_line, inputs, overwrite=False):
+    """Write an :class:`Analysis` as the result bundle of DESIGN.md (atomically) and return its path.
+
+    Parameters
+    ----------
+    analysis : Analysis
+        The result of :func:`analyze`.
+    out : str or Path
+        Bundle folder.
+    command_line : list of str
+        The command that produced it (for the provenance record).
+    inputs : list of str
+        Input files (hashed into the provenance record).
+    overwrite : bool
+        Replace an existing bundle.
+
+    Returns
+    -------
+    Path
+        The bundle folder.
+    """
+    from .io import json_safe, provenance, write_bundle
+
+    html = report.render_html(title="Domain analysis", summary=_report_summary(analysis.summary),
+                              sections=analysis.sections, parameters={**asdict(analysis.config),
+                                                                      "automatic choices": analysis.choices},
+                              notes=analysis.notes)
+    prov = provenance(command_line=command_line, parameters=json_safe(asdict(analysis.config)), inputs=inputs)
+    return write_bundle(out, summary=analysis.summary, provenance=prov, tables=analysis.tables, maps=analysis.maps,
+                        figures=analysis.figures, report_html=html, overwrite=overwrite)
+
+
+def _report_summary(summary):
+    # The full lists (defects, per-domain verdicts) live in summary.json; the page shows the headline numbers.
+    return {k: v for k, v in summary.items() if k not in ("choices", "notes")}
+
+
+def analyze_files(topo, *, maps=(), grid=None, pixel_size_nm=None, config=None, out, scheduler=None,
+                  overwrite=False, command_line=("domains", "analyze"), progress=True):
+    """Load the files, analyse them, write the bundle; what ``domains analyze`` does.
+
+    Parameters
+    ----------
+    topo : str
+        Topograph path (``file.h5:/dataset`` allowed).
+    maps : sequence of str
+        Conductance maps, one per bias.
+    grid : str, optional
+        Spectroscopic grid.
+    pixel_size_nm : float, optional
+        Overrides the sidecars.
+    config : str or Path or Config, optional
+        TOML file or a Config.
+    out : str or Path
+        Bundle folder.
+    scheduler : str, optional
+        Address of a dask.distributed scheduler for the chunked steps.
+    overwrite : bool
+        Replace an existing bundle.
+    command_line : sequence of str
+        For the provenance record.
+    progress : bool
+        Show progress bars.
+
+    Returns
+    -------
+    Path
+        The bundle folder.
+    """
+    from .io import load_scan
+
+    if isinstance(config, Config):
+        cfg = config.validate()
+    elif config is not None:
+        cfg = load_config(config)
+    else:
+        cfg = Config()
+    out = Path(out)
+    if out.exists() and not overwrite:
+        raise InputError(f"{out}: the output folder exists; give --overwrite to replace it")
+    client = None
+    if scheduler:
+        try:
+            from dask.distributed import Client
+        except ImportError:
+            raise InputError("--scheduler needs dask.distributed (pip install 'dask[distributed]')") from None
+        client = Client(scheduler)
+    try:
+        topography = load_scan(topo, pixel_size_nm=pixel_size_nm)
+        map_scans = [load_scan(m, pixel_size_nm=pixel_size_nm, channel="conductance") for m in maps]
+        grid_scan = load_scan(grid, pixel_size_nm=pixel_size_nm, channel="conductance") if grid else None
+        result = analyze(topography, maps=map_scans, grid=grid_scan, config=cfg, progress=progress)
+        inputs = [topo, *maps] + ([grid] if grid else [])
+        return write_analysis(result, out, command_line=list(command_line), inputs=inputs, overwrite=overwrite)
+    finally:
+        if client is not None:
+            client.close()
+
+
+def make_scene(kind, *, seed=7):
+    """The built-in synthetic scenes by name: "cdw", "cdw2x2", "stripes", "moire", "plain" (no order).
+
+    Returns
+    -------
+    domains.synth.Scene
+
+    Examples
+    --------
+    >>> make_scene("stripes", seed=1).kind
+    'stripes'
+    """
+    from . import synth
+
+    if kind == "cdw":
+        return synth.cdw_scene(rng=seed)
+    if kind == "cdw2x2":
+        return synth.cdw_scene(n=2, a_nm=0.36, rng=seed)
+    if kind == "plain":
+        return synth.cdw_scene(n=None, rng=seed)
+    if kind == "stripes":
+        return synth.stripe_scene(rng=seed)
+    if kind == "moire":
+        return synth.moire_scene(rng=seed)
+    raise InputError(f"unknown scene {kind!r}; choose one of cdw, cdw2x2, stripes, moire, plain")
+
+
+def write_scene(kind, out, *, seed=7, overwrite=False):
+    """Write a synthetic scene in the input format: .npy files with sidecars, and the truth.
+
+    Files: ``topography.npy`` (+ ``.json``), ``map_<bias>V.npy`` (+ ``.json``) per
+    bias, ``truth.json`` and ``truth_labels.npy``.
+
+    Parameters
+    ----------
+    kind : str
+        Scene name (see :func:`make_scene`).
+    out : str or Path
+        Folder (created).
+    seed : int
+        Random seed.
+    overwrite : bool
+        Replace existing files.
+
+    Returns
+    -------
+    list of Path
+        The files written.
+    """
+    import json
+
+    from .io import json_safe, save_scan
+
+    sc = make_scene(kind, seed=seed)
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"{out}: exists and is not a folder")
+    out.mkdir(parents=True, exist_ok=True)
+    written = [save_scan(sc.topography, out / "topography.npy", overwrite=overwrite)]
+    for m in sc.maps:
+        written.append(save_scan(m, out / f"map_{m.bias_V:+.2f}V.npy", overwrite=overwrite))
+    truth = out / "truth.json"
+    labels = out / "truth_labels.npy"
+    for path in (truth, labels):
+        if path.exists() and not overwrite:
+            raise InputError(f"{path}: exists; give --overwrite to replace it")
+    truth.write_text(json.dumps(json_safe({"kind": sc.kind, "seed": seed, **sc.truth}), indent=2))
+    np.save(labels, sc.truth_maps["labels"])
+    return written + [truth, labels]
+
+
+def run_demo(out, *, scene="cdw", seed=7, overwrite=True, command_line=("domains", "demo"), progress=True):
+    """Analyse a built-in scene and write its bundle; returns the path of the report.
+
+    Parameters
+    ----------
+    out : str or Path
+        Bundle folder.
+    scene : {"cdw", "stripes", "moire"}
+        Which scene.
+    seed : int
+        Random seed of the scene.
+    overwrite : bool
+        Replace an existing bundle.
+    command_line : sequence of str
+        For the provenance record.
+    progress : bool
+        Show a progress bar.
+
+    Returns
+    -------
+    Path
+        ``out/report.html``.
+    """
+    import tempfile
+
+    name = scene
+    sc = make_scene(name, seed=seed)
+    result = analyze(sc.topography, maps=sc.maps, progress=progress)
+    result.summary["truth"] = {"scene": name, "seed": seed, **{k: v for k, v in sc.truth.items() if k != "domains"}}
+    with tempfile.TemporaryDirectory() as tmp:
+        # The scene is written as input files too, so that the provenance record hashes real inputs.
+        from .io import save_scan
+
+        inputs = [str(save_scan(sc.topography, Path(tmp) / "topography.npy"))]
+        inputs += [str(save_scan(m, Path(tmp) / f"map_{m.bias_V:+.2f}V.npy")) for m in sc.maps]
+        bundle = write_analysis(result, out, command_line=list(command_line), inputs=inputs, overwrite=overwrite)
+    return Path(bundle) / "report.html"
+
+
+def _bias_step(summary, tables, figures, sections, topo, corrected_maps, map_scans, labels, order_q, sigma_nm, pixel,
+               bragg_q, mask):
+    from . import compare
+
+    maps = {float(s.bias_V): np.where(np.isfinite(m), m, np.nanmean(m)) for s, m in zip(map_scans, corrected_maps)}
+    if len(maps) != len(map_scans):
+        raise InputError("two maps have the same bias: " + ", ".join(s.source for s in map_scans))
+    # The maps come from the same scan as the topograph (same pixel grid, same drift, already
+    # corrected): registering an inverted-contrast map could pick a wrong lattice translation.
+    result = compare.compare_biases(np.where(np.isfinite(topo), topo, np.nanmean(topo)), maps, labels, order_q,
+                                    sigma_nm=sigma_nm, pixel_size_nm=pixel, bragg_q=bragg_q, mask=mask,
+                                    register_maps=False)
+    summary["bias_comparison"] = result.summary()
+    rows = result.contrast_rows()
+    columns = list(rows[0]) if rows else ["domain", "bias_V"]
+    tables["contrast"] = (columns, rows)
+    verdict_rows = []
+    for pair in summary["bias_comparison"]["pairs"]:
+        for d in pair["domains"]:
+            verdict = d.get("verdict", {})
+            verdict_rows.append({"bias_1_V": pair["bias_1_V"], "bias_2_V": pair["bias_2_V"], "domain": d["domain"],
+                                 "delta_phi_deg": ";".join("–" if v is None else f"{v:.0f}" for v in d.get("delta_phi_deg") or []),
+                                 "verdict": verdict.get("verdict", ""), "confidence": verdict.get("confidence")})
+    curves = []
+    for d in sorted({r["domain"] for r in rows}):
+        mine = sorted((r for r in rows if r["domain"] == d), key=lambda r: r["bias_V"])
+        curves.append((f"domain {d}", [r["bias_V"] for r in mine], [r["amplitude_total"] for r in mine],
+                       [r["amplitude_total_se"] for r in mine]))
+    figures["contrast"] = report.curves_figure(curves, xlabel="bias (V)", ylabel="order amplitude (map units)",
+                                               title="Per-domain order amplitude at each bias")
+    sections.append(("Bias comparison", [
+        ("contrast", "Mean order amplitude of each domain in the conductance map at each bias, with standard errors."),
+        (None, "<h3>Contrast between biases</h3><p>Δφ_j = arg(A_j(V1) A_j(V2)*) per component; "
+               "'inverted' needs every component compatible with π.</p>"
+         + report.html_table(["bias_1_V", "bias_2_V", "domain", "delta_phi_deg", "verdict", "confidence"], verdict_rows)),
+    ]))
+
+
+def _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_nm, pixel, mask):
+    from . import compare
+
+    fp = compare.grid_fingerprints(grid.data, grid.energies_V, labels, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel,
+                                   mask=mask, progress=True)
+    rows = fp.rows()
+    tables["fingerprint"] = (list(rows[0]) if rows else ["domain", "energy_V"], rows)
+    peaks = compare.fingerprint_peaks(fp)
+    summary["grid"] = {"source": grid.source, "energies_V": [float(e) for e in grid.energies_V],
+                       "peak_energy_V": peaks if isinstance(peaks, (dict, list)) else str(peaks)}
+    curves = [(f"domain {int(d)}", fp.energies_V, fp.amplitude_total[i], None) for i, d in enumerate(fp.domains)]
+    figures["fingerprint"] = report.curves_figure(curves, xlabel="bias (V)", ylabel="order amplitude",
+                                                  title="Per-domain order amplitude across the grid")
+    sections.append(("Spectroscopic grid", [("fingerprint", "Order amplitude versus energy in each domain.")]))
+
+
+def _spectrum_step(image, pixel, mask, config, lattice=None):
+    """Peaks, lattice and superlattice; decide what kind of order the image holds.
+
+    ``lattice`` (a :class:`domains.fourier.Lattice`) skips the lattice search, as on the second
+    pass over the drift-corrected image, whose sharper peaks index the superlattice reliably.
+    """
+    from fractions import Fraction
+
+    from . import fourier
+
+    sup_override = None if (config.superlattice or "none").lower() == "none" else config.superlattice
+    result = fourier.analyze_spectrum(image, pixel_size_nm=pixel, mask=mask,
+                                      lattice=lattice if lattice is not None else config.lattice,
+                                      superlattice=sup_override)
+    lattice, sup = result.lattice, result.superlattice
+    if (config.superlattice or "").lower() == "none":
+        sup = None
+    notes = []
+    bragg_q = None if lattice is None else np.asarray(lattice.bragg, float)
+    moire_q = result.moire_q if len(result.moire_q) else None
+    n = None
+    coefficients = None
+    snapped = None
+    if lattice is not None and config.q_rad_per_nm is None and sup_override is None and config.lattice is None:
+        snapped = _snap_commensurate(image, pixel, mask, result, config)
+        if snapped is not None:
+            notes.append(snapped["note"])
+    if snapped is not None:
+        order_q, coefficients = snapped["q"], snapped["coefficients"]
+        sup = fourier.Superlattice(snapped["order"], True, order_q, np.zeros(len(order_q)),
+                                   [tuple(c) for c in coefficients], note=snapped["note"])
+    elif config.q_rad_per_nm is not None:
+        order_q = np.atleast_2d(np.asarray(config.q_rad_per_nm, float))
+        if order_q.shape[1] != 2:
+            raise InputError(f"q_rad_per_nm must be a list of [qx, qy] pairs, got {config.q_rad_per_nm!r}")
+        if lattice is not None:
+            coefficients = order_q @ np.linalg.inv(lattice.b)
+    elif sup is not None:
+        order_q = np.asarray(sup.q, float)
+        if sup.commensurate:
+            coefficients = np.array([[float(Fraction(c)) for c in hk] for hk in sup.coefficients])
+    else:
+        order_q = None
+
+    kind = config.order
+    if kind == "auto":
+        if order_q is None:
+            kind = "moire" if moire_q is not None else "none"
+        elif sup is not None and not sup.commensurate and config.q_rad_per_nm is None:
+            kind = "incommensurate"
+        else:
+            kind = "commensurate"
+    if kind in ("commensurate", "stripes") and order_q is None:
+        raise InputError(f"order = {kind!r} but no superlattice peak was found; give superlattice or q_rad_per_nm")
+    if kind == "commensurate" and coefficients is not None:
+        snapped = np.round(coefficients * 12) / 12
+        if np.max(np.abs(snapped - coefficients)) > 0.02 or not _is_simple(coefficients):
+            kind = "incommensurate" if config.order == "auto" else kind
+            if config.order == "commensurate":
+                raise InputError("order = 'commensurate' but the order's wavevectors are not simple fractions "
+                                 "of the Bragg vectors")
+        else:
+            coefficients = snapped
+            n = sup_n(sup)
+    elif kind == "commensurate":
+        raise InputError("a commensurate order needs the atomic lattice; give lattice = {kind, a_nm, angle_deg}")
+    if kind in ("commensurate", "incommensurate") and order_q is not None and config.order == "auto":
+        # Stripes (unidirectional order) and triple-q order give the same peaks in the whole frame;
+        # locally only one component of stripes is present (METHODS §6).
+        if _mostly_unidirectional(image, order_q, pixel, mask, config):
+            kind = "stripes"
+    if kind == "stripes" and order_q is not None and len(order_q) < 2:
+        notes.append("Only one stripe direction found: a single orientational domain.")
+
+    marked = [(p.q[0], p.q[1], p.role or "unindexed") for p in result.peaks if p.role not in (None, "harmonic")]
+    ny, nx = image.shape
+    axis_bins = [p for p in result.peaks if abs(p.q[0]) < 2 * (2 * np.pi / (nx * pixel[1])) and p.role != "harmonic"]
+    if config.line_method in ("median", "mean") and axis_bins:
+        notes.append(f"Per-line {config.line_method} levelling removed modulations along y; "
+                     f"{len(axis_bins)} peak(s) lie near the qy axis and may be weakened.")
+    lattice_summary = None if lattice is None else {
+        "kind": lattice.kind, "a_nm": lattice.a_nm, "a_nm_err": lattice.a_err_nm, "angle_deg": lattice.angle_deg,
+        "angle_deg_err": lattice.angle_err_deg, "q_bragg_rad_per_nm": bragg_q.tolist(),
+        "q_bragg_abs_rad_per_nm": lattice.q_bragg_rad_per_nm}
+    superlattice_summary = {
+        "order": None if kind in ("none", "moire") else (sup.order if sup is not None else "given q"),
+        "kind": kind,
+        "q_rad_per_nm": None if order_q is None else order_q.tolist(),
+        "coefficients": None if coefficients is None else coefficients.tolist(),
+        "details": None if sup is None else sup.to_dict(),
+    }
+    if kind == "none":
+        superlattice_summary["note"] = "no superlattice found"
+    power = fourier.power_spectrum(image, pixel_size_nm=pixel, mask=mask)
+    choices = {"lattice": "given" if config.lattice else ("found" if lattice is not None else "none found"),
+               "spectrum_of": "drift-corrected image" if lattice is not None and not config.lattice else "levelled image",
+               "superlattice": "given" if config.superlattice else ("found" if sup is not None else "none found"),
+               "order": f"{kind} ({'given' if config.order != 'auto' else 'automatic'})",
+               "peaks_found": len(result.peaks)}
+    return {"result": result, "bragg_q": bragg_q, "order_q": order_q, "moire_q": moire_q, "order_kind": kind,
+            "n": n, "coefficients": coefficients, "lattice_summary": lattice_summary,
+            "superlattice_summary": superlattice_summary, "marked_peaks": marked, "power": power, "notes": notes,
+            "choices": choices}
+
+
+def _snap_commensurate(image, pixel, mask, result, config, max_denominator=6):
+    """Test the simple fractions nearest the superlattice peaks: commensurate when the phase is flat there.
+
+    Domains of different translational phase split a commensurate peak into speckle, so the
+    strongest Fourier maximum can sit off the rational position; the lock-in at the rational
+    wavevector settles it (:func:`domains.order.phase_flatness`).
+    """
+    from . import order
+
+    lattice = result.lattice
+    measured = [p.q for p in result.peaks if p.role in ("superlattice", "incommensurate")]
+    if not measured:
+        return None
+    candidates = order.commensurate_candidates(measured, lattice.b, max_denominator=max_denominator)
+    unique = []
+    for c in candidates:
+        if np.allclose(c, 0) or any(np.allclose(c, u) or np.allclose(c, -u) for u in unique):
+            continue
+        unique.append(c)
+    # A triple-q n x n order on a hexagonal lattice: test all three G_j / n once one is seen.
+    if lattice.kind == "hexagonal":
+        for n in sorted({round(1 / max(abs(c).max(), 1e-9)) for c in unique}):
+            for c in order.coefficients_nxn(n) if n >= 2 else ():
+                if not any(np.allclose(c, u) or np.allclose(c, -u) for u in unique):
+                    unique.append(c)
+    unique = np.array(unique)
+    q = unique @ lattice.b
+    sigma, _ = choose_sigma(np.vstack([q, lattice.bragg]), leakage=config.leakage)
+    sigma = max(sigma, 1.5 * max(pixel))
+    gradient, error = order.phase_flatness(image, q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
+    amp = amplitude(lockin(image, q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask))
+    trusted = trusted_mask(image.shape, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
+    floor = order.noise_floor(image, q, sigma_nm=sigma, pixel_size_nm=pixel, avoid_q=lattice.bragg, mask=mask,
+                              trusted=trusted)
+    present = np.array([np.median(a[trusted]) > floor.threshold for a in amp])
+    # Flat within its error, and in any case within 2 % of |q| (a 2 % misfit would slip the
+    # phase by 2 pi every 50 periods: an incommensurate order, McMillan 1976).
+    flat = np.hypot(*gradient.T) < np.maximum(4 * error, 0.02 * np.hypot(*q.T))
+    keep = flat & present
+    if not keep.any():
+        return None
+    coefficients = unique[keep]
+    name = "commensurate " + ", ".join(f"({h:.3g}, {k:.3g})" for h, k in coefficients)
+    for n in range(2, max_denominator + 1):
+        nxn = order.coefficients_nxn(n)
+        if lattice.kind == "hexagonal" and len(coefficients) == 3 and all(
+                any(np.allclose(c, t) or np.allclose(c, -t) for c in coefficients) for t in nxn):
+            coefficients, name = nxn, f"{n}x{n}"
+            break
+        if lattice.kind == "square" and all(np.allclose(np.sort(np.abs(c)), [0, 1 / n]) for c in coefficients):
+            name = f"{n}x{n}" if len(coefficients) > 1 else f"{n}x1"
+            break
+    return {"q": coefficients @ lattice.b, "coefficients": coefficients, "order": name,
+            "note": f"Superlattice {name}: the lock-in phase is flat at the rational wavevectors "
+                    f"(median gradient {np.nanmax(np.hypot(*gradient[keep].T)):.3g} rad/nm)."}
+
+
+def _is_simple(coefficients, max_denominator=12):
+    from fractions import Fraction
+
+    return all(abs(float(Fraction(float(c)).limit_denominator(max_denominator)) - c) < 0.02 for c in coefficients.ravel())
+
+
+def sup_n(sup):
+    """n of an "n x n" superlattice name, else None."""
+    if sup is None or not sup.order:
+        return None
+    parts = sup.order.split("x")
+    if len(parts) == 2 and parts[0].isdigit() and parts[0] == parts[1]:
+        return int(parts[0])
+    return None
+
+
+def _mostly_unidirectional(image, order_q, pixel, mask, config):
+    from . import order
+
+    if len(order_q) < 2:
+        return True
+    sigma, _ = choose_sigma(order_q, leakage=config.leakage)
+    sigma = max(sigma, 1.5 * max(pixel))
+    fill = np.where(np.isfinite(image), image, np.nanmean(image))
+    a = lockin(fill, order_q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
+    trusted = trusted_mask(image.shape, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
+    floor = order.noise_floor(fill, order_q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask, trusted=trusted)
+    o = order.orientation_order(a, threshold=floor.threshold, anisotropy_threshold=config.anisotropy_threshold)
+    where = o.ordered & trusted
+    # Unidirectional when most ordered pixels are dominated by one component (common practice, no source).
+    return bool(where.sum() > 0 and np.mean(o.anisotropy[where] >= config.anisotropy_threshold) > 0.6)
