@@ -26,7 +26,9 @@ class Config:
     level_order : int
         Order of the polynomial background removed (1 = plane).
     line_method : str or None
-        Scan-line offset removal: None, "median", "mean" or "difference" (see :func:`domains.level.line_offsets`).
+        Scan-line offset removal: "auto" (jumps first; then Hann-weighted line means unless an order
+        peak lies within 3 bins of the qy axis), None, "median", "mean", "hann" or "difference"
+        (see :func:`domains.level.line_offsets`).
     lattice : dict or None
         Override of the atomic lattice: ``{"kind": "hexagonal", "a_nm": 0.34, "angle_deg": 8.0}``.
     superlattice : str or None
@@ -60,7 +62,7 @@ class Config:
     """
 
     level_order: int = 1
-    line_method: str | None = "median"
+    line_method: str | None = "auto"
     lattice: dict | None = None
     superlattice: str | None = None
     q_rad_per_nm: list | None = None
@@ -80,8 +82,9 @@ class Config:
         """Raise InputError on values that are out of range or contradict each other."""
         if self.order not in ORDER_KINDS:
             raise InputError(f"{where}: order must be one of {ORDER_KINDS}, got {self.order!r}")
-        if self.line_method not in (None, "median", "mean", "difference"):
-            raise InputError(f"{where}: line_method must be median, mean, difference or none, got {self.line_method!r}")
+        if self.line_method not in (None, "auto", "median", "mean", "hann", "difference"):
+            raise InputError(f"{where}: line_method must be auto, median, mean, hann, difference or none, "
+                             f"got {self.line_method!r}")
         for name in ("sigma_nm", "drift_sigma_nm", "min_domain_area_nm2", "a_nm", "twist_tolerance_deg"):
             value = getattr(self, name)
             if value is not None and (not isinstance(value, (int, float)) or not value > 0):
@@ -234,22 +237,36 @@ def _component_names(prefix, k):
 def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analysis:
     from . import drift as drift_mod
     from . import measure, order, segment
-    from .level import level
+    from .level import level, line_offsets
 
     pixel = topography.pixel_size_nm
     notes, choices = [], {}
     bar = _progress(9, progress)
 
     # 1. Level: background plane and scan-line offsets (the mask travels along).
-    # The warning about per-line levelling becomes a note once the peaks are known (see _spectrum_step).
-    levelled = level(topography, order=config.level_order, lines=config.line_method, warn=False)
+    # The warning about per-line levelling becomes a note (the peaks tell whether it matters).
+    first_lines = "difference" if config.line_method == "auto" else config.line_method
+    levelled = level(topography, order=config.level_order, lines=first_lines, warn=False)
     image = np.asarray(levelled.data, dtype=float)
     mask = levelled.mask
-    choices["level"] = {"order": config.level_order, "line_method": config.line_method}
     bar.update()
 
     # 2. Spectrum, lattice and superlattice.
     spec = _spectrum_step(image, pixel, mask, config)
+    near_axis = _peaks_near_qy_axis(spec["result"], image.shape, pixel)
+    line_method = first_lines
+    if config.line_method == "auto":
+        if near_axis:
+            notes.append(f"Dense scan-line offsets were left in: {len(near_axis)} peak(s) lie within 3 frequency "
+                         "bins of the qy axis, where removing line offsets would delete them (METHODS §7).")
+        else:
+            # No order near the qy axis: Hann-weighted line means remove the offsets and leave every peak.
+            image, _ = line_offsets(image, method="hann", mask=mask, warn=False)
+            line_method = "difference, then hann"
+    elif config.line_method in ("median", "mean", "hann") and near_axis:
+        notes.append(f"Per-line {config.line_method} levelling removed modulations along y; "
+                     f"{len(near_axis)} peak(s) lie near the qy axis and may be weakened.")
+    choices["level"] = {"order": config.level_order, "line_method": line_method}
     bar.update()
     lattice_q = spec["bragg_q"]
 
@@ -344,18 +361,20 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
             # Halfway between a variant's centre and its cell boundary (pi / n for n x n).
             confidence = config.confidence or math.cos(math.pi / (2 * math.sqrt(n_variants)))
             seg = segment.segment_states(state.variant, state.score, state.ordered, pixel_size_nm=pixel,
-                                         min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted)
+                                         min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted,
+                                         bridge_nm=2 * sigma_nm)
             relative = order.relative_phase(a_order, coefficients, bragg_phase=bragg_phase)
             fields_used = state.amplitude / 2 * np.exp(1j * (relative - state.offset_rad[:, None, None]))
             state_names = {lab: "m=({},{})".format(*state.variants[v]) for lab, v in seg.state.items()}
             choices["variant_offset_rad"] = state.offset_rad.tolist()
             ordered = state.ordered
-        elif kind == "stripes":
+        elif kind == "stripes" and len(order_q) > 1:
             state = order.orientation_order(a_order, threshold=floor.threshold,
                                             anisotropy_threshold=config.anisotropy_threshold)
             confidence = config.confidence or config.anisotropy_threshold
             seg = segment.segment_states(state.orientation, state.anisotropy, state.ordered, pixel_size_nm=pixel,
-                                         min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted)
+                                         min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted,
+                                         bridge_nm=2 * sigma_nm)
             fields_used = a_order
             state_names = {lab: f"q{v + 1}" for lab, v in seg.state.items()}
             ordered = state.ordered
@@ -366,7 +385,9 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                                          trusted=trusted)
             fields_used = a_order
             state_names = {lab: "ordered" for lab in seg.state}
-            notes.append("Incommensurate order: no translational variants; regions show where order is present.")
+            notes.append("Incommensurate order: no translational variants; regions show where order is present."
+                         if kind == "incommensurate" else
+                         "A single order wavevector: regions show where the order is present.")
         choices["segmentation"] = {**seg.parameters, "islands_dropped": seg.islands,
                                    "min_area_why": "disc of radius 2 sigma (the resolution)" if config.min_domain_area_nm2 is None else "given"}
         bar.update()
@@ -441,6 +462,9 @@ def _choose_sigma(config, order_q, lattice_q, moire_q, shape, pixel):
     floor = 1.5 * max(pixel)
     if sigma < floor:
         sigma, why = floor, why + f"; raised to 1.5 pixels ({floor:.3g} nm)"
+    ceiling = min(shape[0] * pixel[0], shape[1] * pixel[1]) / 8
+    if sigma > ceiling:
+        sigma, why = ceiling, why + f"; capped at 1/8 of the frame ({ceiling:.3g} nm): peaks this close are not resolved"
     return float(sigma), why
 
 
@@ -751,20 +775,38 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
         if snapped is not None:
             notes.append(snapped["note"])
     if snapped is not None:
+        # Peaks explained as a commensurate order are not moiré candidates.
+        moire_q = None
         order_q, coefficients = snapped["q"], snapped["coefficients"]
         sup = fourier.Superlattice(snapped["order"], True, order_q, np.zeros(len(order_q)),
                                    [tuple(c) for c in coefficients], note=snapped["note"])
-    elif config.q_rad_per_nm is not None:
+    elif sup is not None and lattice is not None and config.q_rad_per_nm is None and sup_override is None \
+            and config.lattice is None:
+        # The rational candidates were not flat (or lay outside the ring): what remains is an
+        # incommensurate order, if its wavevectors lie inside the Bragg ring and carry order.
+        sup.commensurate = False
+        q_inc = np.atleast_2d(np.asarray(sup.q, float))
+        inside = np.hypot(*q_inc.T) < 0.95 * float(np.min(np.hypot(*np.asarray(lattice.bragg).T)))
+        q_inc = q_inc[inside]
+        if len(q_inc):
+            q_inc = q_inc[_present(image, q_inc, pixel, mask, config, lattice.bragg)[0]]
+        if len(q_inc):
+            sup.q, sup.order = q_inc, "incommensurate"
+        else:
+            notes.append("Peaks beyond the lattice were weak, outside the Bragg ring, or scan artefacts: ignored.")
+            sup = None
+
+    if config.q_rad_per_nm is not None:
         order_q = np.atleast_2d(np.asarray(config.q_rad_per_nm, float))
         if order_q.shape[1] != 2:
             raise InputError(f"q_rad_per_nm must be a list of [qx, qy] pairs, got {config.q_rad_per_nm!r}")
         if lattice is not None:
             coefficients = order_q @ np.linalg.inv(lattice.b)
-    elif sup is not None:
+    elif sup is not None and snapped is None:
         order_q = np.asarray(sup.q, float)
         if sup.commensurate:
             coefficients = np.array([[float(Fraction(c)) for c in hk] for hk in sup.coefficients])
-    else:
+    elif snapped is None:
         order_q = None
 
     kind = config.order
@@ -798,11 +840,6 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
         notes.append("Only one stripe direction found: a single orientational domain.")
 
     marked = [(p.q[0], p.q[1], p.role or "unindexed") for p in result.peaks if p.role not in (None, "harmonic")]
-    ny, nx = image.shape
-    axis_bins = [p for p in result.peaks if abs(p.q[0]) < 2 * (2 * np.pi / (nx * pixel[1])) and p.role != "harmonic"]
-    if config.line_method in ("median", "mean") and axis_bins:
-        notes.append(f"Per-line {config.line_method} levelling removed modulations along y; "
-                     f"{len(axis_bins)} peak(s) lie near the qy axis and may be weakened.")
     lattice_summary = None if lattice is None else {
         "kind": lattice.kind, "a_nm": lattice.a_nm, "a_nm_err": lattice.a_err_nm, "angle_deg": lattice.angle_deg,
         "angle_deg_err": lattice.angle_err_deg, "q_bragg_rad_per_nm": bragg_q.tolist(),
@@ -838,7 +875,11 @@ def _snap_commensurate(image, pixel, mask, result, config, max_denominator=6):
     from . import order
 
     lattice = result.lattice
-    measured = [p.q for p in result.peaks if p.role in ("superlattice", "incommensurate")]
+    # A superlattice's fundamental peaks lie inside the Bragg ring (|G|/n, |G|/sqrt(3), ...);
+    # what lies beyond is a harmonic or a scan artefact.
+    g_min = float(np.min(np.hypot(*np.asarray(lattice.bragg).T)))
+    measured = [p.q for p in result.peaks if p.role in ("superlattice", "incommensurate", "moire")
+                and p.q_abs_rad_per_nm < 0.95 * g_min]
     if not measured:
         return None
     candidates = order.commensurate_candidates(measured, lattice.b, max_denominator=max_denominator)
@@ -857,12 +898,9 @@ def _snap_commensurate(image, pixel, mask, result, config, max_denominator=6):
     q = unique @ lattice.b
     sigma, _ = choose_sigma(np.vstack([q, lattice.bragg]), leakage=config.leakage)
     sigma = max(sigma, 1.5 * max(pixel))
-    gradient, error = order.phase_flatness(image, q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
-    amp = amplitude(lockin(image, q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask))
-    trusted = trusted_mask(image.shape, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
-    floor = order.noise_floor(image, q, sigma_nm=sigma, pixel_size_nm=pixel, avoid_q=lattice.bragg, mask=mask,
-                              trusted=trusted)
-    present = np.array([np.median(a[trusted]) > floor.threshold for a in amp])
+    present, threshold = _present(image, q, pixel, mask, config, lattice.bragg, sigma)
+    gradient, error = order.phase_flatness(image, q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask,
+                                           threshold=threshold)
     # Flat within its error, and in any case within 2 % of |q| (a 2 % misfit would slip the
     # phase by 2 pi every 50 periods: an incommensurate order, McMillan 1976).
     flat = np.hypot(*gradient.T) < np.maximum(4 * error, 0.02 * np.hypot(*q.T))
@@ -873,7 +911,9 @@ def _snap_commensurate(image, pixel, mask, result, config, max_denominator=6):
     name = "commensurate " + ", ".join(f"({h:.3g}, {k:.3g})" for h, k in coefficients)
     for n in range(2, max_denominator + 1):
         nxn = order.coefficients_nxn(n)
-        if lattice.kind == "hexagonal" and len(coefficients) == 3 and all(
+        # A complete triple G_j / n explains the order; other flat candidates are weaker
+        # echoes (harmonics, artefacts) and are left out.
+        if lattice.kind == "hexagonal" and all(
                 any(np.allclose(c, t) or np.allclose(c, -t) for c in coefficients) for t in nxn):
             coefficients, name = nxn, f"{n}x{n}"
             break
@@ -883,6 +923,30 @@ def _snap_commensurate(image, pixel, mask, result, config, max_denominator=6):
     return {"q": coefficients @ lattice.b, "coefficients": coefficients, "order": name,
             "note": f"Superlattice {name}: the lock-in phase is flat at the rational wavevectors "
                     f"(median gradient {np.nanmax(np.hypot(*gradient[keep].T)):.3g} rad/nm)."}
+
+
+def _present(image, q, pixel, mask, config, bragg, sigma=None):
+    """Which wavevectors carry order: above the noise threshold over at least a tenth of the frame.
+
+    Orientational domains hold each wavevector over only part of the frame, so a median
+    over the whole frame would miss them. Returns the verdicts and the threshold.
+    """
+    from . import order
+
+    if sigma is None:
+        sigma = max(choose_sigma(np.vstack([q, bragg]), leakage=config.leakage)[0], 1.5 * max(pixel))
+    amp = amplitude(lockin(image, q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask))
+    trusted = trusted_mask(image.shape, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
+    floor = order.noise_floor(image, q, sigma_nm=sigma, pixel_size_nm=pixel, avoid_q=bragg, mask=mask,
+                              trusted=trusted, false_alarm=config.false_alarm)
+    return np.array([np.mean(a[trusted] > floor.threshold) >= 0.1 for a in amp]), floor.threshold
+
+
+def _peaks_near_qy_axis(result, shape, pixel, bins=3):
+    """Indexed peaks within ``bins`` frequency bins of the qy axis (line offsets live on that axis)."""
+    width_bin = 2 * np.pi / (shape[1] * pixel[1])
+    return [p for p in result.peaks if p.role in ("bragg", "superlattice", "incommensurate", "moire")
+            and abs(p.q[0]) < bins * width_bin]
 
 
 def _is_simple(coefficients, max_denominator=12):

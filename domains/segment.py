@@ -42,7 +42,8 @@ class Segmentation:
     parameters: dict = field(default_factory=dict)
 
 
-def segment_states(state, confidence, ordered, *, pixel_size_nm, min_area_nm2, confidence_threshold, trusted=None):
+def segment_states(state, confidence, ordered, *, pixel_size_nm, min_area_nm2, confidence_threshold, trusted=None,
+                   bridge_nm=0.0):
     """Domains as connected regions of one state, grown through the uncertain zones between them.
 
     1. Cores: ordered pixels whose state is confident (``confidence >=
@@ -70,6 +71,11 @@ def segment_states(state, confidence, ordered, *, pixel_size_nm, min_area_nm2, c
     trusted : (row, col) bool, optional
         Where the lock-in is reliable; seeds come only from there, and growth
         reaches the rest of the ordered pixels.
+    bridge_nm : float
+        Gaps in ``ordered`` narrower than about twice this are bridged before growing:
+        at a pi phase slip the amplitude falls to zero (METHODS §5), and the wall
+        between the two domains must still be drawn. A morphological closing with a
+        disc of this radius.
 
     Returns
     -------
@@ -113,10 +119,18 @@ def segment_states(state, confidence, ordered, *, pixel_size_nm, min_area_nm2, c
         return Segmentation(empty, empty, np.zeros(state.shape, bool), {}, islands,
                             {"min_area_nm2": min_area_nm2, "confidence_threshold": confidence_threshold})
     finite = np.where(np.isfinite(confidence), confidence, confidence[np.isfinite(confidence)].min(initial=0.0))
-    grown = watershed(-finite, markers=seeds, mask=ordered).astype(np.int32)
+    reach = ordered
+    if bridge_nm > 0:
+        radius = max(1, int(round(bridge_nm / min(dy, dx))))
+        disc = np.hypot(*np.mgrid[-radius: radius + 1, -radius: radius + 1]) <= radius
+        # Pad so that the closing does not erode at the frame edge.
+        padded = np.pad(ordered, radius, mode="edge")
+        reach = ordered | ndimage.binary_closing(padded, structure=disc)[radius:-radius, radius:-radius]
+    grown = watershed(-finite, markers=seeds, mask=reach).astype(np.int32)
     walls = thin_walls(grown)
     labels = np.where(walls, 0, grown).astype(np.int32)
-    params = {"min_area_nm2": float(min_area_nm2), "confidence_threshold": float(confidence_threshold)}
+    params = {"min_area_nm2": float(min_area_nm2), "confidence_threshold": float(confidence_threshold),
+              "bridge_nm": float(bridge_nm)}
     return Segmentation(labels, grown, walls, seed_state, islands, params)
 
 
