@@ -1,0 +1,6 @@
+"""The dock widgets (magicgui containers on Qt); what they compute lives in :mod:`napari_plugin._widgets`."""
+
+from ._analysis import AnalysisWidget
+from ._lockin import LockinWidget
+
+__all__ = ["AnalysisWidget", "LockinWidget"]
