@@ -428,8 +428,6 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         ]))
     else:
         bar.update(3)
-        if kind == "none":
-            notes.append("No superlattice found: no CDW or stripe peaks beyond the lattice.")
     out_maps["labels"] = (labels.astype(np.int32), {**attrs, "units": "label"})
     out_maps["walls"] = (walls.astype(bool), {**attrs, "units": "bool"})
 
@@ -438,10 +436,13 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                    pixel, lattice_q, mask)
     if grid is not None and kind in ("commensurate", "stripes", "incommensurate"):
         _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_nm, pixel, mask)
-    if spec["moire_q"] is not None and kind in ("moire", "none") or config.order == "moire":
-        _moire_step(summary, out_maps, figures, sections, choices, notes, fill, spec, sigma_nm, pixel, mask, config)
+    if kind in ("moire", "none"):
+        _moire_step(summary, out_maps, tables, figures, sections, choices, notes, fill, spec, pixel, mask, config)
         if summary["moire"] is not None:
             summary["order_kind"] = "moire"
+            summary["superlattice"]["note"] = "a moiré pattern, not a superlattice of the atomic lattice"
+        elif kind == "none":
+            notes.append("No superlattice found: no CDW or stripe peaks beyond the lattice.")
     bar.update()
     bar.close()
     summary["choices"] = choices
@@ -681,7 +682,9 @@ def run_demo(out, *, scene="cdw", seed=7, overwrite=True, command_line=("domains
 
     name = scene
     sc = make_scene(name, seed=seed)
-    result = analyze(sc.topography, maps=sc.maps, progress=progress)
+    # The moiré scene does not resolve the atoms: as a user would, state the layers' lattice constant.
+    config = Config(a_nm=sc.truth["a_nm"]) if sc.kind == "moire" else Config()
+    result = analyze(sc.topography, maps=sc.maps, config=config, progress=progress)
     result.summary["truth"] = {"scene": name, "seed": seed, **{k: v for k, v in sc.truth.items() if k != "domains"}}
     with tempfile.TemporaryDirectory() as tmp:
         # The scene is written as input files too, so that the provenance record hashes real inputs.
@@ -980,3 +983,65 @@ def _mostly_unidirectional(image, order_q, pixel, mask, config):
     where = o.ordered & trusted
     # Unidirectional when most ordered pixels are dominated by one component (common practice, no source).
     return bool(where.sum() > 0 and np.mean(o.anisotropy[where] >= config.anisotropy_threshold) > 0.6)
+
+
+def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, image, spec, pixel, mask, config):
+    """Local period, twist and heterostrain of a moiré, and its twist-angle domains."""
+    from . import measure, moire
+
+    lattice = spec["result"].lattice
+    moire_q = spec["moire_q"]
+    if moire_q is None or len(moire_q) < 2:
+        try:
+            moire_q = moire.find_moire_q(image, pixel_size_nm=pixel, mask=mask)
+        except InputError:
+            if config.order == "moire":
+                raise InputError("order = 'moire' but no moiré triplet was found in the spectrum") from None
+            return None
+    bragg_q = None if lattice is None else np.asarray(lattice.bragg, float)
+    attrs = {"pixel_size_nm": list(pixel)}
+    if bragg_q is None and config.a_nm is None:
+        wavelengths = moire.moire_wavelengths(np.asarray(moire_q, float)[:3])
+        summary["moire"] = {"mode": "period only", "period_nm": float(np.mean(wavelengths)),
+                            "wavelengths_nm": [float(w) for w in wavelengths], "twist_deg": None,
+                            "twist_deg_std": None, "heterostrain_percent": None,
+                            "moire_q_rad_per_nm": np.asarray(moire_q).tolist(),
+                            "note": "atoms not resolved: give the lattice constant a_nm for the twist angle"}
+        notes.append("Moiré found, atoms not resolved: give a_nm (the layers' lattice constant) to map the twist.")
+        return None
+    maps = moire.moire_maps(image, np.asarray(moire_q, float)[:3], pixel_size_nm=pixel, a_nm=config.a_nm,
+                            bragg_q=bragg_q, mask=mask)
+    twist = moire.twist_domains(maps.twist_deg, pixel_size_nm=pixel, tolerance_deg=config.twist_tolerance_deg,
+                                twist_err_deg=maps.twist_deg_err, resolution_nm=maps.sigma_nm, trusted=maps.trusted)
+    summary["moire"] = {**maps.summary, "twist_domains": len(twist.table), "twist_tolerance_deg": twist.tolerance_deg,
+                        "twist_tolerance_from": twist.tolerance_source}
+    choices["moire"] = {"mode": maps.mode, "sigma_nm": maps.sigma_nm, "twist_tolerance_deg": twist.tolerance_deg,
+                        "twist_tolerance_from": twist.tolerance_source}
+    labels = twist.labels.astype(np.int32)
+    walls = np.asarray(twist.boundaries, bool)
+    out_maps["labels"] = (labels, {**attrs, "units": "label"})
+    out_maps["walls"] = (walls, {**attrs, "units": "bool"})
+    out_maps["twist_deg"] = (maps.twist_deg.astype(np.float32), {**attrs, "units": "deg"})
+    out_maps["moire/twist_deg_err"] = (maps.twist_deg_err.astype(np.float32), {**attrs, "units": "deg"})
+    out_maps["moire/period_nm"] = (maps.period_nm.astype(np.float32), {**attrs, "units": "nm"})
+    out_maps["moire/heterostrain_percent"] = (maps.heterostrain_percent.astype(np.float32), {**attrs, "units": "%"})
+    out_maps["moire/heterostrain_angle_deg"] = (maps.heterostrain_angle_deg.astype(np.float32),
+                                                {**attrs, "units": "deg"})
+    state = {int(r["id"]): f"twist {r['twist_deg_mean']:.3f} deg" for r in twist.table}
+    rows = measure.domain_table(labels, pixel_size_nm=pixel, state_names=state, amplitude=maps.amplitude)
+    tables["domains"] = (measure.DOMAIN_COLUMNS, rows)
+    tables["twist_domains"] = (list(twist.table[0]) if twist.table else ["domain"], twist.table)
+    summary["domains"] = measure.domain_summary(rows, [])
+    figures["twist"] = report.image_figure(maps.twist_deg, pixel_size_nm=pixel, cmap="viridis", units="deg",
+                                           title="Local twist angle θ(r)")
+    figures["heterostrain"] = report.image_figure(maps.heterostrain_percent, pixel_size_nm=pixel, cmap="magma",
+                                                  units="%", title="Uniaxial heterostrain")
+    figures["twist_domains"] = report.domain_figure(image, labels, walls, pixel_size_nm=pixel,
+                                                    title="Twist-angle domains over the image")
+    sections.append(("Moiré", [
+        ("twist", f"Local twist from the moiré wavevectors (mode: {maps.mode}); σ = {maps.sigma_nm:.3g} nm."),
+        ("heterostrain", "Magnitude of the uniaxial heterostrain (polar decomposition of the layer transform)."),
+        ("twist_domains", f"Regions of one twist range (tolerance {twist.tolerance_deg:.3g}°, {twist.tolerance_source})."),
+        (None, "<h3>Twist domains</h3>" + report.html_table(list(twist.table[0]) if twist.table else [], twist.table)),
+    ]))
+    return maps

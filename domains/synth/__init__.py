@@ -5,5 +5,7 @@ material or measurement.
 """
 
 from .cdw import Scene, cdw_scene, cdw_variant_phases, smooth_partition, stripe_scene, voronoi_labels
+from .moire import moire_scene, twisted_bilayer
 
-__all__ = ["Scene", "cdw_scene", "cdw_variant_phases", "smooth_partition", "stripe_scene", "voronoi_labels"]
+__all__ = ["Scene", "cdw_scene", "cdw_variant_phases", "moire_scene", "smooth_partition", "stripe_scene",
+           "twisted_bilayer", "voronoi_labels"]

@@ -263,3 +263,59 @@ def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_de
         "noise_std": float(noise),
     }
     return image, truth
+
+
+def moire_scene(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, regions=(1.05, 1.3), heterostrain_percent=0.1,
+                heterostrain_angle_deg=20.0, noise=0.3, rng=0):
+    """The built-in moiré scene: a twisted bilayer with two twist domains and a little heterostrain.
+
+    Parameters
+    ----------
+    shape : (int, int)
+        Image shape (row, col).
+    pixel_size_nm : float
+        Pixel size in nm.
+    a_nm : float
+        Lattice constant of both layers (nm); the analysis needs it, as the scene
+        does not resolve the atoms.
+    regions : sequence of float
+        Twist angles (degrees) of equal vertical bands, left to right.
+    heterostrain_percent, heterostrain_angle_deg : float
+        Uniaxial heterostrain of layer 2 and its axis.
+    noise : float
+        White noise in units of the clean image's standard deviation.
+    rng : int or numpy.random.Generator
+        Randomness (seed).
+
+    Returns
+    -------
+    domains.synth.Scene
+        ``truth_maps`` holds ``labels`` (the twist bands) and ``twist_deg``; ``truth`` the
+        band angles, the lattice constant and the moiré wavevectors at the centre.
+
+    Examples
+    --------
+    >>> scene = moire_scene(shape=(96, 96), rng=1)
+    >>> scene.kind, scene.truth["region_theta_deg"]
+    ('moire', [1.05, 1.3])
+    """
+    from .._scan import Scan
+    from .cdw import Scene
+
+    image, truth = twisted_bilayer(shape=shape, pixel_size_nm=pixel_size_nm, a_nm=a_nm, regions=list(regions),
+                                   heterostrain_percent=heterostrain_percent,
+                                   heterostrain_angle_deg=heterostrain_angle_deg, noise=noise, rng=rng)
+    topography = Scan(image, pixel_size_nm=pixel_size_nm, channel="topography", bias_V=0.2, setpoint_A=1e-10,
+                      source="<synthetic moire scene>", metadata={"units": "arb. (normalised height)"})
+    summary = {
+        "a_nm": a_nm,
+        "region_theta_deg": [float(t) for t in truth["region_theta_deg"]],
+        "heterostrain_percent": heterostrain_percent,
+        "heterostrain_angle_deg": heterostrain_angle_deg,
+        "moire_q_rad_per_nm": np.asarray(truth["moire_q_rad_per_nm"]).tolist(),
+        "period_nm_centre": truth["period_nm_centre"],
+        "n_domains": len(regions),
+    }
+    maps = {"labels": np.asarray(truth["regions"], np.int32), "twist_deg": truth["theta_deg"],
+            "displacement": np.zeros((2,) + tuple(shape))}
+    return Scene("moire", topography, [], summary, maps)
