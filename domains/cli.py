@@ -114,7 +114,7 @@ def main(argv=None) -> int:
 
     Examples
     --------
-    >>> main(["scene", "nonsense", "--out", "x"])  # doctest: +SKIP
+    >>> main(["scene", "nonsense", "--out", "x"])  # argparse explains on stderr
     2
     """
     argv = list(sys.argv[1:] if argv is None else argv)

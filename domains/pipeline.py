@@ -205,9 +205,9 @@ def analyze(topography: Scan, *, maps=(), grid: Scan | None = None, config: Conf
     --------
     >>> from domains.synth import cdw_scene
     >>> scene = cdw_scene(shape=(192, 192), n_domains=2, rng=3)
-    >>> result = analyze(scene.topography, progress=False)  # doctest: +SKIP
-    >>> result.summary["superlattice"]["order"]  # doctest: +SKIP
-    '3x3'
+    >>> result = analyze(scene.topography, progress=False)
+    >>> result.summary["superlattice"]["order"], result.summary["domains"]["count"]
+    ('3x3', 2)
     """
     config = (config or Config()).validate()
     if topography.is_grid:
@@ -756,7 +756,6 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
     ``lattice`` (a :class:`domains.fourier.Lattice`) skips the lattice search, as on the second
     pass over the drift-corrected image, whose sharper peaks index the superlattice reliably.
     """
-    from fractions import Fraction
 
     from . import fourier
 
@@ -804,11 +803,11 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
         if order_q.shape[1] != 2:
             raise InputError(f"q_rad_per_nm must be a list of [qx, qy] pairs, got {config.q_rad_per_nm!r}")
         if lattice is not None:
-            coefficients = order_q @ np.linalg.inv(lattice.b)
+            coefficients = order_q @ np.linalg.inv(_order_basis(lattice))
     elif sup is not None and snapped is None:
         order_q = np.asarray(sup.q, float)
         if sup.commensurate:
-            coefficients = np.array([[float(Fraction(c)) for c in hk] for hk in sup.coefficients])
+            coefficients = order_q @ np.linalg.inv(_order_basis(lattice))
     elif snapped is None:
         order_q = None
 
@@ -868,6 +867,27 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
             "choices": choices}
 
 
+def _order_basis(lattice):
+    """The basis in which order coefficients are written: the first two Bragg vectors G1, G2.
+
+    They are the vectors whose phases the drift correction measures (G3 = -(G1 + G2) on a
+    hexagonal lattice), so relative phases and variant templates use the same basis.
+    """
+    return np.asarray(lattice.bragg, float)[:2]
+
+
+def _third_bragg(basis, tolerance_deg=5.0):
+    """For a hexagonal-like pair G1, G2 (60 or 120 degrees apart), the third Bragg vector's
+    coefficients: (1, 1) or (1, -1) in the (G1, G2) basis, whichever is as short as G1; else None."""
+    g1, g2 = basis
+    angle = np.degrees(np.arccos(np.clip(g1 @ g2 / np.hypot(*g1) / np.hypot(*g2), -1, 1)))
+    if abs(angle - 120) < tolerance_deg:
+        return np.array([1.0, 1.0])
+    if abs(angle - 60) < tolerance_deg:
+        return np.array([1.0, -1.0])
+    return None
+
+
 def _snap_commensurate(image, pixel, mask, result, config, max_denominator=6):
     """Test the simple fractions nearest the superlattice peaks: commensurate when the phase is flat there.
 
@@ -885,20 +905,24 @@ def _snap_commensurate(image, pixel, mask, result, config, max_denominator=6):
                 and p.q_abs_rad_per_nm < 0.95 * g_min]
     if not measured:
         return None
-    candidates = order.commensurate_candidates(measured, lattice.b, max_denominator=max_denominator)
+    basis = _order_basis(lattice)
+    candidates = order.commensurate_candidates(measured, basis, max_denominator=max_denominator)
     unique = []
     for c in candidates:
         if np.allclose(c, 0) or any(np.allclose(c, u) or np.allclose(c, -u) for u in unique):
             continue
         unique.append(c)
-    # A triple-q n x n order on a hexagonal lattice: test all three G_j / n once one is seen.
-    if lattice.kind == "hexagonal":
+    # A triple-q n x n order on a hexagonal lattice: test all three G_j / n once one is seen
+    # (the third Bragg vector is the shorter of G1 + G2 and G1 - G2; the fit may call a slightly
+    # distorted hexagonal lattice oblique, so the angle decides, not the name).
+    third = _third_bragg(basis)
+    if third is not None:
         for n in sorted({round(1 / max(abs(c).max(), 1e-9)) for c in unique}):
-            for c in order.coefficients_nxn(n) if n >= 2 else ():
+            for c in (np.array([1.0, 0.0]) / n, np.array([0.0, 1.0]) / n, third / n) if n >= 2 else ():
                 if not any(np.allclose(c, u) or np.allclose(c, -u) for u in unique):
                     unique.append(c)
     unique = np.array(unique)
-    q = unique @ lattice.b
+    q = unique @ basis
     sigma, _ = choose_sigma(np.vstack([q, lattice.bragg]), leakage=config.leakage)
     sigma = max(sigma, 1.5 * max(pixel))
     present, threshold = _present(image, q, pixel, mask, config, lattice.bragg, sigma)
@@ -913,17 +937,17 @@ def _snap_commensurate(image, pixel, mask, result, config, max_denominator=6):
     coefficients = unique[keep]
     name = "commensurate " + ", ".join(f"({h:.3g}, {k:.3g})" for h, k in coefficients)
     for n in range(2, max_denominator + 1):
-        nxn = order.coefficients_nxn(n)
-        # A complete triple G_j / n explains the order; other flat candidates are weaker
-        # echoes (harmonics, artefacts) and are left out.
-        if lattice.kind == "hexagonal" and all(
-                any(np.allclose(c, t) or np.allclose(c, -t) for c in coefficients) for t in nxn):
-            coefficients, name = nxn, f"{n}x{n}"
-            break
-        if lattice.kind == "square" and all(np.allclose(np.sort(np.abs(c)), [0, 1 / n]) for c in coefficients):
+        if third is not None:
+            # A complete triple G_j / n explains the order; other flat candidates are weaker
+            # echoes (harmonics, artefacts) and are left out.
+            triple = np.array([[1.0, 0.0], [0.0, 1.0], -third]) / n
+            if all(any(np.allclose(c, t) or np.allclose(c, -t) for c in coefficients) for t in triple):
+                coefficients, name = triple, f"{n}x{n}"
+                break
+        elif all(np.allclose(np.sort(np.abs(c)), [0, 1 / n]) for c in coefficients):
             name = f"{n}x{n}" if len(coefficients) > 1 else f"{n}x1"
             break
-    return {"q": coefficients @ lattice.b, "coefficients": coefficients, "order": name,
+    return {"q": coefficients @ basis, "coefficients": coefficients, "order": name,
             "note": f"Superlattice {name}: the lock-in phase is flat at the rational wavevectors "
                     f"(median gradient {np.nanmax(np.hypot(*gradient[keep].T)):.3g} rad/nm)."}
 

@@ -178,8 +178,12 @@ def domain_figure(topography, labels, walls, *, pixel_size_nm, defects=(), title
     coloured = np.ma.masked_where(np.asarray(labels) <= 0, labels)
     ax.imshow(coloured, cmap=ListedColormap(palette), vmin=0.5, vmax=max(n, 1) + 0.5, alpha=0.45,
               extent=extent, interpolation="nearest")
-    ax.imshow(np.ma.masked_where(~np.asarray(walls, bool), np.ones(np.shape(walls))), cmap="gray", vmin=0, vmax=2,
-              extent=extent, interpolation="nearest")
+    # Walls are one pixel thin: thicken them for display only, so they survive the downsampling.
+    from scipy import ndimage
+
+    shown = ndimage.binary_dilation(np.asarray(walls, bool), iterations=max(1, min(np.shape(walls)) // 400))
+    ax.imshow(np.ma.masked_where(~shown, np.ones(np.shape(walls))), cmap=ListedColormap(["black"]),
+              vmin=0, vmax=1, extent=extent, interpolation="nearest")
     for d in defects:
         ax.plot(d["x_nm"], d["y_nm"], marker="P" if d["winding"] > 0 else "X", ms=9, mec="black",
                 color="#ffe14d" if d["winding"] > 0 else "#4dd2ff")
