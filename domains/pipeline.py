@@ -1015,6 +1015,10 @@ def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, im
 
     lattice = spec["result"].lattice
     moire_q = spec["moire_q"]
+    if (moire_q is None or len(moire_q) < 2) and lattice is not None and config.order != "moire":
+        # With the atoms resolved, a moiré shows as a second lattice in the spectrum's indexing;
+        # low-|q| peaks of a single lattice are drift sidebands or harmonics, not a moiré.
+        return None
     if moire_q is None or len(moire_q) < 2:
         try:
             moire_q = moire.find_moire_q(image, pixel_size_nm=pixel, mask=mask)
