@@ -719,15 +719,29 @@ def _bias_step(summary, tables, figures, sections, topo, corrected_maps, map_sca
             verdict_rows.append({"bias_1_V": pair["bias_1_V"], "bias_2_V": pair["bias_2_V"], "domain": d["domain"],
                                  "delta_phi_deg": ";".join("–" if v is None else f"{v:.0f}" for v in d.get("delta_phi_deg") or []),
                                  "verdict": verdict.get("verdict", ""), "confidence": verdict.get("confidence")})
+    first = summary["bias_comparison"]["pairs"][0]
+    k = len(order_q)
+    def shown(value):
+        # Shown in [-90, 270) so that inversions (180) and unchanged contrast (0) do not wrap.
+        return None if value is None else (value + 90) % 360 - 90
+
+    shifts = [(f"q{j + 1}", [d["domain"] + 0.08 * (j - (k - 1) / 2) for d in first["domains"]],
+               [shown((d.get("delta_phi_deg") or [None] * k)[j]) for d in first["domains"]],
+               [(d.get("delta_phi_deg_se") or [None] * k)[j] for d in first["domains"]]) for j in range(k)]
+    figures["contrast"] = report.curves_figure(
+        shifts, xlabel="domain", ylabel="Δφ (deg)", lines=False, reference=(0, 180),
+        title=f"Phase shift of each order component, {first['bias_1_V']:+.2f} V vs {first['bias_2_V']:+.2f} V")
     curves = []
     for d in sorted({r["domain"] for r in rows}):
         mine = sorted((r for r in rows if r["domain"] == d), key=lambda r: r["bias_V"])
-        curves.append((f"domain {d}", [r["bias_V"] for r in mine], [r["amplitude_total"] for r in mine],
-                       [r["amplitude_total_se"] for r in mine]))
-    figures["contrast"] = report.curves_figure(curves, xlabel="bias (V)", ylabel="order amplitude (map units)",
-                                               title="Per-domain order amplitude at each bias")
+        curves.append((f"domain {d}", [r["bias_V"] for r in mine], [r["map_mean"] for r in mine],
+                       [r["map_mean_se"] for r in mine]))
+    figures["conductance"] = report.curves_figure(curves, xlabel="bias (V)", ylabel="mean map value",
+                                                  title="Per-domain mean conductance at each bias")
     sections.append(("Bias comparison", [
-        ("contrast", "Mean order amplitude of each domain in the conductance map at each bias, with standard errors."),
+        ("contrast", "Δφ_j = arg(A_j(V1) A_j(V2)*) of each order component in each domain, with standard errors: "
+                     "±180° is an inverted contrast, 0° an unchanged one."),
+        ("conductance", "Mean conductance of each domain at each bias, with standard errors."),
         (None, "<h3>Contrast between biases</h3><p>Δφ_j = arg(A_j(V1) A_j(V2)*) per component; "
                "'inverted' needs every component compatible with π.</p>"
          + report.html_table(["bias_1_V", "bias_2_V", "domain", "delta_phi_deg", "verdict", "confidence"], verdict_rows)),

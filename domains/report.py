@@ -213,8 +213,10 @@ def histogram_figure(values, *, xlabel, title, bins="auto"):
     return _png(fig)
 
 
-def curves_figure(curves, *, xlabel, ylabel, title):
+def curves_figure(curves, *, xlabel, ylabel, title, lines=True, reference=()):
     """Several labelled curves with optional error bars: ``curves`` is a list of (label, x, y, yerr or None).
+
+    ``lines=False`` draws markers only; ``reference`` values are drawn as dotted horizontal lines.
 
     Examples
     --------
@@ -226,12 +228,15 @@ def curves_figure(curves, *, xlabel, ylabel, title):
     def numbers(values):
         return np.array([np.nan if v is None else v for v in values], dtype=float)
 
+    style = "o-" if lines else "o"
+    for value in reference:
+        ax.axhline(value, color="0.6", lw=0.8, ls=":")
     for label, x, y, yerr in curves:
         x, y = numbers(x), numbers(y)
         if yerr is None:
-            ax.plot(x, y, "o-", ms=3, label=label)
+            ax.plot(x, y, style, ms=3, label=label)
         else:
-            ax.errorbar(x, y, yerr=numbers(yerr), fmt="o-", ms=3, capsize=2, label=label)
+            ax.errorbar(x, y, yerr=numbers(yerr), fmt=style, ms=3, capsize=2, label=label)
     ax.set_xlabel(xlabel)
     ax.set_ylabel(ylabel)
     ax.set_title(title)
