@@ -8,6 +8,7 @@ import numpy as np
 from scipy import fft as sfft
 from scipy import ndimage
 
+from ._checks import positive, within_nyquist
 from ._errors import InputError
 from ._scan import _is_dask, pixel_size_pair
 
@@ -31,20 +32,9 @@ def _as_q_array(q) -> tuple[np.ndarray, bool]:
 
 
 def _check_q_sigma(q, sigma_nm, pixel_size, shape):
+    within_nyquist(q, pixel_size)
+    sigma_nm = positive(sigma_nm, "sigma_nm")
     dy, dx = pixel_size
-    nyq = np.array([math.pi / dx, math.pi / dy])
-    over = np.any(np.abs(q) > nyq * (1 + 1e-12), axis=1)
-    if np.any(over):
-        raise InputError(
-            f"q = {q[over][0].tolist()} rad/nm lies beyond the Nyquist limit "
-            f"(|qx| <= {nyq[0]:.4g}, |qy| <= {nyq[1]:.4g} rad/nm for this pixel size)"
-        )
-    try:
-        sigma_nm = float(sigma_nm)
-    except (TypeError, ValueError):
-        raise InputError(f"sigma_nm must be a number, got {sigma_nm!r}") from None
-    if not np.isfinite(sigma_nm) or sigma_nm <= 0:
-        raise InputError(f"sigma_nm must be positive, got {sigma_nm}")
     height, width = shape[-2] * dy, shape[-1] * dx
     if sigma_nm > max(height, width) / 2:
         raise InputError(

@@ -8,6 +8,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage, stats
 
+from ._checks import positive
 from ._errors import InputError
 from ._lockin import choose_sigma, lockin, trusted_mask
 from ._scan import Scan, _is_dask, pixel_size_pair
@@ -92,16 +93,6 @@ def _q(q, name="q"):
     if not np.all(np.isfinite(q)) or np.any(np.hypot(*q.T) == 0):
         raise InputError(f"{name} must hold finite, nonzero wavevectors, got {q.tolist()}")
     return q
-
-
-def _sigma(sigma_nm):
-    try:
-        sigma_nm = float(sigma_nm)
-    except (TypeError, ValueError):
-        raise InputError(f"sigma_nm must be a number in nm, got {sigma_nm!r}") from None
-    if not np.isfinite(sigma_nm) or sigma_nm <= 0:
-        raise InputError(f"sigma_nm must be positive, got {sigma_nm}")
-    return sigma_nm
 
 
 def _fill_invalid(image, invalid):
@@ -335,7 +326,7 @@ def register(reference, moving, *, pixel_size_nm, bragg_q=None, sigma_nm=None, u
         bragg_q = _q(bragg_q, "bragg_q")
         if bragg_q.shape[0] < 2 or np.linalg.matrix_rank(bragg_q, tol=1e-9 * np.abs(bragg_q).max()) < 2:
             raise InputError(f"bragg_q needs at least two non-collinear wavevectors, got {bragg_q.tolist()}")
-        sigma_nm = choose_sigma(bragg_q)[0] if sigma_nm is None else _sigma(sigma_nm)
+        sigma_nm = choose_sigma(bragg_q)[0] if sigma_nm is None else positive(sigma_nm, "sigma_nm")
         coarse_sigma_nm = choose_sigma(bragg_q)[0] if coarse_sigma_nm is None else float(coarse_sigma_nm)
         if not np.isfinite(coarse_sigma_nm) or coarse_sigma_nm < 0:
             raise InputError(f"coarse_sigma_nm must be >= 0, got {coarse_sigma_nm}")
@@ -815,7 +806,7 @@ def phase_shifts(a1, a2, labels, *, sigma_nm, pixel_size_nm, mask=None, margin_s
     if a1.shape != a2.shape or a1.ndim != 3:
         raise InputError(f"a1 and a2 must both be (k, row, col) lock-in fields, got {a1.shape} and {a2.shape}")
     pixel_size = pixel_size_pair(pixel_size_nm)
-    sigma_nm = _sigma(sigma_nm)
+    sigma_nm = positive(sigma_nm, "sigma_nm")
     labels = _labels(labels, a1.shape[1:])
     mask = _mask(mask, a1.shape[1:])
     interior = _interior_labels(labels, sigma_nm=sigma_nm, pixel_size=pixel_size, mask=mask,
@@ -962,7 +953,7 @@ def domain_contrast(maps, labels, q, *, sigma_nm, pixel_size_nm, mask=None, marg
     [(-0.3, 0.4), (0.3, 0.2)]
     """
     pixel_size = pixel_size_pair(pixel_size_nm)
-    sigma_nm = _sigma(sigma_nm)
+    sigma_nm = positive(sigma_nm, "sigma_nm")
     q = _q(q)
     labels = np.asarray(labels)
     maps = _check_maps(maps, labels.shape, pixel_size, like="the labels")
@@ -1085,7 +1076,7 @@ def grid_fingerprints(grid, energies_V, labels, q, *, sigma_nm, pixel_size_nm, m
     from tqdm import tqdm
 
     pixel_size = pixel_size_pair(pixel_size_nm)
-    sigma_nm = _sigma(sigma_nm)
+    sigma_nm = positive(sigma_nm, "sigma_nm")
     q = _q(q)
     lazy = _is_dask(grid)
     if not lazy:
@@ -1349,7 +1340,7 @@ def compare_biases(topograph, maps, labels, q, *, sigma_nm, pixel_size_nm, bragg
         raise InputError(f"topograph ({topograph.source}): pixel size {topograph.pixel_size_nm} nm differs "
                          f"from pixel_size_nm = {pixel_size} nm")
     topograph = _image(topograph, "topograph")
-    sigma_nm = _sigma(sigma_nm)
+    sigma_nm = positive(sigma_nm, "sigma_nm")
     q = _q(q)
     labels = _labels(labels, topograph.shape)
     maps = _check_maps(maps, topograph.shape, pixel_size)

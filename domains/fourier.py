@@ -16,6 +16,7 @@ from fractions import Fraction
 import numpy as np
 from scipy import ndimage
 
+from ._checks import positive, within_nyquist
 from ._errors import InputError
 from ._lattice import real_basis, reciprocal_basis
 from ._lockin import lockin, phase_gradient, trusted_mask
@@ -202,7 +203,7 @@ class Lattice:
         """
         if kind not in ("hexagonal", "square", "oblique"):
             raise InputError(f"lattice kind must be 'hexagonal', 'square' or 'oblique', got {kind!r}")
-        a_nm = _positive(a_nm, "lattice a_nm")
+        a_nm = positive(a_nm, "lattice a_nm")
         angle_deg = _finite_float(angle_deg, "lattice angle_deg")
         if kind == "hexagonal":
             a2_nm, gamma_deg = a_nm, 60.0
@@ -213,7 +214,7 @@ class Lattice:
         else:
             if a2_nm is None or gamma_deg is None:
                 raise InputError("an oblique lattice needs a2_nm and gamma_deg as well as a_nm")
-            a2_nm = _positive(a2_nm, "lattice a2_nm")
+            a2_nm = positive(a2_nm, "lattice a2_nm")
             gamma_deg = _finite_float(gamma_deg, "lattice gamma_deg")
             if not 0 < gamma_deg % 180 < 180:
                 raise InputError(f"lattice gamma_deg must not be a multiple of 180, got {gamma_deg}")
@@ -360,13 +361,6 @@ def _finite_float(value, name) -> float:
     return value
 
 
-def _positive(value, name) -> float:
-    value = _finite_float(value, name)
-    if value <= 0:
-        raise InputError(f"{name} must be positive, got {value!r}")
-    return value
-
-
 def _json_clean(obj):
     if isinstance(obj, dict):
         return {k: _json_clean(v) for k, v in obj.items()}
@@ -416,14 +410,7 @@ def _check_q_override(q, pixel):
         raise InputError(f"q must be a (k, 2) list of (qx, qy) wavevectors in rad/nm, got shape {q.shape}")
     if not np.all(np.isfinite(q)):
         raise InputError(f"q must be finite, got {q.tolist()}")
-    dy, dx = pixel
-    nyq = np.array([math.pi / dx, math.pi / dy])
-    over = np.any(np.abs(q) > nyq * (1 + 1e-12), axis=1)
-    if np.any(over):
-        raise InputError(
-            f"q = {q[over][0].tolist()} rad/nm lies beyond the Nyquist limit "
-            f"(|qx| <= {nyq[0]:.4g}, |qy| <= {nyq[1]:.4g} rad/nm for this pixel size)"
-        )
+    within_nyquist(q, pixel)
     if np.any(np.hypot(q[:, 0], q[:, 1]) == 0):
         raise InputError("q must not contain the zero wavevector")
     return q
@@ -871,7 +858,7 @@ def _detect(power, shape, pixel, max_peaks, min_q, snr, false_alarm, interpolate
     if snr is None:
         threshold = _threshold(samples, n_search, false_alarm)
     else:
-        threshold = _positive(snr, "snr")
+        threshold = positive(snr, "snr")
     local_max = power >= ndimage.maximum_filter(power, size=5, mode="nearest")
     cand = np.nonzero(search & local_max & (ratio > threshold) & (power > 0))
     # Both members of every pair are kept at this stage (side lobes of a peak's mirror
@@ -1146,7 +1133,7 @@ def refine_q(image, q, *, pixel_size_nm, sigma_nm=None, mask=None, iterations=3,
     if iterations < 1:
         raise InputError(f"iterations must be at least 1, got {iterations}")
     if sigma_nm is not None:
-        sigma_nm = _positive(sigma_nm, "sigma_nm")
+        sigma_nm = positive(sigma_nm, "sigma_nm")
     other = None if other_q is None else _check_q_override(other_q, pixel)
     level = _subtract_plane(image, valid, pixel)
     power = _spectrum(level, "hann")

@@ -23,6 +23,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
+from ._checks import positive, within_nyquist
 from ._errors import InputError
 from ._lockin import choose_sigma, local_wavevector, lockin, phase_gradient, trusted_mask
 from ._scan import pixel_size_pair
@@ -62,16 +63,6 @@ def _rot(angle_rad):
     return np.array([[c, -s], [s, c]])
 
 
-def _positive(value, name):
-    try:
-        value = float(value)
-    except (TypeError, ValueError):
-        raise InputError(f"{name} must be a number, got {value!r}") from None
-    if not np.isfinite(value) or value <= 0:
-        raise InputError(f"{name} must be finite and positive, got {value!r}")
-    return value
-
-
 def _vectors(q, name, counts=(2, 3)):
     try:
         q = np.asarray(q, dtype=float)
@@ -91,17 +82,6 @@ def _vectors(q, name, counts=(2, 3)):
     if best < 1e-3:
         raise InputError(f"{name} must hold two non-collinear wavevectors, got collinear ones: {q.tolist()}")
     return q
-
-
-def _check_nyquist(q, pixel_size, name):
-    dy, dx = pixel_size
-    nyq = np.array([math.pi / dx, math.pi / dy])
-    over = np.any(np.abs(q) > nyq * (1 + 1e-12), axis=1)
-    if np.any(over):
-        raise InputError(
-            f"{name} = {q[over][0].tolist()} rad/nm lies beyond the Nyquist limit "
-            f"(|qx| <= {nyq[0]:.4g}, |qy| <= {nyq[1]:.4g} rad/nm for this pixel size)"
-        )
 
 
 def _triplet(q):
@@ -244,7 +224,7 @@ def moire_period(a_nm, theta_deg):
     >>> round(moire_period(0.246, 1.1), 3)
     12.814
     """
-    a_nm = _positive(a_nm, "a_nm")
+    a_nm = positive(a_nm, "a_nm")
     theta = np.radians(np.asarray(theta_deg, dtype=float))
     if np.any(np.sin(np.abs(theta) / 2) == 0):
         raise InputError(f"theta_deg must be non-zero for identical lattices, got {theta_deg!r}")
@@ -292,7 +272,7 @@ def moire_period_mismatch(a_nm, theta_deg, delta):
     >>> round(period, 3), round(phi, 2)
     (9.945, 43.87)
     """
-    a_nm = _positive(a_nm, "a_nm")
+    a_nm = positive(a_nm, "a_nm")
     theta = math.radians(float(theta_deg))
     delta = float(delta)
     denom = 2 * (1 + delta) * (1 - math.cos(theta)) + delta**2
@@ -333,7 +313,7 @@ def twist_from_period(period_nm, a_nm):
     >>> round(twist_from_period(12.814, 0.246), 3)
     1.1
     """
-    a_nm = _positive(a_nm, "a_nm")
+    a_nm = positive(a_nm, "a_nm")
     period = np.asarray(period_nm, dtype=float)
     if np.any(period < a_nm / 2):
         raise InputError(f"period_nm must be at least a_nm/2 = {a_nm / 2:g} nm, got {period_nm!r}")
@@ -832,22 +812,22 @@ def moire_maps(image, moire_q=None, *, pixel_size_nm, a_nm=None, bragg_q=None, s
         mode = "period"
         if a_nm is None:
             raise InputError("a_nm is required in period mode (no bragg_q given): the twist needs the lattice constant")
-        a_nm = _positive(a_nm, "a_nm")
+        a_nm = positive(a_nm, "a_nm")
     else:
         mode = "atomic"
         bragg_q = _vectors(bragg_q, "bragg_q")
-        _check_nyquist(bragg_q, pixel_size, "bragg_q")
+        within_nyquist(bragg_q, pixel_size, "bragg_q")
         if a_nm is not None:
-            a_nm = _positive(a_nm, "a_nm")
+            a_nm = positive(a_nm, "a_nm")
     if moire_q is None:
         q_max = None if bragg_q is None else 0.5 * float(np.min(np.hypot(*bragg_q.T)))
         moire_q = find_moire_q(image, pixel_size_nm=pixel_size, q_max_rad_per_nm=q_max, mask=mask, refine=False)
     K = _vectors(moire_q, "moire_q")
-    _check_nyquist(K, pixel_size, "moire_q")
+    within_nyquist(K, pixel_size, "moire_q")
     K = _triplet(K)
     if sigma_nm is None:
         sigma_nm, _ = choose_sigma(K, leakage=leakage)
-    sigma_nm = _positive(sigma_nm, "sigma_nm")
+    sigma_nm = positive(sigma_nm, "sigma_nm")
     trusted = trusted_mask(image.shape, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=mask)
     if not trusted.any():
         extent = (image.shape[0] * pixel_size[0], image.shape[1] * pixel_size[1])
@@ -996,7 +976,7 @@ def moire_maxima(image, *, pixel_size_nm, period_nm, mask=None):
     from skimage.feature import peak_local_max
 
     dy, dx = pixel_size_pair(pixel_size_nm)
-    period_nm = _positive(period_nm, "period_nm")
+    period_nm = positive(period_nm, "period_nm")
     image = np.asarray(image, dtype=float)
     bad = ~np.isfinite(image) if mask is None else ~np.isfinite(image) | np.asarray(mask, bool)
     filled = np.where(bad, np.nanmean(image[~bad]) if (~bad).any() else 0.0, image)
@@ -1062,7 +1042,7 @@ def triangle_twist(points, a_nm, *, max_distortion=0.3):
     """
     from scipy.spatial import Delaunay
 
-    a_nm = _positive(a_nm, "a_nm")
+    a_nm = positive(a_nm, "a_nm")
     points = np.asarray(points, dtype=float).reshape(-1, 2)
     empty = {"triangles": np.zeros((0, 3), int), "centroids_nm": np.zeros((0, 2)),
              "period_nm": np.zeros(0), "twist_deg": np.zeros(0)}
@@ -1182,7 +1162,7 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
         if tolerance_deg <= 0:
             tolerance_deg, source = 1e-3, "fallback 0.001 deg (zero twist)"
     else:
-        tolerance_deg = _positive(tolerance_deg, "tolerance_deg")
+        tolerance_deg = positive(tolerance_deg, "tolerance_deg")
         source = "given"
     area_px = pixel_size[0] * pixel_size[1]
     if min_area_nm2 is None:
