@@ -75,21 +75,27 @@ def _analyze(args, command_line):
 
 
 def _peaks(args, command_line):
-    from .fourier import analyze_spectrum, format_peak_table
-    from .io import load_scan
-    from .level import level
+    from .fourier import format_peak_table
+    from .io import json_safe, load_scan
+    from .pipeline import find_order
 
-    scan = level(load_scan(args.file, pixel_size_nm=args.pixel_size))
+    scan = load_scan(args.file, pixel_size_nm=args.pixel_size)
     if scan.is_grid:
         raise InputError(f"{args.file}: 'peaks' takes a 2-D image; this is a 3-D grid")
-    data = scan.data.compute() if scan.is_lazy else scan.data
-    result = analyze_spectrum(data, pixel_size_nm=scan.pixel_size_nm, mask=scan.mask)
+    if scan.is_lazy:
+        scan = scan.with_data(scan.data.compute())
+    found = find_order(scan)
+    spec = found["spec"]
+    verdict = {"order_kind": spec["order_kind"], "superlattice": spec["superlattice_summary"]["order"],
+               "drift_corrected": found["drift"] is not None, "notes": found["notes"]}
     if args.json:
-        from .io import json_safe
-
-        print(json.dumps(json_safe(result.to_dict()), indent=2))
+        print(json.dumps(json_safe({**spec["result"].to_dict(), "verdict": verdict}), indent=2))
     else:
-        print(format_peak_table(result))
+        print(format_peak_table(spec["result"]))
+        print(f"\norder: {verdict['order_kind']}; superlattice: {verdict['superlattice']}"
+              + ("; indexed on the drift-corrected image" if verdict["drift_corrected"] else ""))
+        for note in found["notes"]:
+            print(f"note: {note}")
 
 
 def _scene(args, command_line):

@@ -234,14 +234,44 @@ def _component_names(prefix, k):
     return [f"{prefix}_{j + 1}" for j in range(k)]
 
 
-def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analysis:
+def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
+    """Level, index the spectrum, correct drift and index again: what order the image holds.
+
+    The first three steps of :func:`analyze`, also what ``domains peaks`` shows: the
+    lattice from the levelled image, the Lawler–Fujita drift field from its Bragg peaks,
+    then the superlattice (commensurate by phase flatness, or incommensurate), stripes
+    or a moiré, from the straightened image.
+
+    Parameters
+    ----------
+    topography : Scan
+        A 2-D image (in memory).
+    config : Config, optional
+        Parameters (defaults: automatic).
+    on_step : callable, optional
+        Called after each step (progress).
+
+    Returns
+    -------
+    dict
+        ``image`` (levelled), ``mask``, ``spec`` (the indexing, with peak roles),
+        ``drift`` (a :class:`domains.drift.DriftResult` or None), ``corrected`` (the
+        straightened image), ``notes`` and ``choices``.
+
+    Examples
+    --------
+    >>> from domains.synth import cdw_scene
+    >>> found = find_order(cdw_scene(shape=(192, 192), n_domains=2, rng=3).topography)
+    >>> found["spec"]["order_kind"], found["spec"]["superlattice_summary"]["order"]
+    ('commensurate', '3x3')
+    """
     from . import drift as drift_mod
-    from . import measure, order, segment
     from .level import level, line_offsets
 
+    config = (config or Config()).validate()
+    step = on_step or (lambda: None)
     pixel = topography.pixel_size_nm
     notes, choices = [], {}
-    bar = _progress(9, progress)
 
     # 1. Level: background plane and scan-line offsets (the mask travels along).
     # The warning about per-line levelling becomes a note (the peaks tell whether it matters).
@@ -249,7 +279,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     levelled = level(topography, order=config.level_order, lines=first_lines, warn=False)
     image = np.asarray(levelled.data, dtype=float)
     mask = levelled.mask
-    bar.update()
+    step()
 
     # 2. Spectrum, lattice and superlattice.
     spec = _spectrum_step(image, pixel, mask, config)
@@ -267,22 +297,19 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         notes.append(f"Per-line {config.line_method} levelling removed modulations along y; "
                      f"{len(near_axis)} peak(s) lie near the qy axis and may be weakened.")
     choices["level"] = {"order": config.level_order, "line_method": line_method}
-    bar.update()
-    lattice_q = spec["bragg_q"]
+    step()
 
-    # 3. Drift (Lawler–Fujita) from the Bragg peaks; the same field straightens every map.
+    # 3. Drift (Lawler–Fujita) from the Bragg peaks.
     drift_result = None
-    corrected, corrected_maps, u = image, [np.asarray(m.data, float) for m in maps], None
+    corrected = image
+    lattice_q = spec["bragg_q"]
     if config.drift and lattice_q is not None:
         first_sigma, _ = _choose_sigma(config, spec["order_q"], lattice_q, spec["moire_q"], image.shape, pixel)
         drift_sigma = config.drift_sigma_nm or 2 * first_sigma
         drift_sigma = min(drift_sigma, 0.2 * min(image.shape[0] * pixel[0], image.shape[1] * pixel[1]))
         drift_result = drift_mod.correct_drift(image, lattice_q, sigma_nm=drift_sigma, pixel_size_nm=pixel, mask=mask)
         corrected = drift_result.corrected
-        u = drift_result.u_nm
         mask = drift_result.mask
-        if corrected_maps:
-            corrected_maps = list(drift_mod.correct_channels(np.stack(corrected_maps), drift_result, pixel_size_nm=pixel))
         choices["drift"] = {"sigma_nm": drift_sigma, "iterations": drift_result.iterations,
                             "converged": drift_result.converged, "note": drift_result.note}
         # Drift smears every peak into sidebands; index the superlattice again on the straightened image.
@@ -290,9 +317,39 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         spec = _spectrum_step(fill_corrected, pixel, mask, config, lattice=spec["result"].lattice)
     elif lattice_q is None:
         notes.append("No atomic lattice resolved: drift was not corrected.")
+        if spec["order_kind"] in ("none", "moire") and spec["moire_q"] is None:
+            # No atoms resolved: a hexagonal triplet of low-|q| peaks is a moiré.
+            from . import moire
+
+            try:
+                spec["moire_q"] = moire.find_moire_q(image, pixel_size_nm=pixel, mask=mask)
+                spec["order_kind"] = "moire"
+                _mark_roles(spec["result"], spec["moire_q"], "moire", tolerance=0.15)
+            except InputError:
+                pass
     choices["spectrum"] = spec["choices"]
     notes += spec["notes"]
-    bar.update()
+    step()
+    return {"image": image, "mask": mask, "spec": spec, "drift": drift_result, "corrected": corrected,
+            "notes": notes, "choices": choices}
+
+
+def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analysis:
+    from . import drift as drift_mod
+    from . import measure, order, segment
+
+    pixel = topography.pixel_size_nm
+    bar = _progress(9, progress)
+    found = find_order(topography, config, on_step=bar.update)
+    image, mask, spec, drift_result = found["image"], found["mask"], found["spec"], found["drift"]
+    corrected, notes, choices = found["corrected"], found["notes"], found["choices"]
+    lattice_q = spec["bragg_q"]
+    # The same drift field straightens every map of the scan.
+    corrected_maps, u = [np.asarray(m.data, float) for m in maps], None
+    if drift_result is not None:
+        u = drift_result.u_nm
+        if corrected_maps:
+            corrected_maps = list(drift_mod.correct_channels(np.stack(corrected_maps), drift_result, pixel_size_nm=pixel))
 
     order_q = spec["order_q"]
     kind = spec["order_kind"]
@@ -794,6 +851,7 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
         # Peaks explained as a commensurate order are not moiré candidates.
         moire_q = None
         order_q, coefficients = snapped["q"], snapped["coefficients"]
+        _mark_roles(result, order_q, "superlattice", coefficients=coefficients)
         sup = fourier.Superlattice(snapped["order"], True, order_q, np.zeros(len(order_q)),
                                    [tuple(c) for c in coefficients], note=snapped["note"])
     elif sup is not None and lattice is not None and config.q_rad_per_nm is None and sup_override is None \
@@ -879,6 +937,24 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
             "n": n, "coefficients": coefficients, "lattice_summary": lattice_summary,
             "superlattice_summary": superlattice_summary, "marked_peaks": marked, "power": power, "notes": notes,
             "choices": choices}
+
+
+def _mark_roles(result, q, role, *, coefficients=None, tolerance=0.05):
+    """Give the peaks nearest each wavevector of ``q`` (or of -q) the role found for it.
+
+    The spectrum's first indexing goes by peak position alone; the later steps (phase
+    flatness, the moiré triplet) may know better, and the peak table should say so.
+    """
+    from fractions import Fraction
+
+    for j, qj in enumerate(np.atleast_2d(q)):
+        for p in result.peaks:
+            for sign in (1, -1):
+                if np.hypot(*(p.q - sign * qj)) <= tolerance * np.hypot(*qj):
+                    p.role = role
+                    if coefficients is not None:
+                        p.hk = tuple(float(sign * c) for c in coefficients[j])
+                        p.fraction = tuple(Fraction(float(sign * c)).limit_denominator(12) for c in coefficients[j])
 
 
 def _order_basis(lattice):

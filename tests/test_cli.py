@@ -80,3 +80,23 @@ def test_scene_writes_inputs_with_sidecars_and_truth(tmp_path, capsys):
     # never overwritten without --overwrite
     assert main(["scene", "cdw", "--out", str(out)]) == 2
     assert main(["scene", "cdw", "--out", str(out), "--overwrite"]) == 0
+
+
+@pytest.mark.parametrize("kind, roles, order", [
+    ("cdw", {"bragg", "superlattice"}, "3x3"),          # truth: a 3x3 CDW on a hexagonal lattice
+    ("cdw2x2", {"bragg", "superlattice"}, "2x2"),       # truth: a 2x2 CDW
+    ("stripes", {"bragg", "superlattice"}, "4x4"),      # truth: period-4a stripes along both square axes
+    ("moire", {"moire"}, None),                         # truth: a twisted bilayer, atoms not resolved
+    ("plain", {"bragg"}, None),                         # truth: the lattice alone
+])
+def test_peaks_prints_the_right_roles_for_each_scene(kind, roles, order, tmp_path, capsys):
+    out = tmp_path / kind
+    assert main(["scene", kind, "--out", str(out)]) == 0
+    capsys.readouterr()
+    assert main(["peaks", str(out / "topography.npy"), "--json"]) == 0
+    table = json.loads(capsys.readouterr().out)
+    found = {row["role"] for row in table["peaks"]}
+    assert roles <= found
+    assert table["verdict"]["superlattice"] == order
+    if kind == "plain":
+        assert "superlattice" not in found

@@ -336,11 +336,25 @@ def _assign_variants(labels, n, rng):
             neighbours[p].add(q)
             neighbours[q].add(p)
     all_variants = [(m1, m2) for m1 in range(n) for m2 in range(n)]
+    order = sorted(neighbours, key=lambda d: -len(neighbours[d]))
     chosen = {}
-    for d in range(1, n_domains + 1):
+
+    def place(i):
+        # Backtracking colouring: a Voronoi layout is planar, so n^2 >= 4 variants always suffice.
+        if i == len(order):
+            return True
+        d = order[i]
         taken = {chosen[e] for e in neighbours[d] if e in chosen}
-        free = [v for v in all_variants if v not in taken]
-        chosen[d] = free[rng.integers(len(free))]
+        for k in rng.permutation(len(all_variants)):
+            if all_variants[k] not in taken:
+                chosen[d] = all_variants[k]
+                if place(i + 1):
+                    return True
+                del chosen[d]
+        return False
+
+    if not place(0):
+        raise InputError(f"cannot give {n_domains} domains variants that differ between neighbours with n = {n}")
     return [chosen[d] for d in range(1, n_domains + 1)]
 
 
