@@ -379,10 +379,11 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     attrs = {"pixel_size_nm": list(pixel)}
     figures["topography"] = report.image_figure(image, pixel_size_nm=pixel, title="Topograph (levelled)",
                                                 units=topography.metadata.get("units", ""))
-    figures["spectrum"] = report.spectrum_figure(*spec["power"], peaks=spec["marked_peaks"])
+    marked = _marked_peaks(spec["result"])
+    figures["spectrum"] = report.spectrum_figure(*spec["power"], peaks=marked)
     overview = [("topography", "The levelled topograph."),
                 ("spectrum", "Log power spectrum (Hann window) with the indexed peaks: "
-                             + ", ".join(sorted({r for *_, r in spec["marked_peaks"]})) + ".")]
+                             + ", ".join(sorted({r for *_, r in marked})) + ".")]
     if u is not None:
         out_maps["displacement/ux"] = (u[0].astype(np.float32), {**attrs, "units": "nm"})
         out_maps["displacement/uy"] = (u[1].astype(np.float32), {**attrs, "units": "nm"})
@@ -913,7 +914,6 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
     if kind == "stripes" and order_q is not None and len(order_q) < 2:
         notes.append("Only one stripe direction found: a single orientational domain.")
 
-    marked = [(p.q[0], p.q[1], p.role or "unindexed") for p in result.peaks if p.role not in (None, "harmonic")]
     lattice_summary = None if lattice is None else {
         "kind": lattice.kind, "a_nm": lattice.a_nm, "a_nm_err": lattice.a_err_nm, "angle_deg": lattice.angle_deg,
         "angle_deg_err": lattice.angle_err_deg, "q_bragg_rad_per_nm": bragg_q.tolist(),
@@ -935,7 +935,7 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
                "peaks_found": len(result.peaks)}
     return {"result": result, "bragg_q": bragg_q, "order_q": order_q, "moire_q": moire_q, "order_kind": kind,
             "n": n, "coefficients": coefficients, "lattice_summary": lattice_summary,
-            "superlattice_summary": superlattice_summary, "marked_peaks": marked, "power": power, "notes": notes,
+            "superlattice_summary": superlattice_summary, "power": power, "notes": notes,
             "choices": choices}
 
 
@@ -955,6 +955,15 @@ def _mark_roles(result, q, role, *, coefficients=None, tolerance=0.05):
                     if coefficients is not None:
                         p.hk = tuple(float(sign * c) for c in coefficients[j])
                         p.fraction = tuple(Fraction(float(sign * c)).limit_denominator(12) for c in coefficients[j])
+
+
+def _marked_peaks(result, unindexed=12):
+    """Peaks to mark on the spectrum figure: every indexed one, else the strongest unindexed ones."""
+    known = ("bragg", "superlattice", "incommensurate", "moire", "second_lattice")
+    marked = [(p.q[0], p.q[1], p.role) for p in result.peaks if p.role in known]
+    if not marked:
+        marked = [(p.q[0], p.q[1], "unindexed") for p in result.peaks[:unindexed]]
+    return marked
 
 
 def _order_basis(lattice):

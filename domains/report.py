@@ -115,7 +115,12 @@ def spectrum_figure(power, qx, qy, *, peaks=(), title="Power spectrum (Hann wind
     plt = _pyplot()
     fig, ax = plt.subplots(figsize=(5.4, 4.8))
     logp = np.log10(np.maximum(np.asarray(power, float), np.finfo(float).tiny))
-    lo, hi = _robust_limits(logp, 5, 99.95)
+    lengths = [np.hypot(p[0], p[1]) for p in peaks]
+    # Show the peaks with some room, and at least their first harmonics for a low-|q| pattern.
+    qmax = max(1.35 * max(lengths), 3 * min(lengths)) if lengths else qx[-1]
+    qmax = min(qmax, qx[-1], qy[-1])
+    inside = (np.abs(np.asarray(qx))[None, :] <= qmax) & (np.abs(np.asarray(qy))[:, None] <= qmax)
+    lo, hi = _robust_limits(logp[inside], 20, 99.9)
     ax.imshow(logp, cmap="magma", vmin=lo, vmax=hi, origin="upper",
               extent=(qx[0], qx[-1], qy[-1], qy[0]), interpolation="nearest")
     colours = {"bragg": "#38d9f5", "superlattice": "#9cff57", "incommensurate": "#ffd24a", "moire": "#ff6ad5",
@@ -126,7 +131,6 @@ def spectrum_figure(power, qx, qy, *, peaks=(), title="Power spectrum (Hann wind
             ax.plot(sign * px, sign * py, "o", mfc="none", ms=11, mew=1.4, color=colours.get(role, "white"),
                     label=role if role not in seen else None)
             seen.add(role)
-    qmax = max(np.hypot(p[0], p[1]) for p in peaks) * 1.35 if len(peaks) else qx[-1]
     ax.set_xlim(-qmax, qmax)
     ax.set_ylim(qmax, -qmax)
     ax.set_xlabel("qx (rad/nm)")
