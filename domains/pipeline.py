@@ -307,7 +307,9 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
         first_sigma, _ = _choose_sigma(config, spec["order_q"], lattice_q, spec["moire_q"], image.shape, pixel)
         drift_sigma = config.drift_sigma_nm or 2 * first_sigma
         drift_sigma = min(drift_sigma, 0.2 * min(image.shape[0] * pixel[0], image.shape[1] * pixel[1]))
-        drift_result = drift_mod.correct_drift(image, lattice_q, sigma_nm=drift_sigma, pixel_size_nm=pixel, mask=mask)
+        # Residual Bragg phase below 0.03 rad: the tolerance of Lawler-Fujita's own test (METHODS §2).
+        drift_result = drift_mod.correct_drift(image, lattice_q, sigma_nm=drift_sigma, pixel_size_nm=pixel, mask=mask,
+                                               tol_rad=0.03)
         corrected = drift_result.corrected
         mask = drift_result.mask
         choices["drift"] = {"sigma_nm": drift_sigma, "iterations": drift_result.iterations,
@@ -569,10 +571,59 @@ def write_analysis(analysis: Analysis, out, *, command_line, inputs, overwrite=F
     html = report.render_html(title="Domain analysis", summary=_report_summary(analysis.summary),
                               sections=analysis.sections, parameters={**asdict(analysis.config),
                                                                       "automatic choices": analysis.choices},
-                              notes=analysis.notes)
+                              notes=analysis.notes, headline=_headline(analysis.summary))
     prov = provenance(command_line=command_line, parameters=json_safe(asdict(analysis.config)), inputs=inputs)
     return write_bundle(out, summary=analysis.summary, provenance=prov, tables=analysis.tables, maps=analysis.maps,
                         figures=analysis.figures, report_html=html, overwrite=overwrite)
+
+
+def _pm(value, error, unit="", digits=4):
+    if value is None or not np.isfinite(value):
+        return "–"
+    if error is None or not np.isfinite(error):
+        return f"{value:.{digits}g} {unit}".strip()
+    return f"{value:.{digits}g} ± {error:.2g} {unit}".strip()
+
+
+def _headline(summary):
+    """The numbers a reader wants first, with their uncertainties and units."""
+    rows = {"input": f"{summary['input']['source']}, {summary['input']['shape'][0]} x {summary['input']['shape'][1]} "
+                     f"pixels of {summary['input']['pixel_size_nm'][1]:g} nm"}
+    lattice = summary.get("lattice")
+    if lattice:
+        rows["lattice"] = (f"{lattice['kind']}, a = {_pm(lattice['a_nm'], lattice['a_nm_err'], 'nm')}, "
+                           f"angle {_pm(lattice['angle_deg'], lattice['angle_deg_err'], 'deg')}")
+    rows["order"] = f"{summary['order_kind']}" + (f" ({summary['superlattice']['order']})"
+                                                  if summary["superlattice"].get("order") else "")
+    drift = summary.get("drift")
+    if drift:
+        rows["drift removed"] = (f"up to {drift['max_displacement_nm']:.3g} nm; residual Bragg phase "
+                                 f"{max(drift['residual_phase_rms_rad']):.2g} rad rms")
+    domains = summary.get("domains")
+    if domains:
+        rows["domains"] = (f"{domains['count']} ({domains['count_touching_edge']} cut by the frame), mean area "
+                           f"{_pm(domains['area_nm2_mean'], domains['area_nm2_mean_err'], 'nm²')}")
+        rows["walls"] = (f"{domains['wall_count']} segments, {domains['wall_length_nm']:.4g} nm in all, width "
+                         f"{_pm(domains['wall_width_nm_mean'], domains['wall_width_nm_mean_err'], 'nm', 2)}")
+    defects = summary.get("defects")
+    if defects:
+        rows["defects"] = f"{defects['count']} ({defects['positive']} with winding +1, {defects['negative']} with -1)"
+    bias = summary.get("bias_comparison")
+    if bias:
+        for pair in bias["pairs"]:
+            verdicts = [d["verdict"]["verdict"] for d in pair["domains"]]
+            counts = ", ".join(f"{verdicts.count(v)} {v}" for v in sorted(set(verdicts)))
+            rows[f"contrast {pair['bias_1_V']:+.2f} V vs {pair['bias_2_V']:+.2f} V"] = counts + " (domains)"
+    moire = summary.get("moire")
+    if moire:
+        rows["moiré period"] = _pm(moire.get("period_nm"), moire.get("period_nm_err"), "nm")
+        if moire.get("twist_deg") is not None:
+            rows["twist angle"] = (f"{_pm(moire['twist_deg'], moire.get('twist_deg_err'), 'deg')} "
+                                   f"(spread {moire['twist_deg_std']:.2g} deg; {moire.get('twist_domains')} twist domains)")
+            rows["heterostrain"] = (f"{_pm(moire['heterostrain_percent'], moire.get('heterostrain_percent_err'), '%')} "
+                                    f"along {moire['heterostrain_angle_deg']:.3g} deg")
+    rows["lock-in width σ"] = f"{summary['sigma_nm']:.3g} nm (spatial resolution)"
+    return rows
 
 
 def _report_summary(summary):

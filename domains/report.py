@@ -284,7 +284,7 @@ def _summary_lines(block, prefix=""):
     return lines
 
 
-def render_html(*, title, summary, sections, parameters, notes=()):
+def render_html(*, title, summary, sections, parameters, notes=(), headline=None):
     """The report page: summary, figure sections with captions, tables and every parameter used.
 
     Parameters
@@ -299,6 +299,9 @@ def render_html(*, title, summary, sections, parameters, notes=()):
         Every parameter and automatic choice (flattened into a table).
     notes : sequence of str
         Warnings and remarks shown at the top.
+    headline : dict, optional
+        The few numbers a reader wants first (shown above the figures); the whole
+        summary follows the figures, folded.
 
     Returns
     -------
@@ -323,8 +326,9 @@ def render_html(*, title, summary, sections, parameters, notes=()):
     ]
     for note in notes:
         parts.append(f"<p class='note'>{html.escape(note)}</p>")
-    rows = [{"quantity": k, "value": v} for k, v in _summary_lines(summary)]
-    parts.append("<h2>Summary</h2>" + html_table(["quantity", "value"], rows, limit=400))
+    if headline:
+        parts.append("<h2>Result</h2>" + html_table(["quantity", "value"],
+                                                    [{"quantity": k, "value": v} for k, v in headline.items()]))
     for heading, items in sections:
         parts.append(f"<h2>{html.escape(heading)}</h2>")
         for figure, caption in items:
@@ -333,6 +337,9 @@ def render_html(*, title, summary, sections, parameters, notes=()):
             else:
                 parts.append(f"<figure><img src='figures/{html.escape(figure)}.png' alt='{html.escape(figure)}'>"
                              f"<figcaption>{html.escape(caption)}</figcaption></figure>")
+    rows = [{"quantity": k, "value": v} for k, v in _summary_lines(summary)]
+    parts.append("<details><summary><b>All numbers (summary.json)</b></summary>"
+                 + html_table(["quantity", "value"], rows, limit=400) + "</details>")
     prows = [{"parameter": k, "value": v} for k, v in _summary_lines(parameters)]
     parts.append("<h2>Parameters and automatic choices</h2>" + html_table(["parameter", "value"], prows, limit=400))
     parts.append("<p class='note'>Provenance (command line, versions, input checksums): provenance.json.</p>")
