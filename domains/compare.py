@@ -484,15 +484,16 @@ def undo_displacement(image, displacement_nm, *, pixel_size_nm, order=3):
     >>> round(float(undo_displacement(image, u, pixel_size_nm=0.1)[8, 8]), 6)
     6.0
     """
+    from .drift import apply_displacement
+
     image = _image(image, "image")
-    pixel_size = pixel_size_pair(pixel_size_nm)
     u = np.asarray(displacement_nm, dtype=float)
     if u.shape != (2,) + image.shape:
         raise InputError(f"displacement_nm must have shape (2, row, col) = {(2,) + image.shape}, got {u.shape}")
     if not np.all(np.isfinite(u)):
         raise InputError("displacement_nm holds NaN or infinite values")
-    rows, cols = np.mgrid[: image.shape[0], : image.shape[1]].astype(float)
-    return _resample(image, rows - u[1] / pixel_size[0], cols - u[0] / pixel_size[1], order)
+    # One resampling for the whole project: the drift step's T(r - u(r)).
+    return apply_displacement(image, u, pixel_size_nm=pixel_size_nm, order=order)[0]
 
 
 # --------------------------------------------------------------------------- phase shifts
