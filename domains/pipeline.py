@@ -325,6 +325,7 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
 
             try:
                 spec["moire_q"] = moire.find_moire_q(image, pixel_size_nm=pixel, mask=mask)
+                spec["result"].moire_q = np.asarray(spec["moire_q"])
                 spec["order_kind"] = "moire"
                 _mark_roles(spec["result"], spec["moire_q"], "moire", tolerance=0.15)
             except InputError:
@@ -334,6 +335,36 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
     step()
     return {"image": image, "mask": mask, "spec": spec, "drift": drift_result, "corrected": corrected,
             "notes": notes, "choices": choices}
+
+
+def index_image(image, *, pixel_size_nm, mask=None, config=None):
+    """The indexed spectrum of one image as the whole analysis settles it (see :func:`find_order`).
+
+    Parameters
+    ----------
+    image : (row, col) ndarray
+        The image.
+    pixel_size_nm : float or (float, float)
+        Pixel size in nm.
+    mask : ndarray of bool, optional
+        Untrusted pixels.
+    config : Config, optional
+        Parameters.
+
+    Returns
+    -------
+    domains.fourier.SpectrumResult
+        Peaks with their final roles; ``superlattice`` and ``moire_q`` as decided.
+
+    Examples
+    --------
+    >>> from domains.synth import cdw_scene
+    >>> scene = cdw_scene(shape=(192, 192), n_domains=2, rng=3)
+    >>> index_image(scene.topography.data, pixel_size_nm=0.056).superlattice.order
+    '3x3'
+    """
+    scan = Scan(np.asarray(image), pixel_size_nm=pixel_size_nm, mask=mask, source="<image>")
+    return find_order(scan, config)["spec"]["result"]
 
 
 def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analysis:
@@ -979,6 +1010,8 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
     if kind == "none":
         superlattice_summary["note"] = "no superlattice found"
     power = fourier.power_spectrum(image, pixel_size_nm=pixel, mask=mask)
+    # The result carries the final verdict, for whoever shows the peak table.
+    result.superlattice = sup
     choices = {"lattice": "given" if config.lattice else ("found" if lattice is not None else "none found"),
                "spectrum_of": "drift-corrected image" if lattice is not None and not config.lattice else "levelled image",
                "superlattice": "given" if config.superlattice else ("found" if sup is not None else "none found"),

@@ -189,9 +189,11 @@ class LockinWidget(Container):
     def _start_peak_search(self, image, pixel, mask):
         from napari.qt.threading import create_worker
 
-        from domains.fourier import analyze_spectrum
+        from domains.pipeline import index_image
 
-        worker = create_worker(analyze_spectrum, image, pixel_size_nm=pixel, mask=mask, _start_thread=False)
+        # The core's own indexing (drift-corrected, commensurability by phase flatness), so the
+        # picks are the wavevectors the full analysis would use.
+        worker = create_worker(index_image, image, pixel_size_nm=pixel, mask=mask, _start_thread=False)
         worker.returned.connect(self._on_peaks)
         worker.errored.connect(self._on_peak_error)
         worker.finished.connect(self._on_worker_finished)
