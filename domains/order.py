@@ -468,11 +468,35 @@ def commensurate_candidates(q, basis, *, max_denominator=6):
     >>> commensurate_candidates([[0.35, 0.0]], np.eye(2)).tolist()
     [[0.3333333333333333, 0.0]]
     """
+    coefficients = np.atleast_2d(np.asarray(q, float)) @ np.linalg.inv(np.asarray(basis, float))
+    return nearest_fractions(coefficients, max_denominator=max_denominator)
+
+
+def nearest_fractions(coefficients, *, max_denominator=6):
+    """Each coefficient replaced by the nearest fraction with a denominator up to ``max_denominator``.
+
+    Parameters
+    ----------
+    coefficients : array_like
+        Fractional coordinates in a reciprocal basis.
+    max_denominator : int
+        Largest denominator tried.
+
+    Returns
+    -------
+    ndarray
+        Same shape, the fractions as floats.
+
+    Examples
+    --------
+    >>> nearest_fractions([[0.201, -0.334]]).tolist()
+    [[0.2, -0.3333333333333333]]
+    """
     from fractions import Fraction
 
-    coefficients = np.atleast_2d(np.asarray(q, float)) @ np.linalg.inv(np.asarray(basis, float))
-    return np.array([[float(Fraction(float(c)).limit_denominator(max_denominator)) for c in row]
-                     for row in coefficients])
+    values = np.asarray(coefficients, float)
+    return np.array([float(Fraction(float(c)).limit_denominator(max_denominator)) for c in values.ravel()]
+                    ).reshape(values.shape)
 
 
 def phase_flatness(image, q, *, sigma_nm, pixel_size_nm, mask=None, threshold=None):

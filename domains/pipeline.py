@@ -910,8 +910,7 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
     ``lattice`` (a :class:`domains.fourier.Lattice`) skips the lattice search, as on the second
     pass over the drift-corrected image, whose sharper peaks index the superlattice reliably.
     """
-
-    from . import fourier
+    from . import fourier, order
 
     sup_override = None if (config.superlattice or "none").lower() == "none" else config.superlattice
     result = fourier.analyze_spectrum(image, pixel_size_nm=pixel, mask=mask,
@@ -923,7 +922,6 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
     notes = []
     bragg_q = None if lattice is None else np.asarray(lattice.bragg, float)
     moire_q = result.moire_q if len(result.moire_q) else None
-    n = None
     coefficients = None
     snapped = None
     if lattice is not None and config.q_rad_per_nm is None and sup_override is None and config.lattice is None:
@@ -977,15 +975,14 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
     if kind in ("commensurate", "stripes") and order_q is None:
         raise InputError(f"order = {kind!r} but no superlattice peak was found; give superlattice or q_rad_per_nm")
     if kind == "commensurate" and coefficients is not None:
-        snapped = np.round(coefficients * 12) / 12
-        if np.max(np.abs(snapped - coefficients)) > 0.02 or not _is_simple(coefficients):
+        simple = order.nearest_fractions(coefficients, max_denominator=12)
+        if np.max(np.abs(simple - coefficients)) > 0.02:
             kind = "incommensurate" if config.order == "auto" else kind
             if config.order == "commensurate":
                 raise InputError("order = 'commensurate' but the order's wavevectors are not simple fractions "
                                  "of the Bragg vectors")
         else:
-            coefficients = snapped
-            n = sup_n(sup)
+            coefficients = simple
     elif kind == "commensurate":
         raise InputError("a commensurate order needs the atomic lattice; give lattice = {kind, a_nm, angle_deg}")
     if kind in ("commensurate", "incommensurate") and order_q is not None and config.order == "auto":
@@ -1018,7 +1015,7 @@ def _spectrum_step(image, pixel, mask, config, lattice=None):
                "order": f"{kind} ({'given' if config.order != 'auto' else 'automatic'})",
                "peaks_found": len(result.peaks)}
     return {"result": result, "bragg_q": bragg_q, "order_q": order_q, "moire_q": moire_q, "order_kind": kind,
-            "n": n, "coefficients": coefficients, "lattice_summary": lattice_summary,
+            "coefficients": coefficients, "lattice_summary": lattice_summary,
             "superlattice_summary": superlattice_summary, "power": power, "notes": notes,
             "choices": choices}
 
@@ -1157,22 +1154,6 @@ def _peaks_near_qy_axis(result, shape, pixel, bins=3):
     width_bin = 2 * np.pi / (shape[1] * pixel[1])
     return [p for p in result.peaks if p.role in ("bragg", "superlattice", "incommensurate", "moire")
             and abs(p.q[0]) < bins * width_bin]
-
-
-def _is_simple(coefficients, max_denominator=12):
-    from fractions import Fraction
-
-    return all(abs(float(Fraction(float(c)).limit_denominator(max_denominator)) - c) < 0.02 for c in coefficients.ravel())
-
-
-def sup_n(sup):
-    """n of an "n x n" superlattice name, else None."""
-    if sup is None or not sup.order:
-        return None
-    parts = sup.order.split("x")
-    if len(parts) == 2 and parts[0].isdigit() and parts[0] == parts[1]:
-        return int(parts[0])
-    return None
 
 
 def _mostly_unidirectional(image, order_q, pixel, mask, config):
