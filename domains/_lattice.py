@@ -98,9 +98,23 @@ def bragg_vectors(kind, a_nm, angle_deg=0.0):
     >>> bool(np.allclose(g.sum(axis=0), 0)), round(float(np.hypot(*g[0])), 3)
     (True, 21.339)
     """
-    b = reciprocal_basis(real_basis(kind, a_nm, angle_deg))
+    if kind not in ("hexagonal", "square"):
+        raise InputError(f"bragg_vectors supports hexagonal and square lattices, got {kind!r}")
+    return bragg_from_reciprocal(kind, reciprocal_basis(real_basis(kind, a_nm, angle_deg)))
+
+
+def bragg_from_reciprocal(kind, b):
+    """The Bragg vectors of a lattice from its reciprocal basis b1, b2 (rows, rad/nm).
+
+    Hexagonal: G1 = b1, G2 = b2, G3 = -(b1 + b2) (b1, b2 at 120 degrees), summing to zero;
+    other lattices: b1, b2.
+
+    Examples
+    --------
+    >>> bragg_from_reciprocal("hexagonal", np.eye(2)).tolist()
+    [[1.0, 0.0], [0.0, 1.0], [-1.0, -1.0]]
+    """
+    b = np.asarray(b, dtype=float)
     if kind == "hexagonal":
         return np.array([b[0], b[1], -(b[0] + b[1])])
-    if kind == "square":
-        return b
-    raise InputError(f"bragg_vectors supports hexagonal and square lattices, got {kind!r}")
+    return np.array(b)

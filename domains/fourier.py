@@ -18,7 +18,7 @@ from scipy import ndimage
 
 from ._checks import positive, within_nyquist
 from ._errors import InputError
-from ._lattice import real_basis, reciprocal_basis
+from ._lattice import bragg_from_reciprocal, real_basis, reciprocal_basis
 from ._lockin import lockin, phase_gradient, trusted_mask
 from ._scan import Scan, _is_dask, pixel_size_pair
 
@@ -219,7 +219,7 @@ class Lattice:
             if not 0 < gamma_deg % 180 < 180:
                 raise InputError(f"lattice gamma_deg must not be a multiple of 180, got {gamma_deg}")
         b = _ideal_basis(kind, a_nm, angle_deg, a2_nm, gamma_deg)
-        return cls(kind, b, _bragg_from_basis(kind, b), a_nm, 0.0, angle_deg, 0.0, a2_nm, gamma_deg, None)
+        return cls(kind, b, bragg_from_reciprocal(kind, b), a_nm, 0.0, angle_deg, 0.0, a2_nm, gamma_deg, None)
 
     def to_dict(self) -> dict:
         """JSON-ready summary (angles in degrees, lengths in nm, q in rad/nm)."""
@@ -1239,14 +1239,7 @@ def _ideal_basis(kind, a_nm, angle_deg, a2_nm, gamma_deg, bragg=False):
     else:
         real = real_basis(kind, a_nm, angle_deg)
     b = reciprocal_basis(real)
-    return _bragg_from_basis(kind, b) if bragg else b
-
-
-def _bragg_from_basis(kind, b):
-    # Hexagonal: G1 = b1, G2 = b2, G3 = -(b1 + b2), at 120 degrees, summing to zero.
-    if kind == "hexagonal":
-        return np.array([b[0], b[1], -(b[0] + b[1])])
-    return np.array(b)
+    return bragg_from_reciprocal(kind, b) if bragg else b
 
 
 def _peak_arrays(peaks):
@@ -1402,7 +1395,7 @@ def _fit_lattice(kind, q_meas, err):
     # on G1 = b1, G2 = b2, G3 = -(b1 + b2) (hexagonal) or G_j = b_j (square).
     coef = np.array([[1, 0], [0, 1], [-1, -1]], dtype=float) if kind == "hexagonal" else np.eye(2)
     b = np.linalg.lstsq(coef, matched, rcond=None)[0]
-    bragg = _bragg_from_basis(kind, b)
+    bragg = bragg_from_reciprocal(kind, b)
     return Lattice(kind, b, bragg, a_nm, a_err, angle, math.degrees(ang_err), a_nm,
                    60.0 if kind == "hexagonal" else 90.0, matched)
 
