@@ -326,8 +326,12 @@ def cdw_scene(
     return Scene("cdw", topography, maps, truth, truth_maps)
 
 
-def _assign_variants(labels, n, rng):
-    """A random variant (m1, m2) per domain, with neighbouring domains always different."""
+def _assign_variants(labels, n, rng, candidates=None):
+    """A random variant (m1, m2) per domain, with neighbouring domains always different.
+
+    ``candidates``, if given, is a function of the domain label (1..N) returning the
+    list of hashable variants that domain may take (default: the n^2 pairs (m1, m2)).
+    """
     n_domains = int(labels.max())
     neighbours = {d: set() for d in range(1, n_domains + 1)}
     for a, b in ((labels[:, :-1], labels[:, 1:]), (labels[:-1], labels[1:])):
@@ -345,16 +349,18 @@ def _assign_variants(labels, n, rng):
             return True
         d = order[i]
         taken = {chosen[e] for e in neighbours[d] if e in chosen}
-        for k in rng.permutation(len(all_variants)):
-            if all_variants[k] not in taken:
-                chosen[d] = all_variants[k]
+        options = all_variants if candidates is None else list(candidates(d))
+        for k in rng.permutation(len(options)):
+            if options[k] not in taken:
+                chosen[d] = options[k]
                 if place(i + 1):
                     return True
                 del chosen[d]
         return False
 
     if not place(0):
-        raise InputError(f"cannot give {n_domains} domains variants that differ between neighbours with n = {n}")
+        raise InputError(f"cannot give {n_domains} domains variants that differ between neighbours with n = {n}"
+                         + ("" if candidates is None else " and the given candidates"))
     return [chosen[d] for d in range(1, n_domains + 1)]
 
 

@@ -41,7 +41,8 @@ def _rot(angle):
 
 def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_deg=1.1,
                     twist_gradient_deg_per_nm=0.0, heterostrain_percent=0.0, heterostrain_angle_deg=0.0,
-                    regions=None, resolve_atoms=False, contrast=2.0, noise=0.0, poisson=0.16, rng=None):
+                    regions=None, resolve_atoms=False, contrast=2.0, noise=0.0, poisson=0.16, rng=None,
+                    mismatch=0.0, displacement_nm=None):
     """A twisted bilayer of two hexagonal layers with an analytically known moiré.
 
     Parameters
@@ -76,6 +77,15 @@ def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_de
         Poisson ratio of the heterostrain.
     rng : int or numpy.random.Generator, optional
         Random source for the noise.
+    mismatch : float
+        Lattice mismatch δ: layer 2 has lattice constant (1 + δ) a, so
+        T = R(θ)(1 + δ)(I + E) (Yankowitz et al. 2012). The truth's twist and
+        heterostrain maps are those of T / (1 + δ).
+    displacement_nm : (2, row, col) array, optional
+        A scan displacement u(r) (ux, uy) in nm: both layers are rendered at
+        s = r + u(r) (drift, creep), so the image stays analytic. The truth maps
+        are the material's (gradients with respect to s), and ``aa_sites_nm`` are
+        material positions.
 
     Returns
     -------
@@ -89,7 +99,7 @@ def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_de
         ``bragg_q_rad_per_nm`` (their mean), ``wavelengths_nm`` (3,) and
         ``period_nm_centre``; ``regions`` (int32 labels 1..k), ``region_theta_deg``,
         ``boundary_x_nm`` (band edges), ``aa_sites_nm`` (for a uniform moiré),
-        ``a_nm``, ``pixel_size_nm``, ``noise_std``.
+        ``a_nm``, ``mismatch``, ``pixel_size_nm``, ``noise_std``.
 
     Raises
     ------
@@ -101,6 +111,9 @@ def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_de
     ----------
     .. [1] K. Hermann, J. Phys.: Condens. Matter 24, 314210 (2012).
        doi:10.1088/0953-8984/24/31/314210
+    .. [2] M. Yankowitz et al., "Emergence of superlattice Dirac points in
+       graphene on hexagonal boron nitride", Nat. Phys. 8, 382 (2012).
+       doi:10.1038/nphys2272
 
     Examples
     --------
@@ -117,6 +130,9 @@ def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_de
         raise InputError(f"a_nm must be positive, got {a_nm}")
     if noise < 0:
         raise InputError(f"noise must be >= 0, got {noise}")
+    mismatch = float(mismatch)
+    if not -0.5 < mismatch < 0.5:
+        raise InputError(f"mismatch must be a relative difference of lattice constants in (-0.5, 0.5), got {mismatch}")
     g0 = 4 * math.pi / (math.sqrt(3) * a_nm)
     if resolve_atoms and g0 * 1.05 > math.pi / max(dx, dy):
         raise InputError(
@@ -129,7 +145,13 @@ def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_de
     x *= dx
     y *= dy
     xc, yc = (nx - 1) / 2 * dx, (ny - 1) / 2 * dy
-    rel = np.stack([x - xc, y - yc], axis=-1)  # (r, c, 2)
+    if displacement_nm is not None:
+        u = np.asarray(displacement_nm, dtype=float)
+        if u.shape != (2,) + shape:
+            raise InputError(f"displacement_nm must have shape {(2,) + shape} (ux, uy in nm), got {u.shape}")
+        rel = np.stack([x + u[0] - xc, y + u[1] - yc], axis=-1)
+    else:
+        rel = np.stack([x - xc, y - yc], axis=-1)  # (r, c, 2)
 
     # Twist field (radians) and its x derivative.
     labels = np.ones(shape, dtype=np.int32)
@@ -161,9 +183,10 @@ def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_de
     # A_l^-1 and d(A_l^-1)/dtheta per pixel; R'(p) = R(p + pi/2).
     a1_inv = _rot(theta / 2)
     d_a1_inv = 0.5 * _rot(theta / 2 + np.pi / 2)
-    a2_inv = _rot(theta / 2) @ strain_inv @ _rot(-theta)
+    dilation = 1.0 + mismatch
+    a2_inv = _rot(theta / 2) @ strain_inv @ _rot(-theta) / dilation
     d_a2_inv = (0.5 * _rot(theta / 2 + np.pi / 2) @ strain_inv @ _rot(-theta)
-                - _rot(theta / 2) @ strain_inv @ _rot(-theta + np.pi / 2))
+                - _rot(theta / 2) @ strain_inv @ _rot(-theta + np.pi / 2)) / dilation
 
     basis = np.array([[1.0, 0.0], [0.5, math.sqrt(3) / 2]]) * a_nm  # rows a1, a2
     recip = 2 * math.pi * np.linalg.inv(basis).T  # rows b1, b2
@@ -185,7 +208,8 @@ def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_de
     from ..moire import _decompose, _wavelengths
 
     kmap = grad1 - grad2  # (r, c, 3, 2)
-    t_theta, t_eps, t_angle, _ = _decompose(kmap, grad1, poisson=poisson, reference="layer1")
+    # Twist and heterostrain of T / (1 + δ): remove the mismatch dilation from layer 2 first.
+    t_theta, t_eps, t_angle, _ = _decompose(grad1 - dilation * grad2, grad1, poisson=poisson, reference="layer1")
     t_period = _wavelengths(kmap).mean(axis=-1)
 
     # Stacking contrast.
@@ -222,14 +246,14 @@ def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_de
     # Frame-centre values (exact for a uniform moiré).
     ic, jc = ny // 2, nx // 2
     t_center = math.radians(region_theta[labels[ic, jc] - 1] + grad_field * (jc * dx - xc))
-    T = _rot(t_center) @ (np.eye(2) + E)
+    T = _rot(t_center) @ (np.eye(2) + E) * dilation
     g1 = (_rot(-t_center / 2) @ G0.T).T
     g2 = (np.linalg.inv(T).T @ g1.T).T
     k_centre = g1 - g2
     wl = _wavelengths(k_centre)
 
     aa = np.zeros((0, 2))
-    if regions is None and twist_gradient_deg_per_nm == 0:
+    if regions is None and twist_gradient_deg_per_nm == 0 and (theta_deg != 0 or mismatch != 0 or eps != 0):
         # AA sites: X1 - X2 a lattice vector n, r = c + (A1^-1 - A2^-1)^-1 n.
         m = np.linalg.inv(a1_inv[0, 0] - a2_inv[0, 0])
         span = np.abs(np.linalg.inv(m) @ np.array([[nx * dx, nx * dx, -nx * dx, -nx * dx],
@@ -258,6 +282,7 @@ def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_de
         "boundary_x_nm": boundary_x,
         "aa_sites_nm": aa,
         "a_nm": a_nm,
+        "mismatch": mismatch,
         "poisson": poisson,
         "pixel_size_nm": (dy, dx),
         "noise_std": float(noise),
