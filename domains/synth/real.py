@@ -271,7 +271,7 @@ class _Artefacts:
             heights, edges, terrace, geometry = _steps(shape, ps, sx, sy, c, rng)
             topo = topo + heights
             maps["step_edges"], maps["terrace"] = edges, terrace
-            truth["steps"] = geometry
+            truth["step_edges"] = geometry
         if c.tip_change_offset_nm:
             topo = topo + c.tip_change_offset_nm * self.below[:, None]
         if c.tilt_nm:
@@ -506,11 +506,31 @@ def _structures(M, mirror_domains, rotation_domains):
     return found
 
 
-def _layout(shape, n_domains, options_of, rng):
-    """A Voronoi layout whose neighbouring domains differ in (structure, variant); redrawn if it cannot be coloured."""
+def _voronoi_at(seeds_px, sx, sy, pixel_size):
+    """Voronoi labels 1..n of the material points (sx, sy) (nm), seeds given as (row, col) pixels."""
+    dy, dx = pixel_size
+    best = np.full(sx.shape, np.inf)
+    labels = np.zeros(sx.shape, np.int32)
+    for d, (row, col) in enumerate(seeds_px):
+        dist = (sx - col * dx) ** 2 + (sy - row * dy) ** 2
+        closer = dist < best
+        labels[closer] = d + 1
+        best = np.where(closer, dist, best)
+    return labels
+
+
+def _layout(shape, n_domains, options_of, rng, sx, sy, pixel_size):
+    """A Voronoi layout whose neighbouring domains differ in (structure, variant); redrawn if it cannot be coloured.
+
+    The seeds are material points: the labels are evaluated at s = r + u(r), so drift
+    and creep move the domains with the lattice.
+    """
     last = None
     for _ in range(30):
-        labels, seeds = voronoi_labels(shape, n_domains, rng=rng)
+        _, seeds = voronoi_labels(shape, n_domains, rng=rng)
+        labels = _voronoi_at(seeds, sx, sy, pixel_size)
+        if len(np.unique(labels)) < n_domains:
+            continue
         try:
             return labels, seeds, _assign_variants(labels, 0, rng, candidates=options_of)
         except InputError as err:
@@ -525,7 +545,7 @@ def _cdw_maps(biases_V, lattice, cdw, art, pixel_size, source):
     for k, bias in enumerate(biases_V or ()):
         sign = -1.0 if k == 0 and len(biases_V) > 1 else 1.0
         g = 1.0 + (0.05 * lattice + sign * 0.05 * cdw) * art.contrast() + rng.normal(0, 0.01, art.shape)
-        g = art.glitch(g, scale=0.2)
+        g = art.glitch(g, scale=10 * float(np.std(g)))
         maps.append(Scan(g, pixel_size_nm=pixel_size, channel="conductance", bias_V=float(bias), setpoint_A=1e-10,
                          source=f"<{source}, {bias:+.2f} V>", metadata={"units": "nS"}))
     return maps
@@ -629,14 +649,13 @@ def supercell_cdw_scene(*, shape=(1024, 1024), pixel_size_nm=0.05, a_nm=0.336, a
         t = int(type_of[d - 1])
         return [(t, v) for v in range(dets[t])]
 
+    art = _Artefacts(shape, pixel_size, conditions, rng)
+    sx, sy = art.coordinates()
     if n_domains == 1:
         labels, seeds = np.ones(shape, np.int32), np.array([[shape[0] / 2, shape[1] / 2]])
         chosen = [(int(type_of[0]), int(rng.integers(dets[int(type_of[0])])))]
     else:
-        labels, seeds, chosen = _layout(shape, int(n_domains), options, rng)
-
-    art = _Artefacts(shape, pixel_size, conditions, rng)
-    sx, sy = art.coordinates()
+        labels, seeds, chosen = _layout(shape, int(n_domains), options, rng, sx, sy, pixel_size)
     lattice = sum(np.cos(g[0] * sx + g[1] * sy) for g in bragg)
     weights = smooth_partition(labels, 0.0) if wall_width_nm == 0 else None
     if weights is None:
@@ -834,7 +853,9 @@ def incommensurate_cdw_scene(*, shape=(1024, 1024), pixel_size_nm=0.05, a_nm=0.3
         s0 = np.array([width, height]) * rng.uniform(0.3, 0.7, 2)
         v = delta * np.stack([sx - s0[0], sy - s0[1]], -1)  # (r, c, 2) nm
         m = _nearest_lattice_point(v @ np.linalg.inv(A), A)  # (r, c, 2)
-        keys, inverse = np.unique(m.reshape(-1, 2), axis=0, return_inverse=True)
+        code = (m[..., 0].astype(np.int64) << 32) + (m[..., 1].astype(np.int64) + (1 << 31))
+        codes, inverse = np.unique(code.ravel(), return_inverse=True)
+        keys = np.stack([codes >> 32, (codes & 0xFFFFFFFF) - (1 << 31)], 1)
         labels = (inverse.reshape(shape) + 1).astype(np.int32)
         variant = (np.mod(m[..., 0], n) * n + np.mod(m[..., 1], n)).astype(np.int32)
         slip_lines = np.zeros(shape, bool)
