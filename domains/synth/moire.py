@@ -174,6 +174,9 @@ def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_de
     grad_field = 2.0 / 3.0 * float(twist_gradient_deg_per_nm)
     theta = np.radians(base + grad_field * (x - xc))
     dtheta_dx = math.radians(grad_field)
+    if regions is None and grad_field == 0:
+        # One twist everywhere: a single set of matrices broadcasts over the pixels (fast path).
+        theta = theta[:1, :1]
 
     eps = float(heterostrain_percent) / 100
     rs = _rot(math.radians(float(heterostrain_angle_deg)))
@@ -197,8 +200,9 @@ def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_de
         phi = X @ G0.T  # (r, c, 3)
         # grad_r (G . A^-1 r): A^-T G, plus the x-derivative of A^-1 through the twist field.
         grad = np.einsum("rcji,kj->rcki", a_inv, G0)  # (r, c, 3, 2): (A^-T G0_k)_i
-        dX = np.einsum("rcij,rcj->rci", d_a_inv, rel)  # d X / d theta
-        grad[..., 0] += (dX @ G0.T) * dtheta_dx
+        if dtheta_dx:
+            dX = np.einsum("rcij,rcj->rci", d_a_inv, rel)  # d X / d theta
+            grad[..., 0] += (dX @ G0.T) * dtheta_dx
         return phi, grad
 
     phi1, grad1 = phases_and_gradients(a1_inv, d_a1_inv)
@@ -211,6 +215,9 @@ def twisted_bilayer(*, shape=(512, 512), pixel_size_nm=0.2, a_nm=0.246, theta_de
     # Twist and heterostrain of T / (1 + δ): remove the mismatch dilation from layer 2 first.
     t_theta, t_eps, t_angle, _ = _decompose(grad1 - dilation * grad2, grad1, poisson=poisson, reference="layer1")
     t_period = _wavelengths(kmap).mean(axis=-1)
+    t_theta, t_eps, t_angle, t_period = (np.array(np.broadcast_to(v, shape))
+                                         for v in (t_theta, t_eps, t_angle, t_period))
+    kmap = np.array(np.broadcast_to(kmap, shape + kmap.shape[2:]))
 
     # Stacking contrast.
     def rho(p):

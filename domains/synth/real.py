@@ -230,7 +230,8 @@ def _steps(shape, pixel_size, sx, sy, conditions, rng):
     geometry = {"normal_angle_deg": math.degrees(normal_angle), "offsets_nm": offsets.tolist(),
                 "curvature_per_nm": curvature.tolist(), "centre_nm": centre.tolist(),
                 "edge_width_nm": _STEP_WIDTH_NM,
-                "edge_equation": "n.(s - c) - offset + curvature (t.(s - c))^2 = 0, n = (cos a, sin a), t = (-sin a, cos a)"}
+                "edge_equation": ("n.(s - c) - offset + curvature (t.(s - c))^2 = 0, "
+                                  "n = (cos a, sin a), t = (-sin a, cos a)")}
     return conditions.step_height_nm * heights, edges, terrace, geometry
 
 
