@@ -1050,7 +1050,11 @@ def real_scene(kind, *, size=1024, rng=0, **overrides):
     size = int(size)
     if size < 32:
         raise InputError(f"size must be at least 32 pixels, got {size}")
-    gen = _rng(rng)
+    # Each kind draws from its own stream, so two kinds with one seed do not share a layout.
+    if isinstance(rng, np.random.Generator) or rng is None:
+        gen = _rng(rng)
+    else:
+        gen = np.random.default_rng((int(rng), REAL_SCENES.index(kind)))
     jitter_angle = float(gen.uniform(-4, 4))
     jitter_a = float(1 + gen.uniform(-0.01, 0.01))
     rows_of = {"noisy": size * 3 // 4}
