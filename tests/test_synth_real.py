@@ -158,6 +158,22 @@ def test_clean_supercell_fft_peaks_sit_at_the_truth_with_the_amplitude_ratio(rat
     assert abs(amp_lat - scene.truth["lattice_nm"]) < 0.05 * scene.truth["lattice_nm"]
 
 
+def test_nonlinearity_adds_the_mixing_peak_of_the_stated_size():
+    ps = (0.05, 0.05)
+    r, kappa = 2.0, 0.3
+    kw = dict(shape=(384, 384), pixel_size_nm=ps, supercell=SQRT13, n_domains=1, cdw_to_lattice=r, biases_V=(), rng=3)
+    plain = supercell_cdw_scene(**kw)
+    mixed = supercell_cdw_scene(nonlinearity=kappa, **kw)
+    q = np.array(mixed.truth["q_cdw_rad_per_nm"])
+    lat = mixed.truth["lattice_nm"]
+    # derived: p² holds 2 (r cos a)(r cos b) = r² cos(a - b) + ..., so the peak at Q1 - Q2 has amplitude
+    # κ r² / (3 (1 + r)) lattice_nm; the plain scene has none there (window leakage < 1 %)
+    expected = kappa * r**2 / (3 * (1 + r)) * lat
+    assert abs(peak_amplitude(mixed.topography.data, ps, q[0] - q[1]) - expected) < 0.05 * expected
+    assert peak_amplitude(plain.topography.data, ps, q[0] - q[1]) < 0.01 * expected
+    assert mixed.truth["nonlinearity"] == kappa
+
+
 def test_domain_interiors_have_the_variant_phases_of_the_truth():
     ps = (0.05, 0.05)
     scene = supercell_cdw_scene(shape=(320, 320), pixel_size_nm=ps, supercell=SQRT13, mirror_domains=True,

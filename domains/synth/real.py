@@ -539,6 +539,19 @@ def _layout(shape, n_domains, options_of, rng, sx, sy, pixel_size):
     raise InputError(f"n_domains = {n_domains}: {last}; use fewer domains or more structures")
 
 
+def _nonlinear(p, nonlinearity, cdw_to_lattice):
+    """p + κ p² / p_max, p_max = 3 (1 + r) the largest value of p: the quadratic term's peak is κ times p's.
+
+    The square holds every sum and difference of the wavevectors present (harmonics and
+    mixing), as a tip's nonlinear response or a non-sinusoidal charge profile would
+    (common practice, no source). The DC part of p² is removed.
+    """
+    if not nonlinearity:
+        return p
+    sq = p * p
+    return p + float(nonlinearity) * (sq - sq.mean()) / (3 * (1 + float(cdw_to_lattice)))
+
+
 def _cdw_maps(biases_V, lattice, cdw, art, pixel_size, source):
     """Conductance maps (nS) of the same scan: lattice and CDW terms, the CDW sign inverting between biases."""
     maps = []
@@ -557,8 +570,8 @@ def _cdw_maps(biases_V, lattice, cdw, art, pixel_size, source):
 
 def supercell_cdw_scene(*, shape=(1024, 1024), pixel_size_nm=0.05, a_nm=0.336, angle_deg=7.0,
                         supercell=((4, -1), (1, 3)), mirror_domains=False, rotation_domains=False, n_domains=6,
-                        cdw_to_lattice=2.0, lattice_nm=0.02, wall_width_nm=0.25, conditions=None,
-                        biases_V=(-0.3, 0.3), rng=0):
+                        cdw_to_lattice=2.0, lattice_nm=0.02, wall_width_nm=0.25, nonlinearity=0.0,
+                        conditions=None, biases_V=(-0.3, 0.3), rng=0):
     """A commensurate CDW on a hexagonal lattice, given by a supercell matrix, in translational (and mirror) domains.
 
     The topograph is t_lat sum_j cos(G_j . s) + t_cdw sum_types Re sum_j psi_j(r) exp(i Q_j . s),
@@ -596,6 +609,10 @@ def supercell_cdw_scene(*, shape=(1024, 1024), pixel_size_nm=0.05, a_nm=0.336, a
         Amplitude of each atomic component, nm.
     wall_width_nm : float
         Gaussian standard deviation of the wall profile, nm (0: sharp).
+    nonlinearity : float
+        κ of a quadratic term: the corrugation is p + κ (p² - <p²>) / (3 (1 + r)), p the
+        linear sum in units of ``lattice_nm`` and r = ``cdw_to_lattice``; it adds the harmonics
+        and mixing peaks (2Q, Q_i ± Q_j, G ± Q, ...) that real topographs show.
     conditions : Conditions, optional
         Scan imperfections (default: none).
     biases_V : sequence of float
@@ -689,7 +706,7 @@ def supercell_cdw_scene(*, shape=(1024, 1024), pixel_size_nm=0.05, a_nm=0.336, a
             components.append([t, j])
     domains.sort(key=lambda e: e["label"])
 
-    corrugation = lattice_nm * (lattice + float(cdw_to_lattice) * cdw)
+    corrugation = lattice_nm * _nonlinear(lattice + float(cdw_to_lattice) * cdw, nonlinearity, cdw_to_lattice)
     topo, extra_truth, extra_maps = art.topography(corrugation, sx, sy)
     cond_truth, cond_maps = art.truth()
     cond_truth.update(extra_truth)
@@ -707,6 +724,7 @@ def supercell_cdw_scene(*, shape=(1024, 1024), pixel_size_nm=0.05, a_nm=0.336, a
         "lattice_nm": float(lattice_nm),
         "cdw_nm": float(lattice_nm * cdw_to_lattice),
         "cdw_to_lattice": float(cdw_to_lattice),
+        "nonlinearity": float(nonlinearity),
         "wall_width_nm": float(wall_width_nm),
         "pixel_size_nm": list(pixel_size),
         "contrast_phase_shift_rad": float(np.pi),
@@ -744,7 +762,7 @@ def _nearest_lattice_point(f, A):
 
 def incommensurate_cdw_scene(*, shape=(1024, 1024), pixel_size_nm=0.05, a_nm=0.344, angle_deg=11.0, n=3, delta=0.02,
                              discommensurations=False, slip_width_nm=0.4, cdw_to_lattice=2.0, lattice_nm=0.02,
-                             conditions=None, biases_V=(-0.3, 0.3), rng=0):
+                             nonlinearity=0.0, conditions=None, biases_V=(-0.3, 0.3), rng=0):
     """A nearly commensurate triple-q CDW, q_j = (1 - δ) G_j / n: uniform, or McMillan's commensurate patches.
 
     Uniform: cos(q_j . s + phi_j) with a random overall translation. With
@@ -777,6 +795,9 @@ def incommensurate_cdw_scene(*, shape=(1024, 1024), pixel_size_nm=0.05, a_nm=0.3
         Gaussian standard deviation of a slip, nm.
     cdw_to_lattice, lattice_nm : float
         CDW amplitude over the atomic one, and the atomic amplitude (nm), per component.
+    nonlinearity : float
+        Relative size of a quadratic term in the corrugation (harmonics and mixing peaks,
+        e.g. G - n q close to the commensurate spots).
     conditions : Conditions, optional
         Scan imperfections.
     biases_V : sequence of float
@@ -836,7 +857,8 @@ def incommensurate_cdw_scene(*, shape=(1024, 1024), pixel_size_nm=0.05, a_nm=0.3
         "dq_rad_per_nm": dq, "discommensuration_spacing_nm": 2 * np.pi / dq,
         "slip_spacing_nm": 2 * np.pi / (n * dq), "slip_width_nm": float(slip_width_nm),
         "lattice_nm": float(lattice_nm), "cdw_nm": float(lattice_nm * cdw_to_lattice),
-        "cdw_to_lattice": float(cdw_to_lattice), "pixel_size_nm": list(pixel_size),
+        "cdw_to_lattice": float(cdw_to_lattice), "nonlinearity": float(nonlinearity),
+        "pixel_size_nm": list(pixel_size),
     }
     cdw = np.zeros(shape)
     if not discommensurations:
@@ -878,7 +900,7 @@ def incommensurate_cdw_scene(*, shape=(1024, 1024), pixel_size_nm=0.05, a_nm=0.3
                             for i, k in enumerate(keys)]
         truth["patch_diameter_nm"] = float(a_nm / abs(delta))
 
-    corrugation = lattice_nm * (lattice + float(cdw_to_lattice) * cdw)
+    corrugation = lattice_nm * _nonlinear(lattice + float(cdw_to_lattice) * cdw, nonlinearity, cdw_to_lattice)
     topo, extra_truth, extra_maps = art.topography(corrugation, sx, sy)
     cond_truth, cond_maps = art.truth()
     cond_truth.update(extra_truth)
@@ -1085,12 +1107,13 @@ def real_scene(kind, *, size=1024, rng=0, **overrides):
         if kind == "nearly_commensurate":
             args = dict(shape=shape, pixel_size_nm=px, a_nm=a, angle_deg=11.0 + jitter_angle, n=3,
                         delta=float(gen.uniform(0.01, 0.02)), discommensurations=False, cdw_to_lattice=2.0,
+                        nonlinearity=0.15,
                         conditions=Conditions(thermal_drift_nm_per_line=(0.03 * px, -0.02 * px), tilt_nm=0.3,
                                               line_noise_nm=0.003, white_noise_nm=0.005))
         else:
             args = dict(shape=shape, pixel_size_nm=px, a_nm=a, angle_deg=11.0 + jitter_angle, n=3,
                         delta=float(gen.uniform(0.025, 0.035)), discommensurations=True, slip_width_nm=0.5,
-                        cdw_to_lattice=2.0,
+                        cdw_to_lattice=2.0, nonlinearity=0.15,
                         conditions=Conditions(thermal_drift_nm_per_line=(0.02 * px, 0.02 * px),
                                               line_noise_nm=0.002, white_noise_nm=0.005))
         args.update(overrides)
@@ -1100,10 +1123,12 @@ def real_scene(kind, *, size=1024, rng=0, **overrides):
         common = dict(shape=shape, pixel_size_nm=px, a_nm=a_cdw, angle_deg=angle)
         if kind == "sqrt13":
             args = dict(supercell=((4, -1), (1, 3)), mirror_domains=True, n_domains=6, cdw_to_lattice=2.0,
+                        nonlinearity=0.2,
                         conditions=Conditions(thermal_drift_nm_per_line=(0.02 * line, 0.01 * line), tilt_nm=0.4,
                                               line_noise_nm=0.002, white_noise_nm=0.004))
         elif kind == "sqrt7":
             args = dict(supercell=((3, -1), (1, 2)), mirror_domains=True, n_domains=6, cdw_to_lattice=1.0,
+                        nonlinearity=0.15,
                         conditions=Conditions(pink_noise_nm=0.006, line_noise_nm=0.004, white_noise_nm=0.003,
                                               tilt_nm=0.3))
         elif kind == "sqrt3":
@@ -1112,7 +1137,7 @@ def real_scene(kind, *, size=1024, rng=0, **overrides):
                         conditions=Conditions(creep_nm=(0.6, 0.4), creep_lines=shape[0] / 12,
                                               white_noise_nm=0.003, tilt_nm=0.2))
         elif kind == "strong_cdw_tip_change":
-            args = dict(supercell=((3, 0), (0, 3)), n_domains=6, cdw_to_lattice=3.0,
+            args = dict(supercell=((3, 0), (0, 3)), n_domains=6, cdw_to_lattice=3.0, nonlinearity=0.2,
                         conditions=Conditions(tip_change_row=int(shape[0] * gen.uniform(0.4, 0.6)),
                                               tip_change_contrast=0.6, tip_change_offset_nm=0.05,
                                               tip_change_shift_px=(3.0, 2.0), white_noise_nm=0.004,
