@@ -19,7 +19,8 @@ class Scene:
     Attributes
     ----------
     kind : str
-        "cdw", "stripes" or "moire".
+        "cdw", "stripes" or "moire"; from :mod:`domains.synth.real` also "supercell_cdw",
+        "incommensurate_cdw" or "bilayer".
     topography : Scan
         The topograph (heights in nm).
     maps : list of Scan
