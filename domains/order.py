@@ -152,7 +152,7 @@ def _coefficients(order):
     return coefficients
 
 
-def _denominator(x, limit=12):
+def _denominator(x, limit=64):
     from fractions import Fraction
 
     f = Fraction(float(x)).limit_denominator(limit)
@@ -375,7 +375,8 @@ def commensurate_order(a_cdw, coefficients, *, bragg_phase=None, threshold=None,
     best = np.argmax(scores, axis=0)
     ranked = np.sort(scores, axis=0)
     score = np.take_along_axis(scores, best[None], 0)[0]
-    margin = ranked[-1] - ranked[-2] if len(templates) > 1 else np.ones_like(score)
+    with np.errstate(invalid="ignore"):
+        margin = np.nan_to_num(ranked[-1] - ranked[-2]) if len(templates) > 1 else np.ones_like(score)
     residual = np.angle(np.exp(1j * (centred - templates[best].transpose(2, 0, 1))))
     variant = np.where(ordered, best, -1).astype(np.int32)
     phase_sum = np.angle(np.exp(1j * phi.sum(axis=0)))
@@ -564,3 +565,167 @@ def phase_flatness(image, q, *, sigma_nm, pixel_size_nm, mask=None, threshold=No
         spread = np.hypot(*(np.percentile(np.stack([gx, gy]), [75], axis=1)[0] - np.percentile(np.stack([gx, gy]), [25], axis=1)[0])) / 1.349
         error[j] = 1.2533 * spread / np.sqrt(n_independent)
     return gradient, error
+
+
+@dataclass
+class FamilyOrder:
+    """Per-pixel state of an order made of several families (chiralities, stripe orientations).
+
+    Attributes
+    ----------
+    state : (row, col) int32
+        Index into ``names`` (-1 where no order or no clear winner).
+    score : (row, col) float
+        Confidence of the state (the variant score times the dominance of the family).
+    ordered : (row, col) bool
+        Where the order's amplitude is above the noise threshold.
+    names : list of str
+        Name of each state: the family and the variant (lattice translation m = (m1, m2)).
+    fields : (k, row, col) complex
+        Per component, the lock-in field with the drift-free phase less the variant offset (commensurate
+        families) or the raw field (incommensurate ones): what walls and defects are measured on.
+    family : (row, col) int32
+        The dominant family (-1 where none).
+    offsets_rad : list of ndarray
+        The global phase offset removed from each commensurate family.
+    """
+
+    state: np.ndarray
+    score: np.ndarray
+    ordered: np.ndarray
+    names: list
+    fields: np.ndarray
+    family: np.ndarray
+    offsets_rad: list
+
+
+def family_order(a_components, groups, *, coefficients=None, bragg_phase=None, threshold=None, trusted=None,
+                 anisotropy_threshold=0.5, family_names=None):
+    """States of an order made of families: which family dominates locally, and its translational variant.
+
+    One family (a triple-q CDW) reduces to :func:`commensurate_order`. Several
+    families are told apart by their amplitudes, as stripes are (METHODS §6):
+    the family whose mean |A|^2 is largest wins where its anisotropy against the
+    next is above ``anisotropy_threshold``. Inside the winning family a
+    commensurate order is quantised to its translational variants (|det M| for
+    a triple-q supercell; the denominator of q for a single stripe
+    component, whose phase-slip domains are then separate states); an
+    incommensurate family has a single state.
+
+    Parameters
+    ----------
+    a_components : (k, row, col) complex ndarray
+        Lock-in fields at every order wavevector.
+    groups : list of list of int
+        Component indices of each family, e.g. ``[[0, 1, 2]]`` for one triple-q CDW,
+        ``[[0], [1], [2]]`` for stripes, ``[[0, 1, 2], [3, 4, 5]]`` for two chiralities.
+    coefficients : (k, 2) array_like, optional
+        Exact fractions (h, k) of commensurate components in the Bragg basis; None for incommensurate order.
+    bragg_phase : (2 or 3, row, col) ndarray, optional
+        Unwrapped Bragg phases (see :func:`relative_phase`).
+    threshold : float, optional
+        2|A| below which a pixel has no order.
+    trusted : (row, col) bool, optional
+        Pixels used for the offsets.
+    anisotropy_threshold : float
+        Dominance needed to assign a family.
+    family_names : list of str, optional
+        A name per family (default "q1", "q2", ...).
+
+    Returns
+    -------
+    FamilyOrder
+
+    Examples
+    --------
+    >>> a = np.zeros((2, 4, 6), complex); a[0, :, :3] = 1; a[1, :, 3:] = 1
+    >>> fo = family_order(a, [[0], [1]], coefficients=[[0.5, 0], [0, 0.5]])
+    >>> [fo.names[s] for s in fo.state[0]]
+    ['q1 m=(0,0)', 'q1 m=(0,0)', 'q1 m=(0,0)', 'q2 m=(0,0)', 'q2 m=(0,0)', 'q2 m=(0,0)']
+    """
+    a = np.asarray(a_components)
+    if a.ndim != 3:
+        raise InputError(f"family_order needs (k, row, col) fields, got shape {a.shape}")
+    k = len(a)
+    if sorted(i for g in groups for i in g) != list(range(k)):
+        raise InputError(f"groups must cover the {k} components once each, got {groups}")
+    coef = None if coefficients is None else _coefficients(coefficients)
+    names_f = family_names or [f"q{g + 1}" for g in range(len(groups))]
+    amp = amplitude(a)
+    thr = threshold or 0.0
+    power = np.stack([np.mean(amp[g] ** 2, axis=0) for g in groups])
+    if len(groups) > 1:
+        ranked = np.sort(power, axis=0)
+        first, second = ranked[-1], ranked[-2]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            dominance = np.where(first + second > 0, (first - second) / (first + second), 0.0)
+        family = np.argmax(np.nan_to_num(power, nan=-1.0), axis=0)
+        strong = np.sqrt(np.nan_to_num(first)) > thr
+        clear = dominance >= anisotropy_threshold
+    else:
+        family = np.zeros(a.shape[1:], int)
+        dominance = np.ones(a.shape[1:])
+        strong = np.ones(a.shape[1:], bool)
+        clear = strong
+    state = np.full(a.shape[1:], -1, np.int32)
+    score = np.zeros(a.shape[1:])
+    ordered = np.zeros(a.shape[1:], bool)
+    fields = a.astype(complex).copy()
+    names, offsets = [], []
+    for gi, g in enumerate(groups):
+        here = family == gi
+        if coef is not None:
+            co = commensurate_order(a[g], coef[g], bragg_phase=bragg_phase, threshold=threshold,
+                                    trusted=None if trusted is None else trusted & here & strong)
+            rel = relative_phase(a[g], coef[g], bragg_phase=bragg_phase)
+            fields[g] = amp[g] / 2 * np.exp(1j * (rel - co.offset_rad[:, None, None]))
+            base = len(names)
+            names += [f"{names_f[gi]} m=({m1},{m2})" for m1, m2 in co.variants]
+            offsets.append(co.offset_rad)
+            fam_ordered = co.ordered if len(groups) == 1 else strong
+            take = here & fam_ordered & clear & (co.variant >= 0)
+            state[take] = base + co.variant[take]
+            score[take] = (co.score * np.minimum(1.0, dominance / max(anisotropy_threshold, 1e-9)))[take]
+            ordered |= here & fam_ordered
+        else:
+            base = len(names)
+            names.append(names_f[gi])
+            offsets.append(np.zeros(len(g)))
+            fam_ordered = (amp[g].min(axis=0) > thr) if len(groups) == 1 else strong
+            take = here & fam_ordered & clear
+            state[take] = base
+            score[take] = np.minimum(1.0, dominance / max(anisotropy_threshold, 1e-9))[take] if len(groups) > 1 else 1.0
+            ordered |= here & fam_ordered
+    family = np.where(ordered & clear, family, -1).astype(np.int32)
+    return FamilyOrder(state, score, ordered, names, fields, family, offsets)
+
+
+def variant_confidence(coefficients):
+    """Score that a pixel needs to seed a domain: halfway from a variant's template to the boundary with
+    its nearest neighbour.
+
+    For two variants whose templates differ by d_j per component, the score at a residual of d/4
+    (halfway to the midpoint) is mean_j cos(d_j / 4); the smallest over all pairs is returned
+    (derived; cos(pi / 6) = 0.866 for one component of a 3 x 3 CDW, 0.911 for all three).
+
+    Parameters
+    ----------
+    coefficients : (k, 2) array_like
+        Exact fractions of the order's wavevectors in the Bragg basis.
+
+    Returns
+    -------
+    float
+
+    Examples
+    --------
+    >>> round(variant_confidence([[0.5, 0.0]]), 4)   # two stripe variants, 0 and pi
+    0.7071
+    """
+    _, templates = variant_templates(coefficients)
+    if len(templates) < 2:
+        return 0.5
+    d = np.angle(np.exp(1j * (templates[:, None, :] - templates[None, :, :])))
+    score = np.mean(np.cos(np.abs(d) / 4), axis=-1)
+    np.fill_diagonal(score, np.inf)
+    return float(np.min(score))

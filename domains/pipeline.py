@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 import tomllib
+from fractions import Fraction
 from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
 
@@ -281,14 +282,18 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
     mask = levelled.mask
     step()
 
-    # 2. Spectrum, lattice and superlattice.
-    spec = _spectrum_step(image, pixel, mask, config)
-    near_axis = _peaks_near_qy_axis(spec["result"], image.shape, pixel)
+    # 2. Peaks and the atomic lattice (the finest complete set of peaks, not the strongest).
+    from . import fourier
+    from ._read_order import find_lattice, read_order
+
+    peaks = fourier.find_peaks(image, pixel_size_nm=pixel, mask=mask, max_peaks=60)
+    reading = find_lattice(peaks, shape=image.shape, pixel_size_nm=pixel, given=config.lattice, a_nm=config.a_nm)
+    near_axis = _peaks_near_qy_axis(peaks, image.shape, pixel)
     line_method = first_lines
     if config.line_method == "auto":
         if near_axis:
             notes.append(f"Dense scan-line offsets were left in: {len(near_axis)} peak(s) lie within 3 frequency "
-                         "bins of the qy axis, where removing line offsets would delete them (METHODS §7).")
+                         "bins of the qy axis, where removing line offsets would delete them (docs/methods.md §7).")
         else:
             # No order near the qy axis: Hann-weighted line means remove the offsets and leave every peak.
             image, _ = line_offsets(image, method="hann", mask=mask, warn=False)
@@ -297,39 +302,47 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
         notes.append(f"Per-line {config.line_method} levelling removed modulations along y; "
                      f"{len(near_axis)} peak(s) lie near the qy axis and may be weakened.")
     choices["level"] = {"order": config.level_order, "line_method": line_method}
+    if reading.lattice is not None and reading.source == "found":
+        reading = _refine_lattice(image, pixel, mask, reading, peaks)
     step()
 
     # 3. Drift (Lawler–Fujita) from the Bragg peaks.
     drift_result = None
     corrected = image
-    lattice_q = spec["bragg_q"]
-    if config.drift and lattice_q is not None:
-        first_sigma, _ = _choose_sigma(config, spec["order_q"], lattice_q, spec["moire_q"], image.shape, pixel)
+    if config.drift and reading.lattice is not None and reading.resolved:
+        lattice_q = np.asarray(reading.lattice.bragg, float)
+        others = [p.q for p in peaks]
+        first_sigma, _ = _choose_sigma(config, np.array(others).reshape(-1, 2), lattice_q, None, image.shape, pixel)
         drift_sigma = config.drift_sigma_nm or 2 * first_sigma
         drift_sigma = min(drift_sigma, 0.2 * min(image.shape[0] * pixel[0], image.shape[1] * pixel[1]))
-        # Residual Bragg phase below 0.03 rad: the tolerance of Lawler-Fujita's own test (METHODS §2).
+        # Residual Bragg phase below 0.03 rad: the tolerance of Lawler-Fujita's own test (docs/methods.md §2).
         drift_result = drift_mod.correct_drift(image, lattice_q, sigma_nm=drift_sigma, pixel_size_nm=pixel, mask=mask,
                                                tol_rad=0.03)
         corrected = drift_result.corrected
         mask = drift_result.mask
         choices["drift"] = {"sigma_nm": drift_sigma, "iterations": drift_result.iterations,
                             "converged": drift_result.converged, "note": drift_result.note}
-        # Drift smears every peak into sidebands; index the superlattice again on the straightened image.
-        fill_corrected = np.where(np.isfinite(corrected), corrected, np.nanmean(corrected))
-        spec = _spectrum_step(fill_corrected, pixel, mask, config, lattice=spec["result"].lattice)
-    elif lattice_q is None:
+    elif reading.lattice is None or not reading.resolved:
         notes.append("No atomic lattice resolved: drift was not corrected.")
-        if spec["order_kind"] in ("none", "moire") and spec["moire_q"] is None:
-            # No atoms resolved: a hexagonal triplet of low-|q| peaks is a moiré.
-            from . import moire
+    # 4. What every other peak means, on the straightened image (drift smears peaks into sidebands).
+    fill = np.where(np.isfinite(corrected), corrected, np.nanmean(corrected))
+    sup = (config.superlattice or "").lower()
+    result = read_order(fill, pixel_size_nm=pixel, lattice_reading=reading, mask=mask,
+                        peaks=None if drift_result is not None else peaks, leakage=config.leakage,
+                        false_alarm=config.false_alarm, given_q=config.q_rad_per_nm,
+                        given_superlattice=None if sup in ("", "none") else config.superlattice,
+                        anisotropy_threshold=config.anisotropy_threshold)
+    spec = _spec_from_order(result, fill, pixel, mask, config)
+    if reading.lattice is None and spec["order_kind"] in ("none", "moire") and spec["moire_q"] is None:
+        # No atoms resolved and no closed triplet among the peaks: look for a moiré triplet directly.
+        from . import moire
 
-            try:
-                spec["moire_q"] = moire.find_moire_q(image, pixel_size_nm=pixel, mask=mask)
-                spec["result"].moire_q = np.asarray(spec["moire_q"])
-                spec["order_kind"] = "moire"
-                _mark_roles(spec["result"], spec["moire_q"], "moire", tolerance=0.15)
-            except InputError:
-                pass
+        try:
+            spec["moire_q"] = np.asarray(moire.find_moire_q(image, pixel_size_nm=pixel, mask=mask))
+            spec["result"].moire_q = spec["moire_q"]
+            spec["order_kind"] = "moire"
+        except InputError:
+            pass
     choices["spectrum"] = spec["choices"]
     notes += spec["notes"]
     step()
@@ -440,51 +453,53 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                                       "why": "Rayleigh tail of the lock-in amplitude measured at empty wavevectors"}
         bar.update()
         min_area = config.min_domain_area_nm2 or math.pi * (2 * sigma_nm) ** 2
-        if kind == "commensurate":
-            coefficients = spec["coefficients"]
-            bragg_phase = None
-            if drift_result is not None:
-                # After correction the Bragg phase is a small residual: safe to scale by the coefficients.
-                bragg_phase = np.nan_to_num(drift_result.residual_phase_rad)
-            state = order.commensurate_order(a_order, coefficients, bragg_phase=bragg_phase,
-                                             threshold=floor.threshold, trusted=trusted)
-            n_variants = len(state.variants)
-            # Halfway between a variant's centre and its cell boundary (pi / n for n x n).
-            confidence = config.confidence or math.cos(math.pi / (2 * math.sqrt(n_variants)))
-            seg = segment.segment_states(state.variant, state.score, state.ordered, pixel_size_nm=pixel,
-                                         min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted,
-                                         bridge_nm=2 * sigma_nm)
-            relative = order.relative_phase(a_order, coefficients, bragg_phase=bragg_phase)
-            fields_used = state.amplitude / 2 * np.exp(1j * (relative - state.offset_rad[:, None, None]))
-            state_names = {lab: "m=({},{})".format(*state.variants[v]) for lab, v in seg.state.items()}
-            choices["variant_offset_rad"] = state.offset_rad.tolist()
-            ordered = state.ordered
-        elif kind == "stripes" and len(order_q) > 1:
-            state = order.orientation_order(a_order, threshold=floor.threshold,
-                                            anisotropy_threshold=config.anisotropy_threshold)
-            confidence = config.confidence or config.anisotropy_threshold
-            seg = segment.segment_states(state.orientation, state.anisotropy, state.ordered, pixel_size_nm=pixel,
-                                         min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted,
-                                         bridge_nm=2 * sigma_nm)
-            fields_used = a_order
-            state_names = {lab: f"q{v + 1}" for lab, v in seg.state.items()}
-            ordered = state.ordered
-        else:
-            ordered = amplitude(a_order).min(axis=0) > floor.threshold
-            seg = segment.segment_states(np.where(ordered, 0, -1), ordered.astype(float), ordered,
-                                         pixel_size_nm=pixel, min_area_nm2=min_area, confidence_threshold=0.5,
-                                         trusted=trusted)
-            fields_used = a_order
-            state_names = {lab: "ordered" for lab in seg.state}
-            notes.append("Incommensurate order: no translational variants; regions show where order is present."
-                         if kind == "incommensurate" else
-                         "A single order wavevector: regions show where the order is present.")
+        reading = spec["reading"]
+        families = list(reading.families) or [None]
+        groups, family_names, start = [], [], 0
+        for fam in families:
+            size = len(order_q) if fam is None else len(fam.q_rad_per_nm)
+            if kind == "stripes":
+                # Each stripe direction is a family of its own (orientational domains).
+                groups += [[start + j] for j in range(size)]
+                family_names += [f"q{start + j + 1}" for j in range(size)]
+            else:
+                groups.append(list(range(start, start + size)))
+                family_names.append("ordered" if fam is None else fam.name)
+            start += size
+        commensurate = kind in ("commensurate", "stripes") and spec["coefficients"] is not None and all(
+            f is not None and f.kind == "commensurate" for f in families)
+        coefficients = np.asarray(spec["coefficients"], float) if commensurate else None
+        bragg_phase = None
+        if drift_result is not None and commensurate:
+            # After correction the Bragg phase is a small residual: safe to scale by the coefficients.
+            bragg_phase = np.nan_to_num(drift_result.residual_phase_rad)
+        state = order.family_order(a_order, groups, coefficients=coefficients, bragg_phase=bragg_phase,
+                                   threshold=floor.threshold, trusted=trusted,
+                                   anisotropy_threshold=config.anisotropy_threshold, family_names=family_names)
+        confidence = config.confidence or (order.variant_confidence(coefficients) if commensurate else 0.5)
+        seg = segment.segment_states(state.state, state.score, state.ordered, pixel_size_nm=pixel,
+                                     min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted,
+                                     bridge_nm=2 * sigma_nm)
+        fields_used = state.fields
+        state_names = {lab: state.names[v] for lab, v in seg.state.items()}
+        choices["variant_offset_rad"] = [o.tolist() for o in state.offsets_rad]
+        choices["confidence"] = {"value": confidence, "why": "given" if config.confidence else (
+            "halfway from a variant's template to the boundary with its nearest neighbour" if commensurate
+            else "dominance of one family")}
+        ordered = state.ordered
+        if kind == "incommensurate":
+            notes.append("Incommensurate order: no translational variants; regions show where order is present.")
         choices["segmentation"] = {**seg.parameters, "islands_dropped": seg.islands,
                                    "min_area_why": "disc of radius 2 sigma (the resolution)" if config.min_domain_area_nm2 is None else "given"}
         bar.update()
         labels, walls = seg.labels, seg.walls
-        defects = segment.phase_defects(fields_used, pixel_size_nm=pixel, ordered=ordered & trusted, sigma_nm=sigma_nm)
         amp = amplitude(a_order)
+        # A winding counts only where its own component carries order (stripes: not where it is absent).
+        defects = []
+        for j in range(len(a_order)):
+            found_j = segment.phase_defects(fields_used[j:j + 1], pixel_size_nm=pixel,
+                                            ordered=(amp[j] > floor.threshold) & trusted, sigma_nm=sigma_nm)
+            defects += [{**d, "component": j} for d in found_j]
         domain_rows = measure.domain_table(labels, pixel_size_nm=pixel, state_names=state_names, amplitude=amp,
                                            fields=fields_used)
         wall_rows = measure.wall_table(seg.grown, walls, pixel_size_nm=pixel, fields=fields_used, sigma_nm=sigma_nm)
@@ -904,138 +919,114 @@ def _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_
     sections.append(("Spectroscopic grid", [("fingerprint", "Order amplitude versus energy in each domain.")]))
 
 
-def _spectrum_step(image, pixel, mask, config, lattice=None):
-    """Peaks, lattice and superlattice; decide what kind of order the image holds.
+def _refine_lattice(image, pixel, mask, reading, peaks):
+    """The lattice fitted again to its Bragg wavevectors measured by lock-in where the lattice is regular.
 
-    ``lattice`` (a :class:`domains.fourier.Lattice`) skips the lattice search, as on the second
-    pass over the drift-corrected image, whose sharper peaks index the superlattice reliably.
+    The local wavevector q + grad(theta) is taken at the centre of its distribution over the frame
+    (trimmed mean), not the frame average: piezo creep in the first lines, a tip change or a step
+    distorts part of the frame and would bias the average.
     """
-    from . import fourier, order
+    from dataclasses import replace
 
-    sup_override = None if (config.superlattice or "none").lower() == "none" else config.superlattice
-    result = fourier.analyze_spectrum(image, pixel_size_nm=pixel, mask=mask,
-                                      lattice=lattice if lattice is not None else config.lattice,
-                                      superlattice=sup_override)
-    lattice, sup = result.lattice, result.superlattice
-    if (config.superlattice or "").lower() == "none":
-        sup = None
-    notes = []
+    from . import fourier
+    from ._read_order import _wavevector_stats
+
+    lat = reading.lattice
+    measured = np.asarray(lat.bragg_measured if lat.bragg_measured is not None else lat.bragg, float)
+    allq = np.array([p.q for p in peaks]).reshape(-1, 2)
+    sigma, _ = choose_sigma(np.vstack([measured, allq]) if len(allq) else measured, leakage=0.01)
+    sigma = min(max(2 * sigma, 3 * max(pixel)), min(image.shape[0] * pixel[0], image.shape[1] * pixel[1]) / 10)
+    fill = np.where(np.isfinite(image), image, np.nanmean(image))
+    local, err, *_ = _wavevector_stats(fill, measured, sigma_nm=sigma, pixel=pixel, mask=mask, threshold=0.0)
+    if not np.all(np.isfinite(local)):
+        return reading
+    refined = fourier._fit_lattice(lat.kind, np.array([fourier._canonical(v) for v in local]), err)
+    if refined.kind in ("hexagonal", "square"):
+        # Drift and creep stretch and shear the frame along the slow scan axis; the lattice constant and
+        # orientation are those of the regular lattice behind that distortion (slow_axis_drift_fit).
+        from ._read_order import slow_axis_drift_fit
+
+        g = np.asarray(refined.bragg_measured, float)
+        a_nm, angle, shear, stretch = slow_axis_drift_fit(g, refined.kind)
+        if max(abs(shear), abs(stretch)) < 0.1:
+            rng = np.random.default_rng(0)
+            e = np.broadcast_to(np.asarray(err, float).reshape(-1, 1) if np.size(err) == len(g) else np.nanmax(err),
+                                g.shape)
+            draws = [slow_axis_drift_fit(g + rng.normal(0, 1, g.shape) * e, refined.kind)[:2] for _ in range(24)]
+            a_err = float(np.std([d[0] for d in draws], ddof=1))
+            angle_err = float(np.std([(d[1] - angle + 30) % 60 - 30 for d in draws], ddof=1))
+            refined = replace(refined, a_nm=a_nm, a_err_nm=max(a_err, 1e-12), angle_deg=angle,
+                              angle_err_deg=max(angle_err, 1e-9))
+            reading = replace(reading, reasons=reading.reasons + (
+                f"a and the orientation undo a slow-axis drift distortion (shear {shear:+.4f}, stretch "
+                f"{stretch:+.4f}): a = {a_nm:.5g} nm",))
+    return replace(reading, lattice=refined)
+
+
+def _spec_from_order(result, image, pixel, mask, config):
+    """The order step's verdict in the form the rest of the run reads (and the user's overrides applied)."""
+    from . import fourier
+
+    lattice = result.lattice.lattice
     bragg_q = None if lattice is None else np.asarray(lattice.bragg, float)
-    moire_q = result.moire_q if len(result.moire_q) else None
-    coefficients = None
-    snapped = None
-    if lattice is not None and config.q_rad_per_nm is None and sup_override is None and config.lattice is None:
-        snapped = _snap_commensurate(image, pixel, mask, result, config)
-        if snapped is not None:
-            notes.append(snapped["note"])
-    if snapped is not None:
-        # Peaks explained as a commensurate order are not moiré candidates.
-        moire_q = None
-        order_q, coefficients = snapped["q"], snapped["coefficients"]
-        _mark_roles(result, order_q, "superlattice", coefficients=coefficients)
-        sup = fourier.Superlattice(snapped["order"], True, order_q, np.zeros(len(order_q)),
-                                   [tuple(c) for c in coefficients], note=snapped["note"])
-    elif sup is not None and lattice is not None and config.q_rad_per_nm is None and sup_override is None \
-            and config.lattice is None:
-        # The rational candidates were not flat (or lay outside the ring): what remains is an
-        # incommensurate order, if its wavevectors lie inside the Bragg ring and carry order.
-        sup.commensurate = False
-        q_inc = np.atleast_2d(np.asarray(sup.q, float))
-        inside = np.hypot(*q_inc.T) < 0.95 * float(np.min(np.hypot(*np.asarray(lattice.bragg).T)))
-        q_inc = q_inc[inside]
-        if len(q_inc):
-            q_inc = q_inc[_present(image, q_inc, pixel, mask, config, lattice.bragg)[0]]
-        if len(q_inc):
-            sup.q, sup.order = q_inc, "incommensurate"
-        else:
-            notes.append("Peaks beyond the lattice were weak, outside the Bragg ring, or scan artefacts: ignored.")
-            sup = None
-
-    if config.q_rad_per_nm is not None:
-        order_q = np.atleast_2d(np.asarray(config.q_rad_per_nm, float))
-        if order_q.shape[1] != 2:
-            raise InputError(f"q_rad_per_nm must be a list of [qx, qy] pairs, got {config.q_rad_per_nm!r}")
-        if lattice is not None:
-            coefficients = order_q @ np.linalg.inv(_order_basis(lattice))
-    elif sup is not None and snapped is None:
-        order_q = np.asarray(sup.q, float)
-        if sup.commensurate:
-            coefficients = order_q @ np.linalg.inv(_order_basis(lattice))
-    elif snapped is None:
-        order_q = None
-
-    kind = config.order
-    if kind == "auto":
-        if order_q is None:
-            kind = "moire" if moire_q is not None else "none"
-        elif sup is not None and not sup.commensurate and config.q_rad_per_nm is None:
-            kind = "incommensurate"
-        else:
-            kind = "commensurate"
-    if kind in ("commensurate", "stripes") and order_q is None:
-        raise InputError(f"order = {kind!r} but no superlattice peak was found; give superlattice or q_rad_per_nm")
-    if kind == "commensurate" and coefficients is not None:
-        simple = order.nearest_fractions(coefficients, max_denominator=12)
-        if np.max(np.abs(simple - coefficients)) > 0.02:
-            kind = "incommensurate" if config.order == "auto" else kind
-            if config.order == "commensurate":
-                raise InputError("order = 'commensurate' but the order's wavevectors are not simple fractions "
-                                 "of the Bragg vectors")
-        else:
-            coefficients = simple
-    elif kind == "commensurate":
-        raise InputError("a commensurate order needs the atomic lattice; give lattice = {kind, a_nm, angle_deg}")
-    if kind in ("commensurate", "incommensurate") and order_q is not None and config.order == "auto":
-        # Stripes (unidirectional order) and triple-q order give the same peaks in the whole frame;
-        # locally only one component of stripes is present (METHODS §6).
-        if _mostly_unidirectional(image, order_q, pixel, mask, config):
-            kind = "stripes"
+    order_q = result.order_q
+    coefficients = result.coefficients
+    kind = result.kind
+    notes = []
+    if config.order != "auto":
+        wanted = config.order
+        if wanted in ("commensurate", "stripes") and order_q is None:
+            raise InputError(f"order = {wanted!r} but no superlattice peak was found; give superlattice or q_rad_per_nm")
+        if wanted == "commensurate" and (lattice is None or any(f.kind != "commensurate" for f in result.families)):
+            raise InputError("order = 'commensurate' but the order's wavevectors are not fractions of the Bragg "
+                             "vectors (or no lattice is resolved); give lattice = {kind, a_nm, angle_deg}")
+        kind = wanted
     if kind == "stripes" and order_q is not None and len(order_q) < 2:
         notes.append("Only one stripe direction found: a single orientational domain.")
-
+    moire_q = result.moire_q_rad_per_nm
+    sup = None
+    if result.families:
+        fam = result.families
+        commensurate = all(f.kind == "commensurate" for f in fam)
+        summary = result.to_summary()
+        coefs = [tuple(Fraction(float(c)).limit_denominator(64) if commensurate else float(c) for c in row)
+                 for row in (coefficients if coefficients is not None else np.zeros((len(order_q), 2)))]
+        sup = fourier.Superlattice(summary["order"], commensurate, order_q,
+                                   np.concatenate([f.q_err_rad_per_nm for f in fam]), coefs,
+                                   fam[0].supercell, int(fam[0].variants) if commensurate else None, None,
+                                   "; ".join(r for r in result.reasons if r.startswith("order peaks")))
+    spectrum = fourier.SpectrumResult(list(result.peaks), lattice, sup,
+                                      np.zeros((0, 2)) if moire_q is None else np.asarray(moire_q), tuple(pixel),
+                                      tuple(image.shape))
     lattice_summary = None if lattice is None else {
         "kind": lattice.kind, "a_nm": lattice.a_nm, "a_nm_err": lattice.a_err_nm, "angle_deg": lattice.angle_deg,
         "angle_deg_err": lattice.angle_err_deg, "q_bragg_rad_per_nm": bragg_q.tolist(),
-        "q_bragg_abs_rad_per_nm": lattice.q_bragg_rad_per_nm}
-    superlattice_summary = {
-        "order": None if kind in ("none", "moire") else (sup.order if sup is not None else "given q"),
-        "kind": kind,
-        "q_rad_per_nm": None if order_q is None else order_q.tolist(),
-        "coefficients": None if coefficients is None else coefficients.tolist(),
-        "details": None if sup is None else sup.to_dict(),
-    }
+        "q_bragg_abs_rad_per_nm": lattice.q_bragg_rad_per_nm, "resolved": bool(result.lattice.resolved),
+        "source": result.lattice.source}
+    superlattice_summary = result.to_summary()
+    superlattice_summary["kind"] = kind
+    if kind in ("none", "moire"):
+        superlattice_summary["order"] = None
     if kind == "none":
         superlattice_summary["note"] = "no superlattice found"
     power = fourier.power_spectrum(image, pixel_size_nm=pixel, mask=mask)
-    # The result carries the final verdict, for whoever shows the peak table.
-    result.superlattice = sup
-    choices = {"lattice": "given" if config.lattice else ("found" if lattice is not None else "none found"),
-               "spectrum_of": "drift-corrected image" if lattice is not None and not config.lattice else "levelled image",
-               "superlattice": "given" if config.superlattice else ("found" if sup is not None else "none found"),
+    choices = {"lattice": result.lattice.source,
+               "lattice_resolved": bool(result.lattice.resolved),
+               "spectrum_of": "drift-corrected image" if result.lattice.resolved else "levelled image",
+               "superlattice": "given" if config.superlattice or config.q_rad_per_nm is not None else (
+                   "found" if result.families else "none found"),
                "order": f"{kind} ({'given' if config.order != 'auto' else 'automatic'})",
-               "peaks_found": len(result.peaks)}
-    return {"result": result, "bragg_q": bragg_q, "order_q": order_q, "moire_q": moire_q, "order_kind": kind,
-            "coefficients": coefficients, "lattice_summary": lattice_summary,
-            "superlattice_summary": superlattice_summary, "power": power, "notes": notes,
-            "choices": choices}
-
-
-def _mark_roles(result, q, role, *, coefficients=None, tolerance=0.05):
-    """Give the peaks nearest each wavevector of ``q`` (or of -q) the role found for it.
-
-    The spectrum's first indexing goes by peak position alone; the later steps (phase
-    flatness, the moiré triplet) may know better, and the peak table should say so.
-    """
-    from fractions import Fraction
-
-    for j, qj in enumerate(np.atleast_2d(q)):
-        for p in result.peaks:
-            for sign in (1, -1):
-                if np.hypot(*(p.q - sign * qj)) <= tolerance * np.hypot(*qj):
-                    p.role = role
-                    if coefficients is not None:
-                        p.hk = tuple(float(sign * c) for c in coefficients[j])
-                        p.fraction = tuple(Fraction(float(sign * c)).limit_denominator(12) for c in coefficients[j])
+               "peaks_found": len(result.peaks),
+               "reasons": list(result.reasons),
+               "commensurability_test": (f"local wavevector (median of q + grad phi over ordered pixels, lock-in "
+                                         f"sigma {result.sigma_test_nm:.3g} nm) within 3 standard errors of a "
+                                         "fraction of the Bragg basis with denominator up to 16"
+                                         if result.sigma_test_nm else None)}
+    if not result.lattice.resolved:
+        notes.append("Atomic lattice not resolved: " + "; ".join(result.lattice.reasons))
+    return {"result": spectrum, "reading": result, "bragg_q": bragg_q, "order_q": order_q, "moire_q": moire_q,
+            "order_kind": kind, "coefficients": coefficients, "lattice_summary": lattice_summary,
+            "superlattice_summary": superlattice_summary, "power": power, "notes": notes, "choices": choices}
 
 
 def _marked_peaks(result, unindexed=12):
@@ -1056,121 +1047,10 @@ def _order_basis(lattice):
     return np.asarray(lattice.bragg, float)[:2]
 
 
-def _third_bragg(basis, tolerance_deg=5.0):
-    """For a hexagonal-like pair G1, G2 (60 or 120 degrees apart), the third Bragg vector's
-    coefficients: (1, 1) or (1, -1) in the (G1, G2) basis, whichever is as short as G1; else None."""
-    g1, g2 = basis
-    angle = np.degrees(np.arccos(np.clip(g1 @ g2 / np.hypot(*g1) / np.hypot(*g2), -1, 1)))
-    if abs(angle - 120) < tolerance_deg:
-        return np.array([1.0, 1.0])
-    if abs(angle - 60) < tolerance_deg:
-        return np.array([1.0, -1.0])
-    return None
-
-
-def _snap_commensurate(image, pixel, mask, result, config, max_denominator=6):
-    """Test the simple fractions nearest the superlattice peaks: commensurate when the phase is flat there.
-
-    Domains of different translational phase split a commensurate peak into speckle, so the
-    strongest Fourier maximum can sit off the rational position; the lock-in at the rational
-    wavevector settles it (:func:`domains.order.phase_flatness`).
-    """
-    from . import order
-
-    lattice = result.lattice
-    # A superlattice's fundamental peaks lie inside the Bragg ring (|G|/n, |G|/sqrt(3), ...);
-    # what lies beyond is a harmonic or a scan artefact.
-    g_min = float(np.min(np.hypot(*np.asarray(lattice.bragg).T)))
-    measured = [p.q for p in result.peaks if p.role in ("superlattice", "incommensurate", "moire")
-                and p.q_abs_rad_per_nm < 0.95 * g_min]
-    if not measured:
-        return None
-    basis = _order_basis(lattice)
-    candidates = order.commensurate_candidates(measured, basis, max_denominator=max_denominator)
-    unique = []
-    for c in candidates:
-        if np.allclose(c, 0) or any(np.allclose(c, u) or np.allclose(c, -u) for u in unique):
-            continue
-        unique.append(c)
-    # A triple-q n x n order on a hexagonal lattice: test all three G_j / n once one is seen
-    # (the third Bragg vector is the shorter of G1 + G2 and G1 - G2; the fit may call a slightly
-    # distorted hexagonal lattice oblique, so the angle decides, not the name).
-    third = _third_bragg(basis)
-    if third is not None:
-        for n in sorted({round(1 / max(abs(c).max(), 1e-9)) for c in unique}):
-            for c in (np.array([1.0, 0.0]) / n, np.array([0.0, 1.0]) / n, third / n) if n >= 2 else ():
-                if not any(np.allclose(c, u) or np.allclose(c, -u) for u in unique):
-                    unique.append(c)
-    unique = np.array(unique)
-    q = unique @ basis
-    sigma, _ = choose_sigma(np.vstack([q, lattice.bragg]), leakage=config.leakage)
-    sigma = max(sigma, 1.5 * max(pixel))
-    present, threshold = _present(image, q, pixel, mask, config, lattice.bragg, sigma)
-    gradient, error = order.phase_flatness(image, q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask,
-                                           threshold=threshold)
-    # Flat within its error, and in any case within 2 % of |q| (a 2 % misfit would slip the
-    # phase by 2 pi every 50 periods: an incommensurate order, McMillan 1976).
-    flat = np.hypot(*gradient.T) < np.maximum(4 * error, 0.02 * np.hypot(*q.T))
-    keep = flat & present
-    if not keep.any():
-        return None
-    coefficients = unique[keep]
-    name = "commensurate " + ", ".join(f"({h:.3g}, {k:.3g})" for h, k in coefficients)
-    for n in range(2, max_denominator + 1):
-        if third is not None:
-            # A complete triple G_j / n explains the order; other flat candidates are weaker
-            # echoes (harmonics, artefacts) and are left out.
-            triple = np.array([[1.0, 0.0], [0.0, 1.0], -third]) / n
-            if all(any(np.allclose(c, t) or np.allclose(c, -t) for c in coefficients) for t in triple):
-                coefficients, name = triple, f"{n}x{n}"
-                break
-        elif all(np.allclose(np.sort(np.abs(c)), [0, 1 / n]) for c in coefficients):
-            name = f"{n}x{n}" if len(coefficients) > 1 else f"{n}x1"
-            break
-    return {"q": coefficients @ basis, "coefficients": coefficients, "order": name,
-            "note": f"Superlattice {name}: the lock-in phase is flat at the rational wavevectors "
-                    f"(median gradient {np.nanmax(np.hypot(*gradient[keep].T)):.3g} rad/nm)."}
-
-
-def _present(image, q, pixel, mask, config, bragg, sigma=None):
-    """Which wavevectors carry order: above the noise threshold over at least a tenth of the frame.
-
-    Orientational domains hold each wavevector over only part of the frame, so a median
-    over the whole frame would miss them. Returns the verdicts and the threshold.
-    """
-    from . import order
-
-    if sigma is None:
-        sigma = max(choose_sigma(np.vstack([q, bragg]), leakage=config.leakage)[0], 1.5 * max(pixel))
-    amp = amplitude(lockin(image, q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask))
-    trusted = trusted_mask(image.shape, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
-    floor = order.noise_floor(image, q, sigma_nm=sigma, pixel_size_nm=pixel, avoid_q=bragg, mask=mask,
-                              trusted=trusted, false_alarm=config.false_alarm)
-    return np.array([np.mean(a[trusted] > floor.threshold) >= 0.1 for a in amp]), floor.threshold
-
-
-def _peaks_near_qy_axis(result, shape, pixel, bins=3):
-    """Indexed peaks within ``bins`` frequency bins of the qy axis (line offsets live on that axis)."""
+def _peaks_near_qy_axis(peaks, shape, pixel, bins=3):
+    """Peaks within ``bins`` frequency bins of the qy axis (line offsets live on that axis)."""
     width_bin = 2 * np.pi / (shape[1] * pixel[1])
-    return [p for p in result.peaks if p.role in ("bragg", "superlattice", "incommensurate", "moire")
-            and abs(p.q[0]) < bins * width_bin]
-
-
-def _mostly_unidirectional(image, order_q, pixel, mask, config):
-    from . import order
-
-    if len(order_q) < 2:
-        return True
-    sigma, _ = choose_sigma(order_q, leakage=config.leakage)
-    sigma = max(sigma, 1.5 * max(pixel))
-    fill = np.where(np.isfinite(image), image, np.nanmean(image))
-    a = lockin(fill, order_q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
-    trusted = trusted_mask(image.shape, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
-    floor = order.noise_floor(fill, order_q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask, trusted=trusted)
-    o = order.orientation_order(a, threshold=floor.threshold, anisotropy_threshold=config.anisotropy_threshold)
-    where = o.ordered & trusted
-    # Unidirectional when most ordered pixels are dominated by one component (common practice, no source).
-    return bool(where.sum() > 0 and np.mean(o.anisotropy[where] >= config.anisotropy_threshold) > 0.6)
+    return [p for p in peaks if abs(p.q[0]) < bins * width_bin]
 
 
 def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, image, spec, pixel, mask, config):

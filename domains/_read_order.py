@@ -1,0 +1,1225 @@
+"""The order step: what the Fourier peaks of an image mean, decided once.
+
+Two calls, one on each side of the drift correction:
+
+* :func:`find_lattice` picks the atomic lattice among the detected peaks (or says
+  it is not resolved): the lattice whose reciprocal cell is the smallest real
+  cell among the complete sets of peaks (a hexagonal triplet closing on itself,
+  G1 + G2 + G3 = 0, or a square pair), not the strongest set, so that a CDW
+  stronger than the atoms is not taken for the lattice (docs/methods.md §8);
+* :func:`read_order` reads every other peak family on the drift-corrected
+  image against that lattice: commensurate superlattices as an integer supercell
+  matrix M (A_super = M A, |det M| translational variants, any determinant up
+  to :data:`MAX_DETERMINANT`, both chiralities), incommensurate order by a test
+  of the measured local wavevector against its own noise (McMillan 1976),
+  stripes, a second atomic lattice and the moiré it makes.
+
+The result is a frozen :class:`OrderResult` with a ``to_summary()`` and the
+reasons for every choice. ``fourier`` finds and refines peaks; this module
+classifies them.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field, replace
+from fractions import Fraction
+
+import numpy as np
+
+from ._errors import InputError
+from ._lockin import amplitude, choose_sigma, lockin, phase_gradient, trusted_mask
+
+__all__ = ["MAX_DETERMINANT", "LatticeReading", "OrderFamily", "OrderResult", "find_lattice", "read_order",
+           "slow_axis_drift_fit", "supercell_name"]
+
+#: Largest |det M| (number of translational variants) searched for a commensurate superlattice.
+MAX_DETERMINANT = 16
+#: Largest real-space lattice constant taken for an atomic lattice without a hint (nm). The atomic
+#: lattices of the layered crystals this tool is for lie between about 0.24 and 0.45 nm (from
+#: memory); a larger cell seen alone is a superlattice or a moiré whose atoms are not resolved.
+MAX_ATOMIC_A_NM = 0.6
+#: A set of peaks counts as a harmonic of a finer set only if the finer set is this much stronger
+#: (power ratio); a CDW up to ~5x the atomic corrugation keeps its Bragg peaks (derived: 5.5^2 = 30).
+HARMONIC_POWER_RATIO = 30.0
+#: Below this fraction of |G| a peak family is a moiré candidate (a 6 degree twist gives 0.105).
+MOIRE_MAX_FRACTION = 0.12
+#: Number of standard errors for "significantly incommensurate".
+N_SIGMA = 3.0
+#: Systematic floor of the commensurability test, as a fraction of |q|: the local wavevector of
+#: commensurate patches read 0.1-0.2 % off the rational point near dense phase slips (measured on
+#: synthetic discommensurate scenes); a 1 % incommensurability stays four times above it.
+SYSTEMATIC_FRACTION = 2.5e-3
+
+
+# --------------------------------------------------------------------------------------
+# Results
+# --------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class LatticeReading:
+    """The atomic lattice as read from the peaks (before drift correction).
+
+    Attributes
+    ----------
+    lattice : domains.fourier.Lattice or None
+        The lattice; None when it is not resolved.
+    resolved : bool
+        Whether atoms are resolved (False also when ``lattice`` came from the user's ``a_nm``).
+    source : str
+        "found", "given" or "none".
+    second : domains.fourier.Lattice or None
+        A second atomic lattice of the same size (the other layer of a bilayer).
+    unresolved_set_q : ndarray or None
+        The finest complete set of peaks when it was too coarse for atoms (a superlattice or a moiré).
+    reasons : tuple of str
+    """
+
+    lattice: object
+    resolved: bool
+    source: str
+    second: object = None
+    unresolved_set_q: np.ndarray | None = None
+    reasons: tuple = ()
+
+
+@dataclass(frozen=True)
+class OrderFamily:
+    """One family of order peaks related by the lattice's symmetry (a triple-q set, a stripe pair ...).
+
+    Attributes
+    ----------
+    kind : str
+        "commensurate", "incommensurate" or "moire".
+    q_rad_per_nm : (k, 2) ndarray
+        The family's fundamental wavevectors (measured for incommensurate order, exact for commensurate).
+    q_err_rad_per_nm : (k,) ndarray
+        One-sigma uncertainty of each wavevector's components (statistical, from the lock-in phase
+        noise, plus the lattice calibration for commensurate order).
+    coefficients : (k, 2) ndarray or None
+        q = h G1 + k G2 in the Bragg basis (exact fractions for commensurate order, measured otherwise).
+    supercell : (2, 2) int ndarray or None
+        M with A_super = M A (commensurate order).
+    name : str
+        "3x3", "sqrt13xsqrt13R13.9", "2x1", "incommensurate", ...
+    variants : int
+        |det M| (1 for incommensurate order).
+    chirality : int
+        +1 or -1 for a rotated supercell (R+theta, R-theta), 0 otherwise.
+    mean_detuning_rad_per_nm : (k, 2) ndarray or None
+        Mean wavevector minus the commensurate one, over the frame (phase slips included).
+    mean_detuning_err_rad_per_nm : (k,) ndarray or None
+    discommensuration_nm : float or None
+        2 pi / |dq| of the mean detuning when it is significant (McMillan 1976).
+    presence : (k,) ndarray
+        Fraction of the trusted frame where each component is above the noise threshold.
+    """
+
+    kind: str
+    q_rad_per_nm: np.ndarray
+    q_err_rad_per_nm: np.ndarray
+    coefficients: np.ndarray | None
+    supercell: np.ndarray | None
+    name: str
+    variants: int
+    chirality: int = 0
+    mean_detuning_rad_per_nm: np.ndarray | None = None
+    mean_detuning_err_rad_per_nm: np.ndarray | None = None
+    discommensuration_nm: float | None = None
+    presence: np.ndarray | None = None
+    _lattice: object = field(default=None, repr=False, compare=False)
+
+    @property
+    def component_names(self) -> list:
+        """The supercell of each component alone (e.g. "2x1" for one direction of a stripe order)."""
+        if self.kind != "commensurate" or self.coefficients is None or self._lattice is None:
+            return []
+        return [supercell_name([c], self._lattice)[1] for c in self.coefficients]
+
+    def to_summary(self) -> dict:
+        """JSON-ready description."""
+        out = {
+            "kind": self.kind, "name": self.name, "variants": int(self.variants), "chirality": int(self.chirality),
+            "q_rad_per_nm": np.asarray(self.q_rad_per_nm).tolist(),
+            "q_err_rad_per_nm": np.asarray(self.q_err_rad_per_nm).tolist(),
+            "period_nm": [float(2 * math.pi / np.hypot(*q)) for q in self.q_rad_per_nm],
+            "coefficients": None if self.coefficients is None else np.asarray(self.coefficients).tolist(),
+            "supercell_matrix": None if self.supercell is None else np.asarray(self.supercell).astype(int).tolist(),
+            "discommensuration_nm": self.discommensuration_nm,
+        }
+        if self.coefficients is not None and self.kind == "commensurate":
+            out["fractions"] = [[str(Fraction(float(c)).limit_denominator(64)) for c in row]
+                                for row in self.coefficients]
+        if self.mean_detuning_rad_per_nm is not None:
+            out["mean_detuning_rad_per_nm"] = np.asarray(self.mean_detuning_rad_per_nm).tolist()
+            out["mean_detuning_err_rad_per_nm"] = np.asarray(self.mean_detuning_err_rad_per_nm).tolist()
+        if self.presence is not None:
+            out["presence_fraction"] = [float(p) for p in self.presence]
+        return out
+
+
+@dataclass(frozen=True)
+class OrderResult:
+    """What the peaks of an image mean: lattice, order families, moiré, and why.
+
+    Attributes
+    ----------
+    kind : str
+        "commensurate", "incommensurate", "stripes", "moire" or "none".
+    lattice : LatticeReading
+    families : tuple of OrderFamily
+        The order's families (CDW or stripes), strongest first.
+    stripes : bool
+        Unidirectional order: locally one component dominates (orientational domains).
+    moire_q_rad_per_nm : ndarray or None
+        The moiré wavevectors (three), when a moiré is seen.
+    moire_from_bragg : dict or None
+        Twist and heterostrain from the two layers' Bragg peaks (atoms resolved).
+    peaks : list of domains.fourier.Peak
+        Every detected peak with its role.
+    reasons : tuple of str
+        Every decision, in words.
+    """
+
+    kind: str
+    lattice: LatticeReading
+    families: tuple = ()
+    stripes: bool = False
+    moire_q_rad_per_nm: np.ndarray | None = None
+    moire_from_bragg: dict | None = None
+    peaks: tuple = ()
+    reasons: tuple = ()
+    sigma_test_nm: float | None = None
+
+    @property
+    def order_q(self):
+        """All order wavevectors (k, 2), family by family, or None."""
+        if not self.families:
+            return None
+        return np.concatenate([f.q_rad_per_nm for f in self.families])
+
+    @property
+    def coefficients(self):
+        """Coefficients of :attr:`order_q` in the Bragg basis (None if any family has none)."""
+        if not self.families or any(f.coefficients is None for f in self.families):
+            return None
+        return np.concatenate([f.coefficients for f in self.families])
+
+    def to_summary(self) -> dict:
+        """JSON-ready description (the ``superlattice`` part of ``summary.json``)."""
+        fams = [f.to_summary() for f in self.families]
+        name = None
+        if self.kind in ("commensurate", "incommensurate", "stripes") and self.families:
+            names = []
+            for f in self.families:
+                if f.name not in names:
+                    names.append(f.name)
+            name = " + ".join(names)
+            if self.stripes:
+                comp = [f.component_names for f in self.families]
+                comp = list(dict.fromkeys(n for c in comp for n in c))
+                k = sum(len(f.q_rad_per_nm) for f in self.families)
+                name = (f"{' / '.join(comp)} stripes" if comp else "incommensurate stripes") + \
+                    f" ({k} orientation{'s' if k > 1 else ''})"
+            mirrored = {f.chirality for f in self.families} == {1, -1}
+            if mirrored:
+                name += " (both chiralities)"
+        return {
+            "order": name,
+            "kind": self.kind,
+            "lattice_resolved": bool(self.lattice.resolved),
+            "families": fams,
+            "q_rad_per_nm": None if self.order_q is None else self.order_q.tolist(),
+            "q_err_rad_per_nm": None if not self.families else np.concatenate(
+                [f.q_err_rad_per_nm for f in self.families]).tolist(),
+            "coefficients": None if self.coefficients is None else self.coefficients.tolist(),
+            "variants": None if not self.families else int(sum(f.variants for f in self.families)),
+            "moire_from_bragg": self.moire_from_bragg,
+            "reasons": list(self.reasons),
+        }
+
+
+# --------------------------------------------------------------------------------------
+# The lattice
+# --------------------------------------------------------------------------------------
+
+
+def _angle_between_deg(u, v):
+    c = abs(u @ v) / (np.hypot(*u) * np.hypot(*v))
+    return math.degrees(math.acos(min(1.0, c)))  # in [0, 90]
+
+
+def _bin(shape, pixel):
+    return 2 * math.pi / max(shape[0] * pixel[0], shape[1] * pixel[1])
+
+
+def _nearest_peak(q, target):
+    from .fourier import _canonical
+
+    t = _canonical(target)
+    d = np.hypot(*(q - t).T)
+    m = int(np.argmin(d))
+    return m, float(d[m])
+
+
+def _lattice_candidates(q, power, err, bin_q):
+    """Complete sets of peaks: hexagonal triplets closing on themselves and square pairs."""
+    n = len(q)
+    qa = np.hypot(*q.T)
+    cands = {}
+    for i in range(n):
+        for j in range(i + 1, n):
+            r = qa[i] / qa[j]
+            if not 0.8 <= r <= 1.25:
+                continue
+            ang = _angle_between_deg(q[i], q[j])  # 60 for the canonical members of a hexagonal set
+            if abs(ang - 60) <= 20:
+                for third in (q[i] - q[j], q[i] + q[j]):
+                    if not 0.8 <= np.hypot(*third) / qa[i] <= 1.25:
+                        continue
+                    m, d = _nearest_peak(q, third)
+                    tol = max(1.5 * bin_q, 4 * math.sqrt(err[i] ** 2 + err[j] ** 2 + err[m] ** 2))
+                    if m in (i, j) or d > tol:
+                        continue
+                    idx = tuple(sorted((i, j, m)))
+                    basis = np.array([q[i], q[j]])
+                    area = abs(np.linalg.det(basis))
+                    key = ("hexagonal", idx)
+                    if key not in cands or cands[key]["closure"] > d:
+                        cands[key] = dict(kind="hexagonal", idx=idx, area=area, closure=d / bin_q,
+                                          power=float(np.mean(power[list(idx)])), basis=basis,
+                                          distortion=float(np.std(qa[list(idx)]) / np.mean(qa[list(idx)])))
+            elif abs(ang - 90) <= 5 and abs(r - 1) <= 0.05:
+                # A square pair need not show its (1, 1) order; it is only taken when no hexagonal set exists.
+                basis = np.array([q[i], q[j]])
+                cands[("square", (i, j))] = dict(kind="square", idx=(i, j), area=abs(np.linalg.det(basis)),
+                                                 closure=0.0, power=float(np.mean(power[[i, j]])), basis=basis,
+                                                 distortion=abs(r - 1))
+    return list(cands.values())
+
+
+def _is_harmonic_set(big, fine, q, power, bin_q):
+    """Whether ``big`` is a harmonic of the finer set ``fine`` (all its vectors integer in fine's basis,
+    fine much stronger, and for indices above 4 the second order 2 x fine present)."""
+    if fine["area"] >= big["area"] * 0.99 or fine["power"] < HARMONIC_POWER_RATIO * big["power"]:
+        return False
+    inv = np.linalg.inv(fine["basis"])
+    for m in big["idx"]:
+        f = q[m] @ inv
+        if np.hypot(*((f - np.round(f)) @ fine["basis"])) > 2 * bin_q:
+            return False
+    index = big["area"] / fine["area"]
+    if index > 4.5:
+        for v in fine["basis"]:
+            _, d = _nearest_peak(q, 2 * v)
+            if d > 2 * bin_q:
+                return False
+    return True
+
+
+def _regularising_map(cand):
+    """The linear map that takes the set's basis to a regular (hexagonal or square) one of the same mean size."""
+    g = cand["basis"]
+    size = float(np.mean(np.hypot(*g.T)))
+    alpha = math.atan2(g[0, 1], g[0, 0])
+    turn = math.atan2(g[0, 0] * g[1, 1] - g[0, 1] * g[1, 0], g[0] @ g[1])  # signed angle g1 -> g2
+    step = math.radians(60 if cand["kind"] == "hexagonal" else 90) * (1 if turn >= 0 else -1)
+    if cand["kind"] == "hexagonal" and abs(abs(turn) - math.radians(120)) < abs(abs(turn) - math.radians(60)):
+        step *= 2
+    h = size * np.array([[math.cos(alpha), math.sin(alpha)], [math.cos(alpha + step), math.sin(alpha + step)]])
+    return np.linalg.solve(g, h).T
+
+
+def _is_mixing_set(s, t, u, q, bin_q):
+    """Whether every vector of set s is a sum of low-order points of sets t and u, s weaker than both
+    (a nonlinearity mixes two lattices, e.g. G + Q of the atoms and a CDW: not a third lattice)."""
+    if s["power"] >= min(t["power"], u["power"]):
+        return False
+    for c in (t, u):
+        # A set on one lattice's own points is a harmonic question (see _is_harmonic_set), not mixing.
+        inv = np.linalg.inv(c["basis"])
+        f = q[list(s["idx"])] @ inv
+        if np.all(np.hypot(*((f - np.round(f)) @ c["basis"]).T) <= 2 * bin_q):
+            return False
+    pts = []
+    for c in (t, u):
+        b = c["basis"]
+        pts.append(np.array([h * b[0] + k * b[1] for h in range(-2, 3) for k in range(-2, 3)]))
+    sums = (pts[0][:, None, :] + pts[1][None, :, :]).reshape(-1, 2)
+    for m in s["idx"]:
+        if min(np.min(np.hypot(*(sums - q[m]).T)), np.min(np.hypot(*(sums + q[m]).T))) > 2 * bin_q:
+            return False
+    return True
+
+
+def find_lattice(peaks, *, shape, pixel_size_nm, given=None, a_nm=None, max_atomic_a_nm=MAX_ATOMIC_A_NM):
+    """The atomic lattice among detected peaks, or "not resolved".
+
+    Candidates are the complete sets of peaks: three peaks of similar length at
+    about 60 degrees whose vectors close (G1 + G2 + G3 = 0 within the peak
+    uncertainty: a linear distortion such as drift keeps the closure), or two
+    equal peaks at 90 degrees. The atomic lattice is the candidate with the
+    largest reciprocal cell (the smallest real cell) that is not a harmonic of a
+    much stronger finer set, not the strongest candidate: in STM of layered CDW
+    crystals the CDW usually dominates the atomic corrugation (common practice,
+    no source). A set whose lattice constant exceeds ``max_atomic_a_nm`` is not
+    taken for atoms: the lattice is then "not resolved" (unless ``a_nm`` is given).
+
+    Parameters
+    ----------
+    peaks : list of domains.fourier.Peak
+        Detected peaks (canonical half-plane).
+    shape : (int, int)
+        Image shape (row, col), for the frequency bin.
+    pixel_size_nm : (float, float)
+        Pixel size (row, col) in nm.
+    given : dict or domains.fourier.Lattice, optional
+        The user's lattice (skips the search).
+    a_nm : float, optional
+        The user's atomic lattice constant, used when the atoms are not resolved.
+    max_atomic_a_nm : float
+        Largest lattice constant taken for atoms without a hint.
+
+    Returns
+    -------
+    LatticeReading
+
+    References
+    ----------
+    .. [1] M. J. Lawler et al., Nature 466, 347 (2010). doi:10.1038/nature09169
+
+    Examples
+    --------
+    >>> from domains.fourier import Lattice, Peak
+    >>> lat = Lattice.from_params("hexagonal", 0.34, 5.0)
+    >>> qs = [Peak(g, 1e-3, power=1.0) for g in lat.bragg] + [Peak(g / 3, 1e-3, power=9.0) for g in lat.bragg]
+    >>> found = find_lattice(qs, shape=(512, 512), pixel_size_nm=(0.05, 0.05))
+    >>> found.resolved, round(found.lattice.a_nm, 3)
+    (True, 0.34)
+    """
+    from .fourier import _canonical, _fit_lattice, _lattice_from_dict
+
+    if given is not None:
+        lat = _lattice_from_dict(given)
+        return LatticeReading(lat, True, "given", reasons=("lattice given by the user",))
+    pixel = tuple(pixel_size_nm)
+    bin_q = _bin(shape, pixel)
+    q = np.array([_canonical(p.q, p.q_err) for p in peaks]).reshape(-1, 2)
+    power = np.array([p.power if math.isfinite(p.power) else 0.0 for p in peaks])
+    err = np.array([p.q_err if math.isfinite(p.q_err) else bin_q for p in peaks])
+    cands = _lattice_candidates(q, power, err, bin_q) if len(q) >= 2 else []
+    reasons = []
+    if any(c["kind"] == "hexagonal" for c in cands):
+        # Right-angled pairs among the many combination peaks of a hexagonal pattern are not a square lattice.
+        cands = [c for c in cands if c["kind"] == "hexagonal"]
+    if cands:
+        # Drift and creep distort every set by the same linear map: undo the map that makes the strongest
+        # set regular, then keep only the sets that are regular too (integer combinations of a commensurate
+        # pattern close as well, but are not regular).
+        ref = max(cands, key=lambda c: c["power"])
+        undo = _regularising_map(ref)
+        for c in cands:
+            v = q[list(c["idx"])] @ undo.T
+            lengths = np.hypot(*v.T)
+            c["distortion"] = float(np.std(lengths) / np.mean(lengths))
+            c["regular"] = c["distortion"] <= 0.03 and (c["kind"] != "square" or abs(
+                _angle_between_deg(v[0], v[1]) - 90) <= 3)
+        irregular = [c for c in cands if not c["regular"]]
+        cands = [c for c in cands if c["regular"]]
+        if irregular:
+            reasons.append(f"{len(irregular)} closed set(s) of peaks are not regular once the strongest set is "
+                           "made regular: not lattices")
+    for c in cands:
+        g = math.sqrt(c["area"] / (math.sqrt(3) / 2)) if c["kind"] == "hexagonal" else math.sqrt(c["area"])
+        c["a"] = 4 * math.pi / (math.sqrt(3) * g) if c["kind"] == "hexagonal" else 2 * math.pi / g
+    keep = [c for c in cands if not any(_is_harmonic_set(c, f, q, power, bin_q) for f in cands)]
+    if len(keep) < len(cands):
+        reasons.append(f"{len(cands) - len(keep)} complete set(s) of peaks are harmonics of a much stronger finer set")
+    def size(c):
+        return math.sqrt(c["area"])
+
+    # A low-|q| set (a moiré) is not a mixing partner: the second layer of a bilayer is G_bottom - k_moire too.
+    mixed = [c for c in keep if any(_is_mixing_set(c, t, u, q, bin_q) for t in keep for u in keep
+                                    if t is not c and u is not c and t is not u
+                                    and min(size(t), size(u)) >= MOIRE_MAX_FRACTION * size(c))]
+    if mixed:
+        reasons.append(f"{len(mixed)} complete set(s) of peaks are sums of two stronger sets (mixing): not lattices")
+        keep = [c for c in keep if not any(c is m for m in mixed)]
+    keep.sort(key=lambda c: -c["area"])
+    atomic = [c for c in keep if c["a"] <= max_atomic_a_nm]
+    coarse = [c for c in keep if c["a"] > max_atomic_a_nm]
+    if not atomic:
+        unresolved = None if not coarse else q[list(coarse[0]["idx"])]
+        if a_nm is not None:
+            reasons.append(f"no atomic lattice among the peaks; indexing against the given a = {a_nm} nm")
+            lat = _lattice_from_unresolved(unresolved, a_nm)
+            if lat is not None:
+                return LatticeReading(lat, False, "given a_nm", unresolved_set_q=unresolved, reasons=tuple(reasons))
+        if coarse:
+            reasons.append(f"the finest complete set of peaks has a period of {coarse[0]['a']:.3g} nm, larger than "
+                           f"any atomic lattice ({max_atomic_a_nm} nm): atoms not resolved; it is read as order")
+        else:
+            reasons.append("no complete set of peaks (hexagonal triplet or square pair): atoms not resolved")
+        return LatticeReading(None, False, "none", unresolved_set_q=unresolved, reasons=tuple(reasons))
+    top_area = atomic[0]["area"]
+    tied = [c for c in atomic if c["area"] >= 0.9 * top_area]
+    tied.sort(key=lambda c: (c["closure"] > 1.0, -c["power"]))
+    best = tied[0]
+    idx = list(best["idx"])
+    lat = _fit_lattice(best["kind"], q[idx], err[idx])
+    reasons.append(f"atomic lattice: the finest complete set of peaks ({best['kind']}, a = {lat.a_nm:.4g} nm), "
+                   "not the strongest set")
+    if best["distortion"] > 0.03:
+        reasons.append(f"its Bragg peaks differ in length by {100 * best['distortion']:.1f} % (drift or creep)")
+    second = None
+    # A second layer: a set of nearly the same size and orientation (twist, mismatch of a few percent).
+    others = [c for c in tied[1:] if not set(c["idx"]) & set(best["idx"]) and abs(c["a"] / best["a"] - 1) < 0.06
+              and c["kind"] == best["kind"]
+              and min(_angle_between_deg(c["basis"][0], v) for v in q[list(best["idx"])]) < 8]
+    if others:
+        o = others[0]
+        second = _fit_lattice(o["kind"], q[list(o["idx"])], err[list(o["idx"])])
+        reasons.append(f"a second atomic lattice (a = {second.a_nm:.4g} nm, angle {second.angle_deg:.3f} deg): "
+                       "two layers")
+    return LatticeReading(lat, True, "found", second=second, reasons=tuple(reasons))
+
+
+def _lattice_from_unresolved(qset, a_nm):
+    """A hexagonal lattice of constant ``a_nm`` whose superlattice (n x n or sqrt(N) R theta) the set is."""
+    from .fourier import Lattice
+
+    if qset is None or len(qset) < 2:
+        return None
+    g = 4 * math.pi / (math.sqrt(3) * a_nm)
+    qabs = float(np.mean(np.hypot(*np.asarray(qset).T)))
+    ratio2 = (g / qabs) ** 2
+    best = None
+    for h in range(0, 6):
+        for k in range(0, h + 1):
+            nn = h * h + h * k + k * k
+            if nn < 2 or abs(nn - ratio2) > 0.03 * ratio2:
+                continue
+            theta = math.degrees(math.atan2(math.sqrt(3) * k, 2 * h + k))
+            if best is None or abs(nn - ratio2) < best[0]:
+                best = (abs(nn - ratio2), theta)
+    if best is None:
+        return None
+    q0 = np.asarray(qset)[0]
+    # The set's first vector is along a superlattice reciprocal vector; the Bragg vector is rotated by -theta
+    # from it (one chirality; the other gives the mirror domain's lattice).
+    b_angle = math.degrees(math.atan2(q0[1], q0[0])) - best[1]
+    return Lattice.from_params("hexagonal", a_nm, (b_angle - 30.0 + 30.0) % 60.0 - 30.0)
+
+
+# --------------------------------------------------------------------------------------
+# Supercells
+# --------------------------------------------------------------------------------------
+
+
+def supercell_name(coefficients, lattice):
+    """The supercell matrix M and its name for commensurate wavevectors given as fractions of the Bragg basis.
+
+    Parameters
+    ----------
+    coefficients : (k, 2) array_like
+        Fractions (h, k) of each wavevector in the basis (G1, G2).
+    lattice : domains.fourier.Lattice
+        The lattice.
+
+    Returns
+    -------
+    M : (2, 2) int ndarray
+        A_super = M A (rows: real-space basis vectors).
+    name : str
+        "n x n", "n x m", "sqrtN x sqrtN R theta" or "supercell [[..]]".
+    variants : int
+        |det M|, the number of translational variants.
+    chirality : int
+        +1, -1 for a rotated (chiral) supercell, 0 otherwise.
+
+    Examples
+    --------
+    >>> from domains.fourier import Lattice
+    >>> lat = Lattice.from_params("hexagonal", 0.336, 0.0)
+    >>> M, name, n, c = supercell_name([[4/13, 1/13]], lat)
+    >>> name, n
+    ('sqrt13xsqrt13R13.9', 13)
+    """
+    from .fourier import _fmt_deg, _supercell
+
+    fracs = [tuple(Fraction(float(c)).limit_denominator(64) for c in row) for row in np.atleast_2d(coefficients)]
+    # The basis of fourier._supercell is lattice.b (b1, b2); the order basis is (G1, G2) = (b1, b2).
+    m, name = _supercell(fracs, lattice.kind, lattice)
+    if m is None:
+        return None, "unknown", 1, 0
+    variants = int(round(abs(np.linalg.det(m))))
+    chirality = 0
+    if name.startswith("sqrt"):
+        # The sign of the rotation of the supercell's first vector from the lattice's decides the chirality.
+        from .fourier import _gauss_reduce
+
+        from .fourier import Lattice
+
+        # On the ideal lattice: the supercell's angle is a property of M, not of the measured distortion.
+        a = Lattice.from_params(lattice.kind, lattice.a_nm, lattice.angle_deg).real_basis_nm
+        cells = _gauss_reduce(m.astype(float) @ a)
+        fold = 60.0 if lattice.kind == "hexagonal" else 90.0
+        rot = (math.degrees(math.atan2(cells[0, 1], cells[0, 0]) - math.atan2(a[0, 1], a[0, 0]))) % fold
+        if 1e-3 < rot < fold - 1e-3 and abs(rot - fold / 2) > 1e-3:
+            chirality = 1 if rot < fold / 2 else -1
+            angle = rot if chirality > 0 else fold - rot
+            n_sites = variants
+            name = f"sqrt{n_sites}xsqrt{n_sites}R{'' if chirality > 0 else '-'}{_fmt_deg(angle)}"
+    # Present M on a reduced (shortest) real-space basis of the supercell.
+    from .fourier import _gauss_reduce as _reduce
+
+    a = lattice.real_basis_nm
+    reduced = np.rint(_reduce(m.astype(float) @ a) @ np.linalg.inv(a)).astype(np.int64)
+    if abs(round(np.linalg.det(reduced))) == variants:
+        m = reduced if np.linalg.det(reduced) > 0 else reduced[::-1]
+    return m, name, variants, chirality
+
+
+def _fractions_near(f, basis, radius, max_den=MAX_DETERMINANT):
+    """Rational points (denominator <= max_den) within ``radius`` (rad/nm) of fractional point f, nearest first
+    within each denominator, smallest denominator first."""
+    out = []
+    for d in range(1, max_den + 1):
+        base = np.floor(f * d)
+        best = None
+        for di in (0, 1):
+            for dj in (0, 1):
+                c = (base + (di, dj)) / d
+                if np.all(np.abs(c) < 1e-12):
+                    continue
+                dist = float(np.hypot(*((f - c) @ basis)))
+                if dist <= radius and (best is None or dist < best[0]):
+                    best = (dist, c)
+        if best is not None and not any(np.allclose(best[1], o[1]) for o in out):
+            out.append((best[0], best[1], d))
+    return out
+
+
+# --------------------------------------------------------------------------------------
+# Local wavevector statistics (the commensurability test)
+# --------------------------------------------------------------------------------------
+
+
+def _trimmed_centre(gx, gy):
+    """Mode-seeking centre of a 2-D cloud of gradients: the mean of the core, trimmed at 1.5 robust spreads.
+
+    Inside domains the phase gradient clusters tightly; walls and defects throw values far out.
+    Returns the centre, the per-axis spread of the core and the number of values kept.
+    """
+    m = np.array([np.median(gx), np.median(gy)])
+    keep = np.ones(gx.shape, bool)
+    s0 = 0.0
+    for _ in range(6):
+        d = np.hypot(gx - m[0], gy - m[1])
+        # Median radial distance of a 2-D Gaussian is 1.1774 of its per-axis sd (derived).
+        s0 = float(np.median(d)) / 1.1774
+        keep = d < 2.5 * max(s0, 1e-12)
+        if keep.sum() < 8:
+            break
+        m = np.array([gx[keep].mean(), gy[keep].mean()])
+    return m, s0, int(keep.sum())
+
+
+def _wavevector_stats(image, q, *, sigma_nm, pixel, mask, threshold, basis=None):
+    """Per wavevector: the local wavevector inside ordered regions and the frame mean, with standard errors.
+
+    With ``basis`` (the Bragg vectors G1, G2), the gradient is that of the phase relative to the lattice,
+    grad phi_q - (h grad theta_1 + k grad theta_2) with (h, k) the coefficients of q: residual drift and
+    creep cancel, so the local wavevector is measured in units of the local lattice (Lawler et al. 2010).
+    The local value is the centre of the gradient cloud over ordered pixels (walls excluded by trimming);
+    its standard error is the core spread over the square root of the number of independent
+    sigma-patches (one per 4 pi sigma^2, derived). The frame mean (|A|^2-weighted, walls included) is the
+    mean wavevector, phase slips counted.
+
+    Returns (local (k,2), local_err (k,), mean (k,2), mean_err (k,), presence (k,), amplitude (k,)).
+    """
+    dy, dx = pixel
+    q = np.atleast_2d(q)
+    k = len(q)
+    allq = q if basis is None else np.vstack([q, basis])
+    a = lockin(image, allq, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask)
+    if a.ndim == 2:
+        a = a[None]
+    amp = amplitude(a[:k])
+    grad = phase_gradient(a, pixel_size_nm=pixel)
+    if basis is not None:
+        coef = q @ np.linalg.inv(basis)
+        grad = grad[:, :k] - np.einsum("jb,abrc->ajrc", coef, grad[:, k:])
+    trusted = trusted_mask(np.shape(image), sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask)
+    local, local_err = np.full((k, 2), np.nan), np.full(k, np.nan)
+    mean, mean_err = np.full((k, 2), np.nan), np.full(k, np.nan)
+    presence, amp_med = np.zeros(k), np.zeros(k)
+    patch = 4 * math.pi * sigma_nm**2 / (dx * dy)  # pixels per independent lock-in sample (derived)
+    for j in range(k):
+        ok = trusted & np.isfinite(amp[j]) & np.all(np.isfinite(grad[:, j]), axis=0)
+        where = ok & (amp[j] > threshold)
+        presence[j] = where.sum() / max(ok.sum(), 1)
+        if where.sum() < 16:
+            continue
+        amp_med[j] = float(np.median(amp[j][where]))
+        # The local wavevector from the strongly ordered pixels (wall cores have a reduced amplitude).
+        strong = where & (amp[j] >= 0.5 * amp_med[j])
+        gx, gy = grad[0, j][strong], grad[1, j][strong]
+        centre, spread, kept = _trimmed_centre(gx, gy)
+        n_ind = max(kept / patch, 1.0)
+        local[j] = q[j] + centre
+        # Per-axis error of a trimmed mean (efficiency ~0.8 of the mean's), combined over both axes.
+        local_err[j] = 1.12 * spread / math.sqrt(n_ind)
+        gx, gy = grad[0, j][where], grad[1, j][where]
+        w = amp[j][where] ** 2
+        mg = np.array([np.sum(w * gx), np.sum(w * gy)]) / w.sum()
+        sd = np.array([math.sqrt(np.sum(w * (v - m_) ** 2) / w.sum()) for v, m_ in ((gx, mg[0]), (gy, mg[1]))])
+        mean[j] = q[j] + mg
+        mean_err[j] = float(np.hypot(*sd)) / math.sqrt(max(where.sum() / patch, 1.0))
+    return local, local_err, mean, mean_err, presence, amp_med
+
+
+def _noise_threshold(image, q, *, sigma_nm, pixel, mask, avoid, false_alarm):
+    from .order import noise_floor
+
+    try:
+        return noise_floor(image, q, sigma_nm=sigma_nm, pixel_size_nm=pixel, avoid_q=avoid, mask=mask,
+                           false_alarm=false_alarm).threshold
+    except InputError:
+        return 0.0
+
+
+# --------------------------------------------------------------------------------------
+# Families
+# --------------------------------------------------------------------------------------
+
+
+def _group_families(q, bin_q):
+    """Indices of q grouped into triples that close (q_a +- q_b +- q_c = 0, equal lengths), then the rest singly.
+    Returns a list of (indices, signs)."""
+    n = len(q)
+    qa = np.hypot(*q.T)
+    used = set()
+    groups = []
+    order = list(range(n))
+    for i in order:
+        if i in used:
+            continue
+        found = None
+        for j in order:
+            if j <= i or j in used or abs(qa[j] / qa[i] - 1) > 0.05:
+                continue
+            for m in order:
+                if m in (i, j) or m in used or abs(qa[m] / qa[i] - 1) > 0.05:
+                    continue
+                for s1 in (1, -1):
+                    for s2 in (1, -1):
+                        r = np.hypot(*(q[i] + s1 * q[j] + s2 * q[m]))
+                        if r <= max(2 * bin_q, 0.03 * qa[i]) and (found is None or r < found[0]):
+                            found = (r, (i, j, m), (1, s1, s2))
+        if found is not None:
+            groups.append((list(found[1]), list(found[2])))
+            used.update(found[1])
+    for i in order:
+        if i not in used:
+            groups.append(([i], [1]))
+    return groups
+
+
+def _is_moire_combination(q, bragg, second_bragg, inv, tol):
+    """Whether q = n1 k1 + n2 k2 + G (|n| <= 3, G a bottom lattice vector) with k_j = G_j - G'_j the moiré."""
+    k = []
+    for g in bragg[:2]:
+        d = [g - s * t for t in second_bragg for s in (1, -1)]
+        k.append(min(d, key=lambda v: np.hypot(*v)))
+    basis = bragg[:2]
+    for n1 in range(-3, 4):
+        for n2 in range(-3, 4):
+            if n1 == 0 and n2 == 0:
+                continue
+            r = q - n1 * k[0] - n2 * k[1]
+            f = r @ inv
+            if np.hypot(*((f - np.round(f)) @ basis)) <= tol:
+                return True
+    return False
+
+
+def _is_combination(f, fundamentals, tol_frac, basis):
+    """Whether fractional point f is an integer combination (|c| <= 2, at most two terms) of fundamentals
+    plus a lattice vector."""
+    cands = [np.zeros(2)]
+    for a in fundamentals:
+        for c in (1, -1, 2, -2, 3, -3):
+            cands.append(c * a)
+    for i, a in enumerate(fundamentals):
+        for b in fundamentals[i + 1:]:
+            for c1 in (1, -1):
+                for c2 in (1, -1):
+                    cands.append(c1 * a + c2 * b)
+    for c in cands[1:]:
+        d = f - c
+        if np.hypot(*((d - np.round(d)) @ basis)) <= tol_frac:
+            return True
+    return False
+
+
+def read_order(image, *, pixel_size_nm, lattice_reading, mask=None, peaks=None, leakage=0.01, false_alarm=1e-3,
+               max_determinant=MAX_DETERMINANT, max_families=2, given_q=None, given_superlattice=None,
+               anisotropy_threshold=0.5):
+    """Read every peak family of a (drift-corrected) image against its lattice.
+
+    For each order peak that is not a Bragg peak, a harmonic of the lattice, a
+    second atomic lattice or a combination of stronger order peaks, the local
+    wavevector q_loc = q + median(grad phi) inside ordered regions is measured by
+    lock-in with its standard error s (phase-gradient spread over the number of
+    independent sigma-patches). The order is commensurate when a rational point
+    of the Bragg basis with denominator up to ``max_determinant`` lies within
+    3 s (plus a small calibration floor) of q_loc, the smallest such denominator
+    winning; otherwise it is incommensurate at q_loc +- s. The frame-mean
+    wavevector (walls included) gives the mean incommensurability of
+    commensurate patches separated by phase slips and the discommensuration
+    spacing 2 pi / |dq| (McMillan 1976). Peaks are grouped into families that
+    close (Q1 + Q2 + Q3 = 0); a commensurate family is named by its supercell
+    matrix M (A_super = M A, |det M| variants, the chirality of a rotated
+    cell). A family whose components dominate in different places is stripes.
+
+    Parameters
+    ----------
+    image : (row, col) ndarray
+        The drift-corrected image (NaN-free).
+    pixel_size_nm : (float, float)
+        Pixel size (row, col) in nm.
+    lattice_reading : LatticeReading
+        From :func:`find_lattice` (its lattice may be None).
+    mask : ndarray of bool, optional
+        Untrusted pixels.
+    peaks : list of Peak, optional
+        Peaks of ``image`` (found here when omitted).
+    leakage, false_alarm : float
+        Lock-in leakage bound and per-pixel false-alarm rate of "order present".
+    max_determinant : int
+        Largest number of translational variants searched.
+    max_families : int
+        Largest number of order families kept (two chiralities of one supercell, or a CDW and its mirror).
+    given_q : (k, 2) array_like, optional
+        The user's order wavevectors (skips the search; still tested for commensurability).
+    given_superlattice : str, optional
+        The user's superlattice name ("3x3", "sqrt13xsqrt13R13.9" ...).
+    anisotropy_threshold : float
+        Anisotropy for the stripe test (docs/methods.md §6).
+
+    Returns
+    -------
+    OrderResult
+
+    References
+    ----------
+    .. [1] W. L. McMillan, Phys. Rev. B 14, 1496 (1976). doi:10.1103/PhysRevB.14.1496
+    .. [2] M. J. Lawler et al., Nature 466, 347 (2010). doi:10.1038/nature09169
+
+    Examples
+    --------
+    >>> from domains.fourier import Lattice
+    >>> lat = Lattice.from_params("hexagonal", 0.34, 0.0)
+    >>> y, x = np.mgrid[:256, :256] * 0.05
+    >>> img = sum(np.cos(g[0] * x + g[1] * y) + 2 * np.cos((g[0] * x + g[1] * y) / 3) for g in lat.bragg)
+    >>> res = read_order(img, pixel_size_nm=(0.05, 0.05), lattice_reading=LatticeReading(lat, True, "given"))
+    >>> res.kind, res.families[0].name, res.families[0].variants
+    ('commensurate', '3x3', 9)
+    """
+    from .fourier import _canonical, find_peaks
+
+    pixel = tuple(float(p) for p in pixel_size_nm)
+    image = np.asarray(image)
+    shape = image.shape
+    bin_q = _bin(shape, pixel)
+    reasons = list(lattice_reading.reasons)
+    lat = lattice_reading.lattice
+    if peaks is None:
+        peaks = find_peaks(image, pixel_size_nm=pixel, mask=mask, max_peaks=60)
+    peaks = [replace(p, q=_canonical(p.q, p.q_err)) for p in peaks]
+    if lat is None:
+        return _read_unresolved(image, pixel, mask, lattice_reading, peaks, reasons, leakage, false_alarm,
+                                given_q, anisotropy_threshold)
+    basis = np.asarray(lat.bragg, float)[:2]
+    inv = np.linalg.inv(basis)
+    bragg = np.asarray(lat.bragg, float)
+    gmin = float(np.min(np.hypot(*bragg.T)))
+    tol_b = max(2 * bin_q, 0.03 * gmin)
+    second = lattice_reading.second
+    second_bragg = None if second is None else np.asarray(second.bragg, float)
+    roled = []
+    candidates = []
+    for p in peaks:
+        f = p.q @ inv
+        if min(np.min(np.hypot(*(bragg - p.q).T)), np.min(np.hypot(*(bragg + p.q).T))) <= tol_b:
+            roled.append(replace(p, role="bragg", hk=tuple(map(float, f))))
+            continue
+        if second_bragg is not None and min(np.min(np.hypot(*(second_bragg - p.q).T)),
+                                            np.min(np.hypot(*(second_bragg + p.q).T))) <= 2 * bin_q:
+            roled.append(replace(p, role="second_lattice", hk=tuple(map(float, f))))
+            continue
+        if np.hypot(*((f - np.round(f)) @ basis)) <= max(2 * bin_q, 4 * p.q_err):
+            roled.append(replace(p, role="harmonic", hk=tuple(map(float, f))))
+            continue
+        if second_bragg is not None and _is_moire_combination(p.q, bragg, second_bragg, inv, max(2 * bin_q, 4 * p.q_err)):
+            roled.append(replace(p, role="moire", hk=tuple(map(float, f))))
+            continue
+        near_g = any(abs(p.q_abs_rad_per_nm / np.hypot(*g) - 1) < 0.1 and _angle_between_deg(p.q, g) < 10 for g in bragg)
+        if near_g:
+            roled.append(replace(p, role="second_lattice", hk=tuple(map(float, f))))
+            continue
+        candidates.append(replace(p, hk=tuple(map(float, f))))
+        roled.append(None)
+    if given_q is not None:
+        cand_q = np.atleast_2d(np.asarray(given_q, float))
+    else:
+        # Fundamentals: strongest first; a combination of stronger fundamentals (not an equal-length partner
+        # of a triple) is a harmonic.
+        candidates.sort(key=lambda p: -p.power)
+        fundamentals, fund_q = [], []
+        for p in candidates:
+            if p.q_abs_rad_per_nm > 1.05 * gmin:
+                continue
+            f = np.asarray(p.hk)
+            partners = [a for a, qq in zip(fundamentals, fund_q)
+                        if abs(np.hypot(*qq) / p.q_abs_rad_per_nm - 1) > 0.05]
+            if partners and _is_combination(f, partners, max(2 * bin_q, 4 * p.q_err), basis):
+                continue
+            fundamentals.append(f)
+            fund_q.append(p.q)
+            if len(fundamentals) >= 3 * max_families + 2:
+                break
+        cand_q = np.array(fund_q).reshape(-1, 2)
+    if given_superlattice is not None:
+        from .fourier import _superlattice_override
+
+        sup = _superlattice_override(given_superlattice, lat)
+        cand_q = np.asarray(sup.q, float)
+        reasons.append(f"superlattice {given_superlattice} given by the user")
+    # Candidates within 15 % of |q| of a stronger one are the speckle of a peak split by domains, or
+    # sidebands: the lock-in at the stronger one measures the same wave.
+    kept = []
+    for qq in cand_q:
+        if not any(min(np.hypot(*(qq - k_)), np.hypot(*(qq + k_))) < 0.15 * np.hypot(*k_) for k_ in kept):
+            kept.append(qq)
+    cand_q = np.array(kept).reshape(-1, 2)
+    moire_cands = [qq for qq in cand_q if np.hypot(*qq) < MOIRE_MAX_FRACTION * gmin]
+    order_cands = np.array([qq for qq in cand_q if np.hypot(*qq) >= MOIRE_MAX_FRACTION * gmin]).reshape(-1, 2)
+    families = []
+    stripes = False
+    sigma_test = None
+    if len(order_cands):
+        # The width is set by the strong peaks (weak ones nearby are the tails of a domain pattern's spectrum).
+        cand_power = np.array([max((p.power for p in peaks if np.hypot(*(p.q - c)) < 1e-9), default=0.0)
+                               for c in order_cands])
+        strong_cands = order_cands[cand_power >= 0.05 * cand_power.max()] if cand_power.max() > 0 else order_cands
+        all_peaks = np.vstack([strong_cands, bragg] + ([second_bragg] if second_bragg is not None else []))
+        # Twice the leakage bound: the test wants a low-noise gradient more than resolution (domains are
+        # larger than a few sigma), and the background near q = 0 must not ripple the phase.
+        sigma_test, _ = choose_sigma(all_peaks, leakage=leakage)
+        sigma_test = min(max(2 * sigma_test, 3 * max(pixel)), min(shape[0] * pixel[0], shape[1] * pixel[1]) / 10)
+        threshold = _noise_threshold(image, order_cands, sigma_nm=sigma_test, pixel=pixel, mask=mask,
+                                     avoid=np.vstack([bragg, order_cands]), false_alarm=false_alarm)
+        local, local_err, mean, mean_err, presence, amp_med = _wavevector_stats(
+            image, order_cands, sigma_nm=sigma_test, pixel=pixel, mask=mask, threshold=threshold, basis=basis)
+        # Re-centre once where the first guess was off by more than a fraction of the lock-in's reach.
+        off = np.hypot(*(local - order_cands).T) > 0.3 / sigma_test
+        if np.any(off & np.isfinite(local[:, 0])):
+            again = np.where(off[:, None] & np.isfinite(local), local, order_cands)
+            l2, le2, m2, me2, pr2, am2 = _wavevector_stats(image, again, sigma_nm=sigma_test, pixel=pixel, mask=mask,
+                                                            threshold=threshold, basis=basis)
+            for arr, new in ((local, l2), (local_err, le2), (mean, m2), (mean_err, me2), (presence, pr2),
+                             (amp_med, am2)):
+                arr[off] = new[off]
+        present = np.isfinite(local[:, 0]) & (presence >= 0.05)
+        if not present.all():
+            reasons.append(f"{int((~present).sum())} candidate order peak(s) carry order over less than 5 % of "
+                           "the frame: ignored (noise, scan artefacts)")
+        verdicts = []
+        for j in np.flatnonzero(present):
+            ql, se = local[j], local_err[j]
+            f_loc = ql @ inv
+            calib = 0.0  # measured relative to the local lattice: no calibration error enters
+            radius = N_SIGMA * math.hypot(se, calib) + SYSTEMATIC_FRACTION * float(np.hypot(*ql))
+            hits = _fractions_near(f_loc, basis, radius, max_determinant)
+            if hits:
+                dist, c, d = min(hits, key=lambda h: h[2])
+                verdicts.append((j, "commensurate", c @ basis, c, math.hypot(se, calib)))
+            else:
+                verdicts.append((j, "incommensurate", ql, f_loc, se))
+        # A peak split into speckle by domains gives several candidates that read as one wavevector.
+        unique = []
+        for v in verdicts:
+            same = False
+            for u in unique:
+                for sgn in (1, -1):
+                    d = np.hypot(*(sgn * v[2] - u[2]))
+                    if d <= N_SIGMA * math.hypot(v[4], u[4]) + SYSTEMATIC_FRACTION * np.hypot(*v[2]) + 1e-9:
+                        same = True
+            if not same:
+                unique.append(v)
+        verdicts = unique
+        vq = np.array([v[2] for v in verdicts]).reshape(-1, 2)
+        groups = _group_families(vq, bin_q)
+        strength = []
+        for idx, signs in groups:
+            strength.append(float(np.mean([amp_med[verdicts[i][0]] for i in idx])))
+        ordered_groups = [g for _, g in sorted(zip(strength, groups), key=lambda t: -t[0])]
+        # Keep the families that form complete sets first (triple-q), then singles, up to max_families
+        # (singles of one orientation each are gathered as one stripe family below).
+        triples = [g for g in ordered_groups if len(g[0]) == 3][:max_families]
+        singles = [g for g in ordered_groups if len(g[0]) < 3]
+        chosen = triples if triples else singles[:3]
+        for idx, signs in chosen:
+            js = [verdicts[i][0] for i in idx]
+            kinds = {verdicts[i][1] for i in idx}
+            qs = np.array([s * verdicts[i][2] for i, s in zip(idx, signs)])
+            errs = np.array([verdicts[i][4] for i in idx])
+            if kinds == {"commensurate"}:
+                coef = np.array([s * verdicts[i][3] for i, s in zip(idx, signs)])
+                m_mat, name, nvar, chir = supercell_name(coef, lat)
+                det_mean = np.array([s * (mean[j] - verdicts[i][2]) for i, j, s in zip(idx, js, signs)])
+                det_err = np.array([mean_err[j] for j in js])
+                dq = float(np.mean(np.hypot(*det_mean.T)))
+                sig = np.hypot(*det_mean.T) > N_SIGMA * np.hypot(det_err, SYSTEMATIC_FRACTION * np.hypot(*qs.T))
+                spacing = float(2 * math.pi / dq) if sig.all() and dq > 0 else None
+                families.append(OrderFamily("commensurate", qs, errs, coef, m_mat, name, nvar, chir, det_mean, det_err,
+                                            spacing, presence[js], lat))
+                txt = (f"order peaks at {', '.join(_frac_text(c) for c in coef)} of (G1, G2): commensurate {name} "
+                       f"({nvar} translational variants): the local wavevector lies within "
+                       f"{N_SIGMA:g} standard errors of the rational point")
+                if spacing is not None:
+                    txt += (f"; the frame-mean wavevector departs from it by {dq:.3g} rad/nm: commensurate patches "
+                            f"separated by phase slips (discommensurations every {spacing:.3g} nm, McMillan 1976)")
+                reasons.append(txt)
+            else:
+                coef = qs @ inv
+                spacing = []
+                for qq in qs:
+                    hits = _fractions_near(qq @ inv, basis, 0.2 * np.hypot(*qq), 6)
+                    if hits:
+                        c = min(hits, key=lambda h: h[0])[1]
+                        dq = float(np.hypot(*(qq - c @ basis)))
+                        if dq > 1e-9:
+                            spacing.append(2 * math.pi / dq)
+                disc = float(np.mean(spacing)) if spacing else None
+                families.append(OrderFamily("incommensurate", qs, errs, coef, None, "incommensurate", 1, 0, None, None,
+                                            disc, presence[js]))
+                reasons.append("order peaks at " + ", ".join(f"({c[0]:.4f}, {c[1]:.4f})" for c in coef)
+                               + " of (G1, G2): incommensurate; the local wavevector is more than "
+                               f"{N_SIGMA:g} standard errors from every fraction with denominator up to "
+                               f"{max_determinant}" + (f" (discommensuration spacing {disc:.3g} nm)" if disc else ""))
+        if len(families) > 1 and not triples:
+            # Singles of different orientations: one stripe family (orientational domains).
+            fam = families
+            families = [OrderFamily(
+                "commensurate" if all(f.kind == "commensurate" for f in fam) else "incommensurate",
+                np.concatenate([f.q_rad_per_nm for f in fam]), np.concatenate([f.q_err_rad_per_nm for f in fam]),
+                None if any(f.coefficients is None for f in fam) else np.concatenate([f.coefficients for f in fam]),
+                fam[0].supercell, " / ".join(dict.fromkeys(f.name for f in fam)), max(f.variants for f in fam), 0,
+                None, None, fam[0].discommensuration_nm, np.concatenate([f.presence for f in fam]), lat)]
+        if families:
+            stripes = _unidirectional(image, families, pixel, mask, leakage, false_alarm, anisotropy_threshold)
+            if stripes:
+                reasons.append("locally one order component dominates (anisotropy above "
+                               f"{anisotropy_threshold:g} in most ordered pixels): unidirectional stripes in "
+                               "orientational domains")
+    moire_q, from_bragg = None, None
+    if second is not None:
+        from_bragg, moire_q = _moire_from_layers(lat, second, moire_cands, bin_q)
+        reasons.append("two atomic lattices: a moiré " + (f"with twist {from_bragg['twist_deg']:.4g} deg "
+                                                         f"from the Bragg peaks" if from_bragg else ""))
+    elif len(moire_cands) >= 2 and not families:
+        moire_q = _moire_triplet(np.array(moire_cands), bin_q)
+        if moire_q is not None:
+            reasons.append("a low-|q| hexagonal triplet that is no fraction of the lattice: a moiré")
+    if families:
+        kinds = {f.kind for f in families}
+        kind = "stripes" if stripes else ("commensurate" if kinds == {"commensurate"} else "incommensurate")
+    elif moire_q is not None:
+        kind = "moire"
+    else:
+        kind = "none"
+        reasons.append("no order peak beyond the lattice")
+    # Roles of the peaks, for the peak table.
+    final = []
+    oq = [] if not families else np.concatenate([f.q_rad_per_nm for f in families])
+    for p, r in zip(peaks, roled):
+        if r is not None:
+            final.append(r)
+            continue
+        role = "harmonic"
+        for qq in oq:
+            if min(np.hypot(*(p.q - qq)), np.hypot(*(p.q + qq))) <= max(3 * bin_q, 0.03 * np.hypot(*qq)):
+                role = "superlattice" if kind in ("commensurate", "stripes") and families[0].kind == "commensurate" \
+                    else "incommensurate"
+        if moire_q is not None:
+            for qq in moire_q:
+                if min(np.hypot(*(p.q - qq)), np.hypot(*(p.q + qq))) <= max(2 * bin_q, 0.1 * np.hypot(*qq)):
+                    role = "moire"
+        final.append(replace(p, role=role))
+    return OrderResult(kind, lattice_reading, tuple(families), stripes, moire_q, from_bragg, tuple(final),
+                       tuple(reasons), sigma_test)
+
+
+def _frac_text(c):
+    return "(" + ", ".join(str(Fraction(float(v)).limit_denominator(64)) for v in c) + ")"
+
+
+def _unidirectional(image, families, pixel, mask, leakage, false_alarm, anisotropy_threshold):
+    """Whether one component dominates locally in most ordered pixels (stripes), per METHODS §6."""
+    from .order import orientation_order
+
+    q = np.concatenate([f.q_rad_per_nm for f in families])
+    if len(q) < 2:
+        return True
+    sigma, _ = choose_sigma(q, leakage=leakage)
+    sigma = min(max(sigma, 1.5 * max(pixel)), min(image.shape[0] * pixel[0], image.shape[1] * pixel[1]) / 8)
+    a = lockin(image, q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
+    trusted = trusted_mask(image.shape, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
+    thr = _noise_threshold(image, q, sigma_nm=sigma, pixel=pixel, mask=mask, avoid=q, false_alarm=false_alarm)
+    o = orientation_order(a, threshold=thr, anisotropy_threshold=anisotropy_threshold)
+    where = o.ordered & trusted
+    if len(families) > 1 and all(len(f.q_rad_per_nm) == 3 for f in families):
+        # Two triple-q families (two chiralities): dominance of one family is a chiral domain, not a stripe.
+        return False
+    # Common practice, no source: unidirectional when most ordered pixels are dominated by one component.
+    return bool(where.sum() > 0 and np.mean(o.anisotropy[where] >= anisotropy_threshold) > 0.6)
+
+
+def _moire_triplet(q, bin_q):
+    groups = _group_families(q, bin_q)
+    for idx, signs in groups:
+        if len(idx) == 3:
+            return np.array([s * q[i] for i, s in zip(idx, signs)])
+    return None
+
+
+def _moire_from_layers(lat, second, moire_cands, bin_q):
+    """Moiré wavevectors k_j = G_top,j - G_bottom,j and the twist/heterostrain they imply (docs/methods.md §9)."""
+    from .moire import twist_strain_from_wavevectors
+
+    g_bot = np.asarray(lat.bragg, float)
+    g_top = np.asarray(second.bragg, float)
+    # Match each bottom vector to the nearest top vector (with sign).
+    matched = []
+    for g in g_bot:
+        d = [np.hypot(*(g - s * t)) for t in g_top for s in (1, -1)]
+        m = int(np.argmin(d))
+        matched.append((1, -1)[m % 2] * g_top[m // 2])
+    matched = np.array(matched)
+    k = g_bot - matched  # K = G_layer1 - G_layer2 (domains.moire convention)
+    info = {}
+    try:
+        res = twist_strain_from_wavevectors(k, g_bot)
+        info = {"twist_deg": abs(res.theta_deg), "heterostrain_percent": abs(res.strain_percent),
+                "heterostrain_angle_deg": res.strain_angle_deg}
+    except InputError as err:
+        info = {"note": f"twist from the Bragg peaks failed: {err}"}
+    info["mismatch"] = float(np.mean(np.hypot(*g_bot.T)) / np.mean(np.hypot(*g_top.T)) - 1)
+    info["k_rad_per_nm"] = k.tolist()
+    # Prefer the measured moiré peaks where they match k (sharper than a Bragg difference).
+    moire_q = k.copy()
+    for j, kj in enumerate(k):
+        for c in moire_cands:
+            for s in (1, -1):
+                if np.hypot(*(s * c - kj)) < max(2 * bin_q, 0.15 * np.hypot(*kj)):
+                    moire_q[j] = s * c
+    return info, moire_q
+
+
+def _read_unresolved(image, pixel, mask, lattice_reading, peaks, reasons, leakage, false_alarm, given_q,
+                     anisotropy_threshold):
+    """No atomic lattice: a low-|q| triplet is a moiré (or an order of unknown lattice)."""
+    from .fourier import _canonical
+
+    qset = lattice_reading.unresolved_set_q
+    bin_q = _bin(image.shape, pixel)
+    moire_q = None
+    if qset is not None and len(qset) == 3:
+        moire_q = _moire_triplet(np.asarray(qset), bin_q)
+    kind = "moire" if moire_q is not None else "none"
+    if moire_q is not None:
+        reasons.append("a hexagonal set of peaks with no atomic lattice beneath: read as a moiré (or a superlattice "
+                       "of unresolved atoms: give a_nm to index it)")
+    final = []
+    for p in peaks:
+        role = "unindexed"
+        if moire_q is not None and any(min(np.hypot(*(p.q - qq)), np.hypot(*(p.q + qq))) <= 2 * bin_q for qq in moire_q):
+            role = "moire"
+        final.append(replace(p, q=_canonical(p.q), role=role))
+    return OrderResult(kind, lattice_reading, (), False, moire_q, None, tuple(final), tuple(reasons), None)
+
+
+def slow_axis_drift_fit(bragg, kind="hexagonal"):
+    """Lattice constant and orientation of a regular lattice seen through a drift along the slow scan axis.
+
+    Thermal drift and creep accumulate with time, that is with the scan row: the image
+    is r_img = D r with D = [[1, s], [0, 1 + e]] (a shear s and a stretch e per unit of
+    y). Bragg vectors transform as G_img = D^-T G, so G = D^T G_img; s and e are the
+    values that make the three (or two) Bragg vectors regular again (equal lengths),
+    which fixes a and the orientation without knowing the drift (derived).
+
+    Parameters
+    ----------
+    bragg : (3, 2) or (2, 2) array_like
+        Measured Bragg vectors (qx, qy), rad/nm; hexagonal triplets sum to zero.
+    kind : {"hexagonal", "square"}
+
+    Returns
+    -------
+    a_nm : float
+    angle_deg : float
+        Direction of the first real-space lattice vector (hexagonal: in [-30, 30)).
+    shear, stretch : float
+        s and e of D.
+
+    References
+    ----------
+    .. [1] M. J. Lawler et al., Nature 466, 347 (2010). doi:10.1038/nature09169
+
+    Examples
+    --------
+    >>> from domains._lattice import bragg_vectors
+    >>> g = bragg_vectors("hexagonal", 0.336, 7.0)
+    >>> D = np.array([[1, 0.01], [0, 1.012]])
+    >>> a, ang, s, e = slow_axis_drift_fit(g @ np.linalg.inv(D))   # G_img = D^-T G
+    >>> round(a, 6), round(ang, 4), round(s, 5), round(e, 5)
+    (0.336, 7.0, 0.01, 0.012)
+    """
+    from scipy.optimize import least_squares
+
+    g = np.asarray(bragg, float)
+    if kind == "hexagonal" and len(g) == 2:
+        g = np.vstack([g, -(g[0] + g[1])])
+
+    def true(params):
+        sh, st = params
+        dt = np.array([[1.0, 0.0], [sh, 1.0 + st]])
+        return g @ dt.T
+
+    def resid(params):
+        v = true(params)
+        lengths = np.hypot(*v.T)
+        out = list(lengths[1:] / lengths[0] - 1)
+        if kind == "square":
+            out.append(v[0] @ v[1] / (lengths[0] * lengths[1]))
+        return out
+
+    sol = least_squares(resid, [0.0, 0.0], xtol=1e-14, ftol=1e-14)
+    sh, st = (float(v) for v in sol.x)
+    v = true(sol.x)
+    glen = float(np.mean(np.hypot(*v.T)))
+    if kind == "hexagonal":
+        a_nm = 4 * math.pi / (math.sqrt(3) * glen)
+        b_ang = np.degrees(np.arctan2(v[:, 1], v[:, 0]))
+        mean_b = math.degrees(np.angle(np.mean(np.exp(6j * np.radians(b_ang)))) / 6)
+        angle = (mean_b + 30.0 + 30.0) % 60.0 - 30.0
+    else:
+        a_nm = 2 * math.pi / glen
+        b_ang = np.degrees(np.arctan2(v[:, 1], v[:, 0]))
+        mean_b = math.degrees(np.angle(np.mean(np.exp(4j * np.radians(b_ang)))) / 4)
+        angle = (mean_b + 45.0) % 90.0 - 45.0
+    return float(a_nm), float(angle), sh, st
