@@ -45,10 +45,10 @@ bench: $(STAMP)
 
 # The wheel a user gets: built from the sources, installed into a fresh venv in a folder outside the
 # source tree (so nothing is imported from here), then `domains --version` and `domains demo` run there.
-wheel-check: $(STAMP)
+wheel-check:
 	@set -e; work=$$(mktemp -d); trap 'rm -rf "$$work"' EXIT; \
-	$(PY) -m pip wheel --quiet --no-deps --wheel-dir "$$work/dist" . ; \
-	$(PY) -c "import sys, zipfile; names = zipfile.ZipFile(sys.argv[1]).namelist(); \
+	$(PYTHON) -m pip wheel --quiet --no-deps --wheel-dir "$$work/dist" . ; \
+	$(PYTHON) -c "import sys, zipfile; names = zipfile.ZipFile(sys.argv[1]).namelist(); \
 	need = ['domains/synth/__init__.py', 'napari_plugin/_qt/__init__.py', 'napari_plugin/napari.yaml']; \
 	missing = [n for n in need if n not in names]; print(len(names), 'files in the wheel'); \
 	sys.exit('missing from the wheel: ' + ', '.join(missing) if missing else 0)" "$$work"/dist/*.whl; \

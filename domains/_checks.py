@@ -345,3 +345,110 @@ def config_for_image(config, shape, pixel_size_nm, where="configuration"):
             raise InputError(f"{where}: lattice a_nm = {config.lattice['a_nm']:g} nm is not resolved with "
                              f"{max(dy, dx):g} nm pixels: {err}") from None
     return config
+
+
+# --------------------------------------------------------------------------- inputs of one analysis
+
+#: Smallest image side (pixels) an analysis accepts: a spectrum and a lock-in need several periods
+#: and a trusted interior away from the frame (common practice, no source).
+MIN_SIDE_PIXELS = 32
+
+#: Smallest fraction of usable pixels (finite and not masked) an analysis accepts.
+MIN_USABLE_FRACTION = 0.5
+
+
+def usable_image(scan, *, role="image"):
+    """Raise an InputError naming the file if an image is too small or mostly unusable.
+
+    Parameters
+    ----------
+    scan : Scan
+        A 2-D image or a 3-D grid (its image shape is checked).
+    role : str
+        What the scan is, for the message ("topograph", "map", "grid").
+
+    Returns
+    -------
+    Scan
+        The same scan.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from domains import Scan
+    >>> usable_image(Scan(np.zeros((16, 16)), pixel_size_nm=0.05, source="tiny.npy"))
+    Traceback (most recent call last):
+    ...
+    domains._errors.InputError: tiny.npy: the image is 16 x 16 pixels; an analysis needs at least 32 x 32
+    """
+    rows, cols = scan.shape[-2:]
+    if min(rows, cols) < MIN_SIDE_PIXELS:
+        raise InputError(f"{scan.source}: the {role} is {rows} x {cols} pixels; an analysis needs at least "
+                         f"{MIN_SIDE_PIXELS} x {MIN_SIDE_PIXELS}")
+    if scan.mask is not None:
+        usable = 1.0 - float(np.mean(scan.mask))
+        if usable < MIN_USABLE_FRACTION:
+            raise InputError(f"{scan.source}: only {100 * usable:.0f}% of the {role}'s pixels are usable "
+                             f"(the rest are NaN, inf or masked); at least {100 * MIN_USABLE_FRACTION:.0f}% must be")
+    return scan
+
+
+def scans_for_analysis(topography, maps=(), grid=None):
+    """Check that a topograph, its maps and its grid can be analysed together; raise InputError if not.
+
+    Everything here is read from shapes, pixel sizes and sidecar values: no computation.
+    The topograph is a 2-D image large enough to analyse; each map is a 2-D image of the
+    same shape and pixel size with a bias of its own; the grid is 3-D with slices of
+    the topograph's shape and pixel size.
+
+    Parameters
+    ----------
+    topography : Scan
+    maps : sequence of Scan
+    grid : Scan, optional
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from domains import Scan
+    >>> topo = Scan(np.zeros((32, 32)), pixel_size_nm=0.05, source="t.npy")
+    >>> maps = [Scan(np.zeros((32, 32)), pixel_size_nm=0.05, bias_V=0.2, source=n) for n in ("a.npy", "b.npy")]
+    >>> scans_for_analysis(topo, maps)
+    Traceback (most recent call last):
+    ...
+    domains._errors.InputError: b.npy: bias_V = 0.2 V is also the bias of a.npy; each map needs a bias of its own
+    """
+    if topography.is_grid:
+        raise InputError(f"{topography.source}: the topograph must be a 2-D image, got a 3-D array "
+                         f"{tuple(topography.shape)}; give grids with --grid")
+    usable_image(topography, role="topograph")
+    seen = {}
+    for m in maps:
+        if m.is_grid:
+            raise InputError(f"{m.source}: a map must be a 2-D image, got shape {tuple(m.shape)}; give grids with --grid")
+        if m.shape != topography.shape:
+            raise InputError(f"{m.source}: shape {m.shape} differs from the topograph's {topography.shape}")
+        if not np.allclose(m.pixel_size_nm, topography.pixel_size_nm, rtol=1e-6):
+            raise InputError(f"{m.source}: pixel size {m.pixel_size_nm} nm differs from the topograph's "
+                             f"{topography.pixel_size_nm} nm")
+        if m.bias_V is None:
+            raise InputError(f"{m.source}: the map has no bias; give bias_V in its sidecar")
+        if m.bias_V in seen:
+            raise InputError(f"{m.source}: bias_V = {m.bias_V:g} V is also the bias of {seen[m.bias_V]}; "
+                             "each map needs a bias of its own")
+        seen[m.bias_V] = m.source
+        usable_image(m, role="map")
+    if grid is not None:
+        if not grid.is_grid:
+            raise InputError(f"{grid.source}: --grid needs a 3-D array (energy, row, col), got shape {tuple(grid.shape)}")
+        if tuple(grid.shape[1:]) != tuple(topography.shape):
+            raise InputError(f"{grid.source}: grid slices {tuple(grid.shape[1:])} differ from the topograph's "
+                             f"{tuple(topography.shape)}")
+        if not np.allclose(grid.pixel_size_nm, topography.pixel_size_nm, rtol=1e-6):
+            raise InputError(f"{grid.source}: pixel size {grid.pixel_size_nm} nm differs from the topograph's "
+                             f"{topography.pixel_size_nm} nm")
+        energies = np.asarray(grid.energies_V, float)
+        if len(np.unique(energies)) != len(energies):
+            raise InputError(f"{grid.source}: energies_V repeats a bias; each slice needs its own, "
+                             f"got {energies.tolist()}")
+        usable_image(grid, role="grid")
