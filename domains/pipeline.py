@@ -791,20 +791,23 @@ def write_scene(kind, out, *, seed=7, overwrite=False):
 
     from .io import check_output_location
 
-    sc = make_scene(kind, seed=seed)
     out = Path(out)
     if out.exists() and not out.is_dir():
         raise InputError(f"--out {out}: exists and is not a folder")
     if not out.exists():
         check_output_location(out)
-    names = ["topography"] + [f"map_{m.bias_V:+.2f}V" for m in sc.maps]
-    targets = [out / f"{n}{ext}" for n in names for ext in (".npy", ".json", ".mask.npy")]
     truth = out / "truth.json"
     labels = out / "truth_labels.npy"
-    if not overwrite:
-        for path in targets + [truth, labels]:
-            if path.exists() or path.is_symlink():
+
+    def refuse_existing(paths):
+        for path in paths:
+            if not overwrite and (path.exists() or path.is_symlink()):
                 raise InputError(f"--out {out}: {path.name} exists; give --overwrite to replace the scene's files")
+
+    refuse_existing([out / "topography.npy", out / "topography.json", truth, labels])  # before the work
+    sc = make_scene(kind, seed=seed)
+    names = [f"map_{m.bias_V:+.2f}V" for m in sc.maps] + ["topography"]
+    refuse_existing([out / f"{n}{ext}" for n in names for ext in (".npy", ".json", ".mask.npy")])
     out.mkdir(parents=True, exist_ok=True)
     written = [save_scan(sc.topography, out / "topography.npy", overwrite=overwrite)]
     for m in sc.maps:
