@@ -103,14 +103,14 @@ def _read_sidecar(where: str, file: Path) -> tuple[dict, Path | None]:
     if not sidecar.exists():
         return {}, None
     if sidecar.is_dir():
-        raise InputError(f"{where}: its sidecar {sidecar} is a folder; expected a JSON file")
+        raise InputError(f"{where}: its sidecar {sidecar.name} is a folder; expected a JSON file")
     try:
         content = json.loads(sidecar.read_text(encoding="utf-8"), parse_constant=_no_constant)
     except (OSError, UnicodeDecodeError, json.JSONDecodeError, ValueError) as err:
         raise InputError(f"{where}: cannot read its sidecar {sidecar}: {' '.join(str(err).split())}") from None
     if not isinstance(content, dict):
         raise InputError(f"{where}: its sidecar {sidecar} must hold a JSON object, got {type(content).__name__}")
-    _check_sidecar(content, sidecar)
+    _check_sidecar(content, sidecar, where)
     return content, sidecar
 
 
@@ -118,23 +118,24 @@ def _no_constant(name):
     raise ValueError(f"{name} is not a number JSON allows; expected a finite number")
 
 
-def _check_sidecar(content: dict, sidecar: Path):
-    """Each known sidecar key holds what it should; the message names the sidecar, the key and the value."""
+def _check_sidecar(content: dict, sidecar: Path, where: str):
+    """Each known sidecar key holds what it should; the message names the image, the sidecar, the key and the value."""
+    side = f"{where}: its sidecar {sidecar.name}:"
     if "pixel_size_nm" in content and content["pixel_size_nm"] is not None:
-        pixel_size_pair(content["pixel_size_nm"], name=f"{sidecar}: pixel_size_nm")
+        pixel_size_pair(content["pixel_size_nm"], name=f"{side} pixel_size_nm")
     if "channel" in content and content["channel"] is not None and content["channel"] not in CHANNELS:
-        raise InputError(f"{sidecar}: channel must be one of {', '.join(CHANNELS)}, got {content['channel']!r}")
+        raise InputError(f"{side} channel must be one of {', '.join(CHANNELS)}, got {content['channel']!r}")
     for key in ("bias_V", "setpoint_A"):
         value = content.get(key)
         if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))
                                   or not math.isfinite(value)):
-            raise InputError(f"{sidecar}: {key} must be a finite number, got {value!r}")
+            raise InputError(f"{side} {key} must be a finite number, got {value!r}")
     energies = content.get("energies_V")
     if energies is not None and (not isinstance(energies, list) or not energies or not all(
             isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in energies)):
-        raise InputError(f"{sidecar}: energies_V must be a list of finite numbers (V), one per slice, got {energies!r}")
+        raise InputError(f"{side} energies_V must be a list of finite numbers (V), one per slice, got {energies!r}")
     if energies is not None and len(set(energies)) != len(energies):
-        raise InputError(f"{sidecar}: energies_V repeats a bias; each slice needs its own, got {energies!r}")
+        raise InputError(f"{side} energies_V repeats a bias; each slice needs its own, got {energies!r}")
 
 
 def _read_mask_file(where: str, sidecar: Path, relative) -> np.ndarray:
