@@ -224,3 +224,23 @@ def test_debug_is_accepted_anywhere(tmp_path, capsys):
         assert "Traceback" in err and err.strip().splitlines()[-1].startswith("domains peaks: error:")  # (idem)
     assert main(["peaks", missing]) == 2
     assert "Traceback" not in capsys.readouterr().err  # without --debug, one line (common practice, no source)
+
+
+def test_an_error_is_printed_after_the_progress_bar_is_closed(capsys):
+    from tqdm import tqdm
+
+    from domains import cli
+
+    bar = tqdm(total=9, desc="domains", file=sys.stderr, leave=False)
+    bar.update(2)
+    cli._say("domains analyze: error: x.npy: something")
+    err = capsys.readouterr().err
+    # the bar is gone and the message sits alone on the last line (common practice, no source)
+    assert bar not in getattr(tqdm, "_instances", set())
+    assert err.replace("\r", "\n").splitlines()[-1] == "domains analyze: error: x.npy: something"
+
+
+def test_usage_errors_are_one_line(capsys):
+    assert main(["analyze", "topo.npy", "--pixel-size", "abc"]) == 2
+    lines = capsys.readouterr().err.strip().splitlines()
+    assert len(lines) == 1 and "--pixel-size" in lines[0]  # one line naming the option (common practice)
