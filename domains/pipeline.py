@@ -728,7 +728,14 @@ def analyze_files(topo, *, maps=(), grid=None, pixel_size_nm=None, config=None, 
         with output_lock(out) as stale:
             _log_notes(stale)
             out = check_output_location(out, overwrite=overwrite)  # again, now that no one else can write it
-            result = analyze(topography, maps=map_scans, grid=grid_scan, config=cfg, progress=progress)
+            try:
+                result = analyze(topography, maps=map_scans, grid=grid_scan, config=cfg, progress=progress)
+            except InputError as err:
+                # A problem found only during the analysis: say which input it concerns.
+                message = str(err)
+                if not any(str(name) in message for name in [topo, *maps, grid] if name):
+                    message = f"{topo}: {message} (found during the analysis; no bundle was written)"
+                raise InputError(message) from err
             inputs = [topo, *maps] + ([grid] if grid else [])
             return write_analysis(result, out, command_line=list(command_line), inputs=inputs, overwrite=overwrite)
     finally:
