@@ -986,7 +986,11 @@ def check_output_location(out_dir, *, overwrite=False, option="--out") -> Path:
     if target.name in ("", ".", ".."):
         raise InputError(f"{option} {out_dir}: give a folder name for the bundle, not {str(out_dir)!r}")
     if target.is_symlink() and not target.exists():
-        raise InputError(f"{option} {target}: a symbolic link that leads nowhere; expected a folder name")
+        try:
+            os.stat(target)
+        except OSError as err:
+            what = "a symbolic link loop" if err.errno == errno.ELOOP else "a symbolic link that leads nowhere"
+            raise InputError(f"{option} {target}: {what}; expected a folder name") from None
     if target.exists():
         if not target.is_dir():
             raise InputError(f"{option} {target}: exists and is not a folder; a bundle will not replace a file")

@@ -131,6 +131,8 @@ def load_config(path) -> Config:
     path = Path(path)
     if not path.is_file():
         what = "is a folder" if path.is_dir() else "not found"
+        if path.is_symlink() and not path.exists():
+            what = "is a symbolic link that leads nowhere (or a link loop)"
         raise InputError(f"{path}: configuration file {what}; expected a TOML file (--config)")
     try:
         data = tomllib.loads(path.read_text(encoding="utf-8"))

@@ -221,6 +221,18 @@ def _dangling_out(i, w):
     return w / "out"
 
 
+def _looping_out(i, w):
+    os.symlink(w / "out2", w / "out")
+    os.symlink(w / "out", w / "out2")
+    return w / "out"
+
+
+def _looping_config(i, w):
+    os.symlink(i / "b.toml", i / "a.toml")
+    os.symlink(i / "a.toml", i / "b.toml")
+    return ["analyze", str(npy(i, "topo.npy")), "--config", str(i / "a.toml")], "a.toml"
+
+
 def _default_out_exists(i, w):
     topo = npy(i, "scan7.npy")
     (w / "scan7-domains").mkdir()
@@ -373,6 +385,7 @@ CASES = {
     # configurations
     "config missing": lambda i, w: (["analyze", str(npy(i, "topo.npy")), "--config", str(i / "none.toml")], "none.toml"),
     "config is a folder": lambda i, w: ((i / "cfg.toml").mkdir(), ["analyze", str(npy(i, "topo.npy")), "--config", str(i / "cfg.toml")])[1:] + ("cfg.toml",),
+    "config a link loop": _looping_config,
     "config not TOML": lambda i, w: topo_with_config(i, "sigma_nm = = 3\n"),
     "config unknown key": lambda i, w: topo_with_config(i, "sigma = 0.5\n"),
     "sigma as a string": lambda i, w: topo_with_config(i, 'sigma_nm = "0.5"\n'),
@@ -413,6 +426,7 @@ CASES = {
     "out in /sys": _out_case(lambda i, w: Path("/sys/domains-test-out"), "/sys"),
     "out is '.'": _out_case(lambda i, w: Path("."), "--out"),
     "out a dangling link": _out_case(_dangling_out, "--out"),
+    "out a link loop": _out_case(_looping_out, "link loop"),
     "default out exists": _default_out_exists,
     "demo out exists": _demo_existing,
     "demo out under a file": _demo_under_file,
