@@ -259,11 +259,25 @@ def _load_npz(where, file, inner):
         raise InputError(f"{where}: not a readable .npz archive ({err})") from None
 
 
+@contextlib.contextmanager
+def _quiet_logger(name):
+    """Silence a reader's own log lines: its complaint is reported in our one-line error instead."""
+    import logging
+
+    logger = logging.getLogger(name)
+    level = logger.level
+    logger.setLevel(logging.CRITICAL + 1)
+    try:
+        yield
+    finally:
+        logger.setLevel(level)
+
+
 def _load_tiff(where, file, lazy_threshold):
     import tifffile
 
     try:
-        with tifffile.TiffFile(file) as tif:
+        with _quiet_logger("tifffile"), tifffile.TiffFile(file) as tif:
             if not tif.series:
                 raise InputError(f"{where}: the TIFF file holds no image")
             if len(tif.series) > 1:

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import logging
 import os
 from pathlib import Path
 
@@ -464,7 +465,7 @@ def _listing(folder: Path) -> dict:
 
 
 @pytest.mark.parametrize("case", list(CASES))
-def test_bad_input_exits_2_with_one_line_naming_the_culprit(case, tmp_path, monkeypatch, capsys):
+def test_bad_input_exits_2_with_one_line_naming_the_culprit(case, tmp_path, monkeypatch, capsys, caplog):
     inputs, work = tmp_path / "in", tmp_path / "work"
     inputs.mkdir()
     work.mkdir()
@@ -486,6 +487,8 @@ def test_bad_input_exits_2_with_one_line_naming_the_culprit(case, tmp_path, monk
     assert captured.out == ""  # no result printed for a failed run (common practice, no source)
     assert _hashes(inputs) == before_inputs  # inputs are never modified (common practice, no source)
     assert _listing(work) == before_work  # no bundle, temporary folder or lock left behind (common practice, no source)
+    # A library's own log line would reach stderr as a second line outside pytest (common practice, no source)
+    assert [r.getMessage() for r in caplog.records if r.levelno >= logging.WARNING] == []
 
 
 def test_the_battery_is_large():
