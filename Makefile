@@ -4,17 +4,20 @@ VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test bench sysdeps clean help
+.PHONY: demo test bench sysdeps wheel-check clean help
 
 help:
 	@echo "make demo   - set up .venv, analyse the built-in synthetic scene, write demo-output/report.html"
 	@echo "make test   - set up .venv (and, as root, the system packages for headless napari), run all tests"
 	@echo "make bench  - run the benchmarks (ratios against a reference run in the same process)"
+	@echo "make wheel-check - build the wheel, install it in a clean venv away from the sources, run it"
 
-$(STAMP): pyproject.toml
+CONSTRAINTS := constraints.txt
+
+$(STAMP): pyproject.toml $(CONSTRAINTS)
 	$(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
-	$(PY) -m pip install --quiet -e ".[test,napari]"
+	$(PY) -m pip install --quiet -c $(CONSTRAINTS) -e ".[test,napari]"
 	touch $(STAMP)
 
 # System packages for a virtual display (Debian); installed only when missing and when we are root.
@@ -39,6 +42,24 @@ _pytest:
 
 bench: $(STAMP)
 	$(PY) benchmarks/run.py
+
+# The wheel a user gets: built from the sources, installed into a fresh venv in a folder outside the
+# source tree (so nothing is imported from here), then `domains --version` and `domains demo` run there.
+wheel-check:
+	@set -e; work=$$(mktemp -d); trap 'rm -rf "$$work"' EXIT; \
+	$(PYTHON) -m pip wheel --quiet --no-deps --wheel-dir "$$work/dist" . ; \
+	$(PYTHON) -c "import sys, zipfile; names = zipfile.ZipFile(sys.argv[1]).namelist(); \
+	need = ['domains/synth/__init__.py', 'napari_plugin/_qt/__init__.py', 'napari_plugin/napari.yaml']; \
+	missing = [n for n in need if n not in names]; print(len(names), 'files in the wheel'); \
+	sys.exit('missing from the wheel: ' + ', '.join(missing) if missing else 0)" "$$work"/dist/*.whl; \
+	$(PYTHON) -m venv "$$work/venv"; \
+	"$$work/venv/bin/python" -m pip install --quiet -c $(CURDIR)/$(CONSTRAINTS) "$$work"/dist/*.whl; \
+	cd "$$work"; \
+	venv/bin/python -c "import domains, sys; sys.exit(0 if '/site-packages/' in domains.__file__ else 'imported from ' + domains.__file__)"; \
+	venv/bin/domains --version; \
+	venv/bin/domains demo --out "$$work/demo" > "$$work/demo.log"; \
+	test -s "$$work/demo/report.html" && test -s "$$work/demo/summary.json" && test -d "$$work/demo/maps.zarr"; \
+	echo "wheel-check: the installed wheel ran the demo: $$(cat "$$work/demo.log")"
 
 clean:
 	rm -rf $(VENV) demo-output bench-output .pytest_cache

@@ -42,10 +42,22 @@ def pixel_size_pair(pixel_size_nm, *, name="pixel_size_nm") -> tuple[float, floa
     (0.05, 0.05)
     >>> pixel_size_pair((0.05, 0.04))
     (0.05, 0.04)
+    >>> pixel_size_pair("0.056 nm")
+    Traceback (most recent call last):
+    ...
+    domains._errors.InputError: pixel_size_nm must be one number or a (row, col) pair of numbers in nm, got '0.056 nm'
     """
-    values = np.atleast_1d(np.asarray(pixel_size_nm, dtype=float)) if pixel_size_nm is not None else None
-    if values is None or values.ndim != 1 or values.size not in (1, 2):
-        raise InputError(f"{name} must be one number or a (row, col) pair in nm, got {pixel_size_nm!r}")
+    expected = f"{name} must be one number or a (row, col) pair of numbers in nm, got {pixel_size_nm!r}"
+    items = pixel_size_nm if isinstance(pixel_size_nm, (list, tuple, np.ndarray)) else [pixel_size_nm]
+    # Strings ("0.056 nm", "abc") and booleans (JSON true) are not sizes, even where numpy would convert them.
+    if any(isinstance(v, (str, bytes, bool, np.bool_)) or v is None for v in np.ravel(np.asarray(items, dtype=object))):
+        raise InputError(expected)
+    try:
+        values = np.atleast_1d(np.asarray(pixel_size_nm, dtype=float))
+    except (TypeError, ValueError):
+        raise InputError(expected) from None
+    if values.ndim != 1 or values.size not in (1, 2):
+        raise InputError(expected)
     if not np.all(np.isfinite(values)) or np.any(values <= 0):
         raise InputError(f"{name} must be finite and positive (nm), got {pixel_size_nm!r}")
     if values.size == 1:
@@ -128,7 +140,12 @@ class Scan:
         if self.data.ndim == 3:
             if self.energies_V is None:
                 raise InputError(f"{where}: a 3-D grid needs energies_V, one bias per slice")
-            energies = np.asarray(self.energies_V, dtype=float)
+            try:
+                if any(isinstance(v, (str, bytes, bool)) for v in np.ravel(np.asarray(self.energies_V, dtype=object))):
+                    raise ValueError
+                energies = np.asarray(self.energies_V, dtype=float)
+            except (TypeError, ValueError):
+                energies = np.full(1, np.nan)  # reported below with the value received
             if energies.shape != (self.data.shape[0],) or not np.all(np.isfinite(energies)):
                 raise InputError(
                     f"{where}: energies_V must hold {self.data.shape[0]} finite values (one per slice), "
@@ -173,6 +190,8 @@ class Scan:
 
 
 def _finite(value, name, where) -> float:
+    if isinstance(value, (str, bytes, bool, np.bool_)):
+        raise InputError(f"{where}: {name} must be a number, got {value!r}")
     try:
         value = float(value)
     except (TypeError, ValueError):

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import signal
 import sys
 import traceback
 from pathlib import Path
@@ -13,17 +14,38 @@ from ._errors import InputError
 SCENES = ("cdw", "cdw2x2", "stripes", "moire", "plain")
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse with usage errors on one line (exit 2), like every other input error."""
+
+    def error(self, message):
+        self.exit(2, f"{self.prog}: error: {' '.join(message.split())} (see {self.prog} --help)\n")
+
+
+def _pixel_size(text):
+    from ._checks import number
+
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a pixel size in nm (a positive number), got {text!r}") from None
+    try:
+        return number(value, "--pixel-size", low=0, where="--pixel-size")
+    except InputError:
+        raise argparse.ArgumentTypeError(f"expected a positive, finite pixel size in nm, got {text!r}") from None
+
+
 def _parser() -> argparse.ArgumentParser:
     from . import __version__
 
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="domains",
         description="Domains, walls, drift, twist angle and bias contrast of periodic electronic order "
         "in STM topographs, dI/dV maps and spectroscopic grids.",
     )
     parser.add_argument("--version", action="version", version=f"%(prog)s {__version__}")
-    parser.add_argument("--debug", action="store_true", help="show the full traceback of any error")
-    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    parser.add_argument("--debug", action="store_true",
+                        help="show the full traceback of any error (accepted anywhere on the line)")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND", parser_class=_Parser)
 
     demo = sub.add_parser("demo", help="analyse a built-in synthetic scene and write a report")
     demo.add_argument("--out", type=Path, default=Path("demo-output"), help="bundle folder (default: demo-output)")
@@ -37,7 +59,8 @@ def _parser() -> argparse.ArgumentParser:
     analyze.add_argument("--map", dest="maps", action="append", default=[], metavar="FILE",
                          help="conductance map at one bias (repeat for several biases)")
     analyze.add_argument("--grid", metavar="FILE", help="spectroscopic grid (energy, row, col) with energies_V")
-    analyze.add_argument("--pixel-size", type=float, metavar="NM", help="pixel size in nm (overrides the sidecar)")
+    analyze.add_argument("--pixel-size", type=_pixel_size, metavar="NM",
+                         help="pixel size in nm (overrides the sidecar)")
     analyze.add_argument("--config", type=Path, metavar="FILE.toml", help="analysis parameters")
     analyze.add_argument("--out", type=Path, default=None, metavar="DIR",
                          help="bundle folder (default: TOPO's name + '-domains')")
@@ -46,7 +69,8 @@ def _parser() -> argparse.ArgumentParser:
 
     peaks = sub.add_parser("peaks", help="the indexed peak table of an image")
     peaks.add_argument("file", metavar="FILE")
-    peaks.add_argument("--pixel-size", type=float, metavar="NM", help="pixel size in nm (overrides the sidecar)")
+    peaks.add_argument("--pixel-size", type=_pixel_size, metavar="NM",
+                       help="pixel size in nm (overrides the sidecar)")
     peaks.add_argument("--json", action="store_true", help="print JSON instead of a table")
 
     scene = sub.add_parser("scene", help="write a synthetic scene (input files + truth) for trying the tool")
@@ -79,9 +103,12 @@ def _peaks(args, command_line):
     from .io import json_safe, load_scan
     from .pipeline import find_order
 
+    from ._checks import usable_image
+
     scan = load_scan(args.file, pixel_size_nm=args.pixel_size)
     if scan.is_grid:
         raise InputError(f"{args.file}: 'peaks' takes a 2-D image; this is a 3-D grid")
+    usable_image(scan)
     if scan.is_lazy:
         scan = scan.with_data(scan.data.compute())
     found = find_order(scan)
@@ -105,8 +132,30 @@ def _scene(args, command_line):
         print(path)
 
 
+def _close_progress_bars():
+    """Close any progress bar still drawn, so that a message starts on a line of its own."""
+    try:
+        from tqdm import tqdm
+    except ImportError:  # pragma: no cover - tqdm is a dependency
+        return
+    for bar in list(getattr(tqdm, "_instances", ())):
+        try:
+            bar.close()
+        except Exception:  # noqa: BLE001 - a broken bar must not hide the message
+            pass
+
+
+def _say(text):
+    _close_progress_bars()
+    sys.stderr.flush()
+    print(" ".join(str(text).split()), file=sys.stderr, flush=True)
+
+
 def main(argv=None) -> int:
-    """Run the command line; returns the exit status (0 ok, 2 bad input or usage, 1 internal error).
+    """Run the command line; returns the exit status (0 ok, 2 bad input or usage, 1 internal error, 130 Ctrl-C).
+
+    ``--debug`` (anywhere on the line) prints the full traceback of an error.
+    Every error is one line on stderr naming the file or option.
 
     Parameters
     ----------
@@ -123,29 +172,43 @@ def main(argv=None) -> int:
     >>> main(["scene", "nonsense", "--out", "x"])  # argparse explains on stderr
     2
     """
+    try:
+        return _main(argv)
+    except KeyboardInterrupt:
+        signal.signal(signal.SIGINT, signal.SIG_IGN)  # a second Ctrl-C must not interrupt the message
+        _say("domains: interrupted (Ctrl-C); no bundle was written or replaced")
+        return 130
+
+
+def _main(argv) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
+    # --debug is accepted anywhere on the line (before "--", after which everything is a name).
+    end = argv.index("--") if "--" in argv else len(argv)
+    debug = "--debug" in argv[:end]
+    argv = [a for a in argv[:end] if a != "--debug"] + argv[end:]
     parser = _parser()
     try:
         args = parser.parse_args(argv)
     except SystemExit as stop:  # argparse exits 2 on usage errors, 0 on --help/--version
         return int(stop.code or 0)
-    command_line = ["domains"] + argv
+    command_line = ["domains"] + argv + (["--debug"] if debug else [])
     handlers = {"demo": _demo, "analyze": _analyze, "peaks": _peaks, "scene": _scene}
     try:
         handlers[args.command](args, command_line)
     except InputError as err:
-        if args.debug:
+        if debug:
+            _close_progress_bars()
             traceback.print_exc()
-        print(f"domains {args.command}: error: {err}", file=sys.stderr)
+        _say(f"domains {args.command}: error: {err}")
         return 2
     except KeyboardInterrupt:
-        print("domains: interrupted", file=sys.stderr)
-        return 130
+        raise
     except Exception as err:  # noqa: BLE001 - the last line of defence: say what happened, exit 1
-        if args.debug:
+        if debug:
+            _close_progress_bars()
             traceback.print_exc()
-        print(f"domains {args.command}: internal error: {type(err).__name__}: {err} "
-              "(run again with --debug for the traceback, and please report it)", file=sys.stderr)
+        _say(f"domains {args.command}: internal error: {type(err).__name__}: {err} "
+             "(run again with --debug for the traceback, and please report it)")
         return 1
     return 0
 

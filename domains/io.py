@@ -13,8 +13,10 @@ it is complete.
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import dataclasses
+import errno
 import datetime as _dt
 import hashlib
 import json
@@ -24,6 +26,8 @@ import platform
 import re
 import secrets
 import shutil
+import stat
+import time
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from importlib.metadata import PackageNotFoundError, version
@@ -33,7 +37,7 @@ from typing import Any
 import numpy as np
 
 from ._errors import InputError
-from ._scan import Scan, _is_dask, pixel_size_pair
+from ._scan import CHANNELS, Scan, _is_dask, pixel_size_pair
 
 #: Arrays whose size in memory (uncompressed) exceeds this many bytes are opened
 #: lazily (memory map or chunked reads through dask) instead of being read whole.
@@ -73,6 +77,23 @@ def _split_path(path) -> tuple[Path, str | None]:
     return Path(text), None
 
 
+def _check_exists(where: str, file: Path):
+    """An InputError that says why ``file`` cannot be reached: missing, a symlink loop, a dangling link."""
+    try:
+        os.stat(file)
+        return
+    except OSError as err:
+        if err.errno == errno.ELOOP:
+            raise InputError(f"{where}: a symbolic link loop (the links point at each other); expected a file") from None
+        if os.path.islink(file):
+            raise InputError(f"{where}: a symbolic link to {os.readlink(file)!r}, which does not exist") from None
+        if err.errno == errno.ENOTDIR:
+            raise InputError(f"{where}: no such file (a part of the path is a file, not a folder)") from None
+        if err.errno in (errno.EACCES, errno.EPERM):
+            raise InputError(f"{where}: cannot be reached ({err.strerror})") from None
+        raise InputError(f"{where}: no such file") from None
+
+
 def _sidecar_path(file: Path) -> Path:
     return file.with_suffix(".json")
 
@@ -81,13 +102,40 @@ def _read_sidecar(where: str, file: Path) -> tuple[dict, Path | None]:
     sidecar = _sidecar_path(file)
     if not sidecar.exists():
         return {}, None
+    if sidecar.is_dir():
+        raise InputError(f"{where}: its sidecar {sidecar.name} is a folder; expected a JSON file")
     try:
-        content = json.loads(sidecar.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as err:
-        raise InputError(f"{where}: cannot read its sidecar {sidecar}: {err}") from None
+        content = json.loads(sidecar.read_text(encoding="utf-8"), parse_constant=_no_constant)
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError, ValueError) as err:
+        raise InputError(f"{where}: cannot read its sidecar {sidecar}: {' '.join(str(err).split())}") from None
     if not isinstance(content, dict):
         raise InputError(f"{where}: its sidecar {sidecar} must hold a JSON object, got {type(content).__name__}")
+    _check_sidecar(content, sidecar, where)
     return content, sidecar
+
+
+def _no_constant(name):
+    raise ValueError(f"{name} is not a number JSON allows; expected a finite number")
+
+
+def _check_sidecar(content: dict, sidecar: Path, where: str):
+    """Each known sidecar key holds what it should; the message names the image, the sidecar, the key and the value."""
+    side = f"{where}: its sidecar {sidecar.name}:"
+    if "pixel_size_nm" in content and content["pixel_size_nm"] is not None:
+        pixel_size_pair(content["pixel_size_nm"], name=f"{side} pixel_size_nm")
+    if "channel" in content and content["channel"] is not None and content["channel"] not in CHANNELS:
+        raise InputError(f"{side} channel must be one of {', '.join(CHANNELS)}, got {content['channel']!r}")
+    for key in ("bias_V", "setpoint_A"):
+        value = content.get(key)
+        if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))
+                                  or not math.isfinite(value)):
+            raise InputError(f"{side} {key} must be a finite number, got {value!r}")
+    energies = content.get("energies_V")
+    if energies is not None and (not isinstance(energies, list) or not energies or not all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in energies)):
+        raise InputError(f"{side} energies_V must be a list of finite numbers (V), one per slice, got {energies!r}")
+    if energies is not None and len(set(energies)) != len(energies):
+        raise InputError(f"{side} energies_V repeats a bias; each slice needs its own, got {energies!r}")
 
 
 def _read_mask_file(where: str, sidecar: Path, relative) -> np.ndarray:
@@ -97,7 +145,8 @@ def _read_mask_file(where: str, sidecar: Path, relative) -> np.ndarray:
     try:
         mask = np.load(mask_path, allow_pickle=False)
     except (OSError, ValueError, EOFError) as err:
-        raise InputError(f"{where}: cannot read the mask file {mask_path} named in {sidecar}: {err}") from None
+        raise InputError(f"{where}: cannot read the mask file {mask_path} named in {sidecar}: "
+                         f"{' '.join(str(err).split())}") from None
     if not isinstance(mask, np.ndarray):
         raise InputError(f"{where}: mask file {mask_path} must hold one array, not an archive")
     if mask.dtype.kind != "b":
@@ -210,13 +259,33 @@ def _load_npz(where, file, inner):
         raise InputError(f"{where}: not a readable .npz archive ({err})") from None
 
 
+@contextlib.contextmanager
+def _quiet_logger(name):
+    """Silence a reader's own log lines: its complaint is reported in our one-line error instead."""
+    import logging
+
+    logger = logging.getLogger(name)
+    level = logger.level
+    logger.setLevel(logging.CRITICAL + 1)
+    try:
+        yield
+    finally:
+        logger.setLevel(level)
+
+
 def _load_tiff(where, file, lazy_threshold):
     import tifffile
 
     try:
-        with tifffile.TiffFile(file) as tif:
+        with _quiet_logger("tifffile"), tifffile.TiffFile(file) as tif:
             if not tif.series:
                 raise InputError(f"{where}: the TIFF file holds no image")
+            if len(tif.series) > 1:
+                shapes = ", ".join("x".join(map(str, s.shape)) for s in tif.series[:6])
+                raise InputError(
+                    f"{where}: the TIFF holds {len(tif.series)} images of different sizes ({shapes}); "
+                    "expected one image or a stack of equal pages; save the page to analyse as its own file"
+                )
             series = tif.series[0]
             axes, shape, dtype = series.axes, series.shape, series.dtype
             if "S" in axes:
@@ -405,13 +474,19 @@ def load_scan(
             f"{where}: unknown file type {suffix or '(no extension)'!r}; "
             "expected .npy, .npz, .tif, .tiff, .h5, .hdf5, .zarr, .txt or .csv"
         )
-    if not file.exists():
-        raise InputError(f"{where}: no such file")
+    _check_exists(where, file)
     if kind != "zarr":
         if file.is_dir():
             raise InputError(f"{where}: is a directory, expected a file")
+        if not stat.S_ISREG(file.stat().st_mode):
+            raise InputError(f"{where}: not a regular file (a pipe, socket or device); expected a {suffix} file")
         if file.stat().st_size == 0:
             raise InputError(f"{where}: the file is empty")
+        try:
+            with open(file, "rb"):
+                pass
+        except OSError as err:
+            raise InputError(f"{where}: cannot be read ({err.strerror})") from None
     if inner is not None and kind not in ("npz", "hdf5", "zarr"):
         raise InputError(f"{where}: ':{inner}' names an array inside a container, but a {suffix} file holds one")
 
@@ -884,6 +959,235 @@ def _write_table(file: Path, name: str, table):
             writer.writerow({key: _csv_value(value) for key, value in row.items()})
 
 
+def check_output_location(out_dir, *, overwrite=False, option="--out") -> Path:
+    """Check, before any work, that a bundle can be written at ``out_dir``; raise InputError if not.
+
+    The folder must have a name; if it exists it must be a folder and ``overwrite``
+    must be set; the nearest existing parent must be a folder (not a file) in
+    which a folder can be created (probed by creating and removing a hidden one).
+    Nothing is left behind.
+
+    Parameters
+    ----------
+    out_dir : str or path-like
+        The bundle folder.
+    overwrite : bool
+        Whether an existing bundle may be replaced.
+    option : str
+        The command-line option named in messages.
+
+    Returns
+    -------
+    pathlib.Path
+
+    Raises
+    ------
+    InputError
+        Naming ``option``, the path received and what is expected.
+
+    Examples
+    --------
+    >>> import pathlib, tempfile
+    >>> folder = pathlib.Path(tempfile.mkdtemp())
+    >>> check_output_location(folder / "new" / "bundle") == folder / "new" / "bundle"
+    True
+    >>> check_output_location(folder)  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    ...
+    domains._errors.InputError: --out ...: already exists; give --overwrite to replace it, or choose another folder
+    """
+    target = Path(out_dir)
+    if target.name in ("", ".", ".."):
+        raise InputError(f"{option} {out_dir}: give a folder name for the bundle, not {str(out_dir)!r}")
+    if target.is_symlink() and not target.exists():
+        try:
+            os.stat(target)
+        except OSError as err:
+            what = "a symbolic link loop" if err.errno == errno.ELOOP else "a symbolic link that leads nowhere"
+            raise InputError(f"{option} {target}: {what}; expected a folder name") from None
+    if target.exists():
+        if not target.is_dir():
+            raise InputError(f"{option} {target}: exists and is not a folder; a bundle will not replace a file")
+        if not overwrite:
+            raise InputError(f"{option} {target}: already exists; give --overwrite to replace it, "
+                             "or choose another folder")
+    ancestor = target.parent
+    while True:
+        try:
+            os.stat(ancestor)
+            break
+        except OSError as err:
+            if err.errno in (errno.ENOTDIR, errno.ELOOP):
+                raise InputError(f"{option} {target}: a part of the path above it is a file or a link loop, "
+                                 "not a folder") from None
+            if ancestor == ancestor.parent:
+                break
+            ancestor = ancestor.parent
+    if not ancestor.is_dir():
+        raise InputError(f"{option} {target}: {ancestor} is a file, not a folder; the bundle needs a folder to live in")
+    try:
+        probe = _new_hidden_folder(ancestor, target.name, "probe")
+        probe.rmdir()
+    except OSError as err:
+        raise InputError(f"{option} {target}: cannot create folders in {ancestor} ({err.strerror}); "
+                         "choose a writable location") from None
+    return target
+
+
+#: Set by a test to pause :func:`write_bundle` just before its final rename: the path of a file that
+#: must appear before the rename proceeds (``<path>.waiting`` is written while it waits).
+BARRIER_ENV = "DOMAINS_TEST_WRITE_BARRIER"
+
+_HELD_LOCKS: dict[str, list] = {}
+
+
+def _lock_key(target: Path) -> str:
+    return os.path.join(os.path.realpath(target.parent), target.name)
+
+
+def lock_path(out_dir) -> Path:
+    """The lock file of the bundle folder ``out_dir``: ``.NAME.lock`` beside it.
+
+    Examples
+    --------
+    >>> lock_path("results/run1").name
+    '.run1.lock'
+    """
+    target = Path(out_dir)
+    return target.parent / f".{target.name}.lock"
+
+
+def _remove_stale(target: Path) -> list[str]:
+    """Remove temporary folders of runs that died while writing ``target`` (the caller holds its lock).
+
+    A bundle moved aside (``.NAME.old-*``) by a run that died before putting the new one in
+    place is moved back when ``target`` is missing.
+    """
+    notes = []
+    parent = target.parent
+    try:
+        entries = sorted(parent.iterdir())
+    except OSError:
+        return notes
+    for entry in entries:
+        name = entry.name
+        if not name.startswith(f".{target.name}.") or entry.is_symlink() or not entry.is_dir():
+            continue
+        tag = name[len(target.name) + 2:]
+        if not re.fullmatch(r"(tmp|old)-[0-9a-f]{8}", tag):
+            continue
+        if tag.startswith("old") and not target.exists():
+            os.rename(entry, target)
+            notes.append(f"restored {target} from {entry.name}, left aside by a run that was interrupted")
+            continue
+        shutil.rmtree(entry, ignore_errors=True)
+        notes.append(f"removed {entry}, the unfinished output of a run that was interrupted")
+    return notes
+
+
+@contextlib.contextmanager
+def output_lock(out_dir):
+    """Hold an exclusive lock on the bundle folder ``out_dir`` (re-entrant within one process).
+
+    The lock is ``fcntl.flock`` on ``.NAME.lock`` beside the folder, which holds the
+    process id of its owner; the operating system releases it when the owner
+    dies, however it dies. Taking it removes the temporary folders of runs that
+    died while writing the same bundle (nothing else can be writing them).
+
+    Parameters
+    ----------
+    out_dir : str or path-like
+        The bundle folder; missing parent folders are created (and removed again if
+        no bundle was written).
+
+    Yields
+    ------
+    list of str
+        Notes naming the stale temporary folders removed (empty when re-entered).
+
+    Raises
+    ------
+    InputError
+        If another live process holds the lock; the message names its process id.
+
+    Examples
+    --------
+    >>> import pathlib, tempfile
+    >>> out = pathlib.Path(tempfile.mkdtemp()) / "bundle"
+    >>> with output_lock(out) as notes:
+    ...     lock_path(out).exists(), notes
+    (True, [])
+    >>> lock_path(out).exists()
+    False
+    """
+    import fcntl
+
+    target = Path(out_dir)
+    key = _lock_key(target)
+    if key in _HELD_LOCKS:
+        _HELD_LOCKS[key][1] += 1
+        try:
+            yield []
+        finally:
+            _HELD_LOCKS[key][1] -= 1
+        return
+    created = []
+    folder = target.parent
+    while not folder.exists() and folder != folder.parent:
+        created.append(folder)
+        folder = folder.parent
+    target.parent.mkdir(parents=True, exist_ok=True)
+    lock = lock_path(target)
+    while True:
+        fd = os.open(lock, os.O_RDWR | os.O_CREAT, 0o644)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError as err:
+            if err.errno not in (errno.EAGAIN, errno.EACCES, errno.EWOULDBLOCK):
+                os.close(fd)
+                raise
+            owner = os.pread(fd, 64, 0).decode("ascii", "replace").strip() or "unknown"
+            os.close(fd)
+            raise InputError(f"--out {target}: another run (pid {owner}) is writing this bundle; "
+                             "wait for it to finish or choose another folder") from None
+        try:
+            same = os.stat(lock).st_ino == os.fstat(fd).st_ino
+        except FileNotFoundError:
+            same = False
+        if same:
+            break
+        os.close(fd)  # the owner removed the file between our open and our lock: take the new one
+    os.ftruncate(fd, 0)
+    os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
+    _HELD_LOCKS[key] = [fd, 1]
+    try:
+        notes = _remove_stale(target)
+        yield notes
+    finally:
+        del _HELD_LOCKS[key]
+        try:
+            os.unlink(lock)
+        except OSError:
+            pass
+        os.close(fd)
+        if not target.exists():
+            for folder in created:
+                try:
+                    folder.rmdir()
+                except OSError:
+                    break
+
+
+def _wait_for_barrier(temporary: Path):
+    barrier = os.environ.get(BARRIER_ENV)
+    if not barrier:
+        return
+    Path(barrier + ".waiting").write_text(f"{os.getpid()} {temporary}\n")
+    deadline = time.monotonic() + 120
+    while not os.path.exists(barrier) and time.monotonic() < deadline:
+        time.sleep(0.02)
+
+
 def _new_hidden_folder(parent: Path, name: str, tag: str) -> Path:
     while True:
         candidate = parent / f".{name}.{tag}-{secrets.token_hex(4)}"
@@ -951,6 +1255,11 @@ def write_bundle(
     -----
     Everything is written to a hidden folder ``.NAME.tmp-XXXXXXXX`` next to the
     target and then renamed into place (a rename within one folder is atomic).
+    The whole write holds :func:`output_lock` on the target: a second process
+    writing the same bundle fails at once, naming the first one's process id,
+    and temporary folders of processes that died while writing are removed
+    (with a logged note). An existing bundle is replaced only with ``overwrite``,
+    checked again just before the final rename.
 
     Examples
     --------
@@ -970,9 +1279,10 @@ def write_bundle(
         raise InputError(f"{out_dir}: give a folder name for the bundle")
     if target.exists() or target.is_symlink():
         if not overwrite:
-            raise InputError(f"{target}: already exists; choose another --out or allow overwriting")
+            raise InputError(f"--out {target}: already exists; give --overwrite to replace it, "
+                             "or choose another folder")
         if not target.is_dir():
-            raise InputError(f"{target}: exists and is not a folder; it will not be replaced by a bundle")
+            raise InputError(f"--out {target}: exists and is not a folder; it will not be replaced by a bundle")
     if not isinstance(summary, Mapping):
         raise InputError(f"summary must be a dict, got {type(summary).__name__}")
     if not isinstance(provenance, Mapping):
@@ -997,7 +1307,26 @@ def write_bundle(
             raise InputError(f"extra_files: {name!r} clashes with a bundle file")
         extras[relative] = content
 
-    target.parent.mkdir(parents=True, exist_ok=True)
+    with output_lock(target) as notes:
+        _log_notes(notes)
+        return _write_bundle_locked(target, summary, provenance, tables, checked_maps, figures, figure_names,
+                                    report_html, extras, overwrite)
+
+
+def _log_notes(notes):
+    """Tell the user what a run cleaned up (stderr by default; the ``domains`` logger)."""
+    import logging
+
+    for note in notes:
+        logging.getLogger("domains").warning("note: %s", note)
+
+
+def _write_bundle_locked(target, summary, provenance, tables, checked_maps, figures, figure_names, report_html,
+                         extras, overwrite):
+    if target.exists() and not overwrite:
+        # Another run finished this bundle while we worked: never replace it silently.
+        raise InputError(f"--out {target}: already exists (written while this run worked); "
+                         "give --overwrite to replace it, or choose another folder")
     temporary = _new_hidden_folder(target.parent, target.name, "tmp")
     try:
         (temporary / "summary.json").write_text(
@@ -1031,7 +1360,10 @@ def write_bundle(
             else:
                 raise InputError(f"extra_files[{relative!r}] must be bytes or str, got {type(content).__name__}")
 
+        _wait_for_barrier(temporary)
         if target.exists():
+            if not overwrite:
+                raise InputError(f"--out {target}: already exists; give --overwrite to replace it")
             old = _new_hidden_folder(target.parent, target.name, "old")
             old.rmdir()  # only the unique name is needed; rename wants it free
             os.rename(target, old)

@@ -86,12 +86,10 @@ class Config:
         if self.line_method not in (None, "auto", "median", "mean", "hann", "difference"):
             raise InputError(f"{where}: line_method must be auto, median, mean, hann, difference or none, "
                              f"got {self.line_method!r}")
-        for name in ("sigma_nm", "drift_sigma_nm", "min_domain_area_nm2", "a_nm", "twist_tolerance_deg"):
-            value = getattr(self, name)
-            if value is not None and (not isinstance(value, (int, float)) or not value > 0):
-                raise InputError(f"{where}: {name} must be a positive number, got {value!r}")
-        if not 0 < self.leakage < 1 or not 0 < self.false_alarm < 1:
-            raise InputError(f"{where}: leakage and false_alarm must lie between 0 and 1")
+        from ._checks import config_values
+
+        # Types, ranges, names, the lattice table and the wavevector list (no image needed).
+        config_values(self, where)
         sup = (self.superlattice or "").lower()
         if self.order == "none" and sup not in ("", "none"):
             raise InputError(f"{where}: order = 'none' contradicts superlattice = {self.superlattice!r}")
@@ -133,12 +131,19 @@ def load_config(path) -> Config:
     """
     path = Path(path)
     if not path.is_file():
-        raise InputError(f"{path}: configuration file not found")
+        what = "is a folder" if path.is_dir() else "not found"
+        if path.is_symlink() and not path.exists():
+            what = "is a symbolic link that leads nowhere (or a link loop)"
+        raise InputError(f"{path}: configuration file {what}; expected a TOML file (--config)")
     try:
-        data = tomllib.loads(path.read_text())
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as err:
-        raise InputError(f"{path}: not valid TOML: {err}") from None
+        raise InputError(f"{path}: not valid TOML: {' '.join(str(err).split())}") from None
+    except OSError as err:
+        raise InputError(f"{path}: cannot read the configuration file ({err.strerror})") from None
     data = data.get("analysis", data)
+    if not isinstance(data, dict):
+        raise InputError(f"{path}: [analysis] must be a table of parameters, got {data!r}")
     known = {f.name for f in fields(Config)}
     unknown = sorted(set(data) - known)
     if unknown:
@@ -709,31 +714,47 @@ def analyze_files(topo, *, maps=(), grid=None, pixel_size_nm=None, config=None, 
     Path
         The bundle folder.
     """
-    from .io import load_scan
+    from ._checks import config_for_image, scans_for_analysis
+    from .io import _log_notes, check_output_location, load_scan, output_lock
 
+    # Every check that needs no computation comes first: configuration, output location, inputs.
     if isinstance(config, Config):
-        cfg = config.validate()
+        cfg, where = config.validate(), "configuration"
     elif config is not None:
-        cfg = load_config(config)
+        cfg, where = load_config(config), str(config)
     else:
-        cfg = Config()
-    out = Path(out)
-    if out.exists() and not overwrite:
-        raise InputError(f"{out}: the output folder exists; give --overwrite to replace it")
+        cfg, where = Config(), "configuration"
+    out = check_output_location(out, overwrite=overwrite)
+    topography = load_scan(topo, pixel_size_nm=pixel_size_nm)
+    map_scans = [load_scan(m, pixel_size_nm=pixel_size_nm, channel="conductance") for m in maps]
+    grid_scan = load_scan(grid, pixel_size_nm=pixel_size_nm, channel="conductance") if grid else None
+    scans_for_analysis(topography, map_scans, grid_scan)
+    config_for_image(cfg, topography.shape, topography.pixel_size_nm, where)
     client = None
     if scheduler:
         try:
             from dask.distributed import Client
         except ImportError:
             raise InputError("--scheduler needs dask.distributed (pip install 'dask[distributed]')") from None
-        client = Client(scheduler)
+        try:
+            client = Client(scheduler, timeout="10s")
+        except (OSError, ValueError, TypeError) as err:
+            raise InputError(f"--scheduler {scheduler}: cannot connect ({' '.join(str(err).split())})") from None
     try:
-        topography = load_scan(topo, pixel_size_nm=pixel_size_nm)
-        map_scans = [load_scan(m, pixel_size_nm=pixel_size_nm, channel="conductance") for m in maps]
-        grid_scan = load_scan(grid, pixel_size_nm=pixel_size_nm, channel="conductance") if grid else None
-        result = analyze(topography, maps=map_scans, grid=grid_scan, config=cfg, progress=progress)
-        inputs = [topo, *maps] + ([grid] if grid else [])
-        return write_analysis(result, out, command_line=list(command_line), inputs=inputs, overwrite=overwrite)
+        # The lock on --out is held from here to the end: a second run on the same folder fails at once.
+        with output_lock(out) as stale:
+            _log_notes(stale)
+            out = check_output_location(out, overwrite=overwrite)  # again, now that no one else can write it
+            try:
+                result = analyze(topography, maps=map_scans, grid=grid_scan, config=cfg, progress=progress)
+            except InputError as err:
+                # A problem found only during the analysis: say which input it concerns.
+                message = str(err)
+                if not any(str(name) in message for name in [topo, *maps, grid] if name):
+                    message = f"{topo}: {message} (found during the analysis; no bundle was written)"
+                raise InputError(message) from err
+            inputs = [topo, *maps] + ([grid] if grid else [])
+            return write_analysis(result, out, command_line=list(command_line), inputs=inputs, overwrite=overwrite)
     finally:
         if client is not None:
             client.close()
@@ -792,19 +813,29 @@ def write_scene(kind, out, *, seed=7, overwrite=False):
 
     from .io import json_safe, save_scan
 
-    sc = make_scene(kind, seed=seed)
+    from .io import check_output_location
+
     out = Path(out)
     if out.exists() and not out.is_dir():
-        raise InputError(f"{out}: exists and is not a folder")
+        raise InputError(f"--out {out}: exists and is not a folder")
+    if not out.exists():
+        check_output_location(out)
+    truth = out / "truth.json"
+    labels = out / "truth_labels.npy"
+
+    def refuse_existing(paths):
+        for path in paths:
+            if not overwrite and (path.exists() or path.is_symlink()):
+                raise InputError(f"--out {out}: {path.name} exists; give --overwrite to replace the scene's files")
+
+    refuse_existing([out / "topography.npy", out / "topography.json", truth, labels])  # before the work
+    sc = make_scene(kind, seed=seed)
+    names = [f"map_{m.bias_V:+.2f}V" for m in sc.maps] + ["topography"]
+    refuse_existing([out / f"{n}{ext}" for n in names for ext in (".npy", ".json", ".mask.npy")])
     out.mkdir(parents=True, exist_ok=True)
     written = [save_scan(sc.topography, out / "topography.npy", overwrite=overwrite)]
     for m in sc.maps:
         written.append(save_scan(m, out / f"map_{m.bias_V:+.2f}V.npy", overwrite=overwrite))
-    truth = out / "truth.json"
-    labels = out / "truth_labels.npy"
-    for path in (truth, labels):
-        if path.exists() and not overwrite:
-            raise InputError(f"{path}: exists; give --overwrite to replace it")
     truth.write_text(json.dumps(json_safe({"kind": sc.kind, "seed": seed, **sc.truth}), indent=2))
     np.save(labels, sc.truth_maps["labels"])
     return written + [truth, labels]
@@ -835,19 +866,27 @@ def run_demo(out, *, scene="cdw", seed=7, overwrite=True, command_line=("domains
     """
     import tempfile
 
-    name = scene
-    sc = make_scene(name, seed=seed)
-    # The moiré scene does not resolve the atoms: as a user would, state the layers' lattice constant.
-    config = Config(a_nm=sc.truth["a_nm"]) if sc.kind == "moire" else Config()
-    result = analyze(sc.topography, maps=sc.maps, config=config, progress=progress)
-    result.summary["truth"] = {"scene": name, "seed": seed, **{k: v for k, v in sc.truth.items() if k != "domains"}}
-    with tempfile.TemporaryDirectory() as tmp:
-        # The scene is written as input files too, so that the provenance record hashes real inputs.
-        from .io import save_scan
+    from .io import _log_notes, check_output_location, output_lock, save_scan
 
-        inputs = [str(save_scan(sc.topography, Path(tmp) / "topography.npy"))]
-        inputs += [str(save_scan(m, Path(tmp) / f"map_{m.bias_V:+.2f}V.npy")) for m in sc.maps]
-        bundle = write_analysis(result, out, command_line=list(command_line), inputs=inputs, overwrite=overwrite)
+    if scene not in ("cdw", "stripes", "moire"):
+        raise InputError(f"--scene must be one of cdw, stripes, moire, got {scene!r}")
+    # The output location is checked, and locked, before the scene is made and analysed.
+    out = check_output_location(out, overwrite=overwrite)
+    with output_lock(out) as stale:
+        _log_notes(stale)
+        out = check_output_location(out, overwrite=overwrite)
+        name = scene
+        sc = make_scene(name, seed=seed)
+        # The moiré scene does not resolve the atoms: as a user would, state the layers' lattice constant.
+        config = Config(a_nm=sc.truth["a_nm"]) if sc.kind == "moire" else Config()
+        result = analyze(sc.topography, maps=sc.maps, config=config, progress=progress)
+        result.summary["truth"] = {"scene": name, "seed": seed,
+                                   **{k: v for k, v in sc.truth.items() if k != "domains"}}
+        with tempfile.TemporaryDirectory() as tmp:
+            # The scene is written as input files too, so that the provenance record hashes real inputs.
+            inputs = [str(save_scan(sc.topography, Path(tmp) / "topography.npy"))]
+            inputs += [str(save_scan(m, Path(tmp) / f"map_{m.bias_V:+.2f}V.npy")) for m in sc.maps]
+            bundle = write_analysis(result, out, command_line=list(command_line), inputs=inputs, overwrite=overwrite)
     return Path(bundle) / "report.html"
 
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import pickle
 import re
 
@@ -618,3 +619,95 @@ def test_bundle_names_checked(tmp_path):
     with pytest.raises(InputError, match="not a PNG"):
         write_bundle(tmp_path / "r", summary={}, provenance={}, figures={"f": b"GIF89a"})
     assert list(tmp_path.iterdir()) == []
+
+
+# --------------------------------------------------------------------------- output location, lock, stale folders
+
+from domains.io import check_output_location, lock_path, output_lock  # noqa: E402
+
+
+def test_check_output_location_refuses_before_any_work(tmp_path):
+    (tmp_path / "file").write_text("x")
+    (tmp_path / "done").mkdir()
+    for out, words in [(tmp_path / "file", "not a folder"), (tmp_path / "file" / "sub" / "b", "is a file"),
+                       (tmp_path / "done", "--overwrite"), (tmp_path / "..", "folder name"),
+                       ("/proc/no-such-place/b", "cannot create")]:
+        with pytest.raises(InputError, match=re.escape(words)):  # named reason (common practice, no source)
+            check_output_location(out)
+    assert check_output_location(tmp_path / "done", overwrite=True) == tmp_path / "done"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["done", "file"]  # the probe leaves nothing (idem)
+
+
+def test_write_bundle_never_replaces_a_bundle_that_appears_meanwhile(tmp_path, monkeypatch):
+    import domains.io as io_module
+
+    out = tmp_path / "res"
+
+    def another_run_finishes(temporary):
+        out.mkdir()
+        (out / "summary.json").write_text('{"theirs": true}')
+
+    monkeypatch.setattr(io_module, "_wait_for_barrier", another_run_finishes)
+    with pytest.raises(InputError, match="--overwrite"):
+        write_bundle(out, summary={"ours": True}, provenance={})
+    # the other bundle is intact and our temporary folder is gone (common practice, no source)
+    assert json.loads((out / "summary.json").read_text()) == {"theirs": True}
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["res"]
+
+
+def test_output_lock_removes_stale_temp_folders_and_restores_a_moved_bundle(tmp_path, caplog):
+    out = tmp_path / "res"
+    stale_tmp = tmp_path / ".res.tmp-0123abcd"
+    stale_tmp.mkdir()
+    (stale_tmp / "summary.json").write_text("{}")
+    moved = tmp_path / ".res.old-89abcdef"
+    moved.mkdir()
+    (moved / "summary.json").write_text('{"previous": 1}')
+    unrelated = tmp_path / ".other.tmp-0123abcd"
+    unrelated.mkdir()
+    with output_lock(out) as notes:
+        assert lock_path(out).read_text().strip() == str(os.getpid())  # the owner's pid (common practice)
+        with output_lock(out) as again:  # re-entrant in one process (derived: one owner)
+            assert again == []
+    assert len(notes) == 2 and any(stale_tmp.name in n for n in notes)  # both named (common practice)
+    assert not stale_tmp.exists() and unrelated.exists()  # only this bundle's leftovers (common practice)
+    assert json.loads((out / "summary.json").read_text()) == {"previous": 1}  # the old bundle is back
+    assert not lock_path(out).exists()  # the lock file goes with the lock (common practice, no source)
+
+
+def test_a_second_process_cannot_take_the_lock(tmp_path):
+    import subprocess
+    import sys
+
+    out = tmp_path / "res"
+    code = ("import sys; from domains.io import output_lock\n"
+            "try:\n    with output_lock(sys.argv[1]): pass\nexcept Exception as e: print(e); sys.exit(2)\n")
+    with output_lock(out):
+        done = subprocess.run([sys.executable, "-c", code, str(out)], capture_output=True, text=True)
+    assert done.returncode == 2 and f"pid {os.getpid()}" in done.stdout  # flock(2) excludes (from memory)
+    assert list(tmp_path.iterdir()) == []  # nothing left after release (common practice, no source)
+
+
+def test_sidecar_values_that_are_not_numbers_name_the_sidecar(tmp_path):
+    path = tmp_path / "topo.npy"
+    np.save(path, _image())
+    for value in ("abc", "0.056 nm", True, [0.05, "x"]):
+        _sidecar(path, pixel_size_nm=value)
+        with pytest.raises(InputError, match=r"topo\.npy: its sidecar topo\.json: pixel_size_nm"):
+            load_scan(path)  # a string or a boolean is not a size (common practice, no source)
+
+
+def test_multi_page_tiff_of_mixed_sizes_is_an_error(tmp_path):
+    path = tmp_path / "pages.tif"
+    with tifffile.TiffWriter(path) as tif:
+        tif.write(np.zeros((16, 16), np.float32))
+        tif.write(np.zeros((8, 12), np.float32))
+    with pytest.raises(InputError, match="2 images of different sizes"):  # never page 1 silently (issue 13)
+        load_scan(path, pixel_size_nm=0.05)
+
+
+def test_symlink_loop_is_reported_as_such(tmp_path):
+    os.symlink(tmp_path / "b.npy", tmp_path / "a.npy")
+    os.symlink(tmp_path / "a.npy", tmp_path / "b.npy")
+    with pytest.raises(InputError, match="symbolic link loop"):  # not "no such file" (common practice)
+        load_scan(tmp_path / "a.npy", pixel_size_nm=0.05)
