@@ -1,4 +1,20 @@
-"""Spatial lock-in: demodulate an image at wavevectors q to get local amplitude, phase and wavevector."""
+"""Spatial lock-in: demodulate an image at wavevectors q to get local amplitude, phase and wavevector.
+
+The kernel works in Fourier space (METHODS §1, Fourier form) and touches only the part of the
+spectrum where the Gaussian transfer exp(-sigma^2 |k - q|^2 / 2) is not negligible:
+
+1. one real FFT along the rows, shared by every q, then FFTs along the columns only for the
+   frequency columns some q needs;
+2. per q, the window of (2h+1) x (2h+1) bins around q (h from the truncation level ``eps``) is
+   multiplied by the separable transfer t_y(k_y) t_x(k_x);
+3. two inverse 1-D FFTs bring the window back to pixels, the second one in row blocks written
+   straight into the output, multiplied by the separable factors exp(-i q.r) and, without a mask,
+   the separable normaliser 1 / ((g * 1_rows)(y) (g * 1_cols)(x)).
+
+Decimated output (``step`` = s): the spectrum window is folded modulo L = P/s bins (P the FFT
+length) and inverse-transformed on L points, which gives the same truncated filter exactly at the
+pixels 0, s, 2s, ... (Poisson summation: sampling every s-th pixel folds the spectrum modulo P/s).
+"""
 
 from __future__ import annotations
 
@@ -12,12 +28,22 @@ from ._checks import positive, within_nyquist
 from ._errors import InputError
 from ._scan import _is_dask, pixel_size_pair
 
-#: Gaussian support, in units of sigma, kept by the chunked path (overlap) and by the
-#: zero padding of the in-memory path. The 2-D Gaussian mass beyond 6 sigma is
-#: exp(-18) = 1.5e-8, below float32 precision, so chunked and in-memory results agree.
+#: Gaussian support, in units of sigma, kept by the chunked path (overlap depth) and by the
+#: zero padding of the in-memory path. The 1-D Gaussian mass beyond 6 sigma is
+#: erfc(6 / sqrt 2) / 2 = 1e-9, below float32 precision, so chunked and in-memory results agree.
 TRUNCATE = 6.0
 
+#: The Gaussian transfer exp(-sigma^2 dk^2 / 2) is dropped where it is below this, per precision.
+#: The error this makes in A is at most eps * sqrt(sum I^2) / (normaliser) (Parseval; see ``lockin``).
+TRANSFER_EPS = {np.dtype(np.float32): 1e-10, np.dtype(np.float64): 1e-16}
+
+#: Normalised convolution: below this filtered weight a pixel has almost nothing to average (NaN).
+MIN_WEIGHT = 1e-3
+
 BOUNDARIES = ("normalized", "periodic")
+
+# Rows of the last inverse FFT handled at a time (keeps temporaries small next to the output).
+_BLOCK_ELEMENTS = 1 << 21
 
 
 def _as_q_array(q) -> tuple[np.ndarray, bool]:
@@ -44,72 +70,184 @@ def _check_q_sigma(q, sigma_nm, pixel_size, shape):
     return sigma_nm
 
 
-def _gaussian_transfer(shape, sigma_px, shift_px=(0.0, 0.0)):
-    """exp(-sigma^2 |k - k0|^2 / 2) on the FFT grid, k in rad/px, k - k0 wrapped to [-pi, pi)."""
-    ky = 2 * np.pi * np.fft.fftfreq(shape[0])[:, None] - shift_px[0]
-    kx = 2 * np.pi * np.fft.fftfreq(shape[1])[None, :] - shift_px[1]
-    ky = (ky + np.pi) % (2 * np.pi) - np.pi
-    kx = (kx + np.pi) % (2 * np.pi) - np.pi
-    return np.exp(-0.5 * (sigma_px[0] ** 2 * ky**2 + sigma_px[1] ** 2 * kx**2))
+def _check_step(step):
+    if step is None:
+        return 1
+    if isinstance(step, (bool, np.bool_)) or not isinstance(step, (int, np.integer)) or step < 1:
+        raise InputError(f"step must be a positive integer number of pixels (or None), got {step!r}")
+    return int(step)
 
 
-def _reference_wave(q, shape, pixel_size, offset=(0, 0)):
-    """exp(-i (qx x + qy y)) with x = col * dx, y = row * dy in global pixel coordinates."""
-    dy, dx = pixel_size
-    rows = (offset[0] + np.arange(shape[0]))[:, None] * dy
-    cols = (offset[1] + np.arange(shape[1]))[None, :] * dx
-    return np.exp(-1j * (q[0] * cols + q[1] * rows))
+def _transfer_cut(eps):
+    """sigma |dk| beyond which exp(-sigma^2 dk^2 / 2) < eps."""
+    return math.sqrt(2 * math.log(1 / eps))
 
 
-def _demodulate_block(image, weights, q, sigma_px, pixel_size, offset, boundary, pad):
-    """Lock-in of one in-memory block; the forward transform is shared by all q.
+def _fft_length(n, pad, step):
+    """Smallest fast FFT length >= n + pad that is a multiple of ``step``."""
+    return step * sfft.next_fast_len(-(-(n + pad) // step))
 
-    The filter exp(-sigma^2|k - q|^2/2) applied to the image, followed by the
-    reference wave, equals a Gaussian filter applied to image * reference
-    (METHODS §1, Fourier form). With boundary="normalized" the block is zero padded
-    by `pad` pixels (linear, not circular, convolution) and divided by the
-    equally filtered weights (normalised convolution).
+
+class _Axis:
+    """One axis of the separable filter: the spectrum window around q and its transfer.
+
+    The window holds the bins j = start, ..., start + width - 1 (taken modulo ``length``),
+    centred on the bin nearest q; it is the whole axis when the Gaussian is wider than that.
     """
-    dy, dx = pixel_size
-    ny, nx = image.shape
-    out = np.empty((len(q), ny, nx), dtype=np.complex128)
-    if boundary == "periodic":
-        spectrum = sfft.fft2(image, workers=-1)
-        for j, qj in enumerate(q):
-            shift = (qj[1] * dy, qj[0] * dx)
-            filtered = sfft.ifft2(spectrum * _gaussian_transfer((ny, nx), sigma_px, shift), workers=-1)
-            out[j] = filtered * _reference_wave(qj, (ny, nx), pixel_size, offset)
-        return out
-    # At least `pad` zeros on each side (linear, not circular, convolution), rounded up to a
-    # size the FFT handles fast.
-    padded_shape = (sfft.next_fast_len(ny + 2 * pad[0]), sfft.next_fast_len(nx + 2 * pad[1]))
-    core = (slice(pad[0], pad[0] + ny), slice(pad[1], pad[1] + nx))
-    work = np.zeros(padded_shape)
-    work[core] = np.where(weights > 0, image, 0.0) * weights
-    spectrum = sfft.fft2(work, workers=-1)
-    work[:] = 0.0
-    work[core] = weights
-    norm = sfft.ifft2(sfft.fft2(work, workers=-1) * _gaussian_transfer(padded_shape, sigma_px), workers=-1).real[core]
-    # Below this the normalised convolution has almost nothing to average: report NaN.
-    inverse = np.full(norm.shape, np.nan)
-    np.divide(1.0, norm, out=inverse, where=norm > 1e-3)
-    for j, qj in enumerate(q):
-        shift = (qj[1] * dy, qj[0] * dx)
-        filtered = sfft.ifft2(spectrum * _gaussian_transfer(padded_shape, sigma_px, shift), workers=-1)[core]
-        out[j] = filtered * _reference_wave(qj, (ny, nx), pixel_size, offset) * inverse
+
+    def __init__(self, q_px, sigma_px, length, eps):
+        half = math.ceil(_transfer_cut(eps) / sigma_px * length / (2 * math.pi))
+        centre = round(q_px * length / (2 * math.pi))
+        width = 2 * half + 1
+        if width >= length:
+            width, half = length, length // 2
+        self.start = centre - half
+        j = self.start + np.arange(width)
+        self.index = j % length
+        self.transfer = np.exp(-0.5 * (sigma_px * (2 * np.pi * j / length - q_px)) ** 2)
+        self.q_px, self.length = q_px, length
+
+    def sample_factor(self, step, first, count, origin):
+        """exp(2 pi i start r / P) exp(-i q (origin + r)) / step at the local samples r = first + step m."""
+        r = first + step * np.arange(count)
+        shift = 2 * np.pi * self.start / self.length
+        # exp(2 pi i start r / P): the window was moved to bin 0 before the inverse FFT.
+        return np.exp(1j * (shift * (r - first) - self.q_px * (origin + r))) / step
+
+    def first_twist(self, step, first):
+        """The transfer times exp(2 pi i j first / P): moves the sampling grid to start at ``first``."""
+        if first == 0:
+            return self.transfer
+        j = self.start + np.arange(self.transfer.size)
+        return self.transfer * np.exp(2j * np.pi * j * first / self.length)
+
+
+def _fold(block, length, axis):
+    """Sum the spectrum window modulo ``length`` bins (sampling every step-th pixel folds it)."""
+    width = block.shape[axis]
+    if width <= length:
+        return block
+    nfold = -(-width // length)
+    pad = [(0, 0)] * block.ndim
+    pad[axis] = (0, nfold * length - width)
+    block = np.pad(block, pad)
+    shape = list(block.shape)
+    shape[axis : axis + 1] = [nfold, length]
+    return block.reshape(shape).sum(axis=axis)
+
+
+def _smooth_1d(n, sigma_px, length, step, first, count, eps, dtype):
+    """(g * 1_[0, n))(r) at r = first + step m: one axis of the separable normaliser, same truncated filter."""
+    ax = _Axis(0.0, sigma_px, length, eps)
+    spectrum = sfft.fft(np.ones(n, dtype), n=length)
+    block = _fold(spectrum[ax.index] * ax.first_twist(step, first), length // step, 0)
+    values = sfft.ifft(block, n=length // step)[:count]
+    return (values * ax.sample_factor(step, first, count, 0.0)).real
+
+
+def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps, ctype,
+                  inverse_norm=None, out=None):
+    """G_sigma * [data exp(-i q.r)] for every q, sampled at rows/cols first + step m.
+
+    ``data`` is real (zero where masked); ``lengths`` (P_y, P_x) are the FFT lengths (zero padding
+    beyond the data makes the convolution linear); ``origin`` is the global pixel of data[0, 0] for
+    the reference wave. ``inverse_norm`` is either a pair of 1-D factors (separable normaliser) or a
+    2-D array on the output grid, or None.
+    """
+    ny, nx = data.shape
+    py, px = lengths
+    ly, lx = py // step, px // step
+    half = px // 2
+    axes = [(_Axis(qj[0], sigma_px[0], py, eps), _Axis(qj[1], sigma_px[1], px, eps)) for qj in q_px]
+    # Frequency columns each q needs, as columns of the half spectrum (negative ones by conjugation).
+    cols = [np.where(ax.index <= half, ax.index, px - ax.index) for _, ax in axes]
+    need = np.unique(np.concatenate(cols))
+    rows_fft = sfft.rfft(data, n=px, axis=1, workers=-1)
+    if need.size == rows_fft.shape[1]:
+        spectrum = sfft.fft(rows_fft, n=py, axis=0, workers=-1, overwrite_x=True)
+    elif need.size and need[-1] - need[0] + 1 == need.size:
+        spectrum = sfft.fft(rows_fft[:, need[0] : need[-1] + 1], n=py, axis=0, workers=-1)
+    else:
+        spectrum = sfft.fft(rows_fft[:, need], n=py, axis=0, workers=-1)
+    del rows_fft
+    if out is None:
+        out = np.empty((len(q_px),) + tuple(count), dtype=ctype)
+    block_rows = max(1, _BLOCK_ELEMENTS // lx)
+    for j, (ay, ax) in enumerate(axes):
+        pos = np.searchsorted(need, cols[j])
+        negative = ax.index > half
+        window = np.empty((ay.index.size, ax.index.size), dtype=spectrum.dtype)
+        window[:, ~negative] = spectrum[np.ix_(ay.index, pos[~negative])]
+        # I~(ky, -kx) = conj(I~(-ky, kx)) for a real image.
+        window[:, negative] = np.conj(spectrum[np.ix_((-ay.index) % py, pos[negative])])
+        window *= np.multiply.outer(ay.first_twist(step, first[0]), ax.first_twist(step, first[1])).astype(ctype)
+        cols_done = sfft.ifft(_fold(window, ly, 0), n=ly, axis=0, workers=-1)[: count[0]]
+        cols_done = _fold(cols_done, lx, 1)
+        fy = ay.sample_factor(step, first[0], count[0], origin[0])
+        fx = ax.sample_factor(step, first[1], count[1], origin[1])
+        if isinstance(inverse_norm, tuple):
+            fy, fx = fy * inverse_norm[0], fx * inverse_norm[1]
+        fy, fx = fy.astype(ctype), fx.astype(ctype)
+        for r0 in range(0, count[0], block_rows):
+            r1 = min(count[0], r0 + block_rows)
+            res = sfft.ifft(cols_done[r0:r1], n=lx, axis=1, workers=-1)[:, : count[1]]
+            res *= fy[r0:r1, None]
+            res *= fx[None, :]
+            if isinstance(inverse_norm, np.ndarray):
+                res *= inverse_norm[r0:r1]
+            out[j, r0:r1] = res
     return out
 
 
-def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized"):
+def _lockin_memory(image, valid, q_px, sigma_px, *, step, boundary, pad, origin=(0, 0), first=(0, 0), count=None):
+    """The lock-in of one in-memory array. ``image`` is float32 or float64 (it sets the precision);
+    ``valid`` is a boolean array (False = masked or NaN) or None when every pixel counts."""
+    rtype = image.dtype
+    ctype = np.complex64 if rtype == np.float32 else np.complex128
+    eps = TRANSFER_EPS[np.dtype(rtype)]
+    ny, nx = image.shape
+    if count is None:
+        count = (-(-(ny - first[0]) // step), -(-(nx - first[1]) // step))
+    if boundary == "periodic":
+        if ny % step or nx % step:
+            # Folding needs whole periods of step pixels: compute on the full grid and sample it.
+            full = _filter_stack(image, q_px, sigma_px, (ny, nx), 1, (0, 0), (ny, nx), origin, eps, ctype)
+            return np.ascontiguousarray(full[:, first[0] :: step, first[1] :: step][:, : count[0], : count[1]])
+        return _filter_stack(image, q_px, sigma_px, (ny, nx), step, first, count, origin, eps, ctype)
+    lengths = (_fft_length(ny, pad[0], step), _fft_length(nx, pad[1], step))
+    if valid is None:
+        # Nothing masked: the normaliser G * 1_frame is separable, two 1-D filters.
+        norm_y = _smooth_1d(ny, sigma_px[0], lengths[0], step, first[0], count[0], eps, rtype)
+        norm_x = _smooth_1d(nx, sigma_px[1], lengths[1], step, first[1], count[1], eps, rtype)
+        inverse = tuple(np.where(n > MIN_WEIGHT, 1 / np.where(n > MIN_WEIGHT, n, 1), np.nan) for n in (norm_y, norm_x))
+        return _filter_stack(image, q_px, sigma_px, lengths, step, first, count, origin, eps, ctype, inverse)
+    weights = valid.astype(rtype)
+    norm = _filter_stack(weights, np.zeros((1, 2)), sigma_px, lengths, step, first, count, (0, 0), eps, ctype)[0].real
+    inverse = np.full(norm.shape, np.nan, dtype=rtype)
+    np.divide(1, norm, out=inverse, where=norm > MIN_WEIGHT)
+    del norm
+    data = np.where(valid, image, rtype.type(0))
+    return _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps, ctype, inverse)
+
+
+def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized", step=None):
     """Spatial lock-in: the complex local Fourier component A(r) of an image at q.
 
     A(r) = G_sigma * [I(r) exp(-i q.r)], with G_sigma a unit-sum Gaussian of
     width ``sigma_nm``. For I = A0 cos(q.r + phi), 2|A| = A0 and arg A = phi.
 
+    Computed in Fourier space: A = exp(-i q.r) IFFT[I~(k) exp(-sigma^2 |k - q|^2 / 2)]
+    (METHODS §1), with one real forward FFT shared by every q and only the
+    window of the spectrum where the transfer exceeds ``TRANSFER_EPS`` (1e-10
+    for float32, 1e-16 for float64) transformed back. Dropping the rest changes
+    A by at most eps * sqrt(sum I^2) / w(r), w the normaliser below (Parseval),
+    i.e. eps * sqrt(N_pixels) * rms(I) / w.
+
     Parameters
     ----------
     image : (row, col) array_like or dask array
-        The image. A dask array gives a lazy dask result computed chunk by chunk.
+        The image. A dask array gives a lazy dask result computed chunk by chunk
+        (``dask.array.map_overlap`` with an overlap of ``TRUNCATE`` sigma).
     q : (2,) or (k, 2) array_like
         Wavevector(s) (qx, qy) in rad/nm, x along columns and y along rows.
     sigma_nm : float
@@ -119,29 +257,45 @@ def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized
         Pixel size in nm, one value or (row, col).
     mask : (row, col) array of bool, optional
         True where pixels are untrusted; they are left out of the average
-        (normalised convolution) and filled from their neighbours.
+        (normalised convolution) and filled from their neighbours. NaN pixels
+        of the image count as masked.
     boundary : {"normalized", "periodic"}
-        "normalized" (default): zero outside the frame and the mask, divided by
-        the filtered weight, so a straight edge does not halve the amplitude.
+        "normalized" (default): zero outside the frame and the mask (the FFT
+        grid is zero padded by ``TRUNCATE`` sigma, so the convolution is linear,
+        not circular), divided by the equally filtered weight G * w, so a
+        straight edge does not halve the amplitude. Without a mask the weight is
+        separable, (g * 1_rows)(y) (g * 1_cols)(x), and costs two 1-D FFTs.
         "periodic": the frame is taken as periodic (exact for an image holding
         whole periods, and the Fourier form of METHODS §1).
+    step : int, optional
+        Return A only at the pixels (s m, s n), s = ``step``: rows 0, s, 2s, ...
+        and columns 0, s, 2s, ..., shape (ceil(rows / s), ceil(cols / s)). The
+        spectrum window around q is folded modulo P / s bins (P the FFT length)
+        and inverse transformed on P / s points, which is the same truncated
+        filter sampled exactly (Poisson summation): at the sampled pixels the
+        result equals the full-resolution one to rounding, and both are within
+        the truncation bound above of the exact Gaussian filter. A step up to
+        :func:`lossless_step` also keeps the whole band of A, so it can be
+        interpolated back (band-limited) without loss. None (default) = 1.
 
     Returns
     -------
     A : complex ndarray or dask array
-        Shaped like the image for a single q, else (k, row, col). The phase
-        reference is pixel (0, 0) of the input array. Pixels with almost no
-        valid neighbours are NaN.
+        Shaped like the image (or its decimated grid) for a single q, else
+        (k, row, col); complex64 for a float32 image, complex128 otherwise. The
+        phase reference is pixel (0, 0) of the input array. Pixels with almost
+        no valid neighbours (filtered weight below ``MIN_WEIGHT``) are NaN.
 
     Raises
     ------
     InputError
         If q lies beyond the Nyquist limit, sigma is not positive or larger
-        than half the frame, or the image is not 2-D.
+        than half the frame, step is not a positive integer, or the image is
+        not 2-D.
 
     See Also
     --------
-    amplitude, phase, local_wavevector, trusted_mask, choose_sigma
+    amplitude, phase, local_wavevector, trusted_mask, choose_sigma, lossless_step
 
     References
     ----------
@@ -162,9 +316,13 @@ def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized
     >>> a = lockin(image, q, sigma_nm=1.0, pixel_size_nm=dx, boundary="periodic")
     >>> bool(np.allclose(2 * np.abs(a), 1.7) and np.allclose(np.angle(a), 0.9))
     True
+    >>> coarse = lockin(image, q, sigma_nm=1.0, pixel_size_nm=dx, step=4)
+    >>> coarse.shape, bool(np.allclose(coarse, lockin(image, q, sigma_nm=1.0, pixel_size_nm=dx)[::4, ::4]))
+    ((32, 32), True)
     """
     if boundary not in BOUNDARIES:
         raise InputError(f"boundary must be one of {BOUNDARIES}, got {boundary!r}")
+    step = _check_step(step)
     lazy = _is_dask(image)
     if not lazy:
         image = np.asarray(image)
@@ -172,74 +330,118 @@ def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized
         raise InputError(f"lockin needs a 2-D image (row, col), got shape {tuple(image.shape)}")
     if min(image.shape) < 2:
         raise InputError(f"lockin needs an image of at least 2 x 2 pixels, got shape {tuple(image.shape)}")
+    if np.issubdtype(image.dtype, np.complexfloating) or image.dtype.kind not in "biuf":
+        raise InputError(f"lockin needs a real image, got dtype {image.dtype}")
     pixel_size = pixel_size_pair(pixel_size_nm)
     q, single = _as_q_array(q)
     sigma_nm = _check_q_sigma(q, sigma_nm, pixel_size, image.shape)
     sigma_px = (sigma_nm / pixel_size[0], sigma_nm / pixel_size[1])
+    # (row, col) components in rad/px: q_y dy along rows, q_x dx along columns.
+    q_px = np.column_stack([q[:, 1] * pixel_size[0], q[:, 0] * pixel_size[1]])
     pad = (int(math.ceil(TRUNCATE * sigma_px[0])), int(math.ceil(TRUNCATE * sigma_px[1])))
     if mask is not None:
         mask = np.asarray(mask, dtype=bool)
         if mask.shape != tuple(image.shape):
             raise InputError(f"mask shape {mask.shape} differs from the image shape {tuple(image.shape)}")
+    rtype = np.float32 if image.dtype == np.float32 else np.float64
     if lazy:
-        result = _lockin_dask(image, q, sigma_px, pixel_size, mask, boundary, pad)
-        if image.dtype == np.float32:
-            result = result.astype(np.complex64)
+        result = _lockin_dask(image.astype(rtype), q_px, sigma_px, mask, boundary, pad, step)
     else:
-        if np.iscomplexobj(image) or image.dtype.kind not in "biuf":
-            raise InputError(f"lockin needs a real image, got dtype {image.dtype}")
+        image = np.asarray(image, dtype=rtype)
         valid = np.isfinite(image)
         if mask is not None:
             valid &= ~mask
-        if boundary == "periodic" and not valid.all():
+        if valid.all():
+            valid = None
+        elif boundary == "periodic":
             raise InputError("boundary='periodic' needs a complete image with no masked or NaN pixels")
-        result = _demodulate_block(
-            image.astype(float), valid.astype(float), q, sigma_px, pixel_size, (0, 0), boundary, pad
-        )
-        if image.dtype == np.float32:
-            result = result.astype(np.complex64)
+        result = _lockin_memory(image, valid, q_px, sigma_px, step=step, boundary=boundary, pad=pad)
     return result[0] if single else result
 
 
-def _lockin_dask(image, q, sigma_px, pixel_size, mask, boundary, pad):
+def lossless_step(sigma_nm, pixel_size_nm, *, tolerance=1e-6):
+    """Largest decimation step (pixels) that keeps the whole band of a lock-in field.
+
+    A = G_sigma * [I exp(-i q.r)] has its spectrum inside |k_y|, |k_x| <= c / sigma
+    up to a relative tail ``tolerance`` = exp(-c^2 / 2) of the Gaussian transfer.
+    Samples every s pixels hold a band of width 2 pi / s per axis without aliasing
+    (sampling theorem), so s <= pi sigma / c, about sigma / 2 for tolerance 1e-6
+    (c = 5.26). Use it as ``lockin(..., step=lossless_step(...))``.
+
+    Parameters
+    ----------
+    sigma_nm : float
+        The lock-in width in nm.
+    pixel_size_nm : float or (float, float)
+        Pixel size in nm, one value or (row, col); the finer axis sets the step.
+    tolerance : float
+        Relative size of the Gaussian transfer allowed to alias, 0 < tolerance < 1.
+
+    Returns
+    -------
+    int
+        The step in pixels, at least 1.
+
+    Examples
+    --------
+    >>> lossless_step(8.0, 1.0)
+    4
+    >>> lossless_step(0.8, 0.1, tolerance=1e-10)
+    3
+    """
+    sigma_nm = positive(sigma_nm, "sigma_nm")
+    if not 0 < tolerance < 1:
+        raise InputError(f"tolerance must lie between 0 and 1, got {tolerance!r}")
+    sigma_px = sigma_nm / max(pixel_size_pair(pixel_size_nm))
+    return max(1, int(math.floor(math.pi * sigma_px / _transfer_cut(tolerance) * (1 + 1e-12))))
+
+
+def _dask_chunks(chunks, depth, step, n):
+    """Chunk sizes along one axis: borders on multiples of ``step``, every chunk at least ``depth`` long."""
+    borders = np.cumsum(chunks)[:-1]
+    borders = np.unique(np.round(borders / step).astype(int) * step)
+    kept, previous = [], 0
+    for b in borders:
+        if 0 < b < n and b - previous >= max(depth, 1):
+            kept.append(int(b))
+            previous = int(b)
+    while kept and n - kept[-1] < depth:
+        kept.pop()
+    return tuple(int(c) for c in np.diff([0] + kept + [n]))
+
+
+def _lockin_dask(image, q_px, sigma_px, mask, boundary, pad, step):
     import dask.array as da
-    from dask.array.overlap import ensure_minimum_chunksize, overlap
 
     if boundary == "periodic":
         raise InputError("boundary='periodic' is not available for dask arrays; use 'normalized'")
-    # Every chunk must be at least as large as the overlap it lends its neighbours.
-    chunks = tuple(ensure_minimum_chunksize(p, c) if len(c) > 1 else c for p, c in zip(pad, image.chunks))
-    image = image.astype(float).rechunk(chunks)
-    valid = da.isfinite(image)
+    depth = (int(math.ceil(TRUNCATE * sigma_px[0])), int(math.ceil(TRUNCATE * sigma_px[1])))
+    chunks = tuple(_dask_chunks(c, d, step, n) for c, d, n in zip(image.chunks, depth, image.shape))
+    image = image.rechunk(chunks)
+    args = [image]
     if mask is not None:
-        valid = valid & ~da.from_array(mask, chunks=chunks)
-    depth = {0: pad[0], 1: pad[1]}
-    # boundary="none": no margin beyond the frame, so the outer edge is treated as in memory.
-    image_ov = overlap(image, depth=depth, boundary="none")
-    weights_ov = overlap(valid.astype(float), depth=depth, boundary="none")
+        args.append(da.from_array(mask, chunks=chunks))
     starts = [np.cumsum((0,) + c[:-1]) for c in chunks]
+    out_chunks = tuple(tuple(-(-c // step) for c in axis) for axis in chunks)
+    ctype = np.complex64 if image.dtype == np.float32 else np.complex128
 
-    def block(img, w, block_info=None):
-        # A block's origin in the whole frame: its chunk start less the margin taken from above/left.
+    def block(img, msk=None, block_info=None):
         loc = block_info[0]["chunk-location"]
-        top = starts[0][loc[0]] - (pad[0] if loc[0] > 0 else 0)
-        left = starts[1][loc[1]] - (pad[1] if loc[1] > 0 else 0)
-        return _demodulate_block(img, w, q, sigma_px, pixel_size, (top, left), "normalized", pad)
+        # With boundary="none" a block has a margin only towards its neighbours.
+        first = (depth[0] if loc[0] > 0 else 0, depth[1] if loc[1] > 0 else 0)
+        origin = (int(starts[0][loc[0]]) - first[0], int(starts[1][loc[1]]) - first[1])
+        count = (out_chunks[0][loc[0]], out_chunks[1][loc[1]])
+        valid = np.isfinite(img)
+        if msk is not None:
+            valid &= ~msk
+        return _lockin_memory(img, None if valid.all() else valid, q_px, sigma_px, step=step,
+                              boundary="normalized", pad=pad, origin=origin, first=first, count=count)
 
-    out = da.map_blocks(
-        block, image_ov, weights_ov, new_axis=0,
-        chunks=((len(q),),) + image_ov.chunks, dtype=np.complex128,
+    return da.map_overlap(
+        block, *args, depth={0: depth[0], 1: depth[1]}, boundary="none", trim=False,
+        align_arrays=False, allow_rechunk=False, new_axis=0,
+        chunks=((len(q_px),),) + out_chunks, dtype=ctype, meta=np.empty((0, 0, 0), ctype),
     )
-
-    def trim(blk, block_info=None):
-        loc, num = block_info[0]["chunk-location"], block_info[0]["num-chunks"]
-        r0 = pad[0] if loc[1] > 0 else 0
-        c0 = pad[1] if loc[2] > 0 else 0
-        r1 = blk.shape[1] - (pad[0] if loc[1] < num[1] - 1 else 0)
-        c1 = blk.shape[2] - (pad[1] if loc[2] < num[2] - 1 else 0)
-        return blk[:, r0:r1, c0:c1]
-
-    return out.map_blocks(trim, chunks=((len(q),),) + chunks, dtype=np.complex128)
 
 
 def amplitude(a):
