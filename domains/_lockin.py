@@ -127,13 +127,12 @@ def _fold(block, length, axis):
     width = block.shape[axis]
     if width <= length:
         return block
-    nfold = -(-width // length)
-    pad = [(0, 0)] * block.ndim
-    pad[axis] = (0, nfold * length - width)
-    block = np.pad(block, pad)
-    shape = list(block.shape)
-    shape[axis : axis + 1] = [nfold, length]
-    return block.reshape(shape).sum(axis=axis)
+    block = np.moveaxis(block, axis, 0)
+    folded = block[:length].copy()
+    for start in range(length, width, length):
+        part = block[start : start + length]
+        folded[: part.shape[0]] += part
+    return np.moveaxis(folded, 0, axis)
 
 
 def _smooth_1d(n, sigma_px, length, step, first, count, eps, dtype):
@@ -145,16 +144,57 @@ def _smooth_1d(n, sigma_px, length, step, first, count, eps, dtype):
     return (values * ax.sample_factor(step, first, count, 0.0)).real
 
 
-def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps, ctype,
-                  inverse_norm=None, out=None):
+def _column_spectrum(data, valid, lengths, need, rtype, ctype):
+    """The 2-D spectrum of ``data`` (zero where not ``valid``, zero padded to ``lengths``) at the
+    half-spectrum columns ``need`` and every frequency row, stored transposed: shape (need.size, P_y).
+
+    Rows are transformed in blocks straight into the padded buffer of the column transform, so the
+    only full-size temporary is that buffer (as wide as the columns some q needs); it is transposed
+    so that the column transform runs over contiguous memory.
+    """
+    ny = data.shape[0]
+    py, px = lengths
+    lo, hi = int(need[0]), int(need[-1]) + 1
+    contiguous = hi - lo == need.size
+    buffer = np.empty((need.size, py), dtype=ctype)
+    buffer[:, ny:] = 0
+    block_rows = max(1, _BLOCK_ELEMENTS // px)
+    for r0 in range(0, ny, block_rows):
+        r1 = min(ny, r0 + block_rows)
+        block = data[r0:r1]
+        if valid is not None:
+            block = np.where(valid[r0:r1], block, 0)
+        rows = sfft.rfft(block.astype(rtype, copy=False), n=px, axis=1, workers=-1)
+        buffer[:, r0:r1] = (rows[:, lo:hi] if contiguous else rows[:, need]).T
+    return sfft.fft(buffer, axis=1, workers=-1, overwrite_x=True)
+
+
+def _runs(u, values):
+    """Split positions ``u`` with source indices ``values`` into runs where both advance by one
+    (values by +1 or -1): a list of (first position, last position + 1, source slice)."""
+    runs, start = [], 0
+    for i in range(1, u.size + 1):
+        if i < u.size and u[i] == u[i - 1] + 1:
+            d = int(values[i]) - int(values[i - 1])
+            if abs(d) == 1 and (i - start == 1 or d == int(values[start + 1]) - int(values[start])):
+                continue
+        v0, v1 = int(values[start]), int(values[i - 1])
+        sl = slice(v0, v1 + 1) if v1 >= v0 else slice(v0, None if v1 == 0 else v1 - 1, -1)
+        runs.append((int(u[start]), int(u[i - 1]) + 1, sl))
+        start = i
+    return runs
+
+
+def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps, rtype,
+                  valid=None, inverse_norm=None, out=None):
     """G_sigma * [data exp(-i q.r)] for every q, sampled at rows/cols first + step m.
 
-    ``data`` is real (zero where masked); ``lengths`` (P_y, P_x) are the FFT lengths (zero padding
-    beyond the data makes the convolution linear); ``origin`` is the global pixel of data[0, 0] for
-    the reference wave. ``inverse_norm`` is either a pair of 1-D factors (separable normaliser) or a
-    2-D array on the output grid, or None.
+    ``data`` is real (set to zero where ``valid`` is False); ``lengths`` (P_y, P_x) are the FFT
+    lengths (zero padding beyond the data makes the convolution linear); ``origin`` is the global
+    pixel of data[0, 0] for the reference wave. ``inverse_norm`` is either a pair of 1-D factors
+    (separable normaliser) or a 2-D array on the output grid, or None.
     """
-    ny, nx = data.shape
+    ctype = np.complex64 if rtype == np.float32 else np.complex128
     py, px = lengths
     ly, lx = py // step, px // step
     half = px // 2
@@ -162,27 +202,26 @@ def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps
     # Frequency columns each q needs, as columns of the half spectrum (negative ones by conjugation).
     cols = [np.where(ax.index <= half, ax.index, px - ax.index) for _, ax in axes]
     need = np.unique(np.concatenate(cols))
-    rows_fft = sfft.rfft(data, n=px, axis=1, workers=-1)
-    if need.size == rows_fft.shape[1]:
-        spectrum = sfft.fft(rows_fft, n=py, axis=0, workers=-1, overwrite_x=True)
-    elif need.size and need[-1] - need[0] + 1 == need.size:
-        spectrum = sfft.fft(rows_fft[:, need[0] : need[-1] + 1], n=py, axis=0, workers=-1)
-    else:
-        spectrum = sfft.fft(rows_fft[:, need], n=py, axis=0, workers=-1)
-    del rows_fft
+    spectrum = _column_spectrum(data, valid, lengths, need, rtype, ctype)  # (columns, P_y)
     if out is None:
         out = np.empty((len(q_px),) + tuple(count), dtype=ctype)
     block_rows = max(1, _BLOCK_ELEMENTS // lx)
     for j, (ay, ax) in enumerate(axes):
-        pos = np.searchsorted(need, cols[j])
         negative = ax.index > half
-        window = np.empty((ay.index.size, ax.index.size), dtype=spectrum.dtype)
-        window[:, ~negative] = spectrum[np.ix_(ay.index, pos[~negative])]
+        pos = np.searchsorted(need, cols[j])
+        # The window, transposed: (k_x bins, k_y bins).
+        window = np.empty((ax.index.size, ay.index.size), dtype=ctype)
         # I~(ky, -kx) = conj(I~(-ky, kx)) for a real image.
-        window[:, negative] = np.conj(spectrum[np.ix_((-ay.index) % py, pos[negative])])
-        window *= np.multiply.outer(ay.first_twist(step, first[0]), ax.first_twist(step, first[1])).astype(ctype)
-        cols_done = sfft.ifft(_fold(window, ly, 0), n=ly, axis=0, workers=-1)[: count[0]]
-        cols_done = _fold(cols_done, lx, 1)
+        for part, rows, conj in ((~negative, ay.index, False), (negative, (-ay.index) % py, True)):
+            u = np.flatnonzero(part)
+            for u0, u1, sl in _runs(u, pos[u]):
+                np.take(spectrum[sl], rows, axis=1, out=window[u0:u1], mode="clip")  # clip: unbuffered
+                if conj:
+                    np.conjugate(window[u0:u1], out=window[u0:u1])
+        window *= ax.first_twist(step, first[1]).astype(ctype)[:, None]
+        window *= ay.first_twist(step, first[0]).astype(ctype)[None, :]
+        done_y = sfft.ifft(_fold(window, ly, 1), n=ly, axis=1, workers=-1, overwrite_x=True)[:, : count[0]]
+        done_y = np.ascontiguousarray(_fold(done_y, lx, 0).T)  # (rows, k_x bins)
         fy = ay.sample_factor(step, first[0], count[0], origin[0])
         fx = ax.sample_factor(step, first[1], count[1], origin[1])
         if isinstance(inverse_norm, tuple):
@@ -190,7 +229,7 @@ def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps
         fy, fx = fy.astype(ctype), fx.astype(ctype)
         for r0 in range(0, count[0], block_rows):
             r1 = min(count[0], r0 + block_rows)
-            res = sfft.ifft(cols_done[r0:r1], n=lx, axis=1, workers=-1)[:, : count[1]]
+            res = sfft.ifft(done_y[r0:r1], n=lx, axis=1, workers=-1)[:, : count[1]]
             res *= fy[r0:r1, None]
             res *= fx[None, :]
             if isinstance(inverse_norm, np.ndarray):
@@ -203,7 +242,6 @@ def _lockin_memory(image, valid, q_px, sigma_px, *, step, boundary, pad, origin=
     """The lock-in of one in-memory array. ``image`` is float32 or float64 (it sets the precision);
     ``valid`` is a boolean array (False = masked or NaN) or None when every pixel counts."""
     rtype = image.dtype
-    ctype = np.complex64 if rtype == np.float32 else np.complex128
     eps = TRANSFER_EPS[np.dtype(rtype)]
     ny, nx = image.shape
     if count is None:
@@ -211,23 +249,24 @@ def _lockin_memory(image, valid, q_px, sigma_px, *, step, boundary, pad, origin=
     if boundary == "periodic":
         if ny % step or nx % step:
             # Folding needs whole periods of step pixels: compute on the full grid and sample it.
-            full = _filter_stack(image, q_px, sigma_px, (ny, nx), 1, (0, 0), (ny, nx), origin, eps, ctype)
+            full = _filter_stack(image, q_px, sigma_px, (ny, nx), 1, (0, 0), (ny, nx), origin, eps, rtype)
             return np.ascontiguousarray(full[:, first[0] :: step, first[1] :: step][:, : count[0], : count[1]])
-        return _filter_stack(image, q_px, sigma_px, (ny, nx), step, first, count, origin, eps, ctype)
+        return _filter_stack(image, q_px, sigma_px, (ny, nx), step, first, count, origin, eps, rtype)
     lengths = (_fft_length(ny, pad[0], step), _fft_length(nx, pad[1], step))
     if valid is None:
         # Nothing masked: the normaliser G * 1_frame is separable, two 1-D filters.
         norm_y = _smooth_1d(ny, sigma_px[0], lengths[0], step, first[0], count[0], eps, rtype)
         norm_x = _smooth_1d(nx, sigma_px[1], lengths[1], step, first[1], count[1], eps, rtype)
         inverse = tuple(np.where(n > MIN_WEIGHT, 1 / np.where(n > MIN_WEIGHT, n, 1), np.nan) for n in (norm_y, norm_x))
-        return _filter_stack(image, q_px, sigma_px, lengths, step, first, count, origin, eps, ctype, inverse)
-    weights = valid.astype(rtype)
-    norm = _filter_stack(weights, np.zeros((1, 2)), sigma_px, lengths, step, first, count, (0, 0), eps, ctype)[0].real
+        return _filter_stack(image, q_px, sigma_px, lengths, step, first, count, origin, eps, rtype,
+                             inverse_norm=inverse)
+    # The normaliser G * valid: the same filter at q = 0 applied to the weights, once for all q.
+    norm = _filter_stack(valid, np.zeros((1, 2)), sigma_px, lengths, step, first, count, (0, 0), eps, rtype)[0].real
     inverse = np.full(norm.shape, np.nan, dtype=rtype)
     np.divide(1, norm, out=inverse, where=norm > MIN_WEIGHT)
     del norm
-    data = np.where(valid, image, rtype.type(0))
-    return _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps, ctype, inverse)
+    return _filter_stack(image, q_px, sigma_px, lengths, step, first, count, origin, eps, rtype,
+                         valid=valid, inverse_norm=inverse)
 
 
 def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized", step=None):
