@@ -412,7 +412,8 @@ def lossless_step(sigma_nm, pixel_size_nm, *, tolerance=1e-6):
     sigma_nm : float
         The lock-in width in nm.
     pixel_size_nm : float or (float, float)
-        Pixel size in nm, one value or (row, col); the finer axis sets the step.
+        Pixel size in nm, one value or (row, col); the coarser axis (fewest
+        pixels per sigma) sets the step.
     tolerance : float
         Relative size of the Gaussian transfer allowed to alias, 0 < tolerance < 1.
 
