@@ -221,20 +221,26 @@ def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps
         window *= ax.first_twist(step, first[1]).astype(ctype)[:, None]
         window *= ay.first_twist(step, first[0]).astype(ctype)[None, :]
         done_y = sfft.ifft(_fold(window, ly, 1), n=ly, axis=1, workers=-1, overwrite_x=True)[:, : count[0]]
-        done_y = np.ascontiguousarray(_fold(done_y, lx, 0).T)  # (rows, k_x bins)
+        done_y = _fold(done_y, lx, 0)  # (k_x bins, rows)
+        width = done_y.shape[0]
         fy = ay.sample_factor(step, first[0], count[0], origin[0])
         fx = ax.sample_factor(step, first[1], count[1], origin[1])
         if isinstance(inverse_norm, tuple):
             fy, fx = fy * inverse_norm[0], fx * inverse_norm[1]
         fy, fx = fy.astype(ctype), fx.astype(ctype)
+        # The row factor commutes with the transform along the rows: apply it on the narrow window.
+        # One zero-padded buffer is reused for every block of rows (transformed in place).
+        buffer = np.zeros((min(block_rows, count[0]), lx), dtype=ctype)
         for r0 in range(0, count[0], block_rows):
             r1 = min(count[0], r0 + block_rows)
-            res = sfft.ifft(done_y[r0:r1], n=lx, axis=1, workers=-1)[:, : count[1]]
-            res *= fy[r0:r1, None]
-            res *= fx[None, :]
+            rows = buffer[: r1 - r0]
+            np.multiply(done_y[:, r0:r1].T, fy[r0:r1, None], out=rows[:, :width])
+            rows[:, width:] = 0
+            res = sfft.ifft(rows, axis=1, workers=-1, overwrite_x=True)
+            target = out[j, r0:r1]
+            np.multiply(res[:, : count[1]], fx, out=target)
             if isinstance(inverse_norm, np.ndarray):
-                res *= inverse_norm[r0:r1]
-            out[j, r0:r1] = res
+                target *= inverse_norm[r0:r1]
     return out
 
 
