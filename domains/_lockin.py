@@ -172,16 +172,20 @@ def _column_spectrum(data, valid, lengths, need, rtype, ctype):
 def _runs(u, values):
     """Split positions ``u`` with source indices ``values`` into runs where both advance by one
     (values by +1 or -1): a list of (first position, last position + 1, source slice)."""
-    runs, start = [], 0
-    for i in range(1, u.size + 1):
-        if i < u.size and u[i] == u[i - 1] + 1:
-            d = int(values[i]) - int(values[i - 1])
-            if abs(d) == 1 and (i - start == 1 or d == int(values[start + 1]) - int(values[start])):
-                continue
-        v0, v1 = int(values[start]), int(values[i - 1])
+    if u.size == 0:
+        return []
+    du, dv = np.diff(u), np.diff(values.astype(np.int64))
+    ok = (du == 1) & (np.abs(dv) == 1)
+    cut = ~ok
+    cut[1:] |= ok[:-1] & (dv[1:] != dv[:-1])  # a change of direction ends a run as well
+    ends = np.flatnonzero(cut)
+    starts = np.concatenate([[0], ends + 1])
+    stops = np.concatenate([ends + 1, [u.size]])
+    runs = []
+    for i0, i1 in zip(starts, stops):
+        v0, v1 = int(values[i0]), int(values[i1 - 1])
         sl = slice(v0, v1 + 1) if v1 >= v0 else slice(v0, None if v1 == 0 else v1 - 1, -1)
-        runs.append((int(u[start]), int(u[i - 1]) + 1, sl))
-        start = i
+        runs.append((int(u[i0]), int(u[i1 - 1]) + 1, sl))
     return runs
 
 
@@ -212,14 +216,26 @@ def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps
         # The window, transposed: (k_x bins, k_y bins).
         window = np.empty((ax.index.size, ay.index.size), dtype=ctype)
         # I~(ky, -kx) = conj(I~(-ky, kx)) for a real image.
+        # The transfer (times the twist that moves the sampling grid), applied while gathering.
+        tx, ty = ax.first_twist(step, first[1]), ay.first_twist(step, first[0])
+        real = np.isrealobj(tx) and np.isrealobj(ty)
+        transfer = np.multiply.outer(tx, ty).astype(rtype if real else ctype)
+        every = np.arange(ay.index.size)
         for part, rows, conj in ((~negative, ay.index, False), (negative, (-ay.index) % py, True)):
             u = np.flatnonzero(part)
+            row_runs = _runs(every, rows)  # the window is contiguous modulo P_y: one or two slices
             for u0, u1, sl in _runs(u, pos[u]):
-                np.take(spectrum[sl], rows, axis=1, out=window[u0:u1], mode="clip")  # clip: unbuffered
-                if conj:
-                    np.conjugate(window[u0:u1], out=window[u0:u1])
-        window *= ax.first_twist(step, first[1]).astype(ctype)[:, None]
-        window *= ay.first_twist(step, first[0]).astype(ctype)[None, :]
+                for v0, v1, sr in row_runs:
+                    target = window[u0:u1, v0:v1]
+                    t = transfer[u0:u1, v0:v1]
+                    if not conj:
+                        np.multiply(spectrum[sl, sr], t, out=target)
+                    elif real:
+                        # conj(I~) t = conj(I~ t) for a real transfer.
+                        np.multiply(spectrum[sl, sr], t, out=target)
+                        np.conjugate(target, out=target)
+                    else:
+                        np.multiply(np.conjugate(spectrum[sl, sr]), t, out=target)
         done_y = sfft.ifft(_fold(window, ly, 1), n=ly, axis=1, workers=-1, overwrite_x=True)[:, : count[0]]
         done_y = _fold(done_y, lx, 0)  # (k_x bins, rows)
         width = done_y.shape[0]
