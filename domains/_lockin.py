@@ -104,7 +104,12 @@ class _Axis:
         self.start = centre - half
         j = self.start + np.arange(width)
         self.index = j % length
-        self.transfer = np.exp(-0.5 * (sigma_px * (2 * np.pi * j / length - q_px)) ** 2)
+        # The 2 pi-periodic transfer sum_m exp(-sigma^2 (k - q - 2 pi m)^2 / 2): the spectrum of the
+        # Gaussian sampled on the pixels (Poisson summation). The kernel is then the same on every FFT
+        # grid (chunks, decimation), also when sigma is a pixel or two and the Gaussian reaches k = pi.
+        dk = 2 * np.pi * j / length - q_px
+        terms = math.ceil(_transfer_cut(eps) / (2 * np.pi * sigma_px)) + 1
+        self.transfer = sum(np.exp(-0.5 * (sigma_px * (dk - 2 * np.pi * m)) ** 2) for m in range(-terms, terms + 1))
         self.q_px, self.length = q_px, length
 
     def sample_factor(self, step, first, count, origin):

@@ -314,8 +314,9 @@ def test_dtype_in_out(dtype, expected, step):
         assert lazy.dtype == expected and lazy.compute().dtype == expected
 
 
+@pytest.mark.parametrize("sigma", [4.0, 1.2])
 @pytest.mark.parametrize("dtype, rtol", [(np.float64, 1e-9), (np.float32, 2e-5)])
-def test_masked_edges_match_textbook_normalised_convolution(dtype, rtol):
+def test_masked_edges_match_textbook_normalised_convolution(dtype, rtol, sigma):
     rng = np.random.default_rng(3)
     shape = (150, 130)
     q = 2 * np.pi * np.array([0.137, -0.061])
@@ -325,12 +326,13 @@ def test_masked_edges_match_textbook_normalised_convolution(dtype, rtol):
     mask[40:70, 90:101] = True
     mask[120, :] = True
     image[mask] = 50.0  # garbage under the mask
-    sigma = 4.0
     a = lockin(image.astype(dtype), q, sigma_nm=sigma, pixel_size_nm=1.0, mask=mask)
     ref, w = textbook_normalised(image, ~mask, q, sigma)
     # Reference library scipy.ndimage: the normalised convolution everywhere, edges and mask rims
     # included (zero padding of 6 sigma: the wrapped tail is 1e-9 of the weight). float64: rounding;
-    # float32: a rounding of ~1e-6 of the largest term divided by the weight w (derived).
+    # float32: a rounding of ~1e-6 of the largest term divided by the weight w (derived). At sigma = 1.2 px the
+    # kernel is still scipy's sampled Gaussian: the periodic transfer is its spectrum (Poisson summation), whose
+    # sum 1 + 2 exp(-2 pi^2 sigma^2) = 1 + 1e-12 cancels in the normalisation (derived).
     ok = w > 0.05
     scale = np.abs(image).max()
     assert_allclose(a[ok], ref[ok], rtol=0, atol=rtol * scale / w[ok].min())
@@ -406,17 +408,20 @@ def test_decimated_equals_full_at_sampled_pixels(shape, step, pixel, sigma, mask
     assert_allclose(coarse[middle], sampled[middle], rtol=0, atol=1e-12 * scale, equal_nan=True)
 
 
+@pytest.mark.parametrize("sigma", [2.0, 1.1])
 @pytest.mark.parametrize("step", [None, 3])
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
-def test_dask_equals_memory_irregular_chunks_and_step(step, dtype):
+def test_dask_equals_memory_irregular_chunks_and_step(step, dtype, sigma):
     rng = np.random.default_rng(17)
     shape = (181, 157)
     q = 2 * np.pi * np.array([[0.13, 0.05], [-0.07, 0.17]])
     image = (sum(wave(qj, 1.0 + j, j, shape) for j, qj in enumerate(q)) + rng.normal(scale=0.5, size=shape)).astype(dtype)
     image[100, 77] = np.nan  # NaN counts as masked, in every chunk
     chunks = ((41, 17, 60, 63), (29, 70, 11, 47))  # irregular, some smaller than the 12-px overlap
-    memory = lockin(image, q, sigma_nm=2.0, pixel_size_nm=1.0, step=step)
-    lazy = lockin(da.from_array(image, chunks=chunks), q, sigma_nm=2.0, pixel_size_nm=1.0, step=step)
+    # sigma = 1.1 px: the Gaussian transfer still holds exp(-(1.1 pi)^2 / 2) = 2.6e-3 at k = pi, so the kernel
+    # must be the sampled Gaussian (periodic transfer), not one that depends on each chunk's FFT length.
+    memory = lockin(image, q, sigma_nm=sigma, pixel_size_nm=1.0, step=step)
+    lazy = lockin(da.from_array(image, chunks=chunks), q, sigma_nm=sigma, pixel_size_nm=1.0, step=step)
     result = lazy.compute()
     assert result.shape == memory.shape and result.dtype == memory.dtype
     # DESIGN.md: chunked and in-memory agree to float32 precision. float32: rounding of 1e-6 of the numerator;
