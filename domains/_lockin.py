@@ -43,7 +43,7 @@ MIN_WEIGHT = 1e-3
 BOUNDARIES = ("normalized", "periodic")
 
 # Rows of the last inverse FFT handled at a time (keeps temporaries small next to the output).
-_BLOCK_ELEMENTS = 1 << 21
+_BLOCK_ELEMENTS = 1 << 22
 
 
 def _as_q_array(q) -> tuple[np.ndarray, bool]:
@@ -215,20 +215,21 @@ def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps
     if out is None:
         out = np.empty((len(q_px),) + tuple(count), dtype=ctype)
     block_rows = max(1, _BLOCK_ELEMENTS // lx)
+    # One zero-padded buffer, reused for every block of rows of every q (transformed in place).
+    buffer = np.zeros((min(block_rows, count[0]), lx), dtype=ctype)
     for j, (ay, ax) in enumerate(axes):
         negative = ax.index > half
         pos = np.searchsorted(need, cols[j])
-        # The window, transposed: (k_x bins, k_y bins).
+        # The window, transposed: (k_x bins, k_y bins), times the transfer (and the twist that moves
+        # the sampling grid), gathered by slices; negative k_x from I~(ky, -kx) = conj(I~(-ky, kx)).
         window = np.empty((ax.index.size, ay.index.size), dtype=ctype)
-        # I~(ky, -kx) = conj(I~(-ky, kx)) for a real image.
-        # The transfer (times the twist that moves the sampling grid), applied while gathering.
         tx, ty = ax.first_twist(step, first[1]), ay.first_twist(step, first[0])
         real = np.isrealobj(tx) and np.isrealobj(ty)
         transfer = np.multiply.outer(tx, ty).astype(rtype if real else ctype)
         every = np.arange(ay.index.size)
-        for part, rows, conj in ((~negative, ay.index, False), (negative, (-ay.index) % py, True)):
+        for part, src_rows, conj in ((~negative, ay.index, False), (negative, (-ay.index) % py, True)):
             u = np.flatnonzero(part)
-            row_runs = _runs(every, rows)  # the window is contiguous modulo P_y: one or two slices
+            row_runs = _runs(every, src_rows)  # the window is contiguous modulo P_y: one or two slices
             for u0, u1, sl in _runs(u, pos[u]):
                 for v0, v1, sr in row_runs:
                     target = window[u0:u1, v0:v1]
@@ -242,20 +243,19 @@ def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps
                     else:
                         np.multiply(np.conjugate(spectrum[sl, sr]), t, out=target)
         done_y = sfft.ifft(_fold(window, ly, 1), n=ly, axis=1, workers=-1, overwrite_x=True)[:, : count[0]]
-        done_y = _fold(done_y, lx, 0)  # (k_x bins, rows)
-        width = done_y.shape[0]
+        # (rows, k_x bins): one cache-friendly transpose, so the row blocks below read contiguous memory.
+        done_y = np.ascontiguousarray(_fold(done_y, lx, 0).T)
+        width = done_y.shape[1]
         fy = ay.sample_factor(step, first[0], count[0], origin[0])
         fx = ax.sample_factor(step, first[1], count[1], origin[1])
         if isinstance(inverse_norm, tuple):
             fy, fx = fy * inverse_norm[0], fx * inverse_norm[1]
         fy, fx = fy.astype(ctype), fx.astype(ctype)
         # The row factor commutes with the transform along the rows: apply it on the narrow window.
-        # One zero-padded buffer is reused for every block of rows (transformed in place).
-        buffer = np.zeros((min(block_rows, count[0]), lx), dtype=ctype)
         for r0 in range(0, count[0], block_rows):
             r1 = min(count[0], r0 + block_rows)
             rows = buffer[: r1 - r0]
-            np.multiply(done_y[:, r0:r1].T, fy[r0:r1, None], out=rows[:, :width])
+            np.multiply(done_y[r0:r1], fy[r0:r1, None], out=rows[:, :width])
             rows[:, width:] = 0
             res = sfft.ifft(rows, axis=1, workers=-1, overwrite_x=True)
             target = out[j, r0:r1]
