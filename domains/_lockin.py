@@ -6,7 +6,9 @@ spectrum where the Gaussian transfer exp(-sigma^2 |k - q|^2 / 2) is not negligib
 1. one real FFT along the rows, shared by every q, then FFTs along the columns only for the
    frequency columns some q needs;
 2. per q, the window of (2h+1) x (2h+1) bins around q (h from the truncation level ``eps``) is
-   multiplied by the separable transfer t_y(k_y) t_x(k_x);
+   multiplied by the separable transfer t_y(k_y) t_x(k_x), each the 2 pi-periodic
+   sum_m exp(-sigma^2 (k - q - 2 pi m)^2 / 2): the spectrum of the Gaussian sampled on the pixels,
+   so the kernel does not depend on the FFT length (chunks, padding, decimation);
 3. two inverse 1-D FFTs bring the window back to pixels, the second one in row blocks written
    straight into the output, multiplied by the separable factors exp(-i q.r) and, without a mask,
    the separable normaliser 1 / ((g * 1_rows)(y) (g * 1_cols)(x)).
