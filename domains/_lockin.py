@@ -130,16 +130,18 @@ class _Axis:
 
 
 def _fold(block, length, axis):
-    """Sum the spectrum window modulo ``length`` bins (sampling every step-th pixel folds it)."""
+    """Sum the spectrum window modulo ``length`` bins (sampling every step-th pixel folds it).
+
+    Works in place on ``block`` and returns a view of its first ``length`` entries along ``axis``.
+    """
     width = block.shape[axis]
     if width <= length:
         return block
-    block = np.moveaxis(block, axis, 0)
-    folded = block[:length].copy()
+    moved = np.moveaxis(block, axis, 0)
     for start in range(length, width, length):
-        part = block[start : start + length]
-        folded[: part.shape[0]] += part
-    return np.moveaxis(folded, 0, axis)
+        part = moved[start : start + length]
+        moved[: part.shape[0]] += part
+    return np.moveaxis(moved[:length], 0, axis)
 
 
 def _smooth_1d(n, sigma_px, length, step, first, count, eps, dtype):
@@ -227,7 +229,8 @@ def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps
         window = np.empty((ax.index.size, ay.index.size), dtype=ctype)
         tx, ty = ax.first_twist(step, first[1]), ay.first_twist(step, first[0])
         real = np.isrealobj(tx) and np.isrealobj(ty)
-        transfer = np.multiply.outer(tx, ty).astype(rtype if real else ctype)
+        kind = rtype if real else ctype
+        transfer = np.multiply.outer(tx.astype(kind), ty.astype(kind))
         every = np.arange(ay.index.size)
         for part, src_rows, conj in ((~negative, ay.index, False), (negative, (-ay.index) % py, True)):
             u = np.flatnonzero(part)
@@ -441,12 +444,15 @@ def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized
         result = _lockin_dask(image.astype(rtype), q_px, sigma_px, mask, boundary, pad, step)
     else:
         image = np.asarray(image, dtype=rtype)
-        valid = np.isfinite(image)
-        if mask is not None:
-            valid &= ~mask
-        if valid.all():
-            valid = None
-        elif boundary == "periodic":
+        if (mask is None or not mask.any()) and np.isfinite(np.sum(image, dtype=np.float64)):
+            valid = None  # a finite sum: no NaN or inf anywhere
+        else:
+            valid = np.isfinite(image)
+            if mask is not None:
+                valid &= ~mask
+            if valid.all():
+                valid = None
+        if valid is not None and boundary == "periodic":
             raise InputError("boundary='periodic' needs a complete image with no masked or NaN pixels")
         result = _lockin_memory(image, valid, q_px, sigma_px, step=step, boundary=boundary, pad=pad)
     return result[0] if single else result
