@@ -41,6 +41,8 @@ def main():
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--size", type=int, default=1024, help="image size in pixels (default 1024)")
     parser.add_argument("--repeat", type=int, default=3)
+    parser.add_argument("--kernel-size", type=int, default=4096,
+                        help="image size of the lock-in kernel benchmark (default 4096; 0 skips it)")
     args = parser.parse_args()
     scene = cdw_scene(shape=(args.size, args.size), rng=0)
     image, pixel = scene.topography.data, scene.topography.pixel_size_nm[0]
@@ -69,10 +71,19 @@ def main():
                                          pixel_size_nm=small.topography.pixel_size_nm), args.repeat)
     rows.append(("whole analysis of the 512^2 demo scene vs one 3-q lock-in of it", full, one))
 
+    notes = []
+    if args.kernel_size:
+        import lockin_kernel  # benchmarks/ is on sys.path when this file runs as a script
+
+        kernel_rows, notes = lockin_kernel.run(size=args.kernel_size, repeat=args.repeat)
+        rows.extend(kernel_rows)
+
     width = max(len(r[0]) for r in rows)
     print(f"{'case':<{width}}  {'ours (s)':>9}  {'ref (s)':>9}  {'ratio':>7}")
     for name, a, b in rows:
         print(f"{name:<{width}}  {a:9.3f}  {b:9.3f}  {a / b:7.2f}")
+    for note in notes:
+        print(note)
 
 
 if __name__ == "__main__":

@@ -1,4 +1,22 @@
-"""Spatial lock-in: demodulate an image at wavevectors q to get local amplitude, phase and wavevector."""
+"""Spatial lock-in: demodulate an image at wavevectors q to get local amplitude, phase and wavevector.
+
+The kernel works in Fourier space (METHODS §1, Fourier form) and touches only the part of the
+spectrum where the Gaussian transfer exp(-sigma^2 |k - q|^2 / 2) is not negligible:
+
+1. one real FFT along the rows, shared by every q, then FFTs along the columns only for the
+   frequency columns some q needs;
+2. per q, the window of (2h+1) x (2h+1) bins around q (h from the truncation level ``eps``) is
+   multiplied by the separable transfer t_y(k_y) t_x(k_x), each the 2 pi-periodic
+   sum_m exp(-sigma^2 (k - q - 2 pi m)^2 / 2): the spectrum of the Gaussian sampled on the pixels,
+   so the kernel does not depend on the FFT length (chunks, padding, decimation);
+3. two inverse 1-D FFTs bring the window back to pixels, the second one in row blocks written
+   straight into the output, multiplied by the separable factors exp(-i q.r) and, without a mask,
+   the separable normaliser 1 / ((g * 1_rows)(y) (g * 1_cols)(x)).
+
+Decimated output (``step`` = s): the spectrum window is folded modulo L = P/s bins (P the FFT
+length) and inverse-transformed on L points, which gives the same truncated filter exactly at the
+pixels 0, s, 2s, ... (Poisson summation: sampling every s-th pixel folds the spectrum modulo P/s).
+"""
 
 from __future__ import annotations
 
@@ -12,12 +30,22 @@ from ._checks import positive, within_nyquist
 from ._errors import InputError
 from ._scan import _is_dask, pixel_size_pair
 
-#: Gaussian support, in units of sigma, kept by the chunked path (overlap) and by the
-#: zero padding of the in-memory path. The 2-D Gaussian mass beyond 6 sigma is
-#: exp(-18) = 1.5e-8, below float32 precision, so chunked and in-memory results agree.
+#: Gaussian support, in units of sigma, kept by the chunked path (overlap depth) and by the
+#: zero padding of the in-memory path. The 1-D Gaussian mass beyond 6 sigma is
+#: erfc(6 / sqrt 2) / 2 = 1e-9, below float32 precision, so chunked and in-memory results agree.
 TRUNCATE = 6.0
 
+#: The Gaussian transfer exp(-sigma^2 dk^2 / 2) is dropped where it is below this, per precision.
+#: The error this makes in A is at most eps * sqrt(sum I^2) / (normaliser) (Parseval; see ``lockin``).
+TRANSFER_EPS = {np.dtype(np.float32): 1e-10, np.dtype(np.float64): 1e-16}
+
+#: Normalised convolution: below this filtered weight a pixel has almost nothing to average (NaN).
+MIN_WEIGHT = 1e-3
+
 BOUNDARIES = ("normalized", "periodic")
+
+# Rows of the last inverse FFT handled at a time (keeps temporaries small next to the output).
+_BLOCK_ELEMENTS = 1 << 22
 
 
 def _as_q_array(q) -> tuple[np.ndarray, bool]:
@@ -44,72 +72,274 @@ def _check_q_sigma(q, sigma_nm, pixel_size, shape):
     return sigma_nm
 
 
-def _gaussian_transfer(shape, sigma_px, shift_px=(0.0, 0.0)):
-    """exp(-sigma^2 |k - k0|^2 / 2) on the FFT grid, k in rad/px, k - k0 wrapped to [-pi, pi)."""
-    ky = 2 * np.pi * np.fft.fftfreq(shape[0])[:, None] - shift_px[0]
-    kx = 2 * np.pi * np.fft.fftfreq(shape[1])[None, :] - shift_px[1]
-    ky = (ky + np.pi) % (2 * np.pi) - np.pi
-    kx = (kx + np.pi) % (2 * np.pi) - np.pi
-    return np.exp(-0.5 * (sigma_px[0] ** 2 * ky**2 + sigma_px[1] ** 2 * kx**2))
+def _check_step(step):
+    if step is None:
+        return 1
+    if isinstance(step, (bool, np.bool_)) or not isinstance(step, (int, np.integer)) or step < 1:
+        raise InputError(f"step must be a positive integer number of pixels (or None), got {step!r}")
+    return int(step)
 
 
-def _reference_wave(q, shape, pixel_size, offset=(0, 0)):
-    """exp(-i (qx x + qy y)) with x = col * dx, y = row * dy in global pixel coordinates."""
-    dy, dx = pixel_size
-    rows = (offset[0] + np.arange(shape[0]))[:, None] * dy
-    cols = (offset[1] + np.arange(shape[1]))[None, :] * dx
-    return np.exp(-1j * (q[0] * cols + q[1] * rows))
+def _transfer_cut(eps):
+    """sigma |dk| beyond which exp(-sigma^2 dk^2 / 2) < eps."""
+    return math.sqrt(2 * math.log(1 / eps))
 
 
-def _demodulate_block(image, weights, q, sigma_px, pixel_size, offset, boundary, pad):
-    """Lock-in of one in-memory block; the forward transform is shared by all q.
+def _fft_length(n, pad, step):
+    """Smallest fast FFT length >= n + pad that is a multiple of ``step``."""
+    return step * sfft.next_fast_len(-(-(n + pad) // step))
 
-    The filter exp(-sigma^2|k - q|^2/2) applied to the image, followed by the
-    reference wave, equals a Gaussian filter applied to image * reference
-    (METHODS §1, Fourier form). With boundary="normalized" the block is zero padded
-    by `pad` pixels (linear, not circular, convolution) and divided by the
-    equally filtered weights (normalised convolution).
+
+class _Axis:
+    """One axis of the separable filter: the spectrum window around q and its transfer.
+
+    The window holds the bins j = start, ..., start + width - 1 (taken modulo ``length``),
+    centred on the bin nearest q; it is the whole axis when the Gaussian is wider than that.
     """
-    dy, dx = pixel_size
-    ny, nx = image.shape
-    out = np.empty((len(q), ny, nx), dtype=np.complex128)
-    if boundary == "periodic":
-        spectrum = sfft.fft2(image, workers=-1)
-        for j, qj in enumerate(q):
-            shift = (qj[1] * dy, qj[0] * dx)
-            filtered = sfft.ifft2(spectrum * _gaussian_transfer((ny, nx), sigma_px, shift), workers=-1)
-            out[j] = filtered * _reference_wave(qj, (ny, nx), pixel_size, offset)
-        return out
-    # At least `pad` zeros on each side (linear, not circular, convolution), rounded up to a
-    # size the FFT handles fast.
-    padded_shape = (sfft.next_fast_len(ny + 2 * pad[0]), sfft.next_fast_len(nx + 2 * pad[1]))
-    core = (slice(pad[0], pad[0] + ny), slice(pad[1], pad[1] + nx))
-    work = np.zeros(padded_shape)
-    work[core] = np.where(weights > 0, image, 0.0) * weights
-    spectrum = sfft.fft2(work, workers=-1)
-    work[:] = 0.0
-    work[core] = weights
-    norm = sfft.ifft2(sfft.fft2(work, workers=-1) * _gaussian_transfer(padded_shape, sigma_px), workers=-1).real[core]
-    # Below this the normalised convolution has almost nothing to average: report NaN.
-    inverse = np.full(norm.shape, np.nan)
-    np.divide(1.0, norm, out=inverse, where=norm > 1e-3)
-    for j, qj in enumerate(q):
-        shift = (qj[1] * dy, qj[0] * dx)
-        filtered = sfft.ifft2(spectrum * _gaussian_transfer(padded_shape, sigma_px, shift), workers=-1)[core]
-        out[j] = filtered * _reference_wave(qj, (ny, nx), pixel_size, offset) * inverse
+
+    def __init__(self, q_px, sigma_px, length, eps):
+        half = math.ceil(_transfer_cut(eps) / sigma_px * length / (2 * math.pi))
+        centre = round(q_px * length / (2 * math.pi))
+        width = 2 * half + 1
+        if width >= length:
+            width, half = length, length // 2
+        self.start = centre - half
+        j = self.start + np.arange(width)
+        self.index = j % length
+        # The 2 pi-periodic transfer sum_m exp(-sigma^2 (k - q - 2 pi m)^2 / 2): the spectrum of the
+        # Gaussian sampled on the pixels (Poisson summation). The kernel is then the same on every FFT
+        # grid (chunks, decimation), also when sigma is a pixel or two and the Gaussian reaches k = pi.
+        dk = 2 * np.pi * j / length - q_px
+        terms = math.ceil(_transfer_cut(eps) / (2 * np.pi * sigma_px)) + 1
+        self.transfer = sum(np.exp(-0.5 * (sigma_px * (dk - 2 * np.pi * m)) ** 2) for m in range(-terms, terms + 1))
+        self.q_px, self.length = q_px, length
+
+    def sample_factor(self, step, first, count, origin):
+        """exp(2 pi i start r / P) exp(-i q (origin + r)) / step at the local samples r = first + step m."""
+        r = first + step * np.arange(count)
+        shift = 2 * np.pi * self.start / self.length
+        # exp(2 pi i start r / P): the window was moved to bin 0 before the inverse FFT.
+        return np.exp(1j * (shift * (r - first) - self.q_px * (origin + r))) / step
+
+    def first_twist(self, step, first):
+        """The transfer times exp(2 pi i j first / P): moves the sampling grid to start at ``first``."""
+        if first == 0:
+            return self.transfer
+        j = self.start + np.arange(self.transfer.size)
+        return self.transfer * np.exp(2j * np.pi * j * first / self.length)
+
+
+def _fold(block, length, axis):
+    """Sum the spectrum window modulo ``length`` bins (sampling every step-th pixel folds it).
+
+    Works in place on ``block`` and returns a view of its first ``length`` entries along ``axis``.
+    """
+    width = block.shape[axis]
+    if width <= length:
+        return block
+    moved = np.moveaxis(block, axis, 0)
+    for start in range(length, width, length):
+        part = moved[start : start + length]
+        moved[: part.shape[0]] += part
+    return np.moveaxis(moved[:length], 0, axis)
+
+
+def _smooth_1d(n, sigma_px, length, step, first, count, eps, dtype):
+    """(g * 1_[0, n))(r) at r = first + step m: one axis of the separable normaliser, same truncated filter."""
+    ax = _Axis(0.0, sigma_px, length, eps)
+    spectrum = sfft.fft(np.ones(n, dtype), n=length)
+    block = _fold(spectrum[ax.index] * ax.first_twist(step, first), length // step, 0)
+    values = sfft.ifft(block, n=length // step)[:count]
+    return (values * ax.sample_factor(step, first, count, 0.0)).real
+
+
+def _column_spectrum(data, valid, lengths, need, rtype, ctype):
+    """The 2-D spectrum of ``data`` (zero where not ``valid``, zero padded to ``lengths``) at the
+    half-spectrum columns ``need`` and every frequency row, stored transposed: shape (need.size, P_y).
+
+    Rows are transformed in blocks straight into the padded buffer of the column transform, so the
+    only full-size temporary is that buffer (as wide as the columns some q needs); it is transposed
+    so that the column transform runs over contiguous memory.
+    """
+    ny = data.shape[0]
+    py, px = lengths
+    lo, hi = int(need[0]), int(need[-1]) + 1
+    contiguous = hi - lo == need.size
+    buffer = np.empty((need.size, py), dtype=ctype)
+    buffer[:, ny:] = 0
+    block_rows = max(1, _BLOCK_ELEMENTS // px)
+    for r0 in range(0, ny, block_rows):
+        r1 = min(ny, r0 + block_rows)
+        block = data[r0:r1]
+        if valid is not None:
+            block = np.where(valid[r0:r1], block, 0)
+        rows = sfft.rfft(block.astype(rtype, copy=False), n=px, axis=1, workers=-1)
+        buffer[:, r0:r1] = (rows[:, lo:hi] if contiguous else rows[:, need]).T
+    return sfft.fft(buffer, axis=1, workers=-1, overwrite_x=True)
+
+
+def _runs(u, values):
+    """Split positions ``u`` with source indices ``values`` into runs where both advance by one
+    (values by +1 or -1): a list of (first position, last position + 1, source slice)."""
+    if u.size == 0:
+        return []
+    du, dv = np.diff(u), np.diff(values.astype(np.int64))
+    ok = (du == 1) & (np.abs(dv) == 1)
+    cut = ~ok
+    cut[1:] |= ok[:-1] & (dv[1:] != dv[:-1])  # a change of direction ends a run as well
+    ends = np.flatnonzero(cut)
+    starts = np.concatenate([[0], ends + 1])
+    stops = np.concatenate([ends + 1, [u.size]])
+    runs = []
+    for i0, i1 in zip(starts, stops):
+        v0, v1 = int(values[i0]), int(values[i1 - 1])
+        sl = slice(v0, v1 + 1) if v1 >= v0 else slice(v0, None if v1 == 0 else v1 - 1, -1)
+        runs.append((int(u[i0]), int(u[i1 - 1]) + 1, sl))
+    return runs
+
+
+def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps, rtype,
+                  valid=None, inverse_norm=None, out=None):
+    """G_sigma * [data exp(-i q.r)] for every q, sampled at rows/cols first + step m.
+
+    ``data`` is real (set to zero where ``valid`` is False); ``lengths`` (P_y, P_x) are the FFT
+    lengths (zero padding beyond the data makes the convolution linear); ``origin`` is the global
+    pixel of data[0, 0] for the reference wave. ``inverse_norm`` is either a pair of 1-D factors
+    (separable normaliser) or a 2-D array on the output grid, or None.
+    """
+    ctype = np.complex64 if rtype == np.float32 else np.complex128
+    py, px = lengths
+    ly, lx = py // step, px // step
+    half = px // 2
+    axes = [(_Axis(qj[0], sigma_px[0], py, eps), _Axis(qj[1], sigma_px[1], px, eps)) for qj in q_px]
+    # Frequency columns each q needs, as columns of the half spectrum (negative ones by conjugation).
+    cols = [np.where(ax.index <= half, ax.index, px - ax.index) for _, ax in axes]
+    need = np.unique(np.concatenate(cols))
+    spectrum = _column_spectrum(data, valid, lengths, need, rtype, ctype)  # (columns, P_y)
+    if out is None:
+        out = np.empty((len(q_px),) + tuple(count), dtype=ctype)
+    block_rows = max(1, _BLOCK_ELEMENTS // lx)
+    # One zero-padded buffer, reused for every block of rows of every q (transformed in place).
+    buffer = np.zeros((min(block_rows, count[0]), lx), dtype=ctype)
+    for j, (ay, ax) in enumerate(axes):
+        negative = ax.index > half
+        pos = np.searchsorted(need, cols[j])
+        # The window, transposed: (k_x bins, k_y bins), times the transfer (and the twist that moves
+        # the sampling grid), gathered by slices; negative k_x from I~(ky, -kx) = conj(I~(-ky, kx)).
+        window = np.empty((ax.index.size, ay.index.size), dtype=ctype)
+        tx, ty = ax.first_twist(step, first[1]), ay.first_twist(step, first[0])
+        real = np.isrealobj(tx) and np.isrealobj(ty)
+        kind = rtype if real else ctype
+        transfer = np.multiply.outer(tx.astype(kind), ty.astype(kind))
+        every = np.arange(ay.index.size)
+        for part, src_rows, conj in ((~negative, ay.index, False), (negative, (-ay.index) % py, True)):
+            u = np.flatnonzero(part)
+            row_runs = _runs(every, src_rows)  # the window is contiguous modulo P_y: one or two slices
+            for u0, u1, sl in _runs(u, pos[u]):
+                for v0, v1, sr in row_runs:
+                    target = window[u0:u1, v0:v1]
+                    t = transfer[u0:u1, v0:v1]
+                    if not conj:
+                        np.multiply(spectrum[sl, sr], t, out=target)
+                    elif real:
+                        # conj(I~) t = conj(I~ t) for a real transfer.
+                        np.multiply(spectrum[sl, sr], t, out=target)
+                        np.conjugate(target, out=target)
+                    else:
+                        np.multiply(np.conjugate(spectrum[sl, sr]), t, out=target)
+        done_y = sfft.ifft(_fold(window, ly, 1), n=ly, axis=1, workers=-1, overwrite_x=True)[:, : count[0]]
+        # (rows, k_x bins): one cache-friendly transpose, so the row blocks below read contiguous memory.
+        done_y = np.ascontiguousarray(_fold(done_y, lx, 0).T)
+        width = done_y.shape[1]
+        fy = ay.sample_factor(step, first[0], count[0], origin[0])
+        fx = ax.sample_factor(step, first[1], count[1], origin[1])
+        if isinstance(inverse_norm, tuple):
+            fy, fx = fy * inverse_norm[0], fx * inverse_norm[1]
+        fy, fx = fy.astype(ctype), fx.astype(ctype)
+        # The row factor commutes with the transform along the rows: apply it on the narrow window.
+        for r0 in range(0, count[0], block_rows):
+            r1 = min(count[0], r0 + block_rows)
+            rows = buffer[: r1 - r0]
+            np.multiply(done_y[r0:r1], fy[r0:r1, None], out=rows[:, :width])
+            rows[:, width:] = 0
+            res = sfft.ifft(rows, axis=1, workers=-1, overwrite_x=True)
+            target = out[j, r0:r1]
+            np.multiply(res[:, : count[1]], fx, out=target)
+            if isinstance(inverse_norm, np.ndarray):
+                target *= inverse_norm[r0:r1]
     return out
 
 
-def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized"):
+_NORM_CACHE: dict = {}
+
+
+def _masked_inverse_norm(valid, sigma_px, lengths, step, first, count, eps, rtype):
+    """1 / (G * valid) on the output grid, NaN where the weight is below MIN_WEIGHT.
+
+    The same filter at q = 0 applied to the weights, once for all q; the last one is kept, keyed
+    by a digest of the mask, so repeated calls with one mask (several maps, iterations) reuse it.
+    """
+    import hashlib
+
+    digest = hashlib.blake2b(np.packbits(valid).tobytes(), digest_size=16).digest()
+    key = (digest, valid.shape, tuple(sigma_px), tuple(lengths), step, tuple(first), tuple(count), eps, np.dtype(rtype))
+    cached = _NORM_CACHE.get(key)
+    if cached is not None:
+        return cached
+    norm = _filter_stack(valid, np.zeros((1, 2)), sigma_px, lengths, step, first, count, (0, 0), eps, rtype)[0].real
+    inverse = np.full(norm.shape, np.nan, dtype=rtype)
+    np.divide(1, norm, out=inverse, where=norm > MIN_WEIGHT)
+    inverse.setflags(write=False)
+    _NORM_CACHE.clear()
+    _NORM_CACHE[key] = inverse
+    return inverse
+
+
+def _lockin_memory(image, valid, q_px, sigma_px, *, step, boundary, pad, origin=(0, 0), first=(0, 0), count=None):
+    """The lock-in of one in-memory array. ``image`` is float32 or float64 (it sets the precision);
+    ``valid`` is a boolean array (False = masked or NaN) or None when every pixel counts."""
+    rtype = image.dtype
+    eps = TRANSFER_EPS[np.dtype(rtype)]
+    ny, nx = image.shape
+    if count is None:
+        count = (-(-(ny - first[0]) // step), -(-(nx - first[1]) // step))
+    if boundary == "periodic":
+        if ny % step or nx % step:
+            # Folding needs whole periods of step pixels: compute on the full grid and sample it.
+            full = _filter_stack(image, q_px, sigma_px, (ny, nx), 1, (0, 0), (ny, nx), origin, eps, rtype)
+            return np.ascontiguousarray(full[:, first[0] :: step, first[1] :: step][:, : count[0], : count[1]])
+        return _filter_stack(image, q_px, sigma_px, (ny, nx), step, first, count, origin, eps, rtype)
+    lengths = (_fft_length(ny, pad[0], step), _fft_length(nx, pad[1], step))
+    if valid is None:
+        # Nothing masked: the normaliser G * 1_frame is separable, two 1-D filters.
+        norm_y = _smooth_1d(ny, sigma_px[0], lengths[0], step, first[0], count[0], eps, rtype)
+        norm_x = _smooth_1d(nx, sigma_px[1], lengths[1], step, first[1], count[1], eps, rtype)
+        inverse = tuple(np.where(n > MIN_WEIGHT, 1 / np.where(n > MIN_WEIGHT, n, 1), np.nan) for n in (norm_y, norm_x))
+        return _filter_stack(image, q_px, sigma_px, lengths, step, first, count, origin, eps, rtype,
+                             inverse_norm=inverse)
+    inverse = _masked_inverse_norm(valid, sigma_px, lengths, step, first, count, eps, rtype)
+    return _filter_stack(image, q_px, sigma_px, lengths, step, first, count, origin, eps, rtype,
+                         valid=valid, inverse_norm=inverse)
+
+
+def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized", step=None):
     """Spatial lock-in: the complex local Fourier component A(r) of an image at q.
 
     A(r) = G_sigma * [I(r) exp(-i q.r)], with G_sigma a unit-sum Gaussian of
     width ``sigma_nm``. For I = A0 cos(q.r + phi), 2|A| = A0 and arg A = phi.
 
+    Computed in Fourier space: A = exp(-i q.r) IFFT[I~(k) exp(-sigma^2 |k - q|^2 / 2)]
+    (METHODS §1), with one real forward FFT shared by every q and only the
+    window of the spectrum where the transfer exceeds ``TRANSFER_EPS`` (1e-10
+    for float32, 1e-16 for float64) transformed back. Dropping the rest changes
+    A by at most eps * sqrt(sum I^2) / w(r), w the normaliser below (Parseval),
+    i.e. eps * sqrt(N_pixels) * rms(I) / w.
+
     Parameters
     ----------
     image : (row, col) array_like or dask array
-        The image. A dask array gives a lazy dask result computed chunk by chunk.
+        The image. A dask array gives a lazy dask result computed chunk by chunk
+        (``dask.array.map_overlap`` with an overlap of ``TRUNCATE`` sigma).
     q : (2,) or (k, 2) array_like
         Wavevector(s) (qx, qy) in rad/nm, x along columns and y along rows.
     sigma_nm : float
@@ -119,29 +349,49 @@ def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized
         Pixel size in nm, one value or (row, col).
     mask : (row, col) array of bool, optional
         True where pixels are untrusted; they are left out of the average
-        (normalised convolution) and filled from their neighbours.
+        (normalised convolution) and filled from their neighbours. NaN pixels
+        of the image count as masked.
     boundary : {"normalized", "periodic"}
-        "normalized" (default): zero outside the frame and the mask, divided by
-        the filtered weight, so a straight edge does not halve the amplitude.
+        "normalized" (default): zero outside the frame and the mask (the FFT
+        grid is zero padded by ``TRUNCATE`` sigma, so the convolution is linear,
+        not circular), divided by the equally filtered weight G * w, so a
+        straight edge does not halve the amplitude. Without a mask the weight is
+        separable, (g * 1_rows)(y) (g * 1_cols)(x), and costs two 1-D FFTs.
         "periodic": the frame is taken as periodic (exact for an image holding
         whole periods, and the Fourier form of METHODS §1).
+    step : int, optional
+        Return A only at the pixels (s m, s n), s = ``step``: rows 0, s, 2s, ...
+        and columns 0, s, 2s, ..., shape (ceil(rows / s), ceil(cols / s)). The
+        spectrum window around q is folded modulo P / s bins (P the FFT length,
+        a multiple of s) and inverse transformed on P / s points, which is the
+        same truncated filter sampled exactly (Poisson summation), for any s.
+        At the sampled pixels the result equals the full-resolution one up to
+        (i) the transfer truncation above, eps sqrt(sum I^2) / w on each, and
+        (ii) near the edges, the Gaussian tail that wraps round the zero
+        padding of TRUNCATE sigma, erfc(6 / sqrt 2) / 2 = 1e-9 of max|I| / w
+        per edge (the two grids have different lengths P); elsewhere they agree
+        to rounding. A step up to :func:`lossless_step` also keeps the whole
+        band of A, so it can be interpolated back (band-limited) without loss.
+        None (default) = 1.
 
     Returns
     -------
     A : complex ndarray or dask array
-        Shaped like the image for a single q, else (k, row, col). The phase
-        reference is pixel (0, 0) of the input array. Pixels with almost no
-        valid neighbours are NaN.
+        Shaped like the image (or its decimated grid) for a single q, else
+        (k, row, col); complex64 for a float32 image, complex128 otherwise. The
+        phase reference is pixel (0, 0) of the input array. Pixels with almost
+        no valid neighbours (filtered weight below ``MIN_WEIGHT``) are NaN.
 
     Raises
     ------
     InputError
         If q lies beyond the Nyquist limit, sigma is not positive or larger
-        than half the frame, or the image is not 2-D.
+        than half the frame, step is not a positive integer, or the image is
+        not 2-D.
 
     See Also
     --------
-    amplitude, phase, local_wavevector, trusted_mask, choose_sigma
+    amplitude, phase, local_wavevector, trusted_mask, choose_sigma, lossless_step
 
     References
     ----------
@@ -162,9 +412,13 @@ def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized
     >>> a = lockin(image, q, sigma_nm=1.0, pixel_size_nm=dx, boundary="periodic")
     >>> bool(np.allclose(2 * np.abs(a), 1.7) and np.allclose(np.angle(a), 0.9))
     True
+    >>> coarse = lockin(image, q, sigma_nm=1.0, pixel_size_nm=dx, step=4)
+    >>> coarse.shape, bool(np.allclose(coarse, lockin(image, q, sigma_nm=1.0, pixel_size_nm=dx)[::4, ::4]))
+    ((32, 32), True)
     """
     if boundary not in BOUNDARIES:
         raise InputError(f"boundary must be one of {BOUNDARIES}, got {boundary!r}")
+    step = _check_step(step)
     lazy = _is_dask(image)
     if not lazy:
         image = np.asarray(image)
@@ -172,74 +426,122 @@ def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized
         raise InputError(f"lockin needs a 2-D image (row, col), got shape {tuple(image.shape)}")
     if min(image.shape) < 2:
         raise InputError(f"lockin needs an image of at least 2 x 2 pixels, got shape {tuple(image.shape)}")
+    if np.issubdtype(image.dtype, np.complexfloating) or image.dtype.kind not in "biuf":
+        raise InputError(f"lockin needs a real image, got dtype {image.dtype}")
     pixel_size = pixel_size_pair(pixel_size_nm)
     q, single = _as_q_array(q)
     sigma_nm = _check_q_sigma(q, sigma_nm, pixel_size, image.shape)
     sigma_px = (sigma_nm / pixel_size[0], sigma_nm / pixel_size[1])
+    # (row, col) components in rad/px: q_y dy along rows, q_x dx along columns.
+    q_px = np.column_stack([q[:, 1] * pixel_size[0], q[:, 0] * pixel_size[1]])
     pad = (int(math.ceil(TRUNCATE * sigma_px[0])), int(math.ceil(TRUNCATE * sigma_px[1])))
     if mask is not None:
         mask = np.asarray(mask, dtype=bool)
         if mask.shape != tuple(image.shape):
             raise InputError(f"mask shape {mask.shape} differs from the image shape {tuple(image.shape)}")
+    rtype = np.float32 if image.dtype == np.float32 else np.float64
     if lazy:
-        result = _lockin_dask(image, q, sigma_px, pixel_size, mask, boundary, pad)
-        if image.dtype == np.float32:
-            result = result.astype(np.complex64)
+        result = _lockin_dask(image.astype(rtype), q_px, sigma_px, mask, boundary, pad, step)
     else:
-        if np.iscomplexobj(image) or image.dtype.kind not in "biuf":
-            raise InputError(f"lockin needs a real image, got dtype {image.dtype}")
-        valid = np.isfinite(image)
-        if mask is not None:
-            valid &= ~mask
-        if boundary == "periodic" and not valid.all():
+        image = np.asarray(image, dtype=rtype)
+        if (mask is None or not mask.any()) and np.isfinite(np.sum(image, dtype=np.float64)):
+            valid = None  # a finite sum: no NaN or inf anywhere
+        else:
+            valid = np.isfinite(image)
+            if mask is not None:
+                valid &= ~mask
+            if valid.all():
+                valid = None
+        if valid is not None and boundary == "periodic":
             raise InputError("boundary='periodic' needs a complete image with no masked or NaN pixels")
-        result = _demodulate_block(
-            image.astype(float), valid.astype(float), q, sigma_px, pixel_size, (0, 0), boundary, pad
-        )
-        if image.dtype == np.float32:
-            result = result.astype(np.complex64)
+        result = _lockin_memory(image, valid, q_px, sigma_px, step=step, boundary=boundary, pad=pad)
     return result[0] if single else result
 
 
-def _lockin_dask(image, q, sigma_px, pixel_size, mask, boundary, pad):
+def lossless_step(sigma_nm, pixel_size_nm, *, tolerance=1e-6):
+    """Largest decimation step (pixels) that keeps the whole band of a lock-in field.
+
+    A = G_sigma * [I exp(-i q.r)] has its spectrum inside |k_y|, |k_x| <= c / sigma
+    up to a relative tail ``tolerance`` = exp(-c^2 / 2) of the Gaussian transfer.
+    Samples every s pixels hold a band of width 2 pi / s per axis without aliasing
+    (sampling theorem), so s <= pi sigma / c, about sigma / 2 for tolerance 1e-6
+    (c = 5.26). Use it as ``lockin(..., step=lossless_step(...))``.
+
+    Parameters
+    ----------
+    sigma_nm : float
+        The lock-in width in nm.
+    pixel_size_nm : float or (float, float)
+        Pixel size in nm, one value or (row, col); the coarser axis (fewest
+        pixels per sigma) sets the step.
+    tolerance : float
+        Relative size of the Gaussian transfer allowed to alias, 0 < tolerance < 1.
+
+    Returns
+    -------
+    int
+        The step in pixels, at least 1.
+
+    Examples
+    --------
+    >>> lossless_step(8.0, 1.0)
+    4
+    >>> lossless_step(0.8, 0.1, tolerance=1e-10)
+    3
+    """
+    sigma_nm = positive(sigma_nm, "sigma_nm")
+    if not 0 < tolerance < 1:
+        raise InputError(f"tolerance must lie between 0 and 1, got {tolerance!r}")
+    sigma_px = sigma_nm / max(pixel_size_pair(pixel_size_nm))
+    return max(1, int(math.floor(math.pi * sigma_px / _transfer_cut(tolerance) * (1 + 1e-12))))
+
+
+def _dask_chunks(chunks, depth, step, n):
+    """Chunk sizes along one axis: borders on multiples of ``step``, every chunk at least ``depth`` long."""
+    borders = np.cumsum(chunks)[:-1]
+    borders = np.unique(np.round(borders / step).astype(int) * step)
+    kept, previous = [], 0
+    for b in borders:
+        if 0 < b < n and b - previous >= max(depth, 1):
+            kept.append(int(b))
+            previous = int(b)
+    while kept and n - kept[-1] < depth:
+        kept.pop()
+    return tuple(int(c) for c in np.diff([0] + kept + [n]))
+
+
+def _lockin_dask(image, q_px, sigma_px, mask, boundary, pad, step):
     import dask.array as da
-    from dask.array.overlap import ensure_minimum_chunksize, overlap
 
     if boundary == "periodic":
         raise InputError("boundary='periodic' is not available for dask arrays; use 'normalized'")
-    # Every chunk must be at least as large as the overlap it lends its neighbours.
-    chunks = tuple(ensure_minimum_chunksize(p, c) if len(c) > 1 else c for p, c in zip(pad, image.chunks))
-    image = image.astype(float).rechunk(chunks)
-    valid = da.isfinite(image)
+    depth = (int(math.ceil(TRUNCATE * sigma_px[0])), int(math.ceil(TRUNCATE * sigma_px[1])))
+    chunks = tuple(_dask_chunks(c, d, step, n) for c, d, n in zip(image.chunks, depth, image.shape))
+    image = image.rechunk(chunks)
+    args = [image]
     if mask is not None:
-        valid = valid & ~da.from_array(mask, chunks=chunks)
-    depth = {0: pad[0], 1: pad[1]}
-    # boundary="none": no margin beyond the frame, so the outer edge is treated as in memory.
-    image_ov = overlap(image, depth=depth, boundary="none")
-    weights_ov = overlap(valid.astype(float), depth=depth, boundary="none")
+        args.append(da.from_array(mask, chunks=chunks))
     starts = [np.cumsum((0,) + c[:-1]) for c in chunks]
+    out_chunks = tuple(tuple(-(-c // step) for c in axis) for axis in chunks)
+    ctype = np.complex64 if image.dtype == np.float32 else np.complex128
 
-    def block(img, w, block_info=None):
-        # A block's origin in the whole frame: its chunk start less the margin taken from above/left.
+    def block(img, msk=None, block_info=None):
         loc = block_info[0]["chunk-location"]
-        top = starts[0][loc[0]] - (pad[0] if loc[0] > 0 else 0)
-        left = starts[1][loc[1]] - (pad[1] if loc[1] > 0 else 0)
-        return _demodulate_block(img, w, q, sigma_px, pixel_size, (top, left), "normalized", pad)
+        # With boundary="none" a block has a margin only towards its neighbours.
+        first = (depth[0] if loc[0] > 0 else 0, depth[1] if loc[1] > 0 else 0)
+        origin = (int(starts[0][loc[0]]) - first[0], int(starts[1][loc[1]]) - first[1])
+        count = (out_chunks[0][loc[0]], out_chunks[1][loc[1]])
+        valid = np.isfinite(img)
+        if msk is not None:
+            valid &= ~msk
+        return _lockin_memory(img, None if valid.all() else valid, q_px, sigma_px, step=step,
+                              boundary="normalized", pad=pad, origin=origin, first=first, count=count)
 
-    out = da.map_blocks(
-        block, image_ov, weights_ov, new_axis=0,
-        chunks=((len(q),),) + image_ov.chunks, dtype=np.complex128,
+    return da.map_overlap(
+        block, *args, depth={0: depth[0], 1: depth[1]}, boundary="none", trim=False,
+        align_arrays=False, allow_rechunk=False, new_axis=0,
+        chunks=((len(q_px),),) + out_chunks, dtype=ctype, meta=np.empty((0, 0, 0), ctype),
     )
-
-    def trim(blk, block_info=None):
-        loc, num = block_info[0]["chunk-location"], block_info[0]["num-chunks"]
-        r0 = pad[0] if loc[1] > 0 else 0
-        c0 = pad[1] if loc[2] > 0 else 0
-        r1 = blk.shape[1] - (pad[0] if loc[1] < num[1] - 1 else 0)
-        c1 = blk.shape[2] - (pad[1] if loc[2] < num[2] - 1 else 0)
-        return blk[:, r0:r1, c0:c1]
-
-    return out.map_blocks(trim, chunks=((len(q),),) + chunks, dtype=np.complex128)
 
 
 def amplitude(a):
