@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import math
 import warnings
+from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -563,8 +565,567 @@ def _level_image(image, mask, order, lines, jump_threshold):
     return out, combined
 
 
-def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0):
-    """Level a scan: per-line offsets (optional), then a polynomial background; returns a new Scan.
+# --------------------------------------------------------------------------- real-data defects
+#
+# Terrace steps, glitched scan lines and tip changes. They are found on in-memory 2-D
+# images only; every statistic below is a per-row or per-pixel robust one (medians and
+# median absolute deviations), with fixed small kernels, so the cost grows with the
+# pixel count and no kernel grows with the image.
+
+#: Robust standard deviations of the smoothed gradient above which a pixel is on a step edge.
+EDGE_THRESHOLD = 8.0
+#: Pixels added on each side of a detected step edge to the masked band.
+EDGE_MARGIN_PX = 2
+#: In ``terraces="auto"`` two terraces are kept apart only if their offsets differ by more
+#: than this many robust standard deviations of the levelled image (the corrugation).
+STEP_SIGNIFICANCE = 5.0
+#: A scan line is glitched when its difference to both neighbouring lines is this many
+#: times rougher than the typical line-to-line difference nearby.
+GLITCH_RATIO = 3.0
+#: A roughness change point must pass this two-sample t statistic ...
+TIP_T_MIN = 10.0
+#: ... and change the row roughness by at least this factor.
+TIP_MIN_RATIO = 1.25
+
+_GRADIENT_SIGMA_PX = 1.0  # light smoothing before the gradient (fixed: no kernel grows with the image)
+_WINDOW_ROWS = 8  # rows on each side for the local typical line-to-line roughness
+_SPIKE_SIGMAS = 8.0  # a pixel deviating this much (robust sigmas) from its neighbour line is a spike
+_MIN_SPIKE_FRACTION = 0.02  # a spiky line has at least this fraction of its columns spiked
+_MIN_TERRACE_PIXELS = 64
+_MIN_TERRACE_FRACTION = 0.002
+_MIN_SEGMENT_ROWS = 8  # shortest run of rows on either side of a roughness change point
+_MAX_TIP_CHANGES = 8
+
+
+@dataclass(frozen=True, eq=False)
+class LevelResult:
+    """What :func:`level` found and removed, with the levelled scan.
+
+    Attributes
+    ----------
+    scan : Scan
+        The levelled scan (mask extended by step edges and glitched lines).
+    terrace_count : int
+        Number of terraces told apart (1 when no step was found).
+    terrace_offsets_nm : tuple of float
+        Height of each terrace relative to the largest one (the first entry, 0),
+        removed from the image; in the data's units (nm for a topograph).
+    terrace_labels : ndarray of int32 or None
+        Terrace number (1, 2, ...; 1 is the largest) of every pixel, 0 on the
+        masked step-edge band; None when there is one terrace.
+    edge_mask : ndarray of bool or None
+        The masked band along the step edges (True = on an edge); None when none.
+    glitch_rows : tuple of int
+        Scan lines (rows) masked as glitched.
+    tip_change_rows : tuple of int
+        First row after each tip change (the rows from there on were scanned
+        with the changed tip).
+    tip_change_offsets_nm : tuple of float
+        The offset jump removed at each tip change (0 where only the contrast
+        changed), in the data's units.
+    tip_change_contrast : tuple of float
+        Ratio of the row roughness below to above each tip change.
+    note : str
+        One human-readable sentence per finding ("" when nothing was found).
+    """
+
+    scan: Scan
+    terrace_count: int = 1
+    terrace_offsets_nm: tuple = (0.0,)
+    terrace_labels: Any = None
+    edge_mask: Any = None
+    glitch_rows: tuple = ()
+    tip_change_rows: tuple = ()
+    tip_change_offsets_nm: tuple = ()
+    tip_change_contrast: tuple = ()
+    note: str = ""
+
+    @property
+    def found_anything(self) -> bool:
+        """True if a terrace step, a glitched line or a tip change was found."""
+        return self.terrace_count > 1 or bool(self.glitch_rows) or bool(self.tip_change_rows)
+
+    def to_summary(self) -> dict:
+        """The findings as plain JSON-safe numbers and lists (no arrays).
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> from domains import Scan
+        >>> LevelResult(Scan(np.zeros((4, 4)), pixel_size_nm=0.1)).to_summary()["terrace_count"]
+        1
+        """
+        return {
+            "terrace_count": int(self.terrace_count),
+            "terrace_offsets_nm": [float(v) for v in self.terrace_offsets_nm],
+            "edge_fraction": float(self.edge_mask.mean()) if self.edge_mask is not None else 0.0,
+            "glitch_rows": [int(r) for r in self.glitch_rows],
+            "tip_change_rows": [int(r) for r in self.tip_change_rows],
+            "tip_change_offsets_nm": [float(v) for v in self.tip_change_offsets_nm],
+            "tip_change_contrast": [float(v) for v in self.tip_change_contrast],
+            "note": self.note,
+        }
+
+
+def _floor(x):
+    """Below this a robust spread is rounding, not signal (noise-free or float32 synthetic data)."""
+    finite = x[np.isfinite(x)]
+    if finite.size == 0:
+        return 1e-300
+    span = float(finite.max() - finite.min())
+    return max(span * 64 * np.finfo(np.float64).eps, span * 1e-9, 1e-300)
+
+
+def _row_median(a):
+    """Median of each row over its finite entries (NaN for a row with none), without warnings."""
+    out = np.full(a.shape[0], np.nan)
+    has = np.isfinite(a).any(axis=1)
+    if has.any():
+        part = a[has]
+        if np.isnan(part).any():
+            out[has] = np.nanmedian(part, axis=1)
+        else:
+            out[has] = np.median(part, axis=1)
+    return out
+
+
+def _local_median(values, half):
+    """Running median over ``2 * half + 1`` entries (edges: nearest), NaN entries replaced by the global median."""
+    from scipy.ndimage import median_filter
+
+    v = np.asarray(values, dtype=float)
+    finite = np.isfinite(v)
+    if not finite.any():
+        return v
+    v = np.where(finite, v, np.median(v[finite]))
+    return median_filter(v, size=2 * half + 1, mode="nearest")
+
+
+def _line_differences(x):
+    """Robust spread and spike count of every line-to-line difference (row r to r + 1).
+
+    The row's own median is subtracted from each difference, so a constant offset of
+    a line (line noise, a tip change) does not count as roughness.
+    """
+    n, m = x.shape
+    spread = np.full(n - 1, np.nan)
+    deviation = np.empty((0, m))
+    block = max(1, 2**20 // max(m, 1))  # rows per block: bounded temporaries
+    devs = []
+    for start in range(0, n - 1, block):
+        stop = min(n - 1, start + block)
+        d = x[start + 1 : stop + 1] - x[start:stop]
+        d -= _row_median(d)[:, None]
+        np.abs(d, out=d)
+        spread[start:stop] = 1.4826 * _row_median(d)
+        devs.append(d.astype(np.float32))
+    deviation = np.concatenate(devs) if devs else deviation
+    return spread, deviation
+
+
+def _glitch_rows(x, floor):
+    """Rows whose difference to both neighbouring rows is an outlier (garbage or a row of spikes).
+
+    ``x`` holds NaN on masked pixels. A tip change makes one line-to-line difference
+    rough, a glitched line makes both of its differences rough: that is the test.
+    """
+    n, m = x.shape
+    if n < 3 or m < 8:
+        return np.zeros(n, bool)
+    spread, deviation = _line_differences(x)
+    typical = np.maximum(_local_median(spread, _WINDOW_ROWS), floor)
+    spikes_at = np.maximum(_SPIKE_SIGMAS * typical, floor)
+    count = np.sum(deviation > spikes_at[:, None].astype(np.float32), axis=1).astype(float)
+    del deviation
+    typical_count = _local_median(count, _WINDOW_ROWS)
+    min_spikes = max(4.0, _MIN_SPIKE_FRACTION * m)
+    rough = np.where(np.isfinite(spread), spread > GLITCH_RATIO * typical + floor, False)
+    spiky = count > np.maximum(GLITCH_RATIO * typical_count, typical_count + min_spikes)
+    bad_diff = rough | spiky
+    glitch = np.zeros(n, bool)
+    glitch[1:-1] = bad_diff[:-1] & bad_diff[1:]
+    # The first and last lines have one neighbour only.
+    glitch[0] = bad_diff[0] and not bad_diff[1] if n > 2 else False
+    glitch[-1] = bad_diff[-1] and not bad_diff[-2] if n > 2 else False
+    return glitch
+
+
+def _change_points(values, sigma, t_min, min_size, min_jump):
+    """Binary segmentation of a sequence into runs of constant mean (two-sample t test)."""
+    found = []
+
+    def split(lo, hi):
+        seg = values[lo:hi]
+        n = seg.size
+        if n < 2 * min_size or len(found) >= _MAX_TIP_CHANGES:
+            return
+        k = np.arange(min_size, n - min_size + 1)
+        cs = np.cumsum(seg)
+        left = cs[k - 1] / k
+        right = (cs[-1] - cs[k - 1]) / (n - k)
+        t = np.abs(left - right) / (sigma * np.sqrt(1.0 / k + 1.0 / (n - k)))
+        best = int(np.argmax(t))
+        at = int(k[best])
+        w = min(2 * min_size, at, n - at)
+        jump = np.median(seg[at : at + w]) - np.median(seg[at - w : at])
+        if t[best] < t_min or abs(jump) < min_jump:
+            return
+        found.append((lo + at, float(jump)))
+        split(lo, lo + at)
+        split(lo + at, hi)
+
+    split(0, values.size)
+    return sorted(found)
+
+
+def _tip_changes(x, valid_rows, jump_threshold, floor):
+    """Tip changes: persistent offset jumps and abrupt changes of the row roughness.
+
+    Returns (offsets per row to subtract, [(row, offset_jump, contrast_ratio), ...]).
+    """
+    n, m = x.shape
+    offsets = np.zeros(n)
+    rows = np.flatnonzero(valid_rows)
+    if rows.size < 2 * _MIN_SEGMENT_ROWS or m < 8:
+        return offsets, []
+    xc = x[rows]
+    # 1. Offset jumps between consecutive trusted lines (glitched lines left out, so a
+    #    jump across a glitched line is still seen), kept only where the new level persists.
+    steps = _difference_offsets(xc, jump_threshold)
+    jumps = np.diff(steps)
+    events = {}
+    persistent = np.zeros(rows.size)
+    w = 3
+    for j in np.flatnonzero(jumps != 0):
+        before = np.median(steps[max(0, j + 1 - w) : j + 1])
+        after = np.median(steps[j + 1 : j + 1 + w])
+        if abs(after - before) > 0.5 * abs(jumps[j]) and j + 1 + w <= rows.size:
+            persistent[j + 1 :] += jumps[j]
+            events[int(rows[j + 1])] = [float(jumps[j]), 1.0]
+    # 2. Roughness of each line along the fast axis (robust spread of the pixel-to-pixel
+    #    differences): blind to offsets, to step edges crossing the line and to slow noise.
+    rough = np.empty(rows.size)
+    block = max(1, 2**20 // m)
+    for start in range(0, rows.size, block):
+        d = np.diff(xc[start : start + block], axis=1)
+        d -= _row_median(d)[:, None]
+        rough[start : start + block] = 1.4826 * _row_median(np.abs(d))
+    rough = np.where(np.isfinite(rough), np.maximum(rough, floor), floor)
+    log_rough = np.log(rough)
+    sigma = 1.4826 * np.median(np.abs(np.diff(log_rough))) / math.sqrt(2)
+    if sigma > 0:
+        for at, jump in _change_points(log_rough, sigma, TIP_T_MIN, _MIN_SEGMENT_ROWS, math.log(TIP_MIN_RATIO)):
+            row = int(rows[at])
+            near = [r for r in events if abs(r - row) <= 2]
+            if near:
+                events[near[0]][1] = math.exp(jump)
+            else:
+                events[row] = [0.0, math.exp(jump)]
+    offsets[rows] = persistent
+    # A masked line takes the level of the trusted line above it.
+    if rows.size < n:
+        index = np.maximum.accumulate(np.where(valid_rows, np.arange(n), 0))
+        offsets = offsets[index]
+        offsets[: rows[0]] = persistent[0]
+    return offsets, sorted((r, j, c) for r, (j, c) in events.items())
+
+
+def _edge_strength_mask(x, mask):
+    """Pixels on a step edge: the lightly smoothed gradient far above its robust spread.
+
+    Line offsets and a tilt cancel: the row-to-row difference has its median over the
+    row removed, and so has the along-row difference. A periodic corrugation gives a
+    bounded gradient (a few robust standard deviations at most), white noise a
+    Gaussian one; a step many corrugations high stands far above both.
+    """
+    from scipy.ndimage import binary_dilation, gaussian_filter
+
+    n, m = x.shape
+    work = np.array(x, dtype=np.float32)
+    if mask is not None and mask.any():
+        work[mask] = np.float32(np.median(work[~mask])) if (~mask).any() else 0.0
+    smooth = gaussian_filter(work, _GRADIENT_SIGMA_PX, truncate=3.0)
+    del work
+    gx = smooth[1:-1, 2:] - smooth[1:-1, :-2]
+    gx -= np.median(gx, axis=1)[:, None]
+    gy = smooth[2:, 1:-1] - smooth[:-2, 1:-1]
+    del smooth
+    gy -= np.median(gy, axis=1)[:, None]
+    sub = (slice(None, None, 2), slice(None, None, 2))
+    floor = np.float32(max(_floor(x), 1e-30))
+    sx = max(np.float32(1.4826) * np.median(np.abs(gx[sub])), floor)
+    sy = max(np.float32(1.4826) * np.median(np.abs(gy[sub])), floor)
+    gx /= sx
+    gy /= sy
+    np.square(gx, out=gx)
+    np.square(gy, out=gy)
+    gx += gy
+    del gy
+    edge = np.zeros((n, m), bool)
+    edge[1:-1, 1:-1] = gx > np.float32(EDGE_THRESHOLD**2)
+    del gx
+    if mask is not None and mask.any():
+        # The filled masked pixels make edges of their own: ignore everything next to them.
+        reach = int(math.ceil(3 * _GRADIENT_SIGMA_PX)) + 1
+        edge &= ~binary_dilation(mask, iterations=reach)
+    return edge
+
+
+def _disk(radius):
+    r = int(radius)
+    yy, xx = np.mgrid[-r : r + 1, -r : r + 1]
+    return yy**2 + xx**2 <= r * r + r  # a digital disk
+
+
+def _terrace_labels(x, mask):
+    """Terrace labels (1 = largest, 0 = step-edge band) and the band, or (None, None) for one terrace."""
+    from scipy.ndimage import binary_dilation, label
+
+    edge = _edge_strength_mask(x, mask)
+    if not edge.any():
+        return None, None
+    band = binary_dilation(edge, structure=_disk(EDGE_MARGIN_PX)) if EDGE_MARGIN_PX > 0 else edge
+    del edge
+    labels, count = label(~band)
+    if count < 2:
+        return None, None
+    sizes = np.bincount(labels.ravel(), minlength=count + 1)
+    sizes[0] = 0
+    min_size = max(_MIN_TERRACE_PIXELS, _MIN_TERRACE_FRACTION * labels.size)
+    keep = np.flatnonzero(sizes >= min_size)
+    if keep.size < 2:
+        return None, None
+    order = keep[np.argsort(-sizes[keep], kind="stable")]
+    remap = np.zeros(count + 1, np.int32)
+    remap[order] = np.arange(1, order.size + 1, dtype=np.int32)
+    labels = remap[labels]
+    return labels, labels == 0
+
+
+def _fit_terraces(values, rows, cols, terrace, shape, order, n_terraces):
+    """Least squares: one polynomial for the whole image plus a free offset per terrace (terrace 1 fixed at 0)."""
+    terms = _terms(order)
+    p = len(terms) + n_terraces - 1
+    if values.size < p:
+        raise InputError(f"only {values.size} trusted pixels on the terraces; the fit needs at least {p}")
+    r_factor = np.zeros((0, p))
+    rhs = np.zeros(0)
+    for start in range(0, values.size, _BLOCK_PIXELS):
+        stop = start + _BLOCK_PIXELS
+        u = _scaled(cols[start:stop], shape[1])
+        v = _scaled(rows[start:stop], shape[0])
+        t = terrace[start:stop]
+        columns = [u**i * v**j for i, j in terms] + [(t == k).astype(float) for k in range(2, n_terraces + 1)]
+        q, r_factor = np.linalg.qr(np.vstack([r_factor, np.stack(columns, axis=1)]))
+        rhs = q.T @ np.concatenate([rhs, values[start:stop].astype(float)])
+    singular = np.linalg.svd(r_factor, compute_uv=False)
+    if singular[-1] <= 1e-10 * singular[0]:
+        raise InputError("the terraces and the polynomial background are not separable; lower the order")
+    solution = np.linalg.solve(r_factor, rhs)
+    return solution[: len(terms)], np.concatenate([[0.0], solution[len(terms) :]])
+
+
+def _terrace_fit(x, mask, labels, order):
+    """Fit polynomial + offsets on the trusted terrace pixels (strided subsample above FIT_MAX_PIXELS)."""
+    step = _subsample_step(x.shape, FIT_MAX_PIXELS)
+    sub = (slice(None, None, step), slice(None, None, step))
+    lab = labels[sub]
+    good = (lab > 0) & np.isfinite(x[sub])
+    if mask is not None:
+        good &= ~mask[sub]
+    rows, cols = np.nonzero(good)
+    n_terraces = int(labels.max())
+    present = np.bincount(lab[good], minlength=n_terraces + 1)
+    if np.any(present[1:] == 0):
+        raise InputError("a terrace has no trusted pixel left for the fit")
+    poly, offsets = _fit_terraces(x[sub][good], rows * step, cols * step, lab[good], x.shape, max(order, 0),
+                                  n_terraces)
+    return poly, offsets
+
+
+def _merge_terraces(x, mask, labels, offsets, poly, order, significance):
+    """Join terraces whose offsets differ by less than ``significance`` robust sigmas of the levelled image."""
+    step = _subsample_step(x.shape, 2**20)
+    sub = (slice(None, None, step), slice(None, None, step))
+    lab = labels[sub]
+    good = (lab > 0) & np.isfinite(x[sub])
+    if mask is not None:
+        good &= ~mask[sub]
+    rows, cols = np.nonzero(good)
+    background = np.zeros(rows.size)
+    for c, (i, j) in zip(poly, _terms(order)):
+        background += c * _scaled(cols * step, x.shape[1]) ** i * _scaled(rows * step, x.shape[0]) ** j
+    residual = x[sub][good] - background - offsets[lab[good] - 1]
+    scale = 1.4826 * np.median(np.abs(residual - np.median(residual))) if residual.size else 0.0
+    tol = max(significance * scale, _floor(x))
+    sorted_ids = np.argsort(offsets)
+    group = np.zeros(offsets.size, int)
+    g = 0
+    for a, b in zip(sorted_ids[:-1], sorted_ids[1:]):
+        if offsets[b] - offsets[a] > tol:
+            g += 1
+        group[b] = g
+    group[sorted_ids[0]] = 0
+    return group
+
+
+def _interpolate_rows(out, bad_rows):
+    """Replace each bad row by the linear interpolation of the nearest good rows above and below."""
+    n = out.shape[0]
+    good = np.flatnonzero(~bad_rows)
+    if good.size == 0:
+        return
+    for r in np.flatnonzero(bad_rows):
+        above = good[good < r]
+        below = good[good > r]
+        if above.size and below.size:
+            a, b = above[-1], below[0]
+            w = (r - a) / (b - a)
+            out[r] = (1 - w) * out[a] + w * out[b]
+        else:
+            out[r] = out[above[-1]] if above.size else out[below[0]]
+
+
+def _check_mode(value, name):
+    if value is True or value is False or (isinstance(value, str) and value == "auto"):
+        return value
+    raise InputError(f"{name} must be 'auto', True or False, got {value!r}")
+
+
+def _check_glitches(glitches, nrows):
+    if glitches is True or glitches is False or (isinstance(glitches, str) and glitches == "auto"):
+        return glitches
+    try:
+        rows = np.asarray(glitches)
+    except Exception:  # noqa: BLE001 - any unusable object is bad input
+        rows = None
+    if rows is None or rows.ndim != 1 or rows.dtype.kind not in "iu" or np.any(rows < 0) or np.any(rows >= nrows):
+        raise InputError(
+            f"glitches must be 'auto', True, False or a list of row indices from 0 to {nrows - 1}, got {glitches!r}"
+        )
+    return tuple(sorted({int(r) for r in rows}))
+
+
+def _level_with_findings(image, mask, order, lines, jump_threshold, terraces, glitches, tip_changes):
+    """Level one in-memory 2-D image, finding glitched lines, tip changes and terraces first.
+
+    Returns (levelled, mask, findings dict). With nothing found the result is exactly
+    the plain levelling of :func:`_level_image`.
+    """
+    filled, combined = nan_to_mask(image, mask)
+    nonfinite = ~np.isfinite(np.asarray(image, dtype=float)) if np.asarray(image).dtype.kind == "f" else None
+    n, m = filled.shape
+    x = np.array(filled, dtype=float)
+    if combined is not None:
+        x[combined] = np.nan
+    floor = _floor(x)
+    findings = {"glitch_rows": (), "tips": [], "labels": None, "band": None, "offsets": (0.0,)}
+
+    # 1. Glitched lines (explicit rows, or detected).
+    if isinstance(glitches, tuple):
+        glitch = np.zeros(n, bool)
+        glitch[list(glitches)] = True
+    elif glitches:
+        glitch = _glitch_rows(x, floor)
+    else:
+        glitch = np.zeros(n, bool)
+    if glitch.any():
+        x[glitch] = np.nan
+    valid_rows = np.isfinite(x).any(axis=1)
+
+    # 2. Tip changes: remove the persistent offset jumps.
+    tip_offsets = np.zeros(n)
+    if tip_changes:
+        tip_offsets, tips = _tip_changes(x, valid_rows, jump_threshold, floor)
+        findings["tips"] = tips
+        if tips:
+            x -= tip_offsets[:, None]
+
+    # 3. Terraces, on the image with glitched lines filled from their neighbours.
+    labels = band = None
+    fit_order = max(order, 1) if order is not None else 1  # the offsets need at least a plane beside them
+    work_mask = combined.copy() if combined is not None else np.zeros((n, m), bool)
+    work_mask |= glitch[:, None]
+    if terraces:
+        detect = x.copy()
+        _interpolate_rows(detect, ~valid_rows)
+        others = work_mask & ~glitch[:, None]
+        detect[~np.isfinite(detect)] = 0.0
+        labels, band = _terrace_labels(detect, others if others.any() else None)
+        del detect
+        if labels is not None:
+            poly, offsets = _terrace_fit(x, work_mask, labels, fit_order)
+            if terraces == "auto":
+                group = _merge_terraces(x, work_mask, labels, offsets, poly, fit_order, STEP_SIGNIFICANCE)
+                if group.max() < 1:
+                    labels = band = None
+                elif np.unique(group).size < offsets.size:
+                    # Terraces at one level become one terrace (numbered by total area).
+                    sizes = np.bincount(labels.ravel(), minlength=offsets.size + 1)[1:]
+                    totals = np.bincount(group, weights=sizes)
+                    rank = np.empty(totals.size, np.int32)
+                    rank[np.argsort(-totals, kind="stable")] = np.arange(1, totals.size + 1, dtype=np.int32)
+                    remap = np.concatenate([[0], rank[group]]).astype(np.int32)
+                    labels = remap[labels]
+                    poly, offsets = _terrace_fit(x, work_mask, labels, fit_order)
+        if labels is not None:
+            x -= offsets[np.maximum(labels, 1) - 1]
+            x[band] = np.nan
+            findings.update(labels=labels, band=band, offsets=tuple(float(v) for v in offsets))
+
+    findings["glitch_rows"] = tuple(int(r) for r in np.flatnonzero(glitch))
+    if labels is None and not glitch.any() and not findings["tips"]:
+        out, combined = _level_image(image, mask, order, lines, jump_threshold)
+        return out, combined, findings
+
+    # 4. Line offsets and the polynomial background on the step-free image.
+    full_mask = work_mask | band if band is not None else work_mask
+    corrected = filled.astype(float) - tip_offsets[:, None]
+    if labels is not None:
+        corrected -= np.asarray(findings["offsets"])[np.maximum(labels, 1) - 1]
+    out = corrected.astype(filled.dtype)
+    del corrected
+    if lines is not None:
+        line_mask = full_mask | ~np.isfinite(out)
+        out = out - _line_offsets(out, lines, line_mask, jump_threshold).astype(out.dtype)[:, None]
+    if order is not None:
+        coefficients = _fit_coefficients(out, full_mask, order)
+        out = out - _evaluate(coefficients, order, out.shape).astype(out.dtype)
+    # Untrusted pixels: glitched lines interpolated from their neighbours (keeps the
+    # corrugation for a spectrum); the step-edge band and non-finite pixels get the mean level.
+    _interpolate_rows(out, glitch)
+    fill = out[~full_mask].mean(dtype=float) if (~full_mask).any() else 0.0
+    if band is not None:
+        out[band] = fill
+    if nonfinite is not None and nonfinite.any():
+        out[nonfinite & ~glitch[:, None]] = fill
+    return out, full_mask, findings
+
+
+def _note(findings, nrows):
+    parts = []
+    offsets = findings["offsets"]
+    if len(offsets) > 1:
+        heights = ", ".join(f"{v:+.3f}" for v in offsets)
+        parts.append(
+            f"{len(offsets)} terraces found; their offsets relative to the largest ({heights} nm) were removed "
+            f"and a band along the step edges ({100 * findings['band'].mean():.1f} % of the pixels) was masked."
+        )
+    rows = findings["glitch_rows"]
+    if rows:
+        parts.append(f"{len(rows)} glitched scan line(s) masked and filled from their neighbours: rows "
+                     f"{', '.join(str(r) for r in rows)}.")
+    for row, jump, contrast in findings["tips"]:
+        parts.append(
+            f"Tip change at row {row}: offset jump {jump:+.3f} nm removed, contrast x{contrast:.2f} below; "
+            "the image below may also be shifted laterally by a few pixels."
+        )
+    return " ".join(parts)
+
+
+def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0, terraces="auto", glitches="auto",
+          tip_changes="auto", return_result=False):
+    """Level a scan: glitched lines, tip changes, terrace steps, line offsets, then a polynomial background.
 
     Parameters
     ----------
@@ -573,33 +1134,92 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0):
         in memory or lazy.
     order : int or None
         Order of the polynomial background (1 = plane); None for none.
-    lines : {None, "median", "mean", "difference"}
+    lines : {None, "median", "mean", "hann", "difference"}
         Per-line offset removal before the background fit (see :func:`line_offsets`).
     warn : bool
-        Warn that "median" and "mean" delete modulations along the slow-scan axis.
+        Warn that "median", "mean" and "hann" delete modulations along the slow-scan axis.
     jump_threshold : float
-        Passed to :func:`line_offsets` for ``lines="difference"``.
+        Passed to :func:`line_offsets` for ``lines="difference"``; also the
+        threshold (robust standard deviations) of the offset jumps that mark a tip change.
+    terraces : {"auto", True, False}
+        Find terraces separated by step edges and remove one free offset per
+        terrace together with the polynomial background (topographs only).
+        "auto" keeps two terraces apart only when their offsets differ by more
+        than :data:`STEP_SIGNIFICANCE` robust standard deviations of the levelled
+        image; True keeps every terrace the edges enclose.
+    glitches : {"auto", True, False} or sequence of int
+        Find and mask glitched scan lines ("auto" and True are the same), or
+        mask the given rows.
+    tip_changes : {"auto", True, False}
+        Find tip changes (persistent offset jumps between lines, abrupt changes
+        of the line roughness) and remove their offset jumps.
+    return_result : bool
+        Return a :class:`LevelResult` (levelled scan plus findings) instead of the scan.
 
     Returns
     -------
-    Scan
+    Scan or LevelResult
         A new scan with float data (float32 kept, otherwise float64). For an
         in-memory scan, NaN and inf pixels join the mask and are set to the mean of
-        the trusted levelled pixels. A lazy scan stays lazy: its background is
-        fitted on a strided subsample (see :func:`polynomial_background`), read now,
-        its NaN pixels stay NaN (later steps treat them as masked) and its mask is
-        carried unchanged. The input scan is not modified.
+        the trusted levelled pixels. Glitched lines and the band along step edges
+        join the mask: glitched lines are replaced by the linear interpolation of the
+        nearest trusted lines above and below, the band by the mean trusted level,
+        so that neither throws streaks across a spectrum. When anything was found,
+        the scan's ``metadata["level"]`` holds :meth:`LevelResult.to_summary`.
+        A lazy scan stays lazy: its background is fitted on a strided subsample
+        (see :func:`polynomial_background`), read now, its NaN pixels stay NaN (later
+        steps treat them as masked) and its mask is carried unchanged; the finders
+        of terraces, glitches and tip changes run on in-memory 2-D images only
+        ("auto" skips them for lazy scans and grids). The input scan is not modified.
 
     Raises
     ------
     InputError
-        For an invalid ``order``, ``lines`` or ``jump_threshold``, or too few
-        trusted pixels for the fit.
+        For an invalid ``order``, ``lines``, ``jump_threshold``, ``terraces``,
+        ``glitches`` or ``tip_changes``, a finder forced on (True) for a lazy scan
+        or a grid, or too few trusted pixels for the fit.
 
     Warns
     -----
     UserWarning
-        For ``lines="median"`` or ``"mean"`` unless ``warn=False``.
+        For ``lines="median"``, ``"mean"`` or ``"hann"`` unless ``warn=False``.
+
+    Notes
+    -----
+    In order, on an in-memory 2-D image:
+
+    1. *Glitched lines.* For each pair of neighbouring lines, the difference
+       minus its median over the line (so that line offsets do not count) has a
+       robust spread (1.4826 x median absolute deviation) and a number of spikes
+       (pixels beyond 8 typical spreads). A line is glitched when the differences
+       to *both* its neighbours are :data:`GLITCH_RATIO` times rougher than the
+       typical difference within 8 lines, or hold more spikes than 3 times the
+       typical count plus 2 % of the columns. A tip change roughens one
+       difference only and a slanted step edge adds a spike or two to every line,
+       so neither counts.
+    2. *Tip changes.* The offset jumps of :func:`line_offsets` ("difference", on
+       the trusted lines only, so a jump hidden under a glitched line is seen)
+       that persist over the next lines are removed; a change point of the log
+       line roughness (spread of the along-line differences), found by binary
+       segmentation with a two-sample t statistic above :data:`TIP_T_MIN` and a
+       ratio above :data:`TIP_MIN_RATIO`, marks a change of contrast. A lateral
+       jump of the image at a tip change cannot be undone here; the row is reported.
+    3. *Terraces.* The image, smoothed by a Gaussian of 1 pixel, is differenced
+       over two pixels along and across the lines; each difference has its median
+       over the line removed (line offsets and tilts cancel) and is divided by its
+       robust spread. Pixels where the summed squares exceed
+       :data:`EDGE_THRESHOLD` squared are step edge, widened by
+       :data:`EDGE_MARGIN_PX`: that band is masked. The connected regions left
+       are terraces (regions smaller than 0.2 % of the image join the band). One
+       polynomial (at least a plane) and a free offset per terrace are fitted by
+       least squares on the trusted pixels, and the offsets are subtracted.
+       A step edge running parallel to the lines is indistinguishable from a tip
+       change and is treated as one; an edge ending inside the frame (a screw
+       dislocation) does not separate terraces and is only masked if "True".
+    4. The line offsets (``lines``) and the polynomial background (``order``)
+       are then removed from the step-free image as without any finding.
+
+    With nothing found the result is exactly that of the plain levelling.
 
     Examples
     --------
@@ -611,6 +1231,15 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0):
     >>> flat = level(scan, order=1, lines="median", warn=False)
     >>> bool(np.abs(flat.data).max() < 1e-12)
     True
+
+    A staircase of two terraces 0.6 nm apart on a tilted plane:
+
+    >>> rows, cols = np.mgrid[0:96, 0:96]
+    >>> noise = np.random.default_rng(1).normal(0, 0.01, (96, 96))
+    >>> steps = 0.6 * (cols > 40 + 0.3 * rows) + 0.002 * cols + noise
+    >>> found = level(Scan(steps, pixel_size_nm=0.05), return_result=True)
+    >>> found.terrace_count, round(abs(found.terrace_offsets_nm[1]), 2)
+    (2, 0.6)
     """
     if not isinstance(scan, Scan):
         raise InputError(f"scan must be a domains.Scan, got {type(scan).__name__}")
@@ -624,11 +1253,27 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0):
         raise InputError(f"jump_threshold must be a number, got {jump_threshold!r}") from None
     if not jump_threshold > 0 or not math.isfinite(jump_threshold):
         raise InputError(f"jump_threshold must be positive, got {jump_threshold!r}")
+    terraces = _check_mode(terraces, "terraces")
+    tip_changes = _check_mode(tip_changes, "tip_changes")
+    glitches = _check_glitches(glitches, scan.shape[-2])
+    if scan.is_lazy or scan.is_grid:
+        forced = [name for name, value in (("terraces", terraces), ("glitches", glitches),
+                                           ("tip_changes", tip_changes)) if value is True or isinstance(value, tuple)]
+        if forced:
+            raise InputError(f"{scan.source}: {forced[0]} can only be found in an in-memory 2-D scan; "
+                             f"this one is {'lazy' if scan.is_lazy else 'a grid'} (use {forced[0]}=False or 'auto')")
     if warn and lines in ("median", "mean", "hann"):
         _warn_slow_axis(lines, stacklevel=2)
     where = scan.source
+    findings = None
     try:
-        if not scan.is_grid:
+        if not scan.is_grid and not scan.is_lazy:
+            data, mask, findings = _level_with_findings(
+                scan.data, scan.mask, order, lines, jump_threshold,
+                terraces=terraces if (scan.channel == "topography" or terraces is True) else False,
+                glitches=glitches, tip_changes=tip_changes,
+            )
+        elif not scan.is_grid:
             data, mask = _level_image(scan.data, scan.mask, order, lines, jump_threshold)
         elif scan.is_lazy:
             import dask.array as da
@@ -641,5 +1286,19 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0):
             data = np.stack([_level_image(plane, mask, order, lines, jump_threshold)[0] for plane in scan.data])
     except InputError as err:
         raise InputError(f"{where}: {err}") from None
-    return scan.with_data(data, mask=mask)
-
+    if findings is None:
+        levelled = scan.with_data(data, mask=mask)
+        result = LevelResult(levelled, note="")
+    else:
+        tips = findings["tips"]
+        result = LevelResult(
+            scan=None, terrace_count=len(findings["offsets"]), terrace_offsets_nm=findings["offsets"],
+            terrace_labels=findings["labels"], edge_mask=findings["band"], glitch_rows=findings["glitch_rows"],
+            tip_change_rows=tuple(int(t[0]) for t in tips), tip_change_offsets_nm=tuple(float(t[1]) for t in tips),
+            tip_change_contrast=tuple(float(t[2]) for t in tips), note=_note(findings, scan.shape[-2]),
+        )
+        metadata = dict(scan.metadata)
+        if result.found_anything:
+            metadata["level"] = result.to_summary()
+        object.__setattr__(result, "scan", scan.with_data(data, mask=mask, metadata=metadata))
+    return result if return_result else result.scan
