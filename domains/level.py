@@ -575,7 +575,7 @@ def _level_image(image, mask, order, lines, jump_threshold):
 #: Robust standard deviations of the smoothed gradient above which a pixel is on a step edge.
 EDGE_THRESHOLD = 8.0
 #: Pixels added on each side of a detected step edge to the masked band.
-EDGE_MARGIN_PX = 2
+EDGE_MARGIN_PX = 1
 #: In ``terraces="auto"`` two terraces are kept apart only if their offsets differ by more
 #: than this many robust standard deviations of the levelled image (the corrugation).
 STEP_SIGNIFICANCE = 5.0
@@ -587,7 +587,7 @@ TIP_T_MIN = 10.0
 #: ... and change the row roughness by at least this factor.
 TIP_MIN_RATIO = 1.25
 
-_GRADIENT_SIGMA_PX = 1.0  # light smoothing before the gradient (fixed: no kernel grows with the image)
+_EDGE_SCALES_PX = (1.0, 2.0)  # smoothing before the gradient: sharp and tip-blurred edges (fixed kernels)
 _WINDOW_ROWS = 8  # rows on each side for the local typical line-to-line roughness
 _SPIKE_SIGMAS = 8.0  # a pixel deviating this much (robust sigmas) from its neighbour line is a spike
 _MIN_SPIKE_FRACTION = 0.02  # a spiky line has at least this fraction of its columns spiked
@@ -690,7 +690,7 @@ def _row_median(a):
 
 
 def _local_median(values, half):
-    """Running median over ``2 * half + 1`` entries (edges: nearest), NaN entries replaced by the global median."""
+    """Running median over ``2 * half + 1`` entries (mirrored at the ends), NaN entries replaced by the global median."""
     from scipy.ndimage import median_filter
 
     v = np.asarray(values, dtype=float)
@@ -698,7 +698,7 @@ def _local_median(values, half):
     if not finite.any():
         return v
     v = np.where(finite, v, np.median(v[finite]))
-    return median_filter(v, size=2 * half + 1, mode="nearest")
+    return median_filter(v, size=2 * half + 1, mode="mirror")
 
 
 def _line_differences(x):
@@ -789,7 +789,22 @@ def _tip_changes(x, valid_rows, jump_threshold, floor):
     if rows.size < 2 * _MIN_SEGMENT_ROWS or m < 8:
         return offsets, []
     xc = x[rows]
-    # 1. Offset jumps between consecutive trusted lines (glitched lines left out, so a
+    # 1. Roughness of each line along the fast axis (robust spread of the pixel-to-pixel
+    #    differences): blind to offsets, to step edges crossing the line and to slow noise.
+    rough = np.empty(rows.size)
+    block = max(1, 2**20 // m)
+    for start in range(0, rows.size, block):
+        d = np.diff(xc[start : start + block], axis=1)
+        d -= _row_median(d)[:, None]
+        rough[start : start + block] = 1.4826 * _row_median(np.abs(d))
+    rough = np.where(np.isfinite(rough), np.maximum(rough, floor), floor)
+    log_rough = np.log(rough)
+
+    def contrast(at):
+        w = min(2 * _MIN_SEGMENT_ROWS, at, rows.size - at)
+        return math.exp(np.median(log_rough[at : at + w]) - np.median(log_rough[at - w : at])) if w > 0 else 1.0
+
+    # 2. Offset jumps between consecutive trusted lines (glitched lines left out, so a
     #    jump across a glitched line is still seen), kept only where the new level persists.
     steps = _difference_offsets(xc, jump_threshold)
     jumps = np.diff(steps)
@@ -801,26 +816,14 @@ def _tip_changes(x, valid_rows, jump_threshold, floor):
         after = np.median(steps[j + 1 : j + 1 + w])
         if abs(after - before) > 0.5 * abs(jumps[j]) and j + 1 + w <= rows.size:
             persistent[j + 1 :] += jumps[j]
-            events[int(rows[j + 1])] = [float(jumps[j]), 1.0]
-    # 2. Roughness of each line along the fast axis (robust spread of the pixel-to-pixel
-    #    differences): blind to offsets, to step edges crossing the line and to slow noise.
-    rough = np.empty(rows.size)
-    block = max(1, 2**20 // m)
-    for start in range(0, rows.size, block):
-        d = np.diff(xc[start : start + block], axis=1)
-        d -= _row_median(d)[:, None]
-        rough[start : start + block] = 1.4826 * _row_median(np.abs(d))
-    rough = np.where(np.isfinite(rough), np.maximum(rough, floor), floor)
-    log_rough = np.log(rough)
+            events[int(rows[j + 1])] = [float(jumps[j]), contrast(j + 1)]
+    # 3. Abrupt changes of the roughness (contrast), with or without an offset jump.
     sigma = 1.4826 * np.median(np.abs(np.diff(log_rough))) / math.sqrt(2)
     if sigma > 0:
-        for at, jump in _change_points(log_rough, sigma, TIP_T_MIN, _MIN_SEGMENT_ROWS, math.log(TIP_MIN_RATIO)):
+        for at, _ in _change_points(log_rough, sigma, TIP_T_MIN, _MIN_SEGMENT_ROWS, math.log(TIP_MIN_RATIO)):
             row = int(rows[at])
-            near = [r for r in events if abs(r - row) <= 2]
-            if near:
-                events[near[0]][1] = math.exp(jump)
-            else:
-                events[row] = [0.0, math.exp(jump)]
+            if not any(abs(r - row) <= 2 for r in events):
+                events[row] = [0.0, contrast(at)]
     offsets[rows] = persistent
     # A masked line takes the level of the trusted line above it.
     if rows.size < n:
@@ -830,45 +833,71 @@ def _tip_changes(x, valid_rows, jump_threshold, floor):
     return offsets, sorted((r, j, c) for r, (j, c) in events.items())
 
 
+def _edge_z2(smooth, half):
+    """Squared normalised edge strength: differences over 2 * half pixels along and across the lines."""
+    h = half
+    gx = smooth[h:-h, 2 * h :] - smooth[h:-h, : -2 * h]
+    gx -= np.median(gx, axis=1)[:, None]
+    gy = smooth[2 * h :, h:-h] - smooth[: -2 * h, h:-h]
+    gy -= np.median(gy, axis=1)[:, None]
+    sub = (slice(None, None, 2), slice(None, None, 2))
+    sx = np.float32(1.4826) * np.median(np.abs(gx[sub]))
+    sy = np.float32(1.4826) * np.median(np.abs(gy[sub]))
+    return gx, gy, sx, sy
+
+
 def _edge_strength_mask(x, mask):
-    """Pixels on a step edge: the lightly smoothed gradient far above its robust spread.
+    """Pixels on a step edge: the smoothed gradient far above its robust spread, at two scales.
 
     Line offsets and a tilt cancel: the row-to-row difference has its median over the
     row removed, and so has the along-row difference. A periodic corrugation gives a
     bounded gradient (a few robust standard deviations at most), white noise a
-    Gaussian one; a step many corrugations high stands far above both.
+    Gaussian one; a step many corrugations high stands far above both. The fine
+    scale finds sharp edges, the coarse one edges blurred by the tip over several
+    pixels; pixels above half the threshold join an edge they touch (hysteresis).
     """
-    from scipy.ndimage import binary_dilation, gaussian_filter
+    from scipy.ndimage import binary_dilation, gaussian_filter, label
 
     n, m = x.shape
+    floor = np.float32(max(_floor(x), 1e-30))
     work = np.array(x, dtype=np.float32)
     if mask is not None and mask.any():
         work[mask] = np.float32(np.median(work[~mask])) if (~mask).any() else 0.0
-    smooth = gaussian_filter(work, _GRADIENT_SIGMA_PX, truncate=3.0)
+    high = np.zeros((n, m), bool)
+    low = np.zeros((n, m), bool)
+    reach = 0
+    for sigma in _EDGE_SCALES_PX:
+        half = int(math.ceil(sigma))
+        if min(n, m) <= 2 * half + 2:
+            continue
+        smooth = gaussian_filter(work, sigma, truncate=3.0)
+        gx, gy, sx, sy = _edge_z2(smooth, half)
+        del smooth
+        gx /= max(sx, floor)
+        gy /= max(sy, floor)
+        np.square(gx, out=gx)
+        np.square(gy, out=gy)
+        gx += gy
+        del gy
+        high[half:-half, half:-half] |= gx > np.float32(EDGE_THRESHOLD**2)
+        if sigma == _EDGE_SCALES_PX[0]:
+            # Hysteresis on the fine scale only: the coarse one would widen the band.
+            low[half:-half, half:-half] |= gx > np.float32((EDGE_THRESHOLD / 2) ** 2)
+        reach = max(reach, int(math.ceil(3 * sigma)) + half)
+        del gx
     del work
-    gx = smooth[1:-1, 2:] - smooth[1:-1, :-2]
-    gx -= np.median(gx, axis=1)[:, None]
-    gy = smooth[2:, 1:-1] - smooth[:-2, 1:-1]
-    del smooth
-    gy -= np.median(gy, axis=1)[:, None]
-    sub = (slice(None, None, 2), slice(None, None, 2))
-    floor = np.float32(max(_floor(x), 1e-30))
-    sx = max(np.float32(1.4826) * np.median(np.abs(gx[sub])), floor)
-    sy = max(np.float32(1.4826) * np.median(np.abs(gy[sub])), floor)
-    gx /= sx
-    gy /= sy
-    np.square(gx, out=gx)
-    np.square(gy, out=gy)
-    gx += gy
-    del gy
-    edge = np.zeros((n, m), bool)
-    edge[1:-1, 1:-1] = gx > np.float32(EDGE_THRESHOLD**2)
-    del gx
     if mask is not None and mask.any():
         # The filled masked pixels make edges of their own: ignore everything next to them.
-        reach = int(math.ceil(3 * _GRADIENT_SIGMA_PX)) + 1
-        edge &= ~binary_dilation(mask, iterations=reach)
-    return edge
+        near = binary_dilation(mask, iterations=reach)
+        high &= ~near
+        low &= ~near
+    if not high.any():
+        return high
+    pieces, count = label(low | high, structure=np.ones((3, 3), bool))
+    seeded = np.zeros(count + 1, bool)
+    seeded[pieces[high]] = True
+    seeded[0] = False
+    return seeded[pieces]
 
 
 def _disk(radius):
