@@ -856,16 +856,21 @@ def _edge_strength_mask(x, mask):
     scale finds sharp edges, the coarse one edges blurred by the tip over several
     pixels; pixels above half the threshold join an edge they touch (hysteresis).
     """
-    from scipy.ndimage import binary_dilation, gaussian_filter, label
+    from scipy.ndimage import gaussian_filter, label
 
     n, m = x.shape
     floor = np.float32(max(_floor(x), 1e-30))
     work = np.array(x, dtype=np.float32)
-    if mask is not None and mask.any():
-        work[mask] = np.float32(np.median(work[~mask])) if (~mask).any() else 0.0
+    if mask is not None and mask.any() and (~mask).any():
+        # Each untrusted pixel takes the value of the nearest trusted one: no artificial edge
+        # around a masked spot, and a step edge runs on through a masked line or column.
+        from scipy.ndimage import distance_transform_edt
+
+        nearest = distance_transform_edt(mask, return_distances=False, return_indices=True)
+        work[mask] = work[nearest[0][mask], nearest[1][mask]]
+        del nearest
     high = np.zeros((n, m), bool)
     low = np.zeros((n, m), bool)
-    reach = 0
     for sigma in _EDGE_SCALES_PX:
         half = int(math.ceil(sigma))
         if min(n, m) <= 2 * half + 2:
@@ -883,14 +888,8 @@ def _edge_strength_mask(x, mask):
         if sigma == _EDGE_SCALES_PX[0]:
             # Hysteresis on the fine scale only: the coarse one would widen the band.
             low[half:-half, half:-half] |= gx > np.float32((EDGE_THRESHOLD / 2) ** 2)
-        reach = max(reach, int(math.ceil(3 * sigma)) + half)
         del gx
     del work
-    if mask is not None and mask.any():
-        # The filled masked pixels make edges of their own: ignore everything next to them.
-        near = binary_dilation(mask, iterations=reach)
-        high &= ~near
-        low &= ~near
     if not high.any():
         return high
     pieces, count = label(low | high, structure=np.ones((3, 3), bool))

@@ -570,3 +570,22 @@ def test_defect_finders_errors():
         level(Scan(da.from_array(PLANE, chunks=16), pixel_size_nm=0.1), terraces=True)
     lazy = level(Scan(da.from_array(PLANE, chunks=16), pixel_size_nm=0.1), return_result=True)
     assert lazy.scan.is_lazy and not lazy.found_anything  # documented: "auto" skips lazy scans
+
+
+def test_terraces_through_masked_and_missing_pixels():
+    truth, _ = _clean(8)
+    height, levels, distance = _staircase()
+    image = truth + height + TILT
+    image[:, 200] = np.nan  # a dead column crossing the curved step edge
+    image[50:60, 100:180] = np.nan  # a hole across the straight one
+    user = np.zeros(image.shape, bool)
+    user[150:190, 20:120] = True  # a user-masked bright feature
+    image[user] = 5.0
+    result = level(Scan(image, pixel_size_nm=PIXEL_NM, mask=user), return_result=True)
+    assert result.terrace_count == 3  # derived: masked pixels neither join nor split terraces
+    reference = np.argmax(np.bincount(levels.ravel()))
+    # derived: as in test_terraces_found_with_their_heights_and_edges
+    assert_allclose(sorted(result.terrace_offsets_nm), sorted(STEP_NM * (k - reference) for k in range(3)),
+                    rtol=0, atol=0.012)
+    assert result.scan.mask[user].all() and result.scan.mask[:, 200].all()  # the mask travels with the data
+    assert np.isfinite(result.scan.data).all()
