@@ -273,7 +273,9 @@ def _row_statistic(x, method):
     out = np.full(x.shape[0], np.nan)
     has = np.isfinite(x).any(axis=1)
     if method == "median":
-        out[has] = np.nanmedian(x[has], axis=1)
+        part = x[has]
+        # np.median is several times faster than np.nanmedian when there is no NaN
+        out[has] = np.nanmedian(part, axis=1) if np.isnan(part).any() else np.median(part, axis=1)
     else:
         out[has] = np.nanmean(x[has], axis=1)
     return out
