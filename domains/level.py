@@ -597,6 +597,9 @@ _MIN_TERRACE_PIXELS = 64
 _MIN_TERRACE_FRACTION = 0.002
 _MIN_SEGMENT_ROWS = 8  # shortest run of rows on either side of a roughness change point
 _MAX_TIP_CHANGES = 8
+# The terrace offsets are fitted on at most this many pixels (a strided subsample): 2**20
+# pixels fix an offset to noise / 1000, and the cost stays flat above 1024^2.
+_TERRACE_FIT_PIXELS = 2**20
 
 
 @dataclass(frozen=True, eq=False)
@@ -956,8 +959,8 @@ def _fit_terraces(values, rows, cols, terrace, shape, order, n_terraces):
 
 
 def _terrace_fit(x, mask, labels, order):
-    """Fit polynomial + offsets on the trusted terrace pixels (strided subsample above FIT_MAX_PIXELS)."""
-    step = _subsample_step(x.shape, FIT_MAX_PIXELS)
+    """Fit polynomial + offsets on the trusted terrace pixels (strided subsample above _TERRACE_FIT_PIXELS)."""
+    step = _subsample_step(x.shape, _TERRACE_FIT_PIXELS)
     sub = (slice(None, None, step), slice(None, None, step))
     lab = labels[sub]
     good = (lab > 0) & np.isfinite(x[sub])
