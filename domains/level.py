@@ -706,53 +706,78 @@ def _local_median(values, half):
     return median_filter(v, size=2 * half + 1, mode="mirror")
 
 
-def _line_differences(x):
-    """Robust spread and spike count of every line-to-line difference (row r to r + 1).
+def _row_mean(a):
+    """Mean of each row over its finite entries (NaN for a row with none), without warnings."""
+    finite = np.isfinite(a)
+    count = finite.sum(axis=1)
+    total = np.where(finite, a, 0.0).sum(axis=1)
+    return np.where(count > 0, total / np.maximum(count, 1), np.nan)
 
-    The row's own median is subtracted from each difference, so a constant offset of
-    a line (line noise, a tip change) does not count as roughness.
+
+def _sticking_out(centre, above, below):
+    """How far each pixel of a line sticks out of both neighbouring lines the same way.
+
+    With u = centre - above and d = centre - below (each minus its median over the
+    line, so that line offsets cancel), a pixel sticks out by min(|u|, |d|) when u
+    and d have one sign, and by 0 otherwise. A step edge crossing between two lines,
+    or a ramp through them, changes the pixel against one neighbour only, or with
+    opposite signs, and does not stick out; garbage and spikes do.
     """
-    n, m = x.shape
-    spread = np.full(n - 1, np.nan)
-    deviation = np.empty((0, m))
-    block = max(1, 2**20 // max(m, 1))  # rows per block: bounded temporaries
-    devs = []
-    for start in range(0, n - 1, block):
-        stop = min(n - 1, start + block)
-        d = x[start + 1 : stop + 1] - x[start:stop]
-        d -= _row_median(d)[:, None]
-        np.abs(d, out=d)
-        spread[start:stop] = 1.4826 * _row_median(d)
-        devs.append(d.astype(np.float32))
-    deviation = np.concatenate(devs) if devs else deviation
-    return spread, deviation
+    u = centre - above
+    u -= _row_median(u)[:, None]
+    d = centre - below
+    d -= _row_median(d)[:, None]
+    out = np.minimum(np.abs(u), np.abs(d))
+    out[(u > 0) != (d > 0)] = 0.0
+    out[~(np.isfinite(u) & np.isfinite(d))] = np.nan
+    return out, 1.4826 * _row_median(np.abs(d))
 
 
 def _glitch_rows(x, floor):
-    """Rows whose difference to both neighbouring rows is an outlier (garbage or a row of spikes).
+    """Lines that stick out of both neighbouring lines: garbage, or a line of spikes.
 
-    ``x`` holds NaN on masked pixels. A tip change makes one line-to-line difference
-    rough, a glitched line makes both of its differences rough: that is the test.
+    ``x`` holds NaN on masked pixels. A line is glitched when the mean over the line
+    of :func:`_sticking_out` exceeds :data:`GLITCH_RATIO` times its typical value
+    within 8 lines, or when more than 2 % of its pixels (and at least 4) stick out
+    by 8 robust standard deviations of the line-to-line differences nearby, and 3
+    times as many as typical. The first and last lines,
+    with one neighbour each, are compared with their neighbour alone.
     """
     n, m = x.shape
     if n < 3 or m < 8:
         return np.zeros(n, bool)
-    spread, deviation = _line_differences(x)
-    typical = np.maximum(_local_median(spread, _WINDOW_ROWS), floor)
-    spikes_at = np.maximum(_SPIKE_SIGMAS * typical, floor)
-    count = np.sum(deviation > spikes_at[:, None].astype(np.float32), axis=1).astype(float)
-    del deviation
+    mean = np.full(n, np.nan)
+    spread = np.full(n, np.nan)  # robust spread of the line-to-line differences, the scale of a spike
+    out = np.full((n, m), np.nan, np.float32)
+    block = max(1, 2**20 // m)  # rows per block: bounded float64 temporaries
+    for start in range(1, n - 1, block):
+        stop = min(n - 1, start + block)
+        s, spread[start:stop] = _sticking_out(x[start:stop], x[start - 1 : stop - 1], x[start + 1 : stop + 1])
+        mean[start:stop] = _row_mean(s)
+        out[start:stop] = s
+    # The end lines: their one difference, against the typical one-sided difference nearby.
+    one_sided = []
+    for r, other in ((0, 1), (n - 1, n - 2)):
+        d = x[r] - x[other]
+        d = np.abs(d - np.nanmedian(d)) if np.isfinite(d).any() else d
+        out[r] = d
+        mean[r] = np.nanmean(d) if np.isfinite(d).any() else np.nan
+        near = range(1, min(n - 1, 2 * _WINDOW_ROWS + 1)) if r == 0 else range(max(0, n - 2 * _WINDOW_ROWS - 2), n - 2)
+        steps = [x[k + 1] - x[k] for k in near]
+        typical_step = [np.nanmean(np.abs(v - np.nanmedian(v))) for v in steps if np.isfinite(v).any()]
+        one_sided.append(np.median(typical_step) if typical_step else np.nan)
+    typical = _local_median(np.concatenate([[np.nan], mean[1:-1], [np.nan]]), _WINDOW_ROWS)
+    typical[0], typical[-1] = one_sided
+    typical = np.where(np.isfinite(typical), typical, floor)
+    typical = np.maximum(typical, floor)
+    spike_at = np.maximum(_SPIKE_SIGMAS * _local_median(spread, _WINDOW_ROWS), floor)
+    count = np.sum(out > spike_at[:, None].astype(np.float32), axis=1).astype(float)
+    del out
     typical_count = _local_median(count, _WINDOW_ROWS)
     min_spikes = max(4.0, _MIN_SPIKE_FRACTION * m)
-    rough = np.where(np.isfinite(spread), spread > GLITCH_RATIO * typical + floor, False)
+    rough = np.where(np.isfinite(mean), mean > GLITCH_RATIO * typical + floor, False)
     spiky = count > np.maximum(GLITCH_RATIO * typical_count, typical_count + min_spikes)
-    bad_diff = rough | spiky
-    glitch = np.zeros(n, bool)
-    glitch[1:-1] = bad_diff[:-1] & bad_diff[1:]
-    # The first and last lines have one neighbour only.
-    glitch[0] = bad_diff[0] and not bad_diff[1] if n > 2 else False
-    glitch[-1] = bad_diff[-1] and not bad_diff[-2] if n > 2 else False
-    return glitch
+    return rough | spiky
 
 
 def _change_points(values, sigma, t_min, min_size, min_jump):

@@ -589,3 +589,17 @@ def test_terraces_through_masked_and_missing_pixels():
                     rtol=0, atol=0.012)
     assert result.scan.mask[user].all() and result.scan.mask[:, 200].all()  # the mask travels with the data
     assert np.isfinite(result.scan.data).all()
+
+
+def test_a_step_edge_almost_along_the_lines_is_no_glitch():
+    truth, _ = _clean(9)
+    # the edge descends 5 lines across the frame: every line it crosses changes on 20 % of its pixels
+    image = truth + STEP_NM * (RR > 120 + 0.02 * CC) + TILT
+    result = level(Scan(image, pixel_size_nm=PIXEL_NM), return_result=True)
+    # derived: a pixel on either side of the edge differs from one neighbouring line only, never sticks out of both
+    assert result.glitch_rows == ()
+    assert result.terrace_count == 2  # derived: one edge across the frame
+    assert abs(abs(result.terrace_offsets_nm[1]) - STEP_NM) < 0.012  # derived: as for the two-step staircase
+    # derived: an edge exactly along a line cannot be told from a tip change (documented): it is reported as one
+    flat = level(Scan(truth + STEP_NM * (RR >= 121) + TILT, pixel_size_nm=PIXEL_NM), return_result=True)
+    assert flat.tip_change_rows == (121,) and abs(flat.tip_change_offsets_nm[0] - STEP_NM) < 3 * A_NM
