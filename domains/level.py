@@ -1,8 +1,11 @@
-"""Levelling: polynomial background removal, per-line offset removal and NaN masking of images and scans.
+"""Levelling: polynomial background, per-line offsets, terrace steps, glitched lines, tip changes and NaN masking.
 
 Rows are scan lines (the fast-scan axis runs along a row, x); the slow-scan axis
 is y. A mask marks untrusted pixels (True); masked and non-finite pixels never
-enter a fit, but every pixel is corrected.
+enter a fit, but every pixel is corrected. :func:`level` also finds what real
+topographs carry besides the corrugation (terrace steps many corrugations high,
+glitched scan lines, tip changes), removes what can be removed, masks the rest
+and says what it found (:class:`LevelResult`).
 """
 
 from __future__ import annotations
@@ -1246,15 +1249,16 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0, terraces=
     -----
     In order, on an in-memory 2-D image:
 
-    1. *Glitched lines.* For each pair of neighbouring lines, the difference
-       minus its median over the line (so that line offsets do not count) has a
-       robust spread (1.4826 x median absolute deviation) and a number of spikes
-       (pixels beyond 8 typical spreads). A line is glitched when the differences
-       to *both* its neighbours are :data:`GLITCH_RATIO` times rougher than the
-       typical difference within 8 lines, or hold more spikes than 3 times the
-       typical count plus 2 % of the columns. A tip change roughens one
-       difference only and a slanted step edge adds a spike or two to every line,
-       so neither counts.
+    1. *Glitched lines.* Each pixel is compared with the lines above and below
+       (each line-to-line difference minus its median over the line, so that
+       line offsets cancel); it *sticks out* by the smaller of the two
+       differences when both have one sign, else by 0. A line is glitched when
+       its pixels stick out on average :data:`GLITCH_RATIO` times more than
+       typical within 8 lines, or when more than 2 % of them (and 3 times the
+       typical count) stick out by 8 robust standard deviations of the line
+       differences. A step edge or a tip change alters a pixel against one
+       neighbouring line only, so neither counts; a single spike does not make
+       a glitched line.
     2. *Tip changes.* The offset jumps of :func:`line_offsets` ("difference", on
        the trusted lines only, so a jump hidden under a glitched line is seen)
        that persist over the next lines are removed; a change point of the log
@@ -1262,20 +1266,29 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0, terraces=
        segmentation with a two-sample t statistic above :data:`TIP_T_MIN` and a
        ratio above :data:`TIP_MIN_RATIO`, marks a change of contrast. A lateral
        jump of the image at a tip change cannot be undone here; the row is reported.
-    3. *Terraces.* The image, smoothed by a Gaussian of 1 pixel, is differenced
-       over two pixels along and across the lines; each difference has its median
-       over the line removed (line offsets and tilts cancel) and is divided by its
-       robust spread. Pixels where the summed squares exceed
-       :data:`EDGE_THRESHOLD` squared are step edge, widened by
-       :data:`EDGE_MARGIN_PX`: that band is masked. The connected regions left
+    3. *Terraces.* The image, smoothed by a Gaussian of 1 and of 2 pixels, is
+       differenced over 2 and 4 pixels along and across the lines; each
+       difference has its median over the line removed (line offsets and tilts
+       cancel) and is divided by its robust spread. Pixels where the summed
+       squares exceed :data:`EDGE_THRESHOLD` squared at either scale seed a step
+       edge, which grows over the fine-scale pixels above half the threshold
+       (hysteresis), then by :data:`EDGE_MARGIN_PX`: that band is masked.
+       Untrusted pixels take the value of their nearest trusted pixel for this. The connected regions left
        are terraces (regions smaller than 0.2 % of the image join the band). One
        polynomial (at least a plane) and a free offset per terrace are fitted by
-       least squares on the trusted pixels, and the offsets are subtracted.
+       least squares on the trusted pixels (at most 2**20 of them, strided),
+       and the offsets are subtracted. The tails of an edge blurred over more
+       than the band bias the offsets by a few per cent of the step; terraces
+       cover different lines, so strong line noise left in (``lines=None``)
+       biases them by its mean difference between those lines.
        A step edge running parallel to the lines is indistinguishable from a tip
        change and is treated as one; an edge ending inside the frame (a screw
-       dislocation) does not separate terraces and is only masked if "True".
+       dislocation) separates no terraces and is neither removed nor masked.
     4. The line offsets (``lines``) and the polynomial background (``order``)
-       are then removed from the step-free image as without any finding.
+       are then removed from the step-free image as without any finding. The
+       result, with the glitched lines interpolated and the edge band at the mean
+       level, is step-free and fit for peak finding; its mask says which pixels
+       carry no measurement.
 
     With nothing found the result is exactly that of the plain levelling.
 
