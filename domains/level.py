@@ -1005,7 +1005,11 @@ def _terrace_fit(x, mask, labels, order):
 
 
 def _merge_terraces(x, mask, labels, offsets, poly, order, significance):
-    """Join terraces whose offsets differ by less than ``significance`` robust sigmas of the levelled image."""
+    """Join terraces whose offsets differ by less than ``significance`` robust sigmas of the levelled image.
+
+    The robust sigma is that of the residual with each line's median removed: the
+    corrugation and the noise, not the line offsets.
+    """
     step = _subsample_step(x.shape, 2**20)
     sub = (slice(None, None, step), slice(None, None, step))
     lab = labels[sub]
@@ -1016,8 +1020,12 @@ def _merge_terraces(x, mask, labels, offsets, poly, order, significance):
     background = np.zeros(rows.size)
     for c, (i, j) in zip(poly, _terms(order)):
         background += c * _scaled(cols * step, x.shape[1]) ** i * _scaled(rows * step, x.shape[0]) ** j
-    residual = x[sub][good] - background - offsets[lab[good] - 1]
-    scale = 1.4826 * np.median(np.abs(residual - np.median(residual))) if residual.size else 0.0
+    residual = np.full(lab.shape, np.nan)
+    residual[good] = x[sub][good] - background - offsets[lab[good] - 1]
+    # Each line's median removed: line noise is no corrugation and must not hide a step.
+    residual -= _row_median(residual)[:, None]
+    residual = residual[good]
+    scale = 1.4826 * np.median(np.abs(residual)) if residual.size else 0.0
     tol = max(significance * scale, _floor(x))
     sorted_ids = np.argsort(offsets)
     group = np.zeros(offsets.size, int)
@@ -1129,6 +1137,16 @@ def _level_with_findings(image, mask, order, lines, jump_threshold, terraces, gl
                     remap = np.concatenate([[0], rank[group]]).astype(np.int32)
                     labels = remap[labels]
                     poly, offsets = _terrace_fit(x, work_mask, labels, fit_order)
+        if labels is not None and lines is not None:
+            # Terraces cover different lines, so line offsets bias their offsets: remove the
+            # line offsets of the step-free image, then fit the terraces again.
+            step_free = x - offsets[np.maximum(labels, 1) - 1]
+            step_free[band] = np.nan
+            line_fit = _line_offsets(step_free, lines, work_mask | band, jump_threshold)
+            del step_free
+            x -= line_fit[:, None]
+            poly, offsets = _terrace_fit(x, work_mask, labels, fit_order)
+            tip_offsets = tip_offsets + line_fit
         if labels is not None:
             x -= offsets[np.maximum(labels, 1) - 1]
             x[band] = np.nan
