@@ -92,20 +92,30 @@ def _fit(values, rows, cols, shape, order):
     updated with each new block), so memory stays bounded and accuracy is that of
     a QR solve, not of the normal equations.
     """
+    blocks = ((values[i : i + _BLOCK_PIXELS], rows[i : i + _BLOCK_PIXELS], cols[i : i + _BLOCK_PIXELS])
+              for i in range(0, values.size, _BLOCK_PIXELS))
+    return _fit_blocks(blocks, shape, order)
+
+
+def _fit_blocks(blocks, shape, order):
+    """:func:`_fit` over an iterable of (values, rows, cols) blocks."""
     terms = _terms(order)
-    if values.size < len(terms):
-        raise InputError(
-            f"only {values.size} unmasked finite pixels; a polynomial of order {order} needs at least {len(terms)}"
-        )
     r_factor = np.zeros((0, len(terms)))
     rhs = np.zeros(0)
-    for start in range(0, values.size, _BLOCK_PIXELS):
-        stop = start + _BLOCK_PIXELS
-        u = _scaled(cols[start:stop], shape[1])
-        v = _scaled(rows[start:stop], shape[0])
+    total = 0
+    for values, rows, cols in blocks:
+        if values.size == 0:
+            continue
+        total += values.size
+        u = _scaled(cols, shape[1])
+        v = _scaled(rows, shape[0])
         design = np.stack([u**i * v**j for i, j in terms], axis=1)
         q, r_factor = np.linalg.qr(np.vstack([r_factor, design]))
-        rhs = q.T @ np.concatenate([rhs, values[start:stop].astype(float)])
+        rhs = q.T @ np.concatenate([rhs, values.astype(float)])
+    if total < len(terms):
+        raise InputError(
+            f"only {total} unmasked finite pixels; a polynomial of order {order} needs at least {len(terms)}"
+        )
     singular = np.linalg.svd(r_factor, compute_uv=False)
     if singular[-1] <= 1e-10 * singular[0]:
         raise InputError(
@@ -126,6 +136,15 @@ def _evaluate(coefficients, order, shape, row0=0, col0=0, block_shape=None):
     return out
 
 
+def _subtract_polynomial(out, coefficients, order):
+    """Subtract the polynomial from ``out`` in place, a block of rows at a time (no full-size background)."""
+    nrows = max(1, _BLOCK_PIXELS // max(out.shape[1], 1))
+    for r0 in range(0, out.shape[0], nrows):
+        r1 = min(out.shape[0], r0 + nrows)
+        out[r0:r1] -= _evaluate(coefficients, order, out.shape, r0, 0, (r1 - r0, out.shape[1])).astype(out.dtype)
+    return out
+
+
 def _subsample_step(shape, budget):
     return max(1, math.ceil(math.sqrt(shape[0] * shape[1] / budget)))
 
@@ -138,7 +157,20 @@ def _fit_coefficients(image, mask, order):
         sample = np.asarray(image[::step, ::step].compute(), dtype=float)
         sample_mask = mask[::step, ::step] if mask is not None else None
     else:
-        step, sample, sample_mask = 1, np.asarray(image, dtype=float), mask
+        # Row blocks of about _BLOCK_PIXELS pixels: no full-size float64 copy or index arrays.
+        image = np.asarray(image)
+        nrows = max(1, _BLOCK_PIXELS // max(shape[1], 1))
+
+        def blocks():
+            for r0 in range(0, shape[0], nrows):
+                part = np.asarray(image[r0 : r0 + nrows], dtype=float)
+                good = np.isfinite(part)
+                if mask is not None:
+                    good &= ~mask[r0 : r0 + nrows]
+                rows, cols = np.nonzero(good)
+                yield part[good], rows + r0, cols
+
+        return _fit_blocks(blocks(), shape, order)
     good = np.isfinite(sample)
     if sample_mask is not None:
         good &= ~sample_mask
@@ -299,8 +331,13 @@ def _neighbour_median(d):
 def _difference_offsets(x, threshold):
     """Offsets built only from line-to-line jumps that stand out from the typical step."""
     nrows = x.shape[0]
-    steps = x[1:] - x[:-1]  # NaN where either line is untrusted
-    d = _row_statistic(steps, "median")
+    # The median step between neighbouring lines (NaN where either is untrusted), a block of
+    # lines at a time so that no full-size difference image is held.
+    d = np.full(max(nrows - 1, 0), np.nan)
+    block = max(1, _BLOCK_PIXELS * 4 // max(x.shape[1], 1))
+    for r0 in range(0, nrows - 1, block):
+        r1 = min(nrows - 1, r0 + block)
+        d[r0:r1] = _row_statistic(x[r0 + 1 : r1 + 1] - x[r0:r1], "median")
     offsets = np.zeros(nrows)
     known = np.isfinite(d)
     if not known.any():
@@ -556,14 +593,14 @@ def _level_image(image, mask, order, lines, jump_threshold):
             out = out - _background_from(coefficients, order, out, out.dtype)
         return out, mask  # non-finite pixels stay NaN: later steps treat them as masked
     filled, combined = nan_to_mask(image, mask)
-    nonfinite = ~np.isfinite(np.asarray(image, dtype=float)) if np.asarray(image).dtype.kind == "f" else None
+    nonfinite = ~np.isfinite(np.asarray(image)) if np.asarray(image).dtype.kind == "f" else None
     out = filled
     if lines is not None:
         offsets = _line_offsets(out, lines, combined, jump_threshold)
         out = out - offsets.astype(out.dtype)[:, None]
     if order is not None:
         coefficients = _fit_coefficients(out, combined, order)
-        out = out - _evaluate(coefficients, order, out.shape).astype(out.dtype)
+        out = _subtract_polynomial(out, coefficients, order)  # out is a fresh array (nan_to_mask copies)
     if nonfinite is not None and nonfinite.any():
         # A filled pixel carries no measurement; give it the mean trusted level.
         out[nonfinite] = out[~combined].mean(dtype=float) if (~combined).any() else 0.0
@@ -677,10 +714,9 @@ class LevelResult:
 
 def _floor(x):
     """Below this a robust spread is rounding, not signal (noise-free or float32 synthetic data)."""
-    finite = x[np.isfinite(x)]
-    if finite.size == 0:
+    if not np.isfinite(x).any():
         return 1e-300
-    span = float(finite.max() - finite.min())
+    span = float(np.nanmax(x)) - float(np.nanmin(x))
     return max(span * 64 * np.finfo(np.float64).eps, span * 1e-9, 1e-300)
 
 
@@ -821,7 +857,7 @@ def _tip_changes(x, valid_rows, jump_threshold, floor):
     rows = np.flatnonzero(valid_rows)
     if rows.size < 2 * _MIN_SEGMENT_ROWS or m < 8:
         return offsets, []
-    xc = x[rows]
+    xc = x if rows.size == n else x[rows]  # a view when no line is masked
     # 1. Roughness of each line along the fast axis (robust spread of the pixel-to-pixel
     #    differences): blind to offsets, to step edges crossing the line and to slow noise.
     rough = np.empty(rows.size)
@@ -893,7 +929,7 @@ def _edge_strength_mask(x, mask):
 
     n, m = x.shape
     floor = np.float32(max(_floor(x), 1e-30))
-    work = np.array(x, dtype=np.float32)
+    work = x if x.dtype == np.float32 else np.array(x, dtype=np.float32)  # callers hand over a float32 copy
     if mask is not None and mask.any() and (~mask).any():
         # Each untrusted pixel takes the value of the nearest trusted one: no artificial edge
         # around a masked spot, and a step edge runs on through a masked line or column.
@@ -1082,7 +1118,7 @@ def _level_with_findings(image, mask, order, lines, jump_threshold, terraces, gl
     the plain levelling of :func:`_level_image`.
     """
     filled, combined = nan_to_mask(image, mask)
-    nonfinite = ~np.isfinite(np.asarray(image, dtype=float)) if np.asarray(image).dtype.kind == "f" else None
+    nonfinite = ~np.isfinite(np.asarray(image)) if np.asarray(image).dtype.kind == "f" else None
     n, m = filled.shape
     x = np.array(filled, dtype=float)
     if combined is not None:
@@ -1116,7 +1152,7 @@ def _level_with_findings(image, mask, order, lines, jump_threshold, terraces, gl
     work_mask = combined.copy() if combined is not None else np.zeros((n, m), bool)
     work_mask |= glitch[:, None]
     if terraces:
-        detect = x.copy()
+        detect = x.astype(np.float32)  # the edge finder works in float32 and may overwrite it
         _interpolate_rows(detect, ~valid_rows)
         others = work_mask & ~glitch[:, None]
         detect[~np.isfinite(detect)] = 0.0
@@ -1169,7 +1205,7 @@ def _level_with_findings(image, mask, order, lines, jump_threshold, terraces, gl
         out = out - _line_offsets(out, lines, line_mask, jump_threshold).astype(out.dtype)[:, None]
     if order is not None:
         coefficients = _fit_coefficients(out, full_mask, order)
-        out = out - _evaluate(coefficients, order, out.shape).astype(out.dtype)
+        out = _subtract_polynomial(out, coefficients, order)  # out is a fresh array (nan_to_mask copies)
     # Untrusted pixels: glitched lines interpolated from their neighbours (keeps the
     # corrugation for a spectrum); the step-edge band and non-finite pixels get the mean level.
     _interpolate_rows(out, glitch)
