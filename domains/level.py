@@ -734,7 +734,7 @@ def _row_median(a):
 
 
 def _local_median(values, half):
-    """Running median over ``2 * half + 1`` entries (mirrored at the ends), NaN entries replaced by the global median."""
+    """Running median over ``2 * half + 1`` entries (mirrored at the ends); NaN entries take the global median."""
     from scipy.ndimage import median_filter
 
     v = np.asarray(values, dtype=float)
@@ -1022,6 +1022,21 @@ def _fit_terraces(values, rows, cols, terrace, shape, order, n_terraces):
     return solution[: len(terms)], np.concatenate([[0.0], solution[len(terms) :]])
 
 
+def _drop_untrusted_terraces(labels, mask):
+    """Terraces with too few trusted pixels (all inside a masked area) join the band; renumber the rest."""
+    trusted = np.bincount(labels[~mask], minlength=int(labels.max()) + 1)
+    keep = trusted >= _MIN_TERRACE_PIXELS
+    keep[0] = False
+    if keep.sum() < 2:
+        return None, None
+    if keep[1:].all():
+        return labels, labels == 0
+    remap = np.zeros(keep.size, np.int32)
+    remap[np.flatnonzero(keep)] = np.arange(1, keep.sum() + 1, dtype=np.int32)  # area order is kept
+    labels = remap[labels]
+    return labels, labels == 0
+
+
 def _terrace_fit(x, mask, labels, order):
     """Fit polynomial + offsets on the trusted terrace pixels (strided subsample above _TERRACE_FIT_PIXELS)."""
     step = _subsample_step(x.shape, _TERRACE_FIT_PIXELS)
@@ -1159,6 +1174,8 @@ def _level_with_findings(image, mask, order, lines, jump_threshold, terraces, gl
         labels, band = _terrace_labels(detect, others if others.any() else None)
         del detect
         if labels is not None:
+            labels, band = _drop_untrusted_terraces(labels, work_mask)
+        if labels is not None:
             poly, offsets = _terrace_fit(x, work_mask, labels, fit_order)
             if terraces == "auto":
                 group = _merge_terraces(x, work_mask, labels, offsets, poly, fit_order, STEP_SIGNIFICANCE)
@@ -1217,7 +1234,7 @@ def _level_with_findings(image, mask, order, lines, jump_threshold, terraces, gl
     return out, full_mask, findings
 
 
-def _note(findings, nrows):
+def _note(findings):
     parts = []
     offsets = findings["offsets"]
     if len(offsets) > 1:
@@ -1420,7 +1437,7 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0, terraces=
             scan=None, terrace_count=len(findings["offsets"]), terrace_offsets_nm=findings["offsets"],
             terrace_labels=findings["labels"], edge_mask=findings["band"], glitch_rows=findings["glitch_rows"],
             tip_change_rows=tuple(int(t[0]) for t in tips), tip_change_offsets_nm=tuple(float(t[1]) for t in tips),
-            tip_change_contrast=tuple(float(t[2]) for t in tips), note=_note(findings, scan.shape[-2]),
+            tip_change_contrast=tuple(float(t[2]) for t in tips), note=_note(findings),
         )
         metadata = dict(scan.metadata)
         if result.found_anything:

@@ -623,3 +623,17 @@ def test_terrace_offsets_under_strong_line_noise():
     # by more than that: the scene is a real test of the line correction
     unlined = level(scan, return_result=True)
     assert np.max(np.abs(np.subtract(sorted(unlined.terrace_offsets_nm), expected))) > 0.012
+
+
+def test_an_island_joins_the_terrace_at_its_level():
+    truth, _ = _clean(11)
+    island = (RR - 128) ** 2 + (CC - 110) ** 2 < 30.0**2  # a one-layer island on the lower terrace
+    image = truth + STEP_NM * (island | (CC > 200)) + TILT
+    result = level(Scan(image, pixel_size_nm=PIXEL_NM), return_result=True)
+    # derived: the island and the right-hand terrace lie at one height, so "auto" joins them: two levels
+    assert result.terrace_count == 2
+    assert abs(abs(result.terrace_offsets_nm[1]) - STEP_NM) < 0.012  # derived: as for the staircase
+    labels = result.terrace_labels
+    assert labels[128, 110] == labels[128, 230] != labels[20, 20]  # derived: same level, same label
+    forced = level(Scan(image, pixel_size_nm=PIXEL_NM), terraces=True, return_result=True)
+    assert forced.terrace_count == 3  # derived: True keeps every enclosed region apart
