@@ -1355,6 +1355,10 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0, terraces=
        A step edge running parallel to the lines is indistinguishable from a tip
        change and is treated as one; an edge ending inside the frame (a screw
        dislocation) separates no terraces and is neither removed nor masked.
+       A flat-topped feature enclosed by an edge and larger than 0.2 % of the
+       frame (an island, but also an adsorbate cluster) counts as a terrace;
+       smaller enclosed regions join the masked band when there are terraces,
+       and are left alone when there are none.
     4. The line offsets (``lines``) and the polynomial background (``order``)
        are then removed from the step-free image as without any finding. The
        result, with the glitched lines interpolated and the edge band at the mean
