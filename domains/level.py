@@ -100,8 +100,10 @@ def _fit(values, rows, cols, shape, order):
 def _fit_blocks(blocks, shape, order):
     """:func:`_fit` over an iterable of (values, rows, cols) blocks."""
     terms = _terms(order)
-    r_factor = np.zeros((0, len(terms)))
-    rhs = np.zeros(0)
+    p = len(terms)
+    # R of the QR factorisation of the design matrix with the values as one more column:
+    # its last column is Q^T b, so Q itself is never formed.
+    r_aug = np.zeros((0, p + 1))
     total = 0
     for values, rows, cols in blocks:
         if values.size == 0:
@@ -109,9 +111,9 @@ def _fit_blocks(blocks, shape, order):
         total += values.size
         u = _scaled(cols, shape[1])
         v = _scaled(rows, shape[0])
-        design = np.stack([u**i * v**j for i, j in terms], axis=1)
-        q, r_factor = np.linalg.qr(np.vstack([r_factor, design]))
-        rhs = q.T @ np.concatenate([rhs, values.astype(float)])
+        design = np.stack([u**i * v**j for i, j in terms] + [values.astype(float)], axis=1)
+        r_aug = np.linalg.qr(np.vstack([r_aug, design]), mode="r")[: p + 1]
+    r_factor, rhs = r_aug[:p, :p], r_aug[:p, p]
     if total < len(terms):
         raise InputError(
             f"only {total} unmasked finite pixels; a polynomial of order {order} needs at least {len(terms)}"
@@ -720,8 +722,18 @@ def _floor(x):
     return max(span * 64 * np.finfo(np.float64).eps, span * 1e-9, 1e-300)
 
 
-def _row_median(a):
-    """Median of each row over its finite entries (NaN for a row with none), without warnings."""
+#: Row medians of the finders read at most about this many columns (every s-th): a median of
+#: 512 samples is within 0.06 robust sigmas of the full one, at a quarter of the cost at 2048.
+_MEDIAN_COLUMNS = 512
+
+
+def _row_median(a, sampled=False):
+    """Median of each row over its finite entries (NaN for a row with none), without warnings.
+
+    With ``sampled``, every s-th column only, s chosen to read about :data:`_MEDIAN_COLUMNS`.
+    """
+    if sampled and a.shape[1] >= 2 * _MEDIAN_COLUMNS:
+        a = a[:, :: a.shape[1] // _MEDIAN_COLUMNS]
     out = np.full(a.shape[0], np.nan)
     has = np.isfinite(a).any(axis=1)
     if has.any():
@@ -763,13 +775,13 @@ def _sticking_out(centre, above, below):
     opposite signs, and does not stick out; garbage and spikes do.
     """
     u = centre - above
-    u -= _row_median(u)[:, None]
+    u -= _row_median(u, sampled=True)[:, None]
     d = centre - below
-    d -= _row_median(d)[:, None]
+    d -= _row_median(d, sampled=True)[:, None]
     out = np.minimum(np.abs(u), np.abs(d))
     out[(u > 0) != (d > 0)] = 0.0
     out[~(np.isfinite(u) & np.isfinite(d))] = np.nan
-    return out, 1.4826 * _row_median(np.abs(d))
+    return out, 1.4826 * _row_median(np.abs(d), sampled=True)
 
 
 def _glitch_rows(x, floor):
@@ -864,8 +876,8 @@ def _tip_changes(x, valid_rows, jump_threshold, floor):
     block = max(1, 2**20 // m)
     for start in range(0, rows.size, block):
         d = np.diff(xc[start : start + block], axis=1)
-        d -= _row_median(d)[:, None]
-        rough[start : start + block] = 1.4826 * _row_median(np.abs(d))
+        d -= _row_median(d, sampled=True)[:, None]
+        rough[start : start + block] = 1.4826 * _row_median(np.abs(d), sampled=True)
     rough = np.where(np.isfinite(rough), np.maximum(rough, floor), floor)
     log_rough = np.log(rough)
 
@@ -906,9 +918,9 @@ def _edge_z2(smooth, half):
     """Squared normalised edge strength: differences over 2 * half pixels along and across the lines."""
     h = half
     gx = smooth[h:-h, 2 * h :] - smooth[h:-h, : -2 * h]
-    gx -= np.median(gx, axis=1)[:, None]
+    gx -= _row_median(gx, sampled=True).astype(np.float32)[:, None]
     gy = smooth[2 * h :, h:-h] - smooth[: -2 * h, h:-h]
-    gy -= np.median(gy, axis=1)[:, None]
+    gy -= _row_median(gy, sampled=True).astype(np.float32)[:, None]
     sub = (slice(None, None, 2), slice(None, None, 2))
     sx = np.float32(1.4826) * np.median(np.abs(gx[sub]))
     sy = np.float32(1.4826) * np.median(np.abs(gy[sub]))
@@ -1005,16 +1017,16 @@ def _fit_terraces(values, rows, cols, terrace, shape, order, n_terraces):
     p = len(terms) + n_terraces - 1
     if values.size < p:
         raise InputError(f"only {values.size} trusted pixels on the terraces; the fit needs at least {p}")
-    r_factor = np.zeros((0, p))
-    rhs = np.zeros(0)
+    r_aug = np.zeros((0, p + 1))  # as in _fit_blocks: R of [design | values]
     for start in range(0, values.size, _BLOCK_PIXELS):
         stop = start + _BLOCK_PIXELS
         u = _scaled(cols[start:stop], shape[1])
         v = _scaled(rows[start:stop], shape[0])
         t = terrace[start:stop]
         columns = [u**i * v**j for i, j in terms] + [(t == k).astype(float) for k in range(2, n_terraces + 1)]
-        q, r_factor = np.linalg.qr(np.vstack([r_factor, np.stack(columns, axis=1)]))
-        rhs = q.T @ np.concatenate([rhs, values[start:stop].astype(float)])
+        columns.append(values[start:stop].astype(float))
+        r_aug = np.linalg.qr(np.vstack([r_aug, np.stack(columns, axis=1)]), mode="r")[: p + 1]
+    r_factor, rhs = r_aug[:p, :p], r_aug[:p, p]
     singular = np.linalg.svd(r_factor, compute_uv=False)
     if singular[-1] <= 1e-10 * singular[0]:
         raise InputError("the terraces and the polynomial background are not separable; lower the order")
@@ -1061,7 +1073,7 @@ def _merge_terraces(x, mask, labels, offsets, poly, order, significance):
     The robust sigma is that of the residual with each line's median removed: the
     corrugation and the noise, not the line offsets.
     """
-    step = _subsample_step(x.shape, 2**20)
+    step = _subsample_step(x.shape, 2**18)  # a scale estimate: a quarter million pixels are plenty
     sub = (slice(None, None, step), slice(None, None, step))
     lab = labels[sub]
     good = (lab > 0) & np.isfinite(x[sub])
