@@ -82,6 +82,16 @@ class LatticeReading:
     second: object = None
     unresolved_set_q: np.ndarray | None = None
     reasons: tuple = ()
+    slow_axis: tuple = (0.0, 0.0)
+
+    @property
+    def to_material(self) -> np.ndarray:
+        """Matrix taking image-frame wavevectors (rows) to the frame of the undistorted material: q @ D.
+
+        D = [[1, shear], [0, 1 + stretch]] is the slow-axis drift distortion r_img = D r (identity when none).
+        """
+        shear, stretch = self.slow_axis
+        return np.array([[1.0, shear], [0.0, 1.0 + stretch]])
 
 
 @dataclass(frozen=True)
@@ -279,7 +289,8 @@ def _lattice_candidates(q, power, err, bin_q):
                     if not 0.8 <= np.hypot(*third) / qa[i] <= 1.25:
                         continue
                     m, d = _nearest_peak(q, third)
-                    tol = max(1.5 * bin_q, 4 * math.sqrt(err[i] ** 2 + err[j] ** 2 + err[m] ** 2))
+                    # A tip change or creep splits peaks: their interpolated centres can be a bin or more off.
+                    tol = max(2.5 * bin_q, 4 * math.sqrt(err[i] ** 2 + err[j] ** 2 + err[m] ** 2))
                     if m in (i, j) or d > tol:
                         continue
                     idx = tuple(sorted((i, j, m)))
@@ -287,14 +298,15 @@ def _lattice_candidates(q, power, err, bin_q):
                     area = abs(np.linalg.det(basis))
                     key = ("hexagonal", idx)
                     if key not in cands or cands[key]["closure"] > d:
+                        # A set is as strong as its weakest member (a strong peak and two speckles are weak).
                         cands[key] = dict(kind="hexagonal", idx=idx, area=area, closure=d / bin_q,
-                                          power=float(np.mean(power[list(idx)])), basis=basis,
+                                          power=float(np.min(power[list(idx)])), basis=basis,
                                           distortion=float(np.std(qa[list(idx)]) / np.mean(qa[list(idx)])))
             elif abs(ang - 90) <= 5 and abs(r - 1) <= 0.05:
                 # A square pair need not show its (1, 1) order; it is only taken when no hexagonal set exists.
                 basis = np.array([q[i], q[j]])
                 cands[("square", (i, j))] = dict(kind="square", idx=(i, j), area=abs(np.linalg.det(basis)),
-                                                 closure=0.0, power=float(np.mean(power[[i, j]])), basis=basis,
+                                                 closure=0.0, power=float(np.min(power[[i, j]])), basis=basis,
                                                  distortion=abs(r - 1))
     return list(cands.values())
 
@@ -336,12 +348,6 @@ def _is_mixing_set(s, t, u, q, bin_q):
     (a nonlinearity mixes two lattices, e.g. G + Q of the atoms and a CDW: not a third lattice)."""
     if s["power"] >= min(t["power"], u["power"]):
         return False
-    for c in (t, u):
-        # A set on one lattice's own points is a harmonic question (see _is_harmonic_set), not mixing.
-        inv = np.linalg.inv(c["basis"])
-        f = q[list(s["idx"])] @ inv
-        if np.all(np.hypot(*((f - np.round(f)) @ c["basis"]).T) <= 2 * bin_q):
-            return False
     pts = []
     for c in (t, u):
         b = c["basis"]

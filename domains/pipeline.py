@@ -285,6 +285,10 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
     levelled = level(topography, order=config.level_order, lines=first_lines, warn=False)
     image = np.asarray(levelled.data, dtype=float)
     mask = levelled.mask
+    found_in_level = (levelled.metadata or {}).get("level")
+    if found_in_level and found_in_level.get("note"):
+        notes.append("Levelling: " + found_in_level["note"])
+        choices["level_findings"] = found_in_level
     step()
 
     # 2. Peaks and the atomic lattice (the finest complete set of peaks, not the strongest).
@@ -987,7 +991,16 @@ def _refine_lattice(image, pixel, mask, reading, peaks):
 
         g = np.asarray(refined.bragg_measured, float)
         a_nm, angle, shear, stretch = slow_axis_drift_fit(g, refined.kind)
-        if max(abs(shear), abs(stretch)) < 0.1:
+        # Only a significant distortion is undone: the lengths of the Bragg vectors must disagree beyond
+        # their errors (chi-square with 2 degrees of freedom above 13.8, p < 0.001), else the fit would
+        # turn measurement noise into a drift.
+        lengths = np.hypot(*g.T)
+        e_len = np.broadcast_to(np.asarray(err, float), lengths.shape) if np.size(err) in (1, len(g)) else \
+            np.full(lengths.shape, float(np.nanmax(err)))
+        w = 1 / np.maximum(e_len, 1e-12) ** 2
+        centre = np.sum(w * lengths) / np.sum(w)
+        chi2 = float(np.sum(w * (lengths - centre) ** 2))
+        if max(abs(shear), abs(stretch)) < 0.1 and chi2 > 13.8:
             rng = np.random.default_rng(0)
             e = np.broadcast_to(np.asarray(err, float).reshape(-1, 1) if np.size(err) == len(g) else np.nanmax(err),
                                 g.shape)
@@ -996,9 +1009,10 @@ def _refine_lattice(image, pixel, mask, reading, peaks):
             angle_err = float(np.std([(d[1] - angle + 30) % 60 - 30 for d in draws], ddof=1))
             refined = replace(refined, a_nm=a_nm, a_err_nm=max(a_err, 1e-12), angle_deg=angle,
                               angle_err_deg=max(angle_err, 1e-9))
-            reading = replace(reading, reasons=reading.reasons + (
-                f"a and the orientation undo a slow-axis drift distortion (shear {shear:+.4f}, stretch "
-                f"{stretch:+.4f}): a = {a_nm:.5g} nm",))
+            reading = replace(reading, slow_axis=(shear, stretch), reasons=reading.reasons + (
+                f"the Bragg vectors differ in length beyond their errors (chi2 = {chi2:.3g}): a and the "
+                f"orientation undo a slow-axis drift distortion (shear {shear:+.4f}, stretch {stretch:+.4f}): "
+                f"a = {a_nm:.5g} nm",))
     return replace(reading, lattice=refined)
 
 
@@ -1044,6 +1058,18 @@ def _spec_from_order(result, image, pixel, mask, config):
         "source": result.lattice.source}
     superlattice_summary = result.to_summary()
     superlattice_summary["kind"] = kind
+    to_material = result.lattice.to_material
+    if not np.allclose(to_material, np.eye(2)):
+        # Wavevectors in the frame of the undistorted material (the slow-axis drift undone); the
+        # image-frame values the lock-ins used are kept beside them.
+        if lattice_summary is not None:
+            lattice_summary["q_bragg_image_rad_per_nm"] = lattice_summary["q_bragg_rad_per_nm"]
+            lattice_summary["q_bragg_rad_per_nm"] = (bragg_q @ to_material).tolist()
+            lattice_summary["slow_axis_distortion"] = {"shear": result.lattice.slow_axis[0],
+                                                      "stretch": result.lattice.slow_axis[1]}
+        if order_q is not None:
+            superlattice_summary["q_image_rad_per_nm"] = superlattice_summary["q_rad_per_nm"]
+            superlattice_summary["q_rad_per_nm"] = (np.asarray(order_q) @ to_material).tolist()
     if kind in ("none", "moire"):
         superlattice_summary["order"] = None
     if kind == "none":
