@@ -75,7 +75,9 @@ def segment_states(state, confidence, ordered, *, pixel_size_nm, min_area_nm2, c
         Gaps in ``ordered`` narrower than about twice this are bridged before growing:
         at a pi phase slip the amplitude falls to zero (METHODS §5), and the wall
         between the two domains must still be drawn. A morphological closing with a
-        disc of this radius.
+        disc of this radius in pixels (of the smaller pixel side), computed by
+        :func:`disc_closing` (distance transforms: cost and memory independent of
+        the radius).
 
     Returns
     -------
@@ -107,13 +109,17 @@ def segment_states(state, confidence, ordered, *, pixel_size_nm, min_area_nm2, c
     for s in np.unique(state[core]):
         regions, count = ndimage.label(core & (state == s), structure=np.ones((3, 3)))
         sizes = np.bincount(regions.ravel(), minlength=count + 1)
-        for region in range(1, count + 1):
-            if sizes[region] < min_pixels:
-                islands += 1
-                continue
-            seeds[regions == region] = next_label
-            seed_state[next_label] = int(s)
-            next_label += 1
+        keep = np.nonzero(sizes[1:] >= min_pixels)[0] + 1
+        islands += count - keep.size
+        # One lookup relabels every kept region at once (a loop of full-frame masks costs N x regions).
+        lut = np.zeros(count + 1, dtype=np.int32)
+        lut[keep] = np.arange(next_label, next_label + keep.size, dtype=np.int32)
+        inside = regions > 0
+        seeds[inside] = lut[regions[inside]]
+        for label in range(next_label, next_label + keep.size):
+            seed_state[label] = int(s)
+        next_label += keep.size
+        del regions, inside
     if next_label == 1:
         empty = np.zeros(state.shape, dtype=np.int32)
         return Segmentation(empty, empty, np.zeros(state.shape, bool), {}, islands,
@@ -122,16 +128,85 @@ def segment_states(state, confidence, ordered, *, pixel_size_nm, min_area_nm2, c
     reach = ordered
     if bridge_nm > 0:
         radius = max(1, int(round(bridge_nm / min(dy, dx))))
-        disc = np.hypot(*np.mgrid[-radius: radius + 1, -radius: radius + 1]) <= radius
-        # Pad so that the closing does not erode at the frame edge.
-        padded = np.pad(ordered, radius, mode="edge")
-        reach = ordered | ndimage.binary_closing(padded, structure=disc)[radius:-radius, radius:-radius]
+        reach = ordered | disc_closing(ordered, radius)
     grown = watershed(-finite, markers=seeds, mask=reach).astype(np.int32)
     walls = thin_walls(grown)
     labels = np.where(walls, 0, grown).astype(np.int32)
     params = {"min_area_nm2": float(min_area_nm2), "confidence_threshold": float(confidence_threshold),
               "bridge_nm": float(bridge_nm)}
     return Segmentation(labels, grown, walls, seed_state, islands, params)
+
+
+
+def _disc_dilation(mask, radius_px):
+    """Dilation by the disc {|offset| <= radius_px} (pixel units); pixels outside the frame are False."""
+    if not mask.any():
+        return np.zeros(mask.shape, dtype=bool)
+    # distance from every pixel to the nearest True pixel of the frame
+    return ndimage.distance_transform_edt(~mask) <= radius_px
+
+
+def _disc_erosion(mask, radius_px):
+    """Erosion by the disc {|offset| <= radius_px}; pixels outside the frame count as False."""
+    if not mask.any():
+        return np.zeros(mask.shape, dtype=bool)
+    # A one-pixel False frame makes the outside count: every outside pixel within the
+    # radius has a frame pixel at least as close (clamp each coordinate to the frame).
+    padded = np.pad(mask, 1, mode="constant", constant_values=False)
+    return (ndimage.distance_transform_edt(padded) > radius_px)[1:-1, 1:-1]
+
+
+def disc_closing(mask, radius_px, *, edge="replicate"):
+    """Morphological closing by a disc, from two Euclidean distance transforms.
+
+    Dilation by the disc D_r = {(i, j) integer: i^2 + j^2 <= r^2} is the set of
+    pixels whose distance to the nearest True pixel is <= r; erosion keeps the
+    pixels whose distance to the nearest False pixel is > r; closing is the
+    dilation followed by the erosion. Each step costs one exact distance
+    transform, O(N) in time and memory whatever r, where a structuring element
+    of (2r + 1)^2 pixels costs O(N r^2). The result equals
+    ``scipy.ndimage.binary_closing`` with the same disc, computed on the mask
+    padded as below (exactly, pixel for pixel).
+
+    Parameters
+    ----------
+    mask : (row, col) bool
+        The region to close.
+    radius_px : float
+        Disc radius in pixels.
+    edge : {"replicate", "zero"}
+        Frame convention. ``"replicate"`` (the segmentation's): the mask is first
+        extended by ``ceil(radius_px)`` pixels repeating its edge values (as
+        ``numpy.pad(mode="edge")``), so a region touching the frame is not eroded
+        there, then closed with everything beyond that margin False, then cropped.
+        ``"zero"``: outside the frame is False for both steps (scipy's
+        ``binary_closing`` with ``border_value=0``), so regions are eroded where
+        they touch the frame.
+
+    Returns
+    -------
+    (row, col) bool
+
+    Examples
+    --------
+    >>> m = np.zeros((9, 9), bool); m[:, :4] = True; m[:, 5:] = True
+    >>> int(disc_closing(m, 1).sum())      # the one-pixel gap is bridged
+    81
+    >>> int(disc_closing(m, 1, edge="zero")[0].sum())   # the first row meets the frame: eroded
+    0
+    """
+    mask = np.asarray(mask, dtype=bool)
+    if mask.ndim != 2:
+        raise InputError(f"mask must be 2-D (row, col), got shape {mask.shape}")
+    if not radius_px >= 0:
+        raise InputError(f"radius_px must be >= 0, got {radius_px!r}")
+    if edge not in ("replicate", "zero"):
+        raise InputError(f"edge must be 'replicate' or 'zero', got {edge!r}")
+    if edge == "replicate":
+        pad = int(math.ceil(radius_px))
+        closed = _disc_erosion(_disc_dilation(np.pad(mask, pad, mode="edge"), radius_px), radius_px)
+        return closed[pad: pad + mask.shape[0], pad: pad + mask.shape[1]]
+    return _disc_erosion(_disc_dilation(mask, radius_px), radius_px)
 
 
 def thin_walls(grown):
@@ -361,6 +436,26 @@ def wall_profile_fit(fields, grown, a, b, *, sigma_nm, pixel_size_nm, segment=No
     }
 
 
+
+def _wrap(angle):
+    """Angle wrapped to [-pi, pi)."""
+    return np.remainder(angle + np.pi, 2 * np.pi) - np.pi
+
+
+def _disc_fraction(mask, radius_px):
+    """Fraction of True pixels within the disc {i^2 + j^2 <= r^2} around each pixel; outside the frame is False.
+
+    The disc sum is an FFT convolution (cost independent of r) of integers, rounded
+    back to integers, so it equals the direct sum exactly.
+    """
+    from scipy.signal import fftconvolve  # imported here: scipy.signal is slow to import
+
+    r = int(radius_px)
+    disc = (np.hypot(*np.mgrid[-r: r + 1, -r: r + 1]) <= r).astype(float)
+    counts = np.rint(fftconvolve(mask.astype(float), disc, mode="same"))
+    return counts / disc.sum()
+
+
 def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fraction=0.7):
     """Topological defects: plaquettes where a phase winds by +-2 pi, inside ordered regions.
 
@@ -405,14 +500,13 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
     dy, dx = pixel_size_pair(pixel_size_nm)
     fields = np.atleast_3d(np.asarray(fields))
     radius_px = max(1, int(round(2 * sigma_nm / min(dy, dx))))
-    disk = np.hypot(*np.mgrid[-radius_px: radius_px + 1, -radius_px: radius_px + 1]) <= radius_px
-    fraction = ndimage.convolve(np.asarray(ordered, float), disk / disk.sum(), mode="constant")
+    fraction = _disc_fraction(np.asarray(ordered, dtype=bool), radius_px)
     defects = []
     for j, f in enumerate(fields):
         phi = np.angle(f)
 
         def d(p1, p2):
-            return np.angle(np.exp(1j * (p2 - p1)))
+            return _wrap(p2 - p1)
 
         # (r, c) -> (r, c+1) -> (r+1, c+1) -> (r+1, c): +x, +y, -x, -y.
         total = d(phi[:-1, :-1], phi[:-1, 1:]) + d(phi[:-1, 1:], phi[1:, 1:]) + d(phi[1:, 1:], phi[1:, :-1]) \

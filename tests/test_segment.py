@@ -1,0 +1,105 @@
+"""Segmentation morphology and defect rules against independent truths (scipy, analytic shapes and fields)."""
+
+import math
+
+import numpy as np
+import pytest
+from numpy.testing import assert_array_equal
+from scipy import ndimage
+
+from domains._errors import InputError
+from domains.segment import _disc_fraction, disc_closing, segment_states
+
+
+def _disc(r):
+    return np.hypot(*np.mgrid[-r: r + 1, -r: r + 1]) <= r
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_disc_closing_equals_scipy_binary_closing(seed):
+    rng = np.random.default_rng(seed)
+    for _ in range(25):
+        shape = tuple(int(v) for v in rng.integers(6, 48, 2))
+        r = int(rng.integers(1, 9))
+        mask = rng.random(shape) < rng.uniform(0.2, 0.9)
+        # reference library: scipy.ndimage.binary_closing with the same disc, border_value=0
+        assert_array_equal(disc_closing(mask, r, edge="zero"), ndimage.binary_closing(mask, structure=_disc(r)))
+        # reference library: the old segmentation convention, scipy's closing of the edge-replicated mask
+        padded = ndimage.binary_closing(np.pad(mask, r, mode="edge"), structure=_disc(r))[r:-r, r:-r]
+        assert_array_equal(disc_closing(mask, r), padded)
+
+
+@pytest.mark.parametrize("gap", [1, 4, 5, 6, 9])
+def test_disc_closing_bridges_a_straight_gap_up_to_twice_the_radius(gap):
+    # derived: a straight gap of g pixels between two half-planes is filled by the dilation
+    # with a disc of radius r iff g <= 2r (each side grows by r); the erosion then takes back
+    # nothing. Wider gaps come back unchanged (dilation then erosion restore a straight edge).
+    r = 3
+    mask = np.ones((30, 40), bool)
+    mask[:, 15: 15 + gap] = False
+    closed = disc_closing(mask, r)
+    if gap <= 2 * r:
+        assert closed.all()  # derived: see above
+    else:
+        assert_array_equal(closed, mask)  # derived: see above
+
+
+def test_disc_closing_keeps_a_disc_hole_larger_than_the_element():
+    # derived: closing fills only holes the structuring disc cannot enter. In a round hole of
+    # radius 10, a pixel within 10 - r = 6 of the centre has no True pixel within r, so the
+    # dilation leaves it False and the erosion cannot make it True; a one-pixel hole is filled.
+    y, x = np.mgrid[:64, :64]
+    mask = np.hypot(y - 32, x - 32) > 10
+    mask[10, 10] = False
+    closed = disc_closing(mask, 4)
+    assert closed[10, 10]  # derived: see above
+    assert_array_equal(closed[np.hypot(y - 32, x - 32) <= 6], False)  # derived: see above
+
+
+def test_disc_closing_rejects_bad_input():
+    # common practice, no source: bad input raises InputError naming the argument
+    with pytest.raises(InputError, match="radius_px"):
+        disc_closing(np.ones((4, 4), bool), -1)
+    with pytest.raises(InputError, match="mask"):
+        disc_closing(np.ones(4, bool), 1)
+    with pytest.raises(InputError, match="edge"):
+        disc_closing(np.ones((4, 4), bool), 1, edge="mirror")
+
+
+def test_disc_fraction_equals_direct_convolution_and_the_lattice_count():
+    rng = np.random.default_rng(3)
+    mask = rng.random((50, 70)) < 0.6
+    for r in (1, 5, 12):
+        d = _disc(r)
+        # reference library: scipy.ndimage.convolve with zeros outside the frame
+        direct = ndimage.convolve(mask.astype(float), d / d.sum(), mode="constant")
+        assert np.max(np.abs(_disc_fraction(mask, r) - direct)) < 1e-12
+    # derived: at the corner of an all-True frame the disc keeps the lattice points with i, j >= 0,
+    # sum_{i=0..r} (floor(sqrt(r^2 - i^2)) + 1), out of sum_{i=-r..r} (2 floor(sqrt(r^2 - i^2)) + 1).
+    r = 7
+    quarter = sum(math.isqrt(r * r - i * i) + 1 for i in range(r + 1))
+    whole = sum(2 * math.isqrt(r * r - i * i) + 1 for i in range(-r, r + 1))
+    assert _disc_fraction(np.ones((30, 30), bool), r)[0, 0] == quarter / whole
+
+
+@pytest.mark.parametrize("gap", [3, 8])
+def test_segment_states_draws_a_wall_across_a_bridged_gap(gap):
+    # derived (METHODS §5): at a pi slip the amplitude vanishes, so the ordered mask has a gap;
+    # bridge_nm = r pixels closes gaps of up to 2r pixels and the wall is drawn in it, one
+    # pixel per row; a wider gap stays open and no wall is drawn (two separate regions).
+    px = 0.1
+    n_rows, n_cols = 40, 60
+    state = np.zeros((n_rows, n_cols), int)
+    state[:, 30:] = 1
+    ordered = np.ones((n_rows, n_cols), bool)
+    ordered[:, 30 - gap // 2: 30 - gap // 2 + gap] = False
+    seg = segment_states(state, np.ones((n_rows, n_cols)), ordered, pixel_size_nm=px, min_area_nm2=1.0,
+                         confidence_threshold=0.5, bridge_nm=3 * px)
+    assert seg.labels.max() == 2  # derived: two halves, two domains
+    rows, cols = np.nonzero(seg.walls)
+    if gap <= 6:
+        assert sorted(rows.tolist()) == list(range(n_rows))  # derived: see above
+        # derived: the seeds meet inside the bridged gap (or on its edge pixel)
+        assert np.all((cols >= 30 - gap // 2 - 1) & (cols <= 30 - gap // 2 + gap))
+    else:
+        assert rows.size == 0  # derived: see above
