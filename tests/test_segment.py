@@ -103,3 +103,38 @@ def test_segment_states_draws_a_wall_across_a_bridged_gap(gap):
         assert np.all((cols >= 30 - gap // 2 - 1) & (cols <= 30 - gap // 2 + gap))
     else:
         assert rows.size == 0  # derived: see above
+
+
+def test_nearest_level_equals_brute_force_argmin():
+    from domains.moire import _nearest_level
+
+    rng = np.random.default_rng(5)
+    levels = np.array([0.0, 0.2, -0.2, 0.4, 0.1, 0.35])
+    # values on a 0.05 grid hit exact midpoints between levels: ties go to the lower index
+    values = np.concatenate([np.round(rng.normal(0, 0.3, 4000) / 0.05) * 0.05, [np.inf]])
+    brute = np.argmin(np.abs(values[:, None] - levels), axis=1)
+    assert_array_equal(_nearest_level(values, levels), brute)  # reference: numpy argmin over all levels
+
+
+def test_twist_domains_on_an_analytic_disc_and_an_unresolved_strip():
+    from domains.moire import twist_domains
+
+    # derived: a disc of twist 1.3 deg (radius 20 px) in a 1.0 deg background, and a strip of
+    # 1.6 deg two pixels wide. Opening with a disc of radius resolution/2 = 4 px keeps the
+    # large disc and removes the strip (narrower than 2 x 4 px), which becomes unassigned.
+    n = 96
+    y, x = np.mgrid[:n, :n]
+    twist = np.where(np.hypot(y - 40, x - 50) <= 20, 1.3, 1.0)
+    twist[85:87, 10:80] = 1.6
+    dom = twist_domains(twist, pixel_size_nm=1.0, tolerance_deg=0.1, resolution_nm=8.0)
+    means = sorted(round(d["twist_deg_mean"], 6) for d in dom.table)
+    assert means == [1.0, 1.3]  # derived: two domains; the strip is gone
+    assert not dom.labels[85:87, 10:80].any()  # derived: the strip is narrower than the opening disc
+    disc_row = next(d for d in dom.table if abs(d["twist_deg_mean"] - 1.3) < 1e-9)
+    # derived: lattice points within radius 20 (Gauss circle count) = the digital disc's area;
+    # a disc opened by a smaller disc is itself (digital pixels at the rim may go: one rim ring)
+    lattice = sum(2 * math.isqrt(400 - i * i) + 1 for i in range(-20, 21))
+    assert lattice - 2 * math.pi * 20 <= disc_row["area_nm2"] <= lattice
+    # derived: the centroid of a disc is its centre
+    assert abs(disc_row["centroid_x_nm"] - 50) < 0.5 and abs(disc_row["centroid_y_nm"] - 40) < 0.5
+    assert disc_row["twist_deg_std"] < 1e-9  # derived: a uniform domain has no spread (float rounding)
