@@ -8,7 +8,7 @@ import numpy as np
 from skimage.measure import regionprops
 
 from ._scan import pixel_size_pair
-from .segment import skeleton_length_nm, wall_profile_fit, wall_segments
+from .segment import _profile_fit_near, _wall_segment_crops, skeleton_length_nm
 
 DOMAIN_COLUMNS = [
     "domain", "state", "area_nm2", "equivalent_diameter_nm", "centroid_x_nm", "centroid_y_nm",
@@ -108,12 +108,17 @@ def wall_table(grown, walls, *, pixel_size_nm, fields=None, sigma_nm=None):
     [2.0]
     """
     rows = []
-    for number, (a, b, pixels) in enumerate(wall_segments(grown, walls), start=1):
+    dy, dx = pixel_size_pair(pixel_size_nm)
+    grown = np.asarray(grown)
+    fields = None if fields is None else np.asarray(fields)
+    # Each segment is handled in a window around it: no full-frame mask or distance map per wall.
+    for number, (a, b, corner, pixels) in enumerate(_wall_segment_crops(grown, walls), start=1):
         row = {"wall": number, "domain_a": a, "domain_b": b,
                "length_nm": skeleton_length_nm(pixels, pixel_size_nm), "width_nm": math.nan,
                "width_nm_err": math.nan, "width_resolved": False, "phase_jump_deg": "", "n_pixels": int(pixels.sum())}
         if fields is not None and sigma_nm is not None:
-            fit = wall_profile_fit(fields, grown, a, b, sigma_nm=sigma_nm, pixel_size_nm=pixel_size_nm, segment=pixels)
+            fit = _profile_fit_near(fields, grown, a, b, pixels, corner, sigma_nm=sigma_nm, dy=dy, dx=dx,
+                                    reach_sigma=4.0)
             row.update(width_nm=fit["width_nm"], width_nm_err=fit["width_nm_err"], width_resolved=fit["resolved"],
                        phase_jump_deg=";".join(f"{j:.1f}" for j in fit["phase_jump_deg"]))
         rows.append(row)

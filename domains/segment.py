@@ -258,7 +258,25 @@ def wall_segments(grown, walls):
     >>> [(a, b, int(m.sum())) for a, b, m in wall_segments(g, thin_walls(g))]
     [(1, 2, 3)]
     """
-    # Each wall pixel's pair: its own label and the larger neighbouring label across the wall.
+    grown = np.asarray(grown)
+    segments = []
+    for a, b, (r0, c0), crop in _wall_segment_crops(grown, walls):
+        pixels = np.zeros(grown.shape, dtype=bool)
+        pixels[r0: r0 + crop.shape[0], c0: c0 + crop.shape[1]] = crop
+        segments.append((a, b, pixels))
+    return segments
+
+
+def _wall_segment_crops(grown, walls):
+    """The segments of :func:`wall_segments`, in the same order, each as its own bounding box.
+
+    Yields (a, b, (row0, col0), crop): ``crop`` is the segment's pixels in the box whose
+    top-left pixel is (row0, col0). Memory is O(N) for the frame plus the boxes, not a
+    full-frame mask per segment.
+    """
+    grown = np.asarray(grown)
+    walls = np.asarray(walls, dtype=bool)
+    # Each wall pixel's pair: its own label and the smallest larger neighbouring label across the wall.
     other = np.zeros(grown.shape, dtype=np.int64)
     for shift in ((0, 1), (1, 0), (0, -1), (-1, 0)):
         neighbour = np.roll(grown, shift, axis=(0, 1))
@@ -272,14 +290,26 @@ def wall_segments(grown, walls):
             neighbour[:, -1] = 0
         better = walls & (neighbour > grown) & ((other == 0) | (neighbour < other))
         other[better] = neighbour[better]
-    segments = []
-    pairs = sorted({(int(a), int(b)) for a, b in zip(grown[walls], other[walls]) if b > 0})
-    for a, b in pairs:
-        pixels = walls & (grown == a) & (other == b)
-        regions, count = ndimage.label(pixels, structure=np.ones((3, 3)))
-        for region in range(1, count + 1):
-            segments.append((a, b, regions == region))
-    return segments
+        del neighbour, better
+    index = np.flatnonzero(walls & (other > 0))
+    pair_a = grown.ravel()[index].astype(np.int64)
+    pair_b = other.ravel()[index]
+    del other
+    order = np.lexsort((index, pair_b, pair_a))
+    index, pair_a, pair_b = index[order], pair_a[order], pair_b[order]
+    starts = np.flatnonzero(np.r_[True, (np.diff(pair_a) != 0) | (np.diff(pair_b) != 0)])
+    stops = np.r_[starts[1:], index.size]
+    eight = np.ones((3, 3))
+    for start, stop in zip(starts, stops):
+        rows, cols = np.divmod(index[start:stop], grown.shape[1])
+        r0, c0 = int(rows.min()), int(cols.min())
+        box = np.zeros((int(rows.max()) - r0 + 1, int(cols.max()) - c0 + 1), dtype=bool)
+        box[rows - r0, cols - c0] = True
+        # Components are numbered in raster order, in the box as in the full frame.
+        regions, count = ndimage.label(box, structure=eight)
+        for region, where in enumerate(ndimage.find_objects(regions), start=1):
+            crop = regions[where] == region
+            yield int(pair_a[start]), int(pair_b[start]), (r0 + where[0].start, c0 + where[1].start), crop
 
 
 def skeleton_length_nm(pixels, pixel_size_nm):
@@ -371,6 +401,39 @@ def wall_profile_fit(fields, grown, a, b, *, sigma_nm, pixel_size_nm, segment=No
     """
     dy, dx = pixel_size_pair(pixel_size_nm)
     fields = np.asarray(fields)
+    grown = np.asarray(grown)
+    if segment is not None:
+        segment = np.asarray(segment, dtype=bool)
+        rows, cols = np.nonzero(segment)
+        if rows.size:
+            r0, c0 = int(rows.min()), int(cols.min())
+            crop = segment[r0: int(rows.max()) + 1, c0: int(cols.max()) + 1]
+            return _profile_fit_near(fields, grown, a, b, crop, (r0, c0), sigma_nm=sigma_nm, dy=dy, dx=dx,
+                                     reach_sigma=reach_sigma)
+    return _profile_fit(fields, grown, a, b, segment, sigma_nm=sigma_nm, dy=dy, dx=dx, reach_sigma=reach_sigma)
+
+
+def _profile_fit_near(fields, grown, a, b, crop, corner, *, sigma_nm, dy, dx, reach_sigma):
+    """:func:`wall_profile_fit` near one segment, computed in a window around it (same result).
+
+    The fit uses pixels within D = 1.5 reach_sigma sigma of the segment. Each segment
+    pixel lies in a and has a 4-neighbour in b (or the reverse), so the nearest pixel of
+    the other domain from any used pixel lies within 2 D + one pixel of the segment: a
+    window of the segment's box grown by that much gives the full-frame distances exactly.
+    """
+    margin = int(math.ceil((2 * 1.5 * reach_sigma * sigma_nm + max(dy, dx)) / min(dy, dx))) + 2
+    r0, c0 = corner
+    window = (slice(max(r0 - margin, 0), r0 + crop.shape[0] + margin),
+              slice(max(c0 - margin, 0), c0 + crop.shape[1] + margin))
+    sub_grown = grown[window]
+    segment = np.zeros(sub_grown.shape, dtype=bool)
+    wr, wc = r0 - window[0].start, c0 - window[1].start
+    segment[wr: wr + crop.shape[0], wc: wc + crop.shape[1]] = crop
+    return _profile_fit(fields[(slice(None),) + window], sub_grown, a, b, segment, sigma_nm=sigma_nm, dy=dy, dx=dx,
+                        reach_sigma=reach_sigma)
+
+
+def _profile_fit(fields, grown, a, b, segment, *, sigma_nm, dy, dx, reach_sigma):
     in_a, in_b = grown == a, grown == b
     dist_to_a = ndimage.distance_transform_edt(~in_a, sampling=(dy, dx))
     dist_to_b = ndimage.distance_transform_edt(~in_b, sampling=(dy, dx))
