@@ -138,3 +138,92 @@ def test_twist_domains_on_an_analytic_disc_and_an_unresolved_strip():
     # derived: the centroid of a disc is its centre
     assert abs(disc_row["centroid_x_nm"] - 50) < 0.5 and abs(disc_row["centroid_y_nm"] - 40) < 0.5
     assert disc_row["twist_deg_std"] < 1e-9  # derived: a uniform domain has no spread (float rounding)
+
+
+def _vortex(shape, row0, col0, sign=1):
+    # derived: exp(i * sign * atan2(y - y0, x - x0)) winds by sign counter-clockwise in (x, y)
+    y, x = np.mgrid[: shape[0], : shape[1]].astype(float)
+    return np.exp(1j * sign * np.arctan2(y - row0, x - col0))
+
+
+def test_defect_needs_every_loop_pixel_ordered():
+    from domains.segment import phase_defects
+
+    field = _vortex((61, 61), 30.5, 30.5)
+    ordered = np.ones((61, 61), bool)
+    found = phase_defects(field, pixel_size_nm=1.0, ordered=ordered, sigma_nm=5.0)
+    assert [(d["winding"], d["row"], d["col"]) for d in found] == [(1, 30.5, 30.5)]  # derived: one +1 winding
+    # derived: a disordered patch far from the loop (radius 2 sigma = 10) changes nothing ...
+    far = ordered.copy()
+    far[2:6, 2:6] = False
+    assert len(phase_defects(field, pixel_size_nm=1.0, ordered=far, sigma_nm=5.0)) == 1
+    # ... one crossing the loop rejects the winding (the rule: every loop pixel ordered)
+    cut = ordered.copy()
+    cut[28:33, 39:43] = False
+    assert phase_defects(field, pixel_size_nm=1.0, ordered=cut, sigma_nm=5.0) == []
+    # derived: a loop that leaves the frame cannot be tested: no defect
+    assert phase_defects(field[:, 22:], pixel_size_nm=1.0, ordered=ordered[:, 22:], sigma_nm=5.0) == []
+
+
+def test_defect_amplitude_threshold_and_sign():
+    from domains.segment import phase_defects
+
+    field = 0.3 * _vortex((61, 61), 30.5, 30.5, sign=-1)
+    ordered = np.ones((61, 61), bool)
+    # derived: |field| = 0.3 on the loop, so a threshold of 0.2 keeps it and 0.4 rejects it
+    assert [d["winding"] for d in phase_defects(field, pixel_size_nm=1.0, ordered=ordered, sigma_nm=5.0,
+                                                amplitude_threshold=0.2)] == [-1]
+    assert phase_defects(field, pixel_size_nm=1.0, ordered=ordered, sigma_nm=5.0, amplitude_threshold=0.4) == []
+
+
+def test_close_like_windings_are_one_unresolved_defect():
+    from domains.segment import phase_defects
+
+    shape = (81, 101)
+    ordered = np.ones(shape, bool)
+    # derived: two +1 cores 4 pixels apart sit inside one loop of radius 10: winding +2, at their midpoint
+    close = _vortex(shape, 40.5, 48.5) * _vortex(shape, 40.5, 52.5)
+    found = phase_defects(close, pixel_size_nm=1.0, ordered=ordered, sigma_nm=5.0)
+    assert [(d["winding"], d["row"], d["col"]) for d in found] == [(2, 40.5, 50.5)]
+    # derived: a +1 and a -1 core 30 pixels apart are two defects, each at its core
+    pair = _vortex(shape, 40.5, 35.5) * _vortex(shape, 40.5, 65.5, sign=-1)
+    found = phase_defects(pair, pixel_size_nm=1.0, ordered=ordered, sigma_nm=5.0)
+    assert sorted((d["winding"], d["col"]) for d in found) == [(-1, 65.5), (1, 35.5)]
+
+
+def _half_noise_scene(with_vortex, rng_seed=0):
+    # A wave of amplitude 1 in the left half, none in the right half, white noise of std 1
+    # everywhere; optionally a +1 phase winding in the left half.
+    n, px, sigma_nm = (160, 240), 1.0, 6.0
+    y, x = np.mgrid[: n[0], : n[1]].astype(float)
+    q = np.array([1.1, 0.4])
+    winding = np.arctan2(y - 80.3, x - 60.6) if with_vortex else 0.0
+    core = np.tanh(np.hypot(y - 80.3, x - 60.6) / 3.0) if with_vortex else 1.0
+    wave = np.where(x < 120, core * np.cos(q[0] * x + q[1] * y + winding), 0.0)
+    image = wave + np.random.default_rng(rng_seed).normal(0, 1.0, n)
+    import domains
+
+    a = domains.lockin(image, q, sigma_nm=sigma_nm, pixel_size_nm=px)
+    trusted = domains.trusted_mask(image.shape, sigma_nm=sigma_nm, pixel_size_nm=px)
+    # derived: white noise of std s_n through a unit-sum Gaussian lock-in gives a Rayleigh |A|
+    # of scale s = s_n / sqrt(8 pi sigma_px^2); |A| > s sqrt(2 ln 1e6) with probability 1e-6.
+    scale = 1.0 / math.sqrt(8 * math.pi * (sigma_nm / px) ** 2)
+    return a, trusted, scale * math.sqrt(2 * math.log(1e6)), sigma_nm, px
+
+
+@pytest.mark.parametrize("with_vortex", [False, True])
+def test_windings_of_noise_are_not_defects(with_vortex):
+    from domains.segment import phase_defects
+
+    a, trusted, threshold, sigma_nm, px = _half_noise_scene(with_vortex)
+    # The noise half does wind (this is what the threshold must reject): without it,
+    # loops of pure noise count (derived: lock-in noise phases wind at a density ~ 1 / sigma^2).
+    loose = phase_defects(a, pixel_size_nm=px, ordered=trusted, sigma_nm=sigma_nm)
+    assert len(loose) > 2  # derived: see above
+    found = phase_defects(a, pixel_size_nm=px, ordered=trusted, sigma_nm=sigma_nm, amplitude_threshold=threshold)
+    if not with_vortex:
+        assert found == []  # derived: no winding in the scene where the order is significant
+    else:
+        assert [d["winding"] for d in found] == [1]  # derived: the one built-in winding
+        # within the lock-in resolution sigma of the true core
+        assert math.hypot(found[0]["x_nm"] - 60.6, found[0]["y_nm"] - 80.3) < sigma_nm
