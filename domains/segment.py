@@ -385,8 +385,11 @@ def wall_profile_fit(fields, grown, a, b, *, sigma_nm, pixel_size_nm, segment=No
     Returns
     -------
     dict
-        ``width_nm`` (intrinsic w, 0 when unresolved), ``width_nm_err``,
-        ``resolved`` (W significantly above sigma), ``total_width_nm`` (W),
+        ``width_nm`` (intrinsic w = sqrt(W^2 - sigma^2), 0 when W <= sigma),
+        ``width_nm_err``, ``resolved`` (W - sigma > 2 dW, dW the standard error
+        of W), ``width_nm_upper_limit`` (sqrt((W + 2 dW)^2 - sigma^2), the
+        one-sided limit at the same level: what to report when not resolved),
+        ``total_width_nm`` (W),
         ``offset_nm`` (s0), ``phase_jump_deg`` (arg Q_j P_j* per component),
         ``n_pixels``.
 
@@ -448,7 +451,8 @@ def _profile_fit(fields, grown, a, b, segment, *, sigma_nm, dy, dx, reach_sigma)
     near_wall = near & (np.abs(s) <= reach_sigma * sigma_nm)
     core_a, core_b = far & in_a, far & in_b
     if core_a.sum() < 4 or core_b.sum() < 4 or near_wall.sum() < 8:
-        return {"width_nm": math.nan, "width_nm_err": math.nan, "resolved": False, "total_width_nm": math.nan,
+        return {"width_nm": math.nan, "width_nm_err": math.nan, "width_nm_upper_limit": math.nan, "resolved": False,
+                "total_width_nm": math.nan,
                 "offset_nm": math.nan, "phase_jump_deg": [], "n_pixels": int(near_wall.sum())}
     k = len(fields)
     p0 = np.array([f[core_a].mean() for f in fields])
@@ -489,10 +493,13 @@ def _profile_fit(fields, grown, a, b, segment, *, sigma_nm, dy, dx, reach_sigma)
     # d w / d W = W / w; when w -> 0 the error of w is bounded by sqrt(2 W dW).
     width_err = total * total_err / intrinsic if intrinsic > total_err else math.sqrt(2 * total * total_err)
     resolved = bool(total - sigma_nm > 2 * total_err)
+    # One-sided upper limit at the same 2-standard-error level as the resolution test.
+    upper = math.sqrt(max((total + 2 * total_err) ** 2 - sigma_nm**2, 0.0)) if math.isfinite(total_err) else math.nan
     jumps = np.degrees(np.angle(q * np.conj(p)))
     return {
         "width_nm": intrinsic,
         "width_nm_err": width_err,
+        "width_nm_upper_limit": upper,
         "resolved": resolved,
         "total_width_nm": total,
         "offset_nm": float(s0),
