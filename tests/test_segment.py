@@ -271,3 +271,18 @@ def test_unresolved_wall_has_an_upper_limit_and_no_width():
     assert summary["wall_width_nm_mean"] == wide["width_nm"]  # derived: see above
     assert summary["wall_width_nm_upper_limit"] == narrow["width_nm_upper_limit"]  # derived: see above
     assert (summary["wall_width_count_resolved"], summary["wall_width_count_unresolved"]) == (1, 1)  # derived
+
+
+def test_twist_domain_opening_equals_scipy_binary_opening():
+    from domains.moire import twist_domains
+
+    rng = np.random.default_rng(2)
+    for _ in range(20):
+        n = int(rng.integers(20, 60))
+        r = int(rng.integers(1, 5))
+        region = ndimage.gaussian_filter(rng.random((n, n)), 2) > 0.5
+        twist = np.where(region, 1.0, 2.0)
+        dom = twist_domains(twist, pixel_size_nm=1.0, tolerance_deg=0.1, resolution_nm=2 * r, min_area_nm2=1e-9)
+        ids = [row["id"] for row in dom.table if abs(row["twist_deg_mean"] - 1.0) < 1e-9]
+        # reference library: scipy.ndimage.binary_opening by the same disc, border_value=0
+        assert_array_equal(np.isin(dom.labels, ids), ndimage.binary_opening(region, structure=_disc(r)))
