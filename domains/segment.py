@@ -561,8 +561,12 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
         Lock-in fields (one defect list per component).
     pixel_size_nm : float or (float, float)
         Pixel size in nm.
-    ordered : (row, col) bool
-        Where order is present (e.g. amplitude above the noise floor).
+    ordered : (row, col) or (k, row, col) bool
+        Where order is present (e.g. amplitude above the noise floor), for all
+        components or one mask per component. A mask shared by several
+        components (order of any kind present) does not say that a given
+        component is significant: pass ``amplitude_threshold`` (or per-component
+        masks), or windings of an absent component's noise are counted.
     sigma_nm : float
         Lock-in width, nm.
     min_ordered_fraction : float, optional
@@ -606,18 +610,17 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
     if fields.ndim != 3:
         raise InputError(f"fields must be (k, row, col) or (row, col), got shape {fields.shape}")
     ordered = np.asarray(ordered, dtype=bool)
-    if ordered.shape != fields.shape[1:]:
-        raise InputError(f"ordered shape {ordered.shape} differs from the fields' {fields.shape[1:]}")
+    if ordered.shape == fields.shape[1:]:
+        ordered = np.broadcast_to(ordered, fields.shape)
+    elif ordered.shape != fields.shape:
+        raise InputError(f"ordered shape {ordered.shape} differs from the fields' {fields.shape[1:]} (or {fields.shape})")
     sigma_nm = positive(sigma_nm, "sigma_nm")
     radius_nm = 2 * sigma_nm if loop_radius_nm is None else positive(loop_radius_nm, "loop_radius_nm")
     radius_nm = max(radius_nm, 1.5 * max(dy, dx))
     thresholds = np.broadcast_to(np.asarray(-np.inf if amplitude_threshold is None else amplitude_threshold,
                                             dtype=float), (len(fields),))
     offsets = _loop_offsets(radius_nm / dy, radius_nm / dx)
-    fraction = None
-    if min_ordered_fraction is not None:
-        fraction = _disc_fraction(ordered, max(1, int(round(radius_nm / min(dy, dx)))))
-    n_rows, n_cols = ordered.shape
+    n_rows, n_cols = fields.shape[1:]
     defects = []
     for j, f in enumerate(fields):
         phi = np.angle(f)
@@ -629,7 +632,9 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
         rows, cols = np.nonzero(plaquette)
         wind = plaquette[rows, cols]
         del plaquette
-        good = np.isfinite(f) & ordered & (np.abs(f) >= thresholds[j])
+        good = np.isfinite(f) & ordered[j] & (np.abs(f) >= thresholds[j])
+        if min_ordered_fraction is not None:
+            fraction = _disc_fraction(ordered[j], max(1, int(round(radius_nm / min(dy, dx)))))
         accepted = []
         for start in range(0, rows.size, 20000):   # candidates in chunks: memory ~ chunk x loop length
             r, c, w = rows[start: start + 20000], cols[start: start + 20000], wind[start: start + 20000]
@@ -639,7 +644,7 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
             inside = np.all((lr >= 0) & (lr < n_rows) & (lc >= 0) & (lc < n_cols), axis=1)
             lr, lc, r, c, w = lr[inside], lc[inside], r[inside], c[inside], w[inside]
             ok = np.all(good[lr, lc], axis=1)
-            if fraction is not None:
+            if min_ordered_fraction is not None:
                 ok &= (fraction[r, c] >= min_ordered_fraction) & (fraction[r + 1, c + 1] >= min_ordered_fraction)
             lr, lc, r, c, w = lr[ok], lc[ok], r[ok], c[ok], w[ok]
             loop_phase = phi[lr, lc]

@@ -286,3 +286,39 @@ def test_twist_domain_opening_equals_scipy_binary_opening():
         ids = [row["id"] for row in dom.table if abs(row["twist_deg_mean"] - 1.0) < 1e-9]
         # reference library: scipy.ndimage.binary_opening by the same disc, border_value=0
         assert_array_equal(np.isin(dom.labels, ids), ndimage.binary_opening(region, structure=_disc(r)))
+
+
+def test_defects_per_component_significance():
+    from domains.segment import phase_defects
+
+    shape = (61, 61)
+    # derived: component 0 winds with amplitude 1, component 1 winds with amplitude 0.01 (an
+    # absent order's noise); a shared "ordered" mask cannot tell them apart ...
+    fields = np.stack([_vortex(shape, 30.5, 30.5), 0.01 * _vortex(shape, 30.5, 30.5, sign=-1)])
+    shared = np.ones(shape, bool)
+    assert sorted(d["component"] for d in phase_defects(fields, pixel_size_nm=1.0, ordered=shared,
+                                                        sigma_nm=5.0)) == [0, 1]
+    # ... a per-component mask or an amplitude threshold between 0.01 and 1 keeps component 0 only
+    per_component = np.stack([shared, np.zeros(shape, bool)])
+    assert [d["component"] for d in phase_defects(fields, pixel_size_nm=1.0, ordered=per_component,
+                                                  sigma_nm=5.0)] == [0]
+    assert [d["component"] for d in phase_defects(fields, pixel_size_nm=1.0, ordered=shared, sigma_nm=5.0,
+                                                  amplitude_threshold=0.1)] == [0]
+
+
+def test_defect_optional_ordered_fraction_rule():
+    from domains.segment import phase_defects
+
+    field = _vortex((61, 61), 30.5, 30.5)
+    ordered = np.ones((61, 61), bool)
+    y, x = np.mgrid[:61, :61]
+    ordered[np.hypot(y - 30.5, x - 30.5) < 4] = False  # an unordered core well inside the loop (radius 10)
+    # derived: the core removes the 52 pixels closer than 4 to the plaquette centre (counted on
+    # the lattice), all inside the disc of radius 10 (317 lattice points) around the plaquette's
+    # corner pixels: an ordered fraction of 1 - 52/317 = 0.836
+    assert ((~ordered).sum(), int((np.hypot(*np.mgrid[-10:11, -10:11]) <= 10).sum())) == (52, 317)  # derived
+    kept = phase_defects(field, pixel_size_nm=1.0, ordered=ordered, sigma_nm=5.0, min_ordered_fraction=0.8)
+    dropped = phase_defects(field, pixel_size_nm=1.0, ordered=ordered, sigma_nm=5.0, min_ordered_fraction=0.85)
+    assert (len(kept), len(dropped)) == (1, 0)  # derived: see above
+    # derived: without the extra rule only the loop matters, and the loop is ordered
+    assert len(phase_defects(field, pixel_size_nm=1.0, ordered=ordered, sigma_nm=5.0)) == 1
