@@ -636,8 +636,9 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
         if min_ordered_fraction is not None:
             fraction = _disc_fraction(ordered[j], max(1, int(round(radius_nm / min(dy, dx)))))
         accepted = []
-        for start in range(0, rows.size, 20000):   # candidates in chunks: memory ~ chunk x loop length
-            r, c, w = rows[start: start + 20000], cols[start: start + 20000], wind[start: start + 20000]
+        chunk = max(256, 2_000_000 // len(offsets))   # candidates per pass: ~16 MB per (chunk, loop) array
+        for start in range(0, rows.size, chunk):
+            r, c, w = rows[start: start + chunk], cols[start: start + chunk], wind[start: start + chunk]
             # The plaquette centre is (r + 0.5, c + 0.5); the loop is drawn around it.
             lr = r[:, None] + offsets[:, 0]
             lc = c[:, None] + offsets[:, 1]
