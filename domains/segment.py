@@ -679,32 +679,35 @@ def _merge_windings(accepted, component, radius_nm, dy, dx):
     """One defect per group of like-signed accepted plaquettes closer than the loop radius."""
     if not accepted:
         return []
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
     rows = np.array([a[0] for a in accepted], float) + 0.5
     cols = np.array([a[1] for a in accepted], float) + 0.5
     winding = np.array([a[2] for a in accepted])
     loop_min = np.array([a[3] for a in accepted], float)
     points = np.stack([rows * dy, cols * dx], axis=1)
-    # Single linkage: union of the pairs closer than the radius, of one sign.
-    parent = np.arange(len(accepted))
-
-    def root(i):
-        while parent[i] != i:
-            parent[i] = parent[parent[i]]
-            i = parent[i]
-        return i
-
-    for i, k in cKDTree(points).query_pairs(radius_nm):
-        if np.sign(winding[i]) == np.sign(winding[k]):
-            parent[root(i)] = root(k)
-    groups = {}
-    for i in range(len(accepted)):
-        groups.setdefault(root(i), []).append(i)
+    # Single linkage over the pairs closer than the radius and of one sign.
+    pairs = cKDTree(points).query_pairs(radius_nm, output_type="ndarray")
+    pairs = pairs[np.sign(winding[pairs[:, 0]]) == np.sign(winding[pairs[:, 1]])]
+    size = len(accepted)
+    graph = coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(size, size))
+    count, group = connected_components(graph, directed=False)
+    members = np.bincount(group, minlength=count)
+    mean_row = np.bincount(group, weights=rows, minlength=count) / members
+    mean_col = np.bincount(group, weights=cols, minlength=count) / members
+    low = np.full(count, np.inf)
+    np.minimum.at(low, group, loop_min)
+    # The member nearest its group's mean gives the group's loop winding.
+    distance = np.hypot(rows - mean_row[group], cols - mean_col[group])
+    by_group = np.lexsort((distance, group))
+    first = by_group[np.r_[True, np.diff(group[by_group]) != 0]]
+    central = np.empty(count, dtype=int)
+    central[group[first]] = first
     defects = []
-    for members in sorted(groups.values(), key=lambda m: (rows[m].mean(), cols[m].mean())):
-        members = np.array(members)
-        r, c = rows[members].mean(), cols[members].mean()
-        central = members[np.argmin(np.hypot(rows[members] - r, cols[members] - c))]
-        defects.append({"component": component, "winding": int(winding[central]),
-                        "x_nm": float(c * dx), "y_nm": float(r * dy), "row": float(r), "col": float(c),
-                        "loop_radius_nm": float(radius_nm), "loop_min_amplitude": float(loop_min[members].min())})
+    for g in np.lexsort((mean_col, mean_row)):
+        r, c = float(mean_row[g]), float(mean_col[g])
+        defects.append({"component": component, "winding": int(winding[central[g]]),
+                        "x_nm": c * dx, "y_nm": r * dy, "row": r, "col": c,
+                        "loop_radius_nm": float(radius_nm), "loop_min_amplitude": float(low[g])})
     return defects
