@@ -223,8 +223,12 @@ def domain_summary(domain_rows, wall_rows, *, defects=()):
     median, median_err = bootstrap(areas, np.median)
     interior_mean, interior_err = bootstrap(interior)
     resolved = [r for r in wall_rows if r.get("width_resolved", True)]
-    widths = [r["width_nm"] for r in resolved if np.isfinite(r.get("width_nm", math.nan))]
+    resolved = [r for r in resolved if np.isfinite(r.get("width_nm", math.nan))]
+    widths = [r["width_nm"] for r in resolved]
     width, width_err = bootstrap(widths)
+    if len(resolved) == 1:
+        # One wall: no spread to bootstrap; its own fit error is the uncertainty.
+        width_err = float(resolved[0].get("width_nm_err", math.nan))
     limits = [r["width_nm_upper_limit"] for r in wall_rows if not r.get("width_resolved", True)
               and np.isfinite(r.get("width_nm_upper_limit", math.nan))]
     return {

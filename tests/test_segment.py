@@ -269,6 +269,7 @@ def test_unresolved_wall_has_an_upper_limit_and_no_width():
     summary = domain_summary([], rows)
     # derived: the headline width is the resolved wall's alone, the narrow one appears as its limit
     assert summary["wall_width_nm_mean"] == wide["width_nm"]  # derived: see above
+    assert summary["wall_width_nm_mean_err"] == wide["width_nm_err"]  # derived: one wall, its own fit error
     assert summary["wall_width_nm_upper_limit"] == narrow["width_nm_upper_limit"]  # derived: see above
     assert (summary["wall_width_count_resolved"], summary["wall_width_count_unresolved"]) == (1, 1)  # derived
 
