@@ -8,15 +8,15 @@ import numpy as np
 from skimage.measure import regionprops
 
 from ._scan import pixel_size_pair
-from .segment import skeleton_length_nm, wall_profile_fit, wall_segments
+from .segment import _profile_fit_near, _wall_segment_crops, skeleton_length_nm
 
 DOMAIN_COLUMNS = [
     "domain", "state", "area_nm2", "equivalent_diameter_nm", "centroid_x_nm", "centroid_y_nm",
     "mean_amplitude", "mean_phase_deg", "touches_edge", "n_pixels",
 ]
 WALL_COLUMNS = [
-    "wall", "domain_a", "domain_b", "length_nm", "width_nm", "width_nm_err", "width_resolved",
-    "phase_jump_deg", "n_pixels",
+    "wall", "domain_a", "domain_b", "length_nm", "width_nm", "width_nm_err", "width_nm_upper_limit",
+    "width_resolved", "phase_jump_deg", "n_pixels",
 ]
 
 #: Bootstrap resamples for the uncertainty of summary statistics.
@@ -98,7 +98,11 @@ def wall_table(grown, walls, *, pixel_size_nm, fields=None, sigma_nm=None):
     Returns
     -------
     list of dict
-        Keys :data:`WALL_COLUMNS`.
+        Keys :data:`WALL_COLUMNS`. A wall whose width the lock-in resolves
+        (``width_resolved``) has ``width_nm`` +- ``width_nm_err`` and no upper
+        limit (NaN); an unresolved wall has ``width_nm`` and ``width_nm_err`` NaN
+        and ``width_nm_upper_limit``, a one-sided limit at two standard errors
+        (:func:`domains.segment.wall_profile_fit`).
 
     Examples
     --------
@@ -108,14 +112,24 @@ def wall_table(grown, walls, *, pixel_size_nm, fields=None, sigma_nm=None):
     [2.0]
     """
     rows = []
-    for number, (a, b, pixels) in enumerate(wall_segments(grown, walls), start=1):
+    dy, dx = pixel_size_pair(pixel_size_nm)
+    grown = np.asarray(grown)
+    fields = None if fields is None else np.asarray(fields)
+    # Each segment is handled in a window around it: no full-frame mask or distance map per wall.
+    for number, (a, b, corner, pixels) in enumerate(_wall_segment_crops(grown, walls), start=1):
         row = {"wall": number, "domain_a": a, "domain_b": b,
                "length_nm": skeleton_length_nm(pixels, pixel_size_nm), "width_nm": math.nan,
-               "width_nm_err": math.nan, "width_resolved": False, "phase_jump_deg": "", "n_pixels": int(pixels.sum())}
+               "width_nm_err": math.nan, "width_nm_upper_limit": math.nan, "width_resolved": False,
+               "phase_jump_deg": "", "n_pixels": int(pixels.sum())}
         if fields is not None and sigma_nm is not None:
-            fit = wall_profile_fit(fields, grown, a, b, sigma_nm=sigma_nm, pixel_size_nm=pixel_size_nm, segment=pixels)
-            row.update(width_nm=fit["width_nm"], width_nm_err=fit["width_nm_err"], width_resolved=fit["resolved"],
-                       phase_jump_deg=";".join(f"{j:.1f}" for j in fit["phase_jump_deg"]))
+            fit = _profile_fit_near(fields, grown, a, b, pixels, corner, sigma_nm=sigma_nm, dy=dy, dx=dx,
+                                    reach_sigma=4.0)
+            row.update(width_resolved=fit["resolved"], phase_jump_deg=";".join(f"{j:.1f}" for j in fit["phase_jump_deg"]))
+            if fit["resolved"]:
+                row.update(width_nm=fit["width_nm"], width_nm_err=fit["width_nm_err"])
+            else:
+                # Narrower than the lock-in resolves: a limit, not a value with an error bar.
+                row.update(width_nm_upper_limit=fit["width_nm_upper_limit"])
         rows.append(row)
     return rows
 
@@ -165,10 +179,18 @@ def bootstrap(values, statistic=np.mean, *, resamples=BOOTSTRAP_RESAMPLES, rng=0
 
 
 def domain_summary(domain_rows, wall_rows, *, defects=()):
-    """The ``domains`` block of summary.json: count, area mean and median with bootstrap errors, wall length.
+    """The ``domains`` block of summary.json: count, area mean and median with bootstrap errors, wall length and width.
 
     Domains cut by the frame edge are counted and included (their areas are lower
     bounds); the interior-only mean is given beside it.
+
+    Wall widths: only walls whose width the lock-in resolves (``width_resolved``;
+    rows without that flag count as resolved) enter ``wall_width_nm_mean`` +-
+    ``wall_width_nm_mean_err`` (NaN when none is resolved). Unresolved walls
+    carry only an upper limit; they are summarised by
+    ``wall_width_nm_upper_limit``, the largest of their per-wall limits (each
+    unresolved wall is narrower than it), and ``wall_width_nm_upper_limit_median``,
+    never averaged into the width.
 
     Parameters
     ----------
@@ -186,17 +208,29 @@ def domain_summary(domain_rows, wall_rows, *, defects=()):
     Examples
     --------
     >>> rows = [{"area_nm2": 10.0, "touches_edge": False}, {"area_nm2": 30.0, "touches_edge": True}]
-    >>> s = domain_summary(rows, [{"length_nm": 5.0, "width_nm": float("nan")}])
-    >>> s["count"], s["area_nm2_mean"], s["wall_length_nm"]
-    (2, 20.0, 5.0)
+    >>> nan = float("nan")
+    >>> walls = [{"length_nm": 5.0, "width_nm": nan, "width_nm_upper_limit": 0.4, "width_resolved": False},
+    ...          {"length_nm": 3.0, "width_nm": nan, "width_nm_upper_limit": 0.3, "width_resolved": False}]
+    >>> s = domain_summary(rows, walls)
+    >>> s["count"], s["area_nm2_mean"], s["wall_length_nm"], s["wall_width_nm_upper_limit"]
+    (2, 20.0, 8.0, 0.4)
+    >>> math.isnan(s["wall_width_nm_mean"])
+    True
     """
     areas = [r["area_nm2"] for r in domain_rows]
     interior = [r["area_nm2"] for r in domain_rows if not r["touches_edge"]]
     mean, mean_err = bootstrap(areas)
     median, median_err = bootstrap(areas, np.median)
     interior_mean, interior_err = bootstrap(interior)
-    widths = [r["width_nm"] for r in wall_rows if np.isfinite(r.get("width_nm", math.nan))]
+    resolved = [r for r in wall_rows if r.get("width_resolved", True)]
+    resolved = [r for r in resolved if np.isfinite(r.get("width_nm", math.nan))]
+    widths = [r["width_nm"] for r in resolved]
     width, width_err = bootstrap(widths)
+    if len(resolved) == 1:
+        # One wall: no spread to bootstrap; its own fit error is the uncertainty.
+        width_err = float(resolved[0].get("width_nm_err", math.nan))
+    limits = [r["width_nm_upper_limit"] for r in wall_rows if not r.get("width_resolved", True)
+              and np.isfinite(r.get("width_nm_upper_limit", math.nan))]
     return {
         "count": len(domain_rows),
         "count_touching_edge": sum(bool(r["touches_edge"]) for r in domain_rows),
@@ -210,6 +244,11 @@ def domain_summary(domain_rows, wall_rows, *, defects=()):
         "wall_length_nm": float(sum(r["length_nm"] for r in wall_rows)),
         "wall_width_nm_mean": width,
         "wall_width_nm_mean_err": width_err,
+        "wall_width_count_resolved": len(widths),
+        "wall_width_count_unresolved": len(limits),
+        "wall_width_nm_upper_limit": float(max(limits)) if limits else math.nan,
+        "wall_width_nm_upper_limit_median": float(np.median(limits)) if limits else math.nan,
         "defect_count": len(defects),
-        "uncertainty": f"bootstrap standard error over domains ({BOOTSTRAP_RESAMPLES} resamples, fixed seed)",
+        "uncertainty": f"bootstrap standard error over domains ({BOOTSTRAP_RESAMPLES} resamples, fixed seed); "
+                       "unresolved wall widths as upper limits (two standard errors), not averaged",
     }

@@ -1082,6 +1082,20 @@ class TwistDomains:
     min_area_nm2: float
 
 
+def _nearest_level(values, levels):
+    """Index of the level nearest to each value (ties: the lower index, as ``argmin``), O(N log L) in memory N."""
+    order = np.argsort(levels, kind="stable")
+    ordered_levels = levels[order]
+    hi = np.clip(np.searchsorted(ordered_levels, values), 0, levels.size - 1)
+    lo = np.clip(hi - 1, 0, levels.size - 1)
+    d_lo = np.abs(values - ordered_levels[lo])
+    d_hi = np.abs(values - ordered_levels[hi])
+    take_hi = (d_hi < d_lo) | ((d_hi == d_lo) & (order[hi] < order[lo]))
+    nearest = np.where(take_hi, order[hi], order[lo])
+    # Values with no finite distance (inf) go to level 0, as argmin over all-inf does.
+    return np.where(np.isfinite(values), nearest, 0)
+
+
 def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err_deg=None, min_area_nm2=None,
                   resolution_nm=None, trusted=None):
     """Connected regions of one twist range.
@@ -1094,6 +1108,12 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
     as the transition across a sharp twist boundary, are not domains), split
     into connected components, and
     components smaller than ``min_area_nm2`` are dropped (label 0).
+    The opening is two thresholds of exact Euclidean distance transforms, so
+    its cost does not grow with the radius; it equals ``scipy.ndimage.binary_opening``
+    by the disc {i^2 + j^2 <= r^2} with ``border_value=0`` (outside the frame
+    counts as outside the region, so straight frame edges survive and only
+    corners thinner than the disc are lost there). Memory is linear in the
+    number of pixels, whatever the number of levels and domains.
 
     Parameters
     ----------
@@ -1182,7 +1202,7 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
         remaining = remaining[np.abs(remaining - level) > tolerance_deg / 2]
     levels = np.array(levels)
 
-    nearest = np.argmin(np.abs(np.where(use, twist, np.inf)[..., None] - levels), axis=-1)
+    nearest = _nearest_level(np.where(use, twist, np.inf), levels)
     assigned = use & (np.abs(np.where(use, twist, np.inf) - levels[nearest]) <= tolerance_deg / 2)
     labels = np.zeros(twist.shape, dtype=np.int32)
     radius_px = 0.0 if resolution_nm is None else 0.5 * float(resolution_nm) / max(pixel_size)
@@ -1206,10 +1226,14 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
         if n == 0:
             continue
         sizes = np.bincount(comp.ravel())[1:]
+        big = np.nonzero(sizes >= min_px)[0] + 1
+        # One lookup relabels the kept components (no full-box mask per component).
+        lut = np.zeros(n + 1, dtype=np.int32)
+        lut[big] = np.arange(next_id, next_id + big.size, dtype=np.int32)
+        new = lut[comp]
         sub = labels[box]
-        for c in np.nonzero(sizes >= min_px)[0]:
-            sub[comp == c + 1] = next_id
-            next_id += 1
+        sub[new > 0] = new[new > 0]
+        next_id += big.size
 
     # Boundaries: unassigned trusted pixels, and labelled pixels touching another label.
     grown_max = ndimage.maximum_filter(labels, size=3, mode="nearest")
@@ -1218,18 +1242,26 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
     touching = (labels > 0) & ((grown_max != labels) | (grown_min != labels))
     boundaries = (use & (labels == 0)) | touching
 
+    # Per-domain sums in one pass over the frame (a mask per domain would cost N x domains).
     table = []
-    ys, xs = np.mgrid[: twist.shape[0], : twist.shape[1]]
+    flat = labels.ravel()
+    inside = flat > 0
+    lab_in = flat[inside]
+    count = np.bincount(lab_in, minlength=next_id).astype(float)
+    vals = twist.ravel()[inside]
+    mean = np.bincount(lab_in, weights=vals, minlength=next_id) / np.maximum(count, 1)
+    var = np.bincount(lab_in, weights=(vals - mean[lab_in]) ** 2, minlength=next_id) / np.maximum(count, 1)
+    rows, cols = np.divmod(np.nonzero(inside)[0], labels.shape[1])
+    row_mean = np.bincount(lab_in, weights=rows, minlength=next_id) / np.maximum(count, 1)
+    col_mean = np.bincount(lab_in, weights=cols, minlength=next_id) / np.maximum(count, 1)
     for lab in range(1, next_id):
-        sel = labels == lab
-        vals = twist[sel]
         table.append({
             "id": lab,
-            "twist_deg_mean": float(np.mean(vals)),
-            "twist_deg_std": float(np.std(vals)),
-            "area_nm2": float(sel.sum() * area_px),
-            "centroid_x_nm": float(xs[sel].mean() * pixel_size[1]),
-            "centroid_y_nm": float(ys[sel].mean() * pixel_size[0]),
+            "twist_deg_mean": float(mean[lab]),
+            "twist_deg_std": float(math.sqrt(var[lab])),
+            "area_nm2": float(count[lab] * area_px),
+            "centroid_x_nm": float(col_mean[lab] * pixel_size[1]),
+            "centroid_y_nm": float(row_mean[lab] * pixel_size[0]),
         })
     return TwistDomains(labels=labels, boundaries=boundaries, table=table, tolerance_deg=float(tolerance_deg),
                         tolerance_source=source, min_area_nm2=float(min_area_nm2))
