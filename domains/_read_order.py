@@ -733,8 +733,18 @@ def _group_families(q, bin_q):
     return groups
 
 
-def _is_moire_combination(q, bragg, second_bragg, inv, tol):
-    """Whether q = n1 k1 + n2 k2 + G (|n| <= 3, G a bottom lattice vector) with k_j = G_j - G'_j the moiré."""
+def _aliases(q, pixel):
+    """q and its images shifted by the sampling lattice (2 pi / dx, 2 pi / dy): a peak beyond Nyquist folds back."""
+    dy, dx = pixel
+    sx, sy = 2 * math.pi / dx, 2 * math.pi / dy
+    return [q + (i * sx, j * sy) for i in (-1, 0, 1) for j in (-1, 0, 1)]
+
+
+def _is_moire_combination(q, bragg, second_bragg, inv, tol, pixel=None):
+    """Whether q = n1 k1 + n2 k2 + G (|n| <= 3, G a bottom lattice vector) with k_j = G_j - G'_j the moiré
+    (or the alias of such a point beyond the Nyquist limit)."""
+    if pixel is not None:
+        return any(_is_moire_combination(v, bragg, second_bragg, inv, tol) for v in _aliases(q, pixel))
     k = []
     for g in bragg[:2]:
         d = [g - s * t for t in second_bragg for s in (1, -1)]
@@ -866,10 +876,13 @@ def read_order(image, *, pixel_size_nm, lattice_reading, mask=None, peaks=None, 
                                             np.min(np.hypot(*(second_bragg + p.q).T))) <= 2 * bin_q:
             roled.append(replace(p, role="second_lattice", hk=tuple(map(float, f))))
             continue
-        if np.hypot(*((f - np.round(f)) @ basis)) <= max(2 * bin_q, 4 * p.q_err):
+        if any(np.hypot(*((fa - np.round(fa)) @ basis)) <= max(2 * bin_q, 4 * p.q_err)
+               for fa in (v @ inv for v in _aliases(p.q, pixel))):
+            # A lattice harmonic, or its alias folded back from beyond the Nyquist limit.
             roled.append(replace(p, role="harmonic", hk=tuple(map(float, f))))
             continue
-        if second_bragg is not None and _is_moire_combination(p.q, bragg, second_bragg, inv, max(2 * bin_q, 4 * p.q_err)):
+        if second_bragg is not None and _is_moire_combination(p.q, bragg, second_bragg, inv, max(2 * bin_q, 4 * p.q_err),
+                                                              pixel):
             roled.append(replace(p, role="moire", hk=tuple(map(float, f))))
             continue
         near_g = any(abs(p.q_abs_rad_per_nm / np.hypot(*g) - 1) < 0.1 and _angle_between_deg(p.q, g) < 10 for g in bragg)
@@ -1034,7 +1047,7 @@ def read_order(image, *, pixel_size_nm, lattice_reading, mask=None, peaks=None, 
                                "orientational domains")
     moire_q, from_bragg = None, None
     if second is not None:
-        from_bragg, moire_q = _moire_from_layers(lat, second, moire_cands, bin_q)
+        from_bragg, moire_q = _moire_from_layers(lat, second, moire_cands, bin_q, lattice_reading.to_material)
         reasons.append("two atomic lattices: a moiré " + (f"with twist {from_bragg['twist_deg']:.4g} deg "
                                                          f"from the Bragg peaks" if from_bragg else ""))
     elif len(moire_cands) >= 2 and not families:
@@ -1103,12 +1116,16 @@ def _moire_triplet(q, bin_q):
     return None
 
 
-def _moire_from_layers(lat, second, moire_cands, bin_q):
-    """Moiré wavevectors k_j = G_top,j - G_bottom,j and the twist/heterostrain they imply (docs/methods.md §9)."""
+def _moire_from_layers(lat, second, moire_cands, bin_q, to_material=None):
+    """Moiré wavevectors k_j = G_top,j - G_bottom,j and the twist/heterostrain they imply (docs/methods.md §9).
+
+    Twist and heterostrain are computed in the material's frame (the slow-axis drift undone)."""
     from .moire import twist_strain_from_wavevectors
 
-    g_bot = np.asarray(lat.bragg, float)
-    g_top = np.asarray(second.bragg, float)
+    g_bot_img = np.asarray(lat.bragg_measured if lat.bragg_measured is not None else lat.bragg, float)
+    g_top_img = np.asarray(second.bragg_measured if second.bragg_measured is not None else second.bragg, float)
+    dmat = np.eye(2) if to_material is None else to_material
+    g_bot, g_top = g_bot_img @ dmat, g_top_img @ dmat
     # Match each bottom vector to the nearest top vector (with sign).
     matched = []
     for g in g_bot:
@@ -1126,6 +1143,9 @@ def _moire_from_layers(lat, second, moire_cands, bin_q):
         info = {"note": f"twist from the Bragg peaks failed: {err}"}
     info["mismatch"] = float(np.mean(np.hypot(*g_bot.T)) / np.mean(np.hypot(*g_top.T)) - 1)
     info["k_rad_per_nm"] = k.tolist()
+    info["period_nm"] = float(np.mean(4 * math.pi / (math.sqrt(3) * np.hypot(*k.T))))
+    # Back to the image frame for the lock-ins.
+    k = k @ np.linalg.inv(dmat)
     # Prefer the measured moiré peaks where they match k (sharper than a Bragg difference).
     moire_q = k.copy()
     for j, kj in enumerate(k):

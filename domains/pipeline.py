@@ -506,8 +506,10 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         # A winding counts only where its own component carries order (stripes: not where it is absent).
         defects = []
         for j in range(len(a_order)):
+            # |fields_used| is |A| = amplitude / 2: the same threshold on that scale.
             found_j = segment.phase_defects(fields_used[j:j + 1], pixel_size_nm=pixel,
-                                            ordered=(amp[j] > floor.threshold) & trusted, sigma_nm=sigma_nm)
+                                            ordered=(amp[j] > floor.threshold) & trusted, sigma_nm=sigma_nm,
+                                            amplitude_threshold=floor.threshold / 2)
             defects += [{**d, "component": j} for d in found_j]
         domain_rows = measure.domain_table(labels, pixel_size_nm=pixel, state_names=state_names, amplitude=amp,
                                            fields=fields_used)
@@ -658,8 +660,12 @@ def _headline(summary):
     if domains:
         rows["domains"] = (f"{domains['count']} ({domains['count_touching_edge']} cut by the frame), mean area "
                            f"{_pm(domains['area_nm2_mean'], domains['area_nm2_mean_err'], 'nm²')}")
-        rows["walls"] = (f"{domains['wall_count']} segments, {domains['wall_length_nm']:.4g} nm in all, width "
-                         f"{_pm(domains['wall_width_nm_mean'], domains['wall_width_nm_mean_err'], 'nm', 2)}")
+        width = _pm(domains['wall_width_nm_mean'], domains['wall_width_nm_mean_err'], 'nm', 2)
+        limit = domains.get("wall_width_nm_upper_limit")
+        if limit is not None and np.isfinite(limit) and domains.get("wall_width_count_unresolved"):
+            width = (f"{width} ({domains['wall_width_count_resolved']} resolved); " if domains.get("wall_width_count_resolved")
+                     else "") + f"below {limit:.2g} nm ({domains['wall_width_count_unresolved']} narrower than the lock-in resolves)"
+        rows["walls"] = f"{domains['wall_count']} segments, {domains['wall_length_nm']:.4g} nm in all, width {width}"
     defects = summary.get("defects")
     if defects:
         rows["defects"] = f"{defects['count']} ({defects['positive']} with winding +1, {defects['negative']} with -1)"
@@ -984,6 +990,14 @@ def _refine_lattice(image, pixel, mask, reading, peaks):
     if not np.all(np.isfinite(local)):
         return reading
     refined = fourier._fit_lattice(lat.kind, np.array([fourier._canonical(v) for v in local]), err)
+    if reading.second is not None:
+        # The other layer of a bilayer, measured the same way (its peaks sit a moiré wavevector away).
+        sec = reading.second
+        q2 = np.asarray(sec.bragg_measured if sec.bragg_measured is not None else sec.bragg, float)
+        local2, err2, *_ = _wavevector_stats(fill, q2, sigma_nm=sigma, pixel=pixel, mask=mask, threshold=0.0)
+        if np.all(np.isfinite(local2)):
+            reading = replace(reading, second=fourier._fit_lattice(
+                sec.kind, np.array([fourier._canonical(v) for v in local2]), err2))
     if refined.kind in ("hexagonal", "square"):
         # Drift and creep stretch and shear the frame along the slow scan axis; the lattice constant and
         # orientation are those of the regular lattice behind that distortion (slow_axis_drift_fit).
@@ -1152,6 +1166,10 @@ def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, im
                                 twist_err_deg=maps.twist_deg_err, resolution_nm=maps.sigma_nm, trusted=maps.trusted)
     summary["moire"] = {**maps.summary, "twist_domains": len(twist.table), "twist_tolerance_deg": twist.tolerance_deg,
                         "twist_tolerance_from": twist.tolerance_source}
+    reading = spec.get("reading")
+    if reading is not None and reading.moire_from_bragg:
+        # With both layers' atoms resolved: the same twist and heterostrain from the two Bragg lattices.
+        summary["moire"]["from_bragg_peaks"] = reading.moire_from_bragg
     choices["moire"] = {"mode": maps.mode, "sigma_nm": maps.sigma_nm, "twist_tolerance_deg": twist.tolerance_deg,
                         "twist_tolerance_from": twist.tolerance_source}
     labels = twist.labels.astype(np.int32)

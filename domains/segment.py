@@ -294,6 +294,8 @@ def _wall_segment_crops(grown, walls):
         other[better] = neighbour[better]
         del neighbour, better
     index = np.flatnonzero(walls & (other > 0))
+    if index.size == 0:
+        return
     pair_a = grown.ravel()[index].astype(np.int64)
     pair_b = other.ravel()[index]
     del other
