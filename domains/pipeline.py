@@ -320,9 +320,7 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
     corrected = image
     if config.drift and reading.lattice is not None and reading.resolved:
         lattice_q = np.asarray(reading.lattice.bragg, float)
-        others = [p.q for p in peaks]
-        first_sigma, _ = _choose_sigma(config, np.array(others).reshape(-1, 2), lattice_q, None, image.shape, pixel)
-        drift_sigma = config.drift_sigma_nm or 2 * first_sigma
+        drift_sigma = config.drift_sigma_nm or _drift_sigma(peaks, lattice_q, config.leakage, pixel)
         drift_sigma = min(drift_sigma, 0.2 * min(image.shape[0] * pixel[0], image.shape[1] * pixel[1]))
         # Residual Bragg phase below 0.03 rad: the tolerance of Lawler-Fujita's own test (docs/methods.md §2).
         drift_result = drift_mod.correct_drift(image, lattice_q, sigma_nm=drift_sigma, pixel_size_nm=pixel, mask=mask,
@@ -565,6 +563,31 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     summary["choices"] = choices
     summary["notes"] = notes
     return Analysis(config, summary, out_maps, tables, figures, sections, notes, choices)
+
+
+def _drift_sigma(peaks, bragg, leakage, pixel):
+    """Lock-in width for the drift field: as small as the leakage of the peaks that matter allows.
+
+    Only peaks near a Bragg peak and not much weaker than it (power above 5 % of the weakest Bragg
+    peak's) can bias its phase; weak speckle far from it does not. A small width follows piezo creep,
+    which changes over a few nm at the top of a frame.
+    """
+    qs = np.array([p.q for p in peaks]).reshape(-1, 2)
+    power = np.array([p.power for p in peaks])
+    near = [int(np.argmin(np.minimum(np.hypot(*(qs - g).T), np.hypot(*(qs + g).T)))) for g in bragg]
+    weakest = float(np.min(power[near])) if len(near) else 0.0
+    strong = qs[(power >= 0.05 * weakest)]
+    nearest = np.inf
+    for g in bragg:
+        cand = np.concatenate([strong, -strong, [[0.0, 0.0]]])
+        d = np.hypot(*(cand - g).T)
+        d = d[d > 0.02 * np.hypot(*g)]  # the Bragg peak itself (and its refined twin)
+        if d.size:
+            nearest = min(nearest, float(d.min()))
+    sigma = math.sqrt(2 * math.log(1 / leakage)) / nearest if np.isfinite(nearest) else 8 * max(pixel)
+    # At least two lattice periods and four pixels: fewer atoms under the window leave the phase noisy.
+    period = 2 * math.pi / float(np.min(np.hypot(*np.asarray(bragg).T)))
+    return max(sigma, 2 * period, 4 * max(pixel))
 
 
 def _choose_sigma(config, order_q, lattice_q, moire_q, shape, pixel):
@@ -1160,8 +1183,22 @@ def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, im
                             "note": "atoms not resolved: give the lattice constant a_nm for the twist angle"}
         notes.append("Moiré found, atoms not resolved: give a_nm (the layers' lattice constant) to map the twist.")
         return None
-    maps = moire.moire_maps(image, np.asarray(moire_q, float)[:3], pixel_size_nm=pixel, a_nm=config.a_nm,
-                            bragg_q=bragg_q, mask=mask)
+    try:
+        maps = moire.moire_maps(image, np.asarray(moire_q, float)[:3], pixel_size_nm=pixel, a_nm=config.a_nm,
+                                bragg_q=bragg_q, mask=mask)
+    except InputError as err:
+        # A frame of only a few moiré periods: the maps' own lock-in width does not fit. The twist from the
+        # two layers' Bragg peaks (atoms resolved) still stands; say why the maps are missing.
+        reading = spec.get("reading")
+        from_bragg = None if reading is None else reading.moire_from_bragg
+        summary["moire"] = {"mode": "from Bragg peaks only", "from_bragg_peaks": from_bragg,
+                            "period_nm": None if not from_bragg else from_bragg.get("period_nm"),
+                            "twist_deg": None if not from_bragg else from_bragg.get("twist_deg"),
+                            "twist_deg_std": None,
+                            "heterostrain_percent": None if not from_bragg else from_bragg.get("heterostrain_percent"),
+                            "note": f"no twist maps: {err}"}
+        notes.append(f"Moiré maps not made ({err}); twist and heterostrain from the two layers' Bragg peaks.")
+        return None
     twist = moire.twist_domains(maps.twist_deg, pixel_size_nm=pixel, tolerance_deg=config.twist_tolerance_deg,
                                 twist_err_deg=maps.twist_deg_err, resolution_nm=maps.sigma_nm, trusted=maps.trusted)
     summary["moire"] = {**maps.summary, "twist_domains": len(twist.table), "twist_tolerance_deg": twist.tolerance_deg,
