@@ -409,7 +409,9 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     sigma_nm, sigma_reason = _choose_sigma(config, order_q, lattice_q, spec["moire_q"], image.shape, pixel)
     choices["sigma_nm"] = {"value": sigma_nm, "why": sigma_reason}
 
-    trusted = trusted_mask(image.shape, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask)
+    # Isolated masked scan lines (glitches filled from their neighbours) do not cut the field: the lock-in
+    # bridges them. Only masked regions several pixels thick (step edges, user masks) make pixels untrusted.
+    trusted = trusted_mask(image.shape, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=_thick(mask))
     fill = np.where(np.isfinite(corrected), corrected, np.nanmean(corrected))
     summary = {
         "input": {"source": topography.source, "shape": list(image.shape), "pixel_size_nm": list(pixel),
@@ -563,6 +565,16 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     summary["choices"] = choices
     summary["notes"] = notes
     return Analysis(config, summary, out_maps, tables, figures, sections, notes, choices)
+
+
+def _thick(mask, width_px=5):
+    """The parts of a mask at least ``width_px`` pixels thick (thin lines removed), or None."""
+    if mask is None:
+        return None
+    from scipy import ndimage
+
+    mask = np.asarray(mask, bool)
+    return ndimage.binary_opening(mask, structure=np.ones((width_px, width_px), bool))
 
 
 def _drift_sigma(peaks, bragg, leakage, pixel):

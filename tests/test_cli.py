@@ -85,7 +85,8 @@ def test_scene_writes_inputs_with_sidecars_and_truth(tmp_path, capsys):
 @pytest.mark.parametrize("kind, roles, order", [
     ("cdw", {"bragg", "superlattice"}, "3x3"),          # truth: a 3x3 CDW on a hexagonal lattice
     ("cdw2x2", {"bragg", "superlattice"}, "2x2"),       # truth: a 2x2 CDW
-    ("stripes", {"bragg", "superlattice"}, "4x4"),      # truth: period-4a stripes along both square axes
+    # truth: period-4a unidirectional stripes along either square axis, in orientational domains
+    ("stripes", {"bragg", "superlattice"}, "4x1 stripes (2 orientations)"),
     ("moire", {"moire"}, None),                         # truth: a twisted bilayer, atoms not resolved
     ("plain", {"bragg"}, None),                         # truth: the lattice alone
 ])
