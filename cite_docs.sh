@@ -4,21 +4,31 @@
 #   "METHODS.md"  -> "docs/methods.md"
 #   "DESIGN.md"   -> docs/bundle.md where the bundle is meant, docs/methods.md where the
 #                    conventions are meant, docs/README.md where the layout/flow is meant.
-# Only .py files under domains/ and napari_plugin/ are edited, and only those that hold a citation.
+# Only .py files under domains/ and napari_plugin/ are edited (tests/ too with --with-tests), and only
+# those that hold a citation.
 # Names that merely contain the word (LINE_METHODS) are left alone.
 #
 # Usage: ./cite_docs.sh [ROOT]      ROOT defaults to the folder of this script (the repository).
 #        ./cite_docs.sh --check [ROOT]   report what would change, change nothing (exit 1 if anything would).
+#        ./cite_docs.sh --with-tests [ROOT]   also tests/, examples/ and benchmarks/ (off by default).
 # Exit status: 0 when no outside citation is left, 1 otherwise.
 set -euo pipefail
 
 check=0
-if [[ "${1:-}" == "--check" ]]; then check=1; shift; fi
+wanted=(domains napari_plugin)
+while [[ "${1:-}" == --* ]]; do
+    case "$1" in
+        --check) check=1 ;;
+        --with-tests) wanted+=(tests examples benchmarks) ;;
+        *) echo "cite_docs.sh: unknown option $1 (expected --check, --with-tests)" >&2; exit 2 ;;
+    esac
+    shift
+done
 root="${1:-$(cd "$(dirname "${BASH_SOURCE[0]}")" && pwd)}"
 cd "$root"
 
 dirs=()
-for d in domains napari_plugin; do [[ -d "$d" ]] && dirs+=("$d"); done
+for d in "${wanted[@]}"; do [[ -d "$d" ]] && dirs+=("$d"); done
 if [[ ${#dirs[@]} -eq 0 ]]; then
     echo "cite_docs.sh: no domains/ or napari_plugin/ folder under $root" >&2
     exit 2
