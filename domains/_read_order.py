@@ -105,8 +105,9 @@ class OrderFamily:
     q_rad_per_nm : (k, 2) ndarray
         The family's fundamental wavevectors (measured for incommensurate order, exact for commensurate).
     q_err_rad_per_nm : (k,) ndarray
-        One-sigma uncertainty of each wavevector's components (statistical, from the lock-in phase
-        noise, plus the lattice calibration for commensurate order).
+        One-sigma standard error of each wavevector (statistical: the spread of the local wavevector
+        over the independent sigma-patches of the ordered region). For commensurate order it is the
+        error of the measurement that was found to agree with the exact fraction, which is reported.
     coefficients : (k, 2) ndarray or None
         q = h G1 + k G2 in the Bragg basis (exact fractions for commensurate order, measured otherwise).
     supercell : (2, 2) int ndarray or None
@@ -787,7 +788,8 @@ def read_order(image, *, pixel_size_nm, lattice_reading, mask=None, peaks=None, 
 
     For each order peak that is not a Bragg peak, a harmonic of the lattice, a
     second atomic lattice or a combination of stronger order peaks, the local
-    wavevector q_loc = q + median(grad phi) inside ordered regions is measured by
+    wavevector q_loc = q + <grad phi> (the trimmed mean over strongly ordered pixels,
+    relative to the local lattice) is measured by
     lock-in with its standard error s (phase-gradient spread over the number of
     independent sigma-patches). The order is commensurate when a rational point
     of the Bragg basis with denominator up to ``max_determinant`` lies within
@@ -1117,7 +1119,8 @@ def _moire_triplet(q, bin_q):
 
 
 def _moire_from_layers(lat, second, moire_cands, bin_q, to_material=None):
-    """Moiré wavevectors k_j = G_top,j - G_bottom,j and the twist/heterostrain they imply (docs/methods.md §9).
+    """Moiré wavevectors k_j = G_bottom,j - G_top,j (the sign of domains.moire) and the twist/heterostrain they
+    imply (docs/methods.md §9).
 
     Twist and heterostrain are computed in the material's frame (the slow-axis drift undone)."""
     from .moire import twist_strain_from_wavevectors

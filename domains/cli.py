@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import signal
 import sys
 import traceback
@@ -203,6 +204,13 @@ def _main(argv) -> int:
         return 2
     except KeyboardInterrupt:
         raise
+    except BrokenPipeError:
+        # The reader of our output went away (``domains peaks FILE | head``): not an error of ours.
+        try:
+            sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - silence the interpreter's flush at exit
+        except OSError:
+            pass
+        return 0
     except Exception as err:  # noqa: BLE001 - the last line of defence: say what happened, exit 1
         if debug:
             _close_progress_bars()

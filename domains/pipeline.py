@@ -498,6 +498,14 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         ordered = state.ordered
         if kind == "incommensurate":
             notes.append("Incommensurate order: no translational variants; regions show where order is present.")
+        tip_rows = (choices.get("level_findings") or {}).get("tip_change_rows") or []
+        if tip_rows and drift_result is not None:
+            seg, merged = _merge_across_tip_changes(seg, tip_rows, sigma_nm / pixel[0], state.names)
+            if merged:
+                notes.append(f"{merged} domain boundary(ies) lying along a tip-change row were merged: a lateral "
+                             "jump of the tip shifts the lattice by a vector the drift correction can only know "
+                             "modulo a lattice translation, which reads as a change of variant (docs/methods.md §5).")
+                state_names = {lab: state.names[v] for lab, v in seg.state.items()}
         choices["segmentation"] = {**seg.parameters, "islands_dropped": seg.islands,
                                    "min_area_why": "disc of radius 2 sigma (the resolution)" if config.min_domain_area_nm2 is None else "given"}
         bar.update()
@@ -565,6 +573,75 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     summary["choices"] = choices
     summary["notes"] = notes
     return Analysis(config, summary, out_maps, tables, figures, sections, notes, choices)
+
+
+def _variant_of(name):
+    """(family, (m1, m2)) from a state name "3x3 m=(1,2)", or None."""
+    import re
+
+    found = re.fullmatch(r"(.*) m=\((-?\d+),(-?\d+)\)", name or "")
+    return None if not found else (found.group(1), (int(found.group(2)), int(found.group(3))))
+
+
+def _merge_across_tip_changes(seg, tip_rows, sigma_px, names):
+    """Merge domains whose common boundary runs along a tip-change row (see the note where it is called).
+
+    A lateral tip jump moves everything below the row by the same lattice translation, so every
+    false boundary along the row shows the same change of variant; a true wall that happens to lie
+    along the row has its own. Only pairs with the most common change (by boundary length) merge.
+    """
+    from dataclasses import replace as _replace
+
+    from . import segment
+
+    grown = seg.grown.copy()
+    ny = grown.shape[0]
+    reach = int(math.ceil(3 * sigma_px)) + 1
+    merged = 0
+    for r in tip_rows:
+        above, below = r - reach - 1, r + reach
+        if above < 0 or below >= ny:
+            continue
+        a, b = grown[above], grown[below]
+        pairs = {}
+        for la, lb in zip(a, b):
+            if la > 0 and lb > 0 and la != lb:
+                pairs[(la, lb)] = pairs.get((la, lb), 0) + 1
+        candidates = []
+        for (la, lb), n in pairs.items():
+            width_a = int(np.sum(a == la))
+            width_b = int(np.sum(b == lb))
+            # The boundary between them is this row over most of their width there.
+            if n >= 0.8 * min(width_a, width_b) and n >= 2 * reach:
+                va, vb = _variant_of(names[seg.state[la]]), _variant_of(names[seg.state[lb]])
+                if va is None or vb is None or va[0] != vb[0]:
+                    continue
+                candidates.append((la, lb, n, (vb[1][0] - va[1][0], vb[1][1] - va[1][1])))
+        if not candidates:
+            continue
+        weight = {}
+        for *_, n, jump in candidates:
+            weight[jump] = weight.get(jump, 0) + n
+        common = max(weight, key=weight.get)
+        if sum(1 for c in candidates if c[3] == common) < 2 and len(candidates) > 1:
+            continue  # no shared jump: these are walls, not a tip jump
+        for la, lb, n, jump in candidates:
+            if jump == common:
+                grown[grown == lb] = la
+                merged += 1
+    if not merged:
+        return seg, 0
+    walls = segment.thin_walls(grown)
+    labels = np.where(walls, 0, grown)
+    labels = np.where(seg.labels > 0, labels, 0)
+    # Renumber 1..N in the order of first appearance.
+    ids = [int(v) for v in np.unique(labels) if v > 0]
+    remap = np.zeros(int(grown.max()) + 1, np.int32)
+    for new, old in enumerate(ids, start=1):
+        remap[old] = new
+    state = {int(remap[old]): seg.state[old] for old in ids if old in seg.state}
+    return _replace(seg, labels=remap[labels], grown=remap[grown], walls=walls & (seg.grown > 0),
+                    state=state), merged
 
 
 def _thick(mask, width_px=5):
@@ -1132,7 +1209,7 @@ def _spec_from_order(result, image, pixel, mask, config):
                "order": f"{kind} ({'given' if config.order != 'auto' else 'automatic'})",
                "peaks_found": len(result.peaks),
                "reasons": list(result.reasons),
-               "commensurability_test": (f"local wavevector (median of q + grad phi over ordered pixels, lock-in "
+               "commensurability_test": (f"local wavevector (trimmed mean of q + grad phi relative to the local lattice, lock-in "
                                          f"sigma {result.sigma_test_nm:.3g} nm) within 3 standard errors of a "
                                          "fraction of the Bragg basis with denominator up to 16"
                                          if result.sigma_test_nm else None)}
