@@ -623,8 +623,8 @@ def _merge_across_tip_changes(seg, tip_rows, sigma_px, names):
         for *_, n, jump in candidates:
             weight[jump] = weight.get(jump, 0) + n
         common = max(weight, key=weight.get)
-        if sum(1 for c in candidates if c[3] == common) < 2 and len(candidates) > 1:
-            continue  # no shared jump: these are walls, not a tip jump
+        if sum(1 for c in candidates if c[3] == common) < 2:
+            continue  # no jump shared by two boundaries: a wall that happens to lie along the row
         for la, lb, n, jump in candidates:
             if jump == common:
                 grown[grown == lb] = la
