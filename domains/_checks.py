@@ -56,7 +56,7 @@ def within_nyquist(q, pixel_size, name="q"):
 # --------------------------------------------------------------------------- configuration values
 
 _SUPERCELL = re.compile(r"(\d+)x(\d+)")
-_ROOT_CELL = re.compile(r"sqrt(\d+)xsqrt(\d+)r(\d+(?:\.\d*)?)")
+_ROOT_CELL = re.compile(r"sqrt(\d+)xsqrt(\d+)r(-?\d+(?:\.\d*)?)")
 _LATTICE_KINDS = ("hexagonal", "square", "oblique")
 _LATTICE_KEYS = ("kind", "a_nm", "angle_deg", "a2_nm", "gamma_deg")
 
@@ -134,12 +134,12 @@ def superlattice_name(name, *, lattice_kind=None, where="configuration"):
     >>> superlattice_name("3by3")
     Traceback (most recent call last):
     ...
-    domains._errors.InputError: configuration: superlattice must be 'none', 'NxM' (e.g. '3x3', '4x1') or 'sqrt3xsqrt3R30' / 'sqrt2xsqrt2R45', got '3by3'
+    domains._errors.InputError: configuration: superlattice must be 'none', 'NxM' (e.g. '3x3', '4x1') or 'sqrtNxsqrtNR<angle>' (e.g. 'sqrt13xsqrt13R13.9', 'sqrt3xsqrt3R30', 'sqrt2xsqrt2R45'), got '3by3'
     """
     if name is None:
         return None
-    expected = (f"{where}: superlattice must be 'none', 'NxM' (e.g. '3x3', '4x1') or 'sqrt3xsqrt3R30' / "
-                f"'sqrt2xsqrt2R45', got {name!r}")
+    expected = (f"{where}: superlattice must be 'none', 'NxM' (e.g. '3x3', '4x1') or 'sqrtNxsqrtNR<angle>' "
+                f"(e.g. 'sqrt13xsqrt13R13.9', 'sqrt3xsqrt3R30', 'sqrt2xsqrt2R45'), got {name!r}")
     if not isinstance(name, str):
         raise InputError(expected)
     text = name.replace(" ", "").replace("×", "x").replace("√", "sqrt").lower()
@@ -151,9 +151,18 @@ def superlattice_name(name, *, lattice_kind=None, where="configuration"):
             raise InputError(f"{where}: superlattice {name!r}: both factors must be at least 1, not both 1")
         return name
     match = _ROOT_CELL.fullmatch(text)
-    if not match or match.group(1) != match.group(2) or match.group(1) not in ("2", "3"):
+    if not match or match.group(1) != match.group(2):
         raise InputError(expected)
-    needs = {"3": "hexagonal", "2": "square"}[match.group(1)]
+    n, angle = int(match.group(1)), abs(float(match.group(3)))
+    # A sqrt(N) x sqrt(N) R theta cell of a hexagonal lattice has N = h^2 + hk + k^2 and
+    # theta = atan(sqrt(3) k / (2h + k)) (docs/methods.md §8); sqrt2 x sqrt2 R45 is the square one.
+    hexagonal = any(h * h + h * k + k * k == n and abs(math.degrees(math.atan2(math.sqrt(3) * k, 2 * h + k)) - angle) < 0.2
+                    for h in range(1, 8) for k in range(0, h + 1))
+    if not hexagonal and not (n == 2 and abs(angle - 45) < 0.2):
+        raise InputError(f"{where}: superlattice {name!r}: no sqrt(N) x sqrt(N) R theta cell has N = {n} and "
+                         f"theta = {angle:g} deg (hexagonal: N = h^2 + hk + k^2, theta = atan(sqrt(3) k / (2h + k)), "
+                         "e.g. sqrt13xsqrt13R13.9; square: sqrt2xsqrt2R45)")
+    needs = "hexagonal" if hexagonal else "square"
     if lattice_kind is not None and lattice_kind != needs:
         raise InputError(f"{where}: superlattice {name!r} needs a {needs} lattice, the lattice table says {lattice_kind!r}")
     return name

@@ -1886,20 +1886,40 @@ def _superlattice_override(order, lattice):
             q = np.array([b[0] / n1, b[1] / n2])
         name = f"{n1}x{n2}"
     else:
-        mt = re.fullmatch(r"sqrt(\d+)xsqrt(\d+)r([\d.]+)", s)
+        mt = re.fullmatch(r"sqrt(\d+)xsqrt(\d+)r-?([\d.]+)", s)
         if not mt or mt.group(1) != mt.group(2):
             raise InputError(
                 f"superlattice must look like '3x3', '4x1' or 'sqrt3xsqrt3R30', got {order!r}"
             )
         n = int(mt.group(1))
+        angle = float(mt.group(3))
         if kind == "hexagonal" and n == 3:
             # The K points (2 b1 + b2) / 3 and its images at 120 degrees; they sum to zero.
             q = np.array([(2 * b[0] + b[1]) / 3, (b[1] - b[0]) / 3, -(b[0] + 2 * b[1]) / 3])
         elif kind == "square" and n == 2:
             q = np.array([(b[0] + b[1]) / 2, (b[0] - b[1]) / 2])
+        elif kind == "hexagonal":
+            # sqrt(N) x sqrt(N) R theta: N = h^2 + hk + k^2, theta = atan(sqrt3 k / (2h + k)); the
+            # fundamental is (h + k, k) / N of (b1, b2) (b2 at 120 degrees), its mirror (h, -k) / N.
+            found = None
+            for h in range(1, 8):
+                for k in range(0, h + 1):
+                    if h * h + h * k + k * k == n:
+                        theta = math.degrees(math.atan2(math.sqrt(3) * k, 2 * h + k))
+                        if abs(theta - abs(angle)) < 0.2:
+                            found = (h, k)
+            if found is None:
+                raise InputError(f"superlattice {order!r}: no sqrt(N) x sqrt(N) cell of a hexagonal lattice has "
+                                 f"N = {n} and a rotation of {angle} deg (N = h^2 + hk + k^2, "
+                                 "theta = atan(sqrt(3) k / (2h + k)))")
+            h, k = found
+            frac = np.array([h + k, k]) / n if not s.endswith(f"r-{mt.group(3)}") else np.array([h, -k]) / n
+            q1 = frac @ b
+            rot = np.array([[-0.5, -math.sqrt(3) / 2], [math.sqrt(3) / 2, -0.5]])
+            q = np.array([q1, rot @ q1, rot @ rot @ q1])
         else:
             raise InputError(f"superlattice {order!r} is not supported for a {kind} lattice "
-                             "(supported: sqrt3xsqrt3R30 hexagonal, sqrt2xsqrt2R45 square)")
+                             "(supported: sqrtNxsqrtNRtheta hexagonal, sqrt2xsqrt2R45 square)")
         name = f"sqrt{n}xsqrt{n}R{mt.group(3)}"
     inv = np.linalg.inv(b)
     coefs = [tuple(Fraction(v).limit_denominator(64) for v in (qq @ inv)) for qq in q]

@@ -348,6 +348,14 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
             spec["moire_q"] = np.asarray(moire.find_moire_q(image, pixel_size_nm=pixel, mask=mask))
             spec["result"].moire_q = spec["moire_q"]
             spec["order_kind"] = "moire"
+            from dataclasses import replace as _replace
+
+            def near(p):
+                return any(min(np.hypot(*(p.q - k)), np.hypot(*(p.q + k))) <= 0.1 * np.hypot(*k) for k in spec["moire_q"])
+
+            spec["result"].peaks = [_replace(p, role="moire") if near(p) else p for p in spec["result"].peaks]
+            spec["superlattice_summary"]["reasons"] = spec["superlattice_summary"].get("reasons", []) + [
+                "no closed set of peaks, but a moiré triplet among the low-|q| peaks (atoms not resolved)"]
         except InputError:
             pass
     choices["spectrum"] = spec["choices"]
