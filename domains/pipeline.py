@@ -170,10 +170,25 @@ class Analysis:
     choices: dict = field(default_factory=dict)
 
 
-def _progress(total, enabled):
-    from tqdm.auto import tqdm
+class _Progress:
+    """A progress bar that names the step about to run ("drift", "lock-in", "walls" ...)."""
 
-    return tqdm(total=total, desc="domains", unit="step", disable=not enabled, leave=False)
+    def __init__(self, total, enabled):
+        from tqdm.auto import tqdm
+
+        self.bar = tqdm(total=total, desc="domains: level", unit="step", disable=not enabled, leave=False)
+
+    def __call__(self, next_step=None, n=1):
+        if next_step:
+            self.bar.set_description(f"domains: {next_step}")
+        self.bar.update(n)
+
+    def close(self):
+        self.bar.close()
+
+
+def _progress(total, enabled):
+    return _Progress(total, enabled)
 
 
 def _materialise(scan: Scan) -> Scan:
@@ -275,7 +290,7 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
     from .level import level, line_offsets
 
     config = (config or Config()).validate()
-    step = on_step or (lambda: None)
+    step = on_step or (lambda *args, **kwargs: None)
     pixel = topography.pixel_size_nm
     notes, choices = [], {}
 
@@ -289,7 +304,7 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
     if found_in_level and found_in_level.get("note"):
         notes.append("Levelling: " + found_in_level["note"])
         choices["level_findings"] = found_in_level
-    step()
+    step("peaks and lattice")
 
     # 2. Peaks and the atomic lattice (the finest complete set of peaks, not the strongest).
     from . import fourier
@@ -313,7 +328,7 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
     choices["level"] = {"order": config.level_order, "line_method": line_method}
     if reading.lattice is not None and reading.source == "found":
         reading = _refine_lattice(image, pixel, mask, reading, peaks)
-    step()
+    step("drift and order")
 
     # 3. Drift (Lawler–Fujita) from the Bragg peaks.
     drift_result = None
@@ -360,7 +375,7 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
             pass
     choices["spectrum"] = spec["choices"]
     notes += spec["notes"]
-    step()
+    step("lock-in")
     return {"image": image, "mask": mask, "spec": spec, "drift": drift_result, "corrected": corrected,
             "notes": notes, "choices": choices}
 
@@ -401,7 +416,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
 
     pixel = topography.pixel_size_nm
     bar = _progress(9, progress)
-    found = find_order(topography, config, on_step=bar.update)
+    found = find_order(topography, config, on_step=bar)
     image, mask, spec, drift_result = found["image"], found["mask"], found["spec"], found["drift"]
     corrected, notes, choices = found["corrected"], found["notes"], found["choices"]
     lattice_q = spec["bragg_q"]
@@ -454,7 +469,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                                                title="Drift |u| (Lawler–Fujita)", units="nm")
         overview.append(("drift", "Magnitude of the displacement field removed from every channel."))
     sections.append(("Overview", overview))
-    bar.update()
+    bar("order and noise floor")
 
     labels = np.zeros(image.shape, np.int32)
     walls = np.zeros(image.shape, bool)
@@ -468,7 +483,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         choices["order_threshold"] = {"value": floor.threshold, "rayleigh_scale": floor.rayleigh_scale,
                                       "false_alarm_per_pixel": floor.false_alarm,
                                       "why": "Rayleigh tail of the lock-in amplitude measured at empty wavevectors"}
-        bar.update()
+        bar("domains and walls")
         min_area = config.min_domain_area_nm2 or math.pi * (2 * sigma_nm) ** 2
         reading = spec["reading"]
         families = list(reading.families) or [None]
@@ -516,7 +531,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                 state_names = {lab: state.names[v] for lab, v in seg.state.items()}
         choices["segmentation"] = {**seg.parameters, "islands_dropped": seg.islands,
                                    "min_area_why": "disc of radius 2 sigma (the resolution)" if config.min_domain_area_nm2 is None else "given"}
-        bar.update()
+        bar("measure and maps")
         labels, walls = seg.labels, seg.walls
         amp = amplitude(a_order)
         # A winding counts only where its own component carries order (stripes: not where it is absent).
@@ -540,7 +555,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         for name, a_j in zip(names, a_order):
             out_maps[f"amplitude/{name}"] = (amplitude(a_j).astype(np.float32), {**attrs, "units": topography.metadata.get("units", "image units")})
             out_maps[f"phase/{name}"] = (np.angle(a_j).astype(np.float32), {**attrs, "units": "rad"})
-        bar.update()
+        bar("bias comparison and moiré")
         figures["amplitude"] = report.image_figure(amp.mean(axis=0), pixel_size_nm=pixel, cmap="viridis",
                                                    title=f"Order amplitude (mean of {len(names)}), sigma = {sigma_nm:.3g} nm",
                                                    units=topography.metadata.get("units", ""))
@@ -560,7 +575,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
             (None, "<h3>Walls</h3>" + report.html_table(measure.WALL_COLUMNS, wall_rows)),
         ]))
     else:
-        bar.update(3)
+        bar("bias comparison and moiré", n=3)
     out_maps["labels"] = (labels.astype(np.int32), {**attrs, "units": "label"})
     out_maps["walls"] = (walls.astype(bool), {**attrs, "units": "bool"})
 
@@ -576,7 +591,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
             summary["superlattice"]["note"] = "a moiré pattern, not a superlattice of the atomic lattice"
         elif kind == "none":
             notes.append("No superlattice found: no CDW or stripe peaks beyond the lattice.")
-    bar.update()
+    bar("done")
     bar.close()
     summary["choices"] = choices
     summary["notes"] = notes
