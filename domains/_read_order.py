@@ -982,6 +982,8 @@ def read_order(image, *, pixel_size_nm, lattice_reading, mask=None, peaks=None, 
             if not same:
                 unique.append(v)
         verdicts = unique
+        if lat.kind == "hexagonal":
+            verdicts = _complete_orbits(verdicts, basis, bin_q)
         vq = np.array([v[2] for v in verdicts]).reshape(-1, 2)
         groups = _group_families(vq, bin_q)
         strength = []
@@ -1083,6 +1085,31 @@ def read_order(image, *, pixel_size_nm, lattice_reading, mask=None, peaks=None, 
         final.append(replace(p, role=role))
     return OrderResult(kind, lattice_reading, tuple(families), stripes, moire_q, from_bragg, tuple(final),
                        tuple(reasons), sigma_test)
+
+
+def _complete_orbits(verdicts, basis, bin_q):
+    """Add the missing members of each commensurate wavevector's three-fold orbit (Q, R120 Q, R240 Q).
+
+    A triple-q CDW on a hexagonal lattice has all three; a weak member can miss the peak list. Stripes
+    in three orientations have them too, each in its own domains (their lock-in then shows which).
+    Measured (incommensurate) wavevectors are not completed.
+    """
+    rot = np.array([[-0.5, -math.sqrt(3) / 2], [math.sqrt(3) / 2, -0.5]])
+    inv = np.linalg.inv(basis)
+    out = list(verdicts)
+    for v in verdicts:
+        if v[1] != "commensurate":
+            continue
+        for turn in (rot, rot @ rot):
+            # Rotate in the material's regular frame: the fraction rotates as an integer map of (G1, G2).
+            g_turned = np.array([turn @ basis[0], turn @ basis[1]]) @ inv  # G_i rotated, in (G1, G2)
+            g_turned = np.round(g_turned)
+            c = v[3] @ g_turned
+            q = c @ basis
+            if any(min(np.hypot(*(q - u[2])), np.hypot(*(q + u[2]))) <= max(2 * bin_q, 1e-9) for u in out):
+                continue
+            out.append((v[0], "commensurate", q, c, v[4]))
+    return out
 
 
 def _frac_text(c):
