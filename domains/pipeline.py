@@ -415,7 +415,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     from . import measure, order, segment
 
     pixel = topography.pixel_size_nm
-    bar = _progress(9, progress)
+    bar = _progress(8, progress)
     found = find_order(topography, config, on_step=bar)
     image, mask, spec, drift_result = found["image"], found["mask"], found["spec"], found["drift"]
     corrected, notes, choices = found["corrected"], found["notes"], found["choices"]
