@@ -141,8 +141,62 @@ def spectrum_figure(power, qx, qy, *, peaks=(), title="Power spectrum (Hann wind
     return _png(fig)
 
 
-def domain_figure(topography, labels, walls, *, pixel_size_nm, defects=(), title="Domains over the topograph"):
-    """Domain labels in colour over the grey topograph, walls in black, defects as +/- markers.
+def domain_label_positions(labels, *, pixel_size_nm=1.0) -> dict[int, tuple[float, float]]:
+    """Where to write each domain's id: its centroid, or its most interior pixel if the centroid lies outside it.
+
+    Parameters
+    ----------
+    labels : (row, col) int array
+        Domain labels (0 = wall or unassigned).
+    pixel_size_nm : float or (float, float)
+        Pixel size in nm.
+
+    Returns
+    -------
+    dict
+        ``label -> (x_nm, y_nm)`` with x = col * dx, y = row * dy (pixel centres).
+
+    Examples
+    --------
+    >>> lab = np.zeros((5, 8), int); lab[:, :4] = 1; lab[:, 4:] = 2
+    >>> domain_label_positions(lab, pixel_size_nm=0.5)
+    {1: (0.75, 1.0), 2: (2.75, 1.0)}
+    """
+    from scipy import ndimage
+
+    labels = np.asarray(labels)
+    dy, dx = pixel_size_pair(pixel_size_nm)
+    ids = [int(v) for v in np.unique(labels[labels > 0])]
+    if not ids:
+        return {}
+    centres = ndimage.center_of_mass(np.ones(labels.shape), labels, ids)
+    inside = None
+    out = {}
+    for label, (r, c) in zip(ids, centres):
+        ri, ci = int(round(r)), int(round(c))
+        if not (0 <= ri < labels.shape[0] and 0 <= ci < labels.shape[1] and labels[ri, ci] == label):
+            if inside is None:
+                # Distance to the nearest pixel of another label: its maximum is the most interior pixel.
+                border = np.zeros(labels.shape, bool)
+                border[:, :-1] |= labels[:, :-1] != labels[:, 1:]
+                border[:, 1:] |= labels[:, :-1] != labels[:, 1:]
+                border[:-1, :] |= labels[:-1, :] != labels[1:, :]
+                border[1:, :] |= labels[:-1, :] != labels[1:, :]
+                inside = ndimage.distance_transform_edt(~border & (labels > 0))
+            r, c = ndimage.maximum_position(inside, labels, label)
+        out[label] = (float(c) * dx, float(r) * dy)
+    return out
+
+
+def domain_figure(topography, labels, walls, *, pixel_size_nm, defects=(), title="Domains over the topograph",
+                  states=None, as_figure=False):
+    """Domains in colour over the grey topograph with their ids, walls in black, defects as markers.
+
+    Each domain's id (the ``domain`` column of ``domains.csv``, equal to its
+    label) is written at its centroid; neighbouring domains get different
+    colours (:func:`domains._palette.label_colours`); a legend keys the colours
+    to the ids (up to 24 domains; more are identified by their written id) and
+    names the walls and the defects ("+1 winding", "-1 winding").
 
     Parameters
     ----------
@@ -158,11 +212,15 @@ def domain_figure(topography, labels, walls, *, pixel_size_nm, defects=(), title
         With ``x_nm``, ``y_nm``, ``winding``.
     title : str
         Figure title.
+    states : dict, optional
+        ``domain id -> state name`` (the ``state`` column of ``domains.csv``), shown in the legend.
+    as_figure : bool
+        Return the matplotlib Figure instead of PNG bytes (the caller closes it).
 
     Returns
     -------
-    bytes
-        PNG.
+    bytes or matplotlib.figure.Figure
+        PNG (default).
 
     Examples
     --------
@@ -172,33 +230,74 @@ def domain_figure(topography, labels, walls, *, pixel_size_nm, defects=(), title
     """
     plt = _pyplot()
     from matplotlib.colors import ListedColormap
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+    from scipy import ndimage
 
-    fig, ax = plt.subplots(figsize=(5.4, 4.6))
+    from ._palette import DEFECT_COLOURS, DEFECT_LABELS, DEFECT_MARKERS, WALL_COLOUR, label_colours, rgba
+
+    labels = np.asarray(labels)
+    fig, ax = plt.subplots(figsize=(6.6, 4.8))
     extent = _extent(np.shape(labels), pixel_size_nm)
     lo, hi = _robust_limits(topography)
     ax.imshow(topography, cmap="gray", vmin=lo, vmax=hi, extent=extent, interpolation="nearest")
-    n = int(np.max(labels)) if np.size(labels) else 0
-    palette = plt.get_cmap("tab20")(np.arange(max(n, 1)) % 20)
-    coloured = np.ma.masked_where(np.asarray(labels) <= 0, labels)
-    ax.imshow(coloured, cmap=ListedColormap(palette), vmin=0.5, vmax=max(n, 1) + 0.5, alpha=0.45,
-              extent=extent, interpolation="nearest")
+    colours = label_colours(labels) if labels.size else {}
+    n = int(labels.max()) if labels.size else 0
+    lut = np.zeros((max(n, 0) + 1, 4))
+    for label, colour in colours.items():
+        lut[label] = rgba(colour, 0.5)
+    ax.imshow(lut[np.clip(labels, 0, n)], extent=extent, interpolation="nearest")
     # Walls are one pixel thin: thicken them for display only, so they survive the downsampling.
-    from scipy import ndimage
-
     shown = ndimage.binary_dilation(np.asarray(walls, bool), iterations=max(1, min(np.shape(walls)) // 400))
-    ax.imshow(np.ma.masked_where(~shown, np.ones(np.shape(walls))), cmap=ListedColormap(["black"]),
+    ax.imshow(np.ma.masked_where(~shown, np.ones(np.shape(walls))), cmap=ListedColormap([WALL_COLOUR]),
               vmin=0, vmax=1, extent=extent, interpolation="nearest")
-    for d in defects:
-        ax.plot(d["x_nm"], d["y_nm"], marker="P" if d["winding"] > 0 else "X", ms=9, mec="black",
-                color="#ffe14d" if d["winding"] > 0 else "#4dd2ff")
+    big = max(6.0, min(11.0, 140.0 / max(1.0, math.sqrt(len(colours)))))
+    for label, (x, y) in domain_label_positions(labels, pixel_size_nm=pixel_size_nm).items():
+        ax.text(x, y, str(label), ha="center", va="center", fontsize=big, fontweight="bold", color="black",
+                bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": colours[label], "lw": 1.5, "alpha": 0.85},
+                gid=f"domain-id-{label}")
+    handles = []
+    if 0 < len(colours) <= 24:
+        for label, colour in colours.items():
+            name = f"{label}" + (f": {states[label]}" if states and states.get(label) is not None else "")
+            handles.append(Patch(facecolor=rgba(colour, 0.6), edgecolor=colour, label=name))
+    if np.any(walls):
+        handles.append(Line2D([], [], color=WALL_COLOUR, lw=2, label="wall"))
+    for sign in (1, -1):
+        mine = [d for d in defects if np.sign(d["winding"]) == sign]
+        if mine:
+            ax.plot([d["x_nm"] for d in mine], [d["y_nm"] for d in mine], ls="none", marker=DEFECT_MARKERS[sign],
+                    ms=9, mec="white", mew=0.8, color=DEFECT_COLOURS[sign])
+            handles.append(Line2D([], [], ls="none", marker=DEFECT_MARKERS[sign], ms=8, mec="white",
+                                  color=DEFECT_COLOURS[sign], label=f"{DEFECT_LABELS[sign]} ({len(mine)})"))
+    if handles:
+        ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=7,
+                  title="domain" if colours else None, title_fontsize=8, frameon=False)
+    ax.set_xlim(extent[0], extent[1])
+    ax.set_ylim(extent[2], extent[3])
     ax.set_xlabel("x (nm)")
     ax.set_ylabel("y (nm)")
     ax.set_title(title)
-    return _png(fig)
+    return fig if as_figure else _png(fig)
 
 
-def histogram_figure(values, *, xlabel, title, bins="auto"):
-    """A histogram of a measured quantity (e.g. domain areas in nm^2).
+def histogram_figure(values, *, xlabel, title, bins="auto", as_figure=False):
+    """A histogram of a measured quantity (e.g. domain areas in nm^2), counts on integer ticks.
+
+    Parameters
+    ----------
+    values : sequence of float
+        The values; non-finite ones are left out.
+    xlabel, title : str
+        Axis label (with units) and title.
+    bins : int, sequence or str
+        As :func:`numpy.histogram`; values that are all integers get one bin per integer.
+    as_figure : bool
+        Return the matplotlib Figure instead of PNG bytes.
+
+    Returns
+    -------
+    bytes or matplotlib.figure.Figure
 
     Examples
     --------
@@ -206,21 +305,102 @@ def histogram_figure(values, *, xlabel, title, bins="auto"):
     True
     """
     plt = _pyplot()
+    from matplotlib.ticker import MaxNLocator
+
     fig, ax = plt.subplots(figsize=(5.0, 3.4))
     values = np.asarray(values, float)
     values = values[np.isfinite(values)]
+    integer = values.size > 0 and np.all(values == np.round(values)) and np.ptp(values) <= 60
     if values.size:
-        ax.hist(values, bins=bins if values.size > 3 else max(values.size, 1), color="#4a7bb7", edgecolor="white")
+        if integer:
+            bins = np.arange(values.min() - 0.5, values.max() + 1.5)
+        elif values.size <= 3:
+            bins = max(values.size, 1)
+        ax.hist(values, bins=bins, color="#4a7bb7", edgecolor="white")
+    # Counts are whole numbers: no tick at 0.5 or 1.5.
+    ax.yaxis.set_major_locator(MaxNLocator(integer=True))
+    if integer:
+        ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_xlabel(xlabel)
     ax.set_ylabel("count")
     ax.set_title(title)
-    return _png(fig)
+    return fig if as_figure else _png(fig)
 
 
-def curves_figure(curves, *, xlabel, ylabel, title, lines=True, reference=()):
+def _numbers(values):
+    return np.array([np.nan if v is None else v for v in values], dtype=float)
+
+
+def differs_within_errors(curves, *, z=2.0) -> bool:
+    """True if any two curves differ at a common abscissa by more than ``z`` combined standard errors.
+
+    Parameters
+    ----------
+    curves : list of (label, x, y, yerr or None)
+        As :func:`curves_figure`.
+    z : float
+        How many combined standard errors, sqrt(se_a^2 + se_b^2), make a
+        difference (2: about 95 % for Gaussian errors).
+
+    Returns
+    -------
+    bool
+        False when every pair agrees within its errors at every shared x (the
+        figure then shows nothing that differs). A curve without errors differs
+        from another wherever their values are not equal. Fewer than two curves: False.
+
+    Examples
+    --------
+    >>> same = [("a", [0, 1], [1.0, 2.0], [0.1, 0.1]), ("b", [0, 1], [1.1, 2.1], [0.1, 0.1])]
+    >>> differs_within_errors(same)
+    False
+    >>> differs_within_errors(same + [("c", [0, 1], [1.0, 3.0], [0.1, 0.1])])
+    True
+    """
+    points = []
+    for _, x, y, yerr in curves:
+        x, y = _numbers(x), _numbers(y)
+        e = np.zeros_like(y) if yerr is None else np.abs(_numbers(yerr))
+        points.append({float(xi): (yi, ei) for xi, yi, ei in zip(x, y, e) if np.isfinite(xi) and np.isfinite(yi)})
+    for i in range(len(points)):
+        for j in range(i + 1, len(points)):
+            for xv in points[i].keys() & points[j].keys():
+                (ya, ea), (yb, eb) = points[i][xv], points[j][xv]
+                combined = math.hypot(ea if np.isfinite(ea) else 0.0, eb if np.isfinite(eb) else 0.0)
+                if abs(ya - yb) > z * combined:
+                    return True
+    return False
+
+
+#: Caption sentence for a figure whose curves all agree within their errors.
+SAME_WITHIN_ERRORS = "All curves agree within two standard errors: nothing differs between them at this precision."
+
+
+def curves_figure(curves, *, xlabel, ylabel, title, lines=True, reference=(), units=None, note_if_same=True,
+                  as_figure=False):
     """Several labelled curves with optional error bars: ``curves`` is a list of (label, x, y, yerr or None).
 
-    ``lines=False`` draws markers only; ``reference`` values are drawn as dotted horizontal lines.
+    Parameters
+    ----------
+    curves : list of (label, x, y, yerr or None)
+        The curves; None values are gaps.
+    xlabel, ylabel, title : str
+        Axis labels and title.
+    lines : bool
+        False draws markers only.
+    reference : sequence of float
+        Values drawn as dotted horizontal lines.
+    units : str, optional
+        Units of y, appended to the axis label: ``ylabel (units)``.
+    note_if_same : bool
+        When :func:`differs_within_errors` is False for two or more curves, write
+        :data:`SAME_WITHIN_ERRORS` in the figure (the curves are drawn anyway).
+    as_figure : bool
+        Return the matplotlib Figure instead of PNG bytes.
+
+    Returns
+    -------
+    bytes or matplotlib.figure.Figure
 
     Examples
     --------
@@ -229,32 +409,135 @@ def curves_figure(curves, *, xlabel, ylabel, title, lines=True, reference=()):
     """
     plt = _pyplot()
     fig, ax = plt.subplots(figsize=(5.6, 3.8))
-    def numbers(values):
-        return np.array([np.nan if v is None else v for v in values], dtype=float)
-
     style = "o-" if lines else "o"
     for value in reference:
         ax.axhline(value, color="0.6", lw=0.8, ls=":")
     for label, x, y, yerr in curves:
-        x, y = numbers(x), numbers(y)
+        x, y = _numbers(x), _numbers(y)
         if yerr is None:
             ax.plot(x, y, style, ms=3, label=label)
         else:
-            ax.errorbar(x, y, yerr=numbers(yerr), fmt=style, ms=3, capsize=2, label=label)
+            ax.errorbar(x, y, yerr=_numbers(yerr), fmt=style, ms=3, capsize=2, label=label)
     ax.set_xlabel(xlabel)
-    ax.set_ylabel(ylabel)
+    ax.set_ylabel(f"{ylabel} ({units})" if units else ylabel)
     ax.set_title(title)
     if curves:
         ax.legend(fontsize=7, ncol=2)
-    return _png(fig)
+    if note_if_same and len(curves) > 1 and not differs_within_errors(curves):
+        ax.text(0.5, 0.02, "all curves agree within 2 standard errors", transform=ax.transAxes, ha="center",
+                va="bottom", fontsize=8, color="#8a4b00", gid="same-within-errors")
+    return fig if as_figure else _png(fig)
+
+
+_WORDS = {"None": "–", "none": "–", "nan": "–", "NaN": "–", "True": "yes", "False": "no", "true": "yes",
+          "false": "no", "": ""}
+
+
+def _number(value: float) -> str:
+    if not math.isfinite(value):
+        return "–"
+    text = f"{value:.4g}"
+    # A value that rounds to zero is shown without a sign: no "-0" or "-0.0000".
+    return text[1:] if text.startswith("-") and float(text) == 0 else text
+
+
+def _text(value: str) -> str:
+    value = value.strip()
+    if value in _WORDS:
+        return _WORDS[value]
+    if ";" in value:
+        parts = [p.strip() for p in value.split(";")]
+        try:
+            return ", ".join(_number(float(p)) if p not in _WORDS else _WORDS[p] for p in parts)
+        except ValueError:
+            pass
+    try:
+        number = float(value)
+    except ValueError:
+        return value
+    return _number(number) if number == 0 else value
+
+
+def format_cell(value) -> str:
+    """One table cell in human words (plain text, not yet HTML-escaped).
+
+    None and NaN become "–", booleans "yes"/"no", floats 4 significant digits
+    without a negative zero, lists "a, b, c"; strings packing numbers with ";"
+    are shown as "a, b, c" too.
+
+    Examples
+    --------
+    >>> [format_cell(v) for v in (None, True, False, -0.0, 1.23456, [1.8, -1.6, None], "1.8;-1.6;-0.4", "-0.0000")]
+    ['–', 'yes', 'no', '0', '1.235', '1.8, -1.6, –', '1.8, -1.6, -0.4', '0']
+    """
+    if value is None:
+        return "–"
+    if isinstance(value, (bool, np.bool_)):
+        return "yes" if value else "no"
+    if isinstance(value, (int, np.integer)):
+        return str(int(value))
+    if isinstance(value, (float, np.floating)):
+        return _number(float(value))
+    if isinstance(value, (list, tuple, np.ndarray)):
+        return ", ".join(format_cell(v) for v in value)
+    return _text(str(value))
 
 
 def _format(value):
-    if isinstance(value, float):
-        if not math.isfinite(value):
-            return "–"
-        return f"{value:.4g}"
-    return html.escape(str(value))
+    return html.escape(format_cell(value))
+
+
+def split_list_columns(columns, rows):
+    """Columns holding lists (or ";"-packed numbers) split into one column per element: one value per cell.
+
+    Parameters
+    ----------
+    columns : list of str
+        Column names.
+    rows : list of dict
+        Rows keyed by column.
+
+    Returns
+    -------
+    (list of str, list of dict)
+        Column ``c`` with lists of length up to k becomes ``c_1 ... c_k``; other columns are unchanged.
+
+    Examples
+    --------
+    >>> split_list_columns(["d", "phi"], [{"d": 1, "phi": [1.8, -1.6, 0.4]}, {"d": 2, "phi": "0.0;119.4;-119.8"}])
+    (['d', 'phi_1', 'phi_2', 'phi_3'], [{'d': 1, 'phi_1': 1.8, 'phi_2': -1.6, 'phi_3': 0.4}, {'d': 2, 'phi_1': 0.0, 'phi_2': 119.4, 'phi_3': -119.8}])
+    """
+    def as_list(value):
+        if isinstance(value, (list, tuple, np.ndarray)):
+            return list(value)
+        if isinstance(value, str) and ";" in value:
+            parts = [p.strip() for p in value.split(";")]
+            try:
+                return [None if p in ("", "–", "None", "nan") else float(p) for p in parts]
+            except ValueError:
+                return None
+        return None
+
+    widths = {}
+    for c in columns:
+        lists = [as_list(r.get(c)) for r in rows]
+        if rows and any(v is not None for v in lists):
+            widths[c] = max(len(v) for v in lists if v is not None)
+    out_columns = []
+    for c in columns:
+        out_columns += [f"{c}_{i + 1}" for i in range(widths[c])] if c in widths else [c]
+    out_rows = []
+    for r in rows:
+        new = {}
+        for c in columns:
+            if c in widths:
+                values = as_list(r.get(c)) or [r.get(c)] + [None] * (widths[c] - 1)
+                for i in range(widths[c]):
+                    new[f"{c}_{i + 1}"] = values[i] if i < len(values) else None
+            elif c in r:
+                new[c] = r[c]
+        out_rows.append(new)
+    return out_columns, out_rows
 
 
 def html_table(columns, rows, *, limit=200):

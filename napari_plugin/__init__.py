@@ -3,7 +3,8 @@
 The plugin computes nothing itself: it turns what ``domains`` returns into
 layers with physical scale (nm, rad/nm) and lets a user pick wavevectors, tune
 the lock-in width and run the analysis. Importing this package imports neither
-napari nor Qt; the dock widgets (``LockinWidget``, ``AnalysisWidget``) load them
+napari nor Qt; the dock widgets (``LockinWidget``, ``AnalysisWidget``,
+``DomainsTableWidget``) load them
 when first used.
 """
 
@@ -13,6 +14,7 @@ from ._widgets import analysis_layer_data, lockin_layer_data, spectrum_layer_dat
 
 __all__ = [
     "AnalysisWidget",
+    "DomainsTableWidget",
     "LockinWidget",
     "analysis_layer_data",
     "cdw_scene",
@@ -29,7 +31,7 @@ __all__ = [
 
 def __getattr__(name):
     # The widgets need Qt; import them only when asked for.
-    if name in ("AnalysisWidget", "LockinWidget"):
+    if name in ("AnalysisWidget", "DomainsTableWidget", "LockinWidget"):
         from . import _qt
 
         return getattr(_qt, name)

@@ -10,13 +10,15 @@ nm, ``scale`` = pixel size in nm, origin at the centre of pixel (0, 0).
 
 A scan file is read only when its pixel size is known, that is when a sidecar
 ``NAME.json`` with ``pixel_size_nm`` sits next to it: the analysis never guesses
-a pixel size, so for a bare file :func:`get_reader` returns None and napari may
-offer its own readers, which show the array in pixels.
+a pixel size, so for a bare file :func:`get_reader` returns None (napari may
+offer its own readers, which show the array in pixels) and says why: in the log
+and in napari's notification area (:func:`missing_pixel_size_message`).
 """
 
 from __future__ import annotations
 
 import json
+import logging
 import math
 import os
 from collections.abc import Callable, Mapping, Sequence
@@ -25,14 +27,22 @@ from typing import Any
 
 import numpy as np
 
+from domains import _palette
+
+logger = logging.getLogger(__name__)
+
 __all__ = [
     "BUNDLE_LAZY_BYTES",
     "SCAN_SUFFIXES",
     "bundle_maps",
+    "bundle_topography",
     "defects_layer_data",
+    "domain_colormap",
     "get_reader",
     "is_bundle",
+    "domain_ids_layer_data",
     "maps_layer_data",
+    "missing_pixel_size_message",
     "read_bundle_layers",
     "read_scan_layers",
     "robust_limits",
@@ -51,8 +61,11 @@ BUNDLE_LAZY_BYTES = 256 * 2**20
 #: Colour maps by channel; a name napari knows (matplotlib names are accepted).
 CHANNEL_COLORMAPS = {"topography": "afmhot", "conductance": "viridis", "current": "gray"}
 
-#: Defect markers: red for winding +1, blue for -1 (RGBA).
-WINDING_COLORS = {1: (0.9, 0.1, 0.1, 1.0), -1: (0.15, 0.35, 0.95, 1.0)}
+#: Defect markers: red for winding +1, blue for -1 (RGBA), the report's colours (``domains._palette``).
+WINDING_COLORS = {sign: _palette.rgba(colour) for sign, colour in _palette.DEFECT_COLOURS.items()}
+
+#: Opacity of the domain colours over the topograph: the topograph's contrast stays readable.
+LABELS_OPACITY = 0.4
 
 # Metadata key under which every layer made here keeps what the core needs back
 # (pixel size, channel, bias, mask): widgets read it to rebuild a Scan.
@@ -151,7 +164,8 @@ def scan_layer_data(scan, *, name: str | None = None) -> LayerData:
     """
     stem = Path(str(scan.source)).stem if scan.source and scan.source != "<array>" else "scan"
     if name is None:
-        name = f"{stem} {scan.channel}"
+        # "topography.npy" of channel topography is "topography", not "topography topography".
+        name = stem if scan.channel.lower() in stem.lower() else f"{stem} {scan.channel}"
         if scan.bias_V is not None and not scan.is_grid:
             name += f" {_bias_text(scan.bias_V)}"
     meta = {
@@ -221,8 +235,11 @@ def _map_title(path: str) -> tuple[str, str]:
         return "domains", "labels"
     if path == "walls":
         return "walls", "walls"
+    if path == "topography":
+        return "topography", "topography"
     if parts[0] in ("amplitude", "phase") and len(parts) == 2:
-        return f"{parts[0]} {parts[1]}", parts[0]
+        # Short names, so the layer list does not cut them to look alike.
+        return f"{'amp' if parts[0] == 'amplitude' else 'phase'} {parts[1]}", parts[0]
     if path == "twist_deg":
         return "twist angle", "twist"
     return path.replace("/", " "), "other"
@@ -255,8 +272,7 @@ def maps_layer_data(
         the drift magnitude and twist angle, the domain labels and the walls on
         top. Phase maps use the cyclic colour map ``twilight`` on [-pi, pi].
     """
-    images, overlays = [], []
-    first_amplitude = True
+    bottom, images, overlays = [], [], []
     for path in sorted(maps):
         if path.startswith("displacement/"):
             continue
@@ -266,21 +282,24 @@ def maps_layer_data(
                            "pixel_size_nm": list(_pixel_pair(attrs["pixel_size_nm"]))}}
         kwargs = {"name": title + suffix, "metadata": meta, **_spatial_kwargs(attrs["pixel_size_nm"], translate)}
         if role == "labels":
-            kwargs["opacity"] = 0.45
+            kwargs["opacity"] = LABELS_OPACITY
+            kwargs["colormap"] = domain_colormap(array)
             overlays.append((array, kwargs, "labels"))
         elif role == "walls":
             walls = array.astype(np.uint8) if _is_dask(array) else np.asarray(array).astype(np.uint8)
-            kwargs["colormap"] = {0: "transparent", 1: "white", None: "transparent"}
-            kwargs["opacity"] = 0.8
+            kwargs["colormap"] = {0: "transparent", 1: _palette.WALL_COLOUR, None: "transparent"}
+            kwargs["opacity"] = 1.0
             overlays.append((walls, kwargs, "labels"))
         elif role == "phase":
             kwargs.update(colormap="twilight", contrast_limits=(-math.pi, math.pi), visible=False)
             images.append((array, kwargs, "image"))
         else:
-            if role == "amplitude":
+            if role == "topography":
+                kwargs["colormap"] = "gray"
+                meta[META_KEY].update(kind="scan", channel="topography")
+            elif role == "amplitude":
                 kwargs["colormap"] = "magma"
-                kwargs["visible"] = first_amplitude
-                first_amplitude = False
+                kwargs["visible"] = False
             elif role == "twist":
                 kwargs["colormap"] = "coolwarm"
             else:
@@ -288,7 +307,7 @@ def maps_layer_data(
             limits = robust_limits(array)
             if limits is not None:
                 kwargs["contrast_limits"] = limits
-            images.append((array, kwargs, "image"))
+            (bottom if role == "topography" else images).append((array, kwargs, "image"))
     if "displacement/ux" in maps and "displacement/uy" in maps:
         (ux, attrs), (uy, _) = maps["displacement/ux"], maps["displacement/uy"]
         if _is_dask(ux) or _is_dask(uy):
@@ -307,8 +326,39 @@ def maps_layer_data(
         if limits is not None:
             kwargs["contrast_limits"] = limits
         images.insert(0, (magnitude, kwargs, "image"))
-    # Labels sort before walls in the path order; keep walls drawn last (on top).
-    return images + overlays
+    # The topograph at the bottom; labels sort before walls in the path order, so walls are drawn on top.
+    return bottom + images + overlays
+
+
+def domain_colormap(labels) -> dict:
+    """A napari label colour map (dict) of the shared palette; neighbouring domains differ.
+
+    Parameters
+    ----------
+    labels : (row, col) int array or dask array
+        Domain labels; a dask array is coloured from a strided sample (a few
+        million pixels at most), which keeps the adjacency of domains larger
+        than the stride.
+
+    Returns
+    -------
+    dict
+        ``label -> hex colour``, with 0 and None (every other label) transparent.
+
+    Examples
+    --------
+    >>> cmap = domain_colormap(np.array([[1, 1, 2], [3, 3, 3]]))
+    >>> cmap[0], len({cmap[1], cmap[2], cmap[3]})
+    ('transparent', 3)
+    """
+    shape = tuple(labels.shape)
+    step = max(1, int(math.ceil(math.sqrt(int(np.prod(shape)) / 4e6)))) if shape else 1
+    sample = labels[::step, ::step] if len(shape) == 2 else labels
+    if _is_dask(sample):
+        sample = sample.compute()
+    colours = _palette.label_colours(np.asarray(sample)) if np.ndim(sample) == 2 else {}
+    # A label too small to be in the sample still gets a colour.
+    return {0: "transparent", None: "transparent" if step == 1 else _palette.DOMAIN_PALETTE[0], **colours}
 
 
 def defects_layer_data(
@@ -317,8 +367,9 @@ def defects_layer_data(
     pixel_size_nm,
     name: str = "defects",
     translate: Sequence[float] | None = None,
+    size: float = 8.0,
 ) -> LayerData | None:
-    """A points layer of phase defects, red for winding +1, blue for -1.
+    """A points layer of phase defects, red for winding +1, blue for -1 (as in the report).
 
     Parameters
     ----------
@@ -331,6 +382,8 @@ def defects_layer_data(
         Layer name.
     translate : sequence of float, optional
         World offset (nm) of pixel (0, 0).
+    size : float
+        Marker size in pixels of the map.
 
     Returns
     -------
@@ -350,7 +403,7 @@ def defects_layer_data(
         features["component"] = np.array([int(d["component"]) for d in defects])
     kwargs = {
         "name": name, "features": features, "face_color": colors, "border_color": "white",
-        "border_width": 0.1, "size": 8.0, "symbol": "disc",
+        "border_width": 0.1, "size": float(size), "symbol": "disc",
         "metadata": {META_KEY: {"kind": "defects", "pixel_size_nm": [dy, dx]}},
         **_spatial_kwargs((dy, dx), translate),
     }
@@ -407,8 +460,89 @@ def bundle_maps(group, *, lazy_threshold_bytes: int = BUNDLE_LAZY_BYTES) -> dict
     return out
 
 
+def bundle_topography(bundle, shape=None):
+    """The topograph under a bundle's maps, as a levelled :class:`domains.Scan`, and where it came from.
+
+    Looked for in this order: a ``topography`` map in ``maps.zarr``; the input
+    file named in ``summary.json`` (``input.source``) if it is still there with
+    its pixel size; for a bundle of a built-in synthetic scene (``truth.scene``
+    and ``truth.seed``), the scene made again (it is deterministic).
+
+    Parameters
+    ----------
+    bundle : domains.io.Bundle
+        As returned by :func:`domains.io.read_bundle`.
+    shape : tuple of int, optional
+        The maps' (row, col) shape: a topograph of another shape is not used.
+
+    Returns
+    -------
+    (domains.Scan, str) or (None, str)
+        The levelled topograph (plane and scan-line correction of
+        :func:`domains.level.level`) and a sentence saying where it came from,
+        or None and why there is none.
+    """
+    from domains import InputError
+    from domains.level import level
+
+    summary = bundle.summary if isinstance(bundle.summary, dict) else {}
+    source = (summary.get("input") or {}).get("source") if isinstance(summary.get("input"), dict) else None
+    scan, origin = None, ""
+    if source and not str(source).startswith("<"):
+        file = Path(str(source))
+        if file.exists() and _has_pixel_size(file):
+            from domains.io import load_scan
+
+            try:
+                scan, origin = load_scan(file), f"the input file {file.name}"
+            except (InputError, OSError):
+                scan = None
+    truth = summary.get("truth") if isinstance(summary.get("truth"), dict) else {}
+    if scan is None and truth.get("scene") and truth.get("seed") is not None:
+        from domains.pipeline import make_scene
+
+        try:
+            scan = make_scene(str(truth["scene"]), seed=int(truth["seed"])).topography
+            origin = f"the synthetic {truth['scene']} scene (seed {truth['seed']}) made again"
+        except (InputError, ImportError, NotImplementedError, AttributeError):
+            scan = None
+    if scan is None:
+        return None, "the bundle holds no topograph and its input file is not at hand"
+    if scan.is_grid or (shape is not None and tuple(scan.shape) != tuple(shape)):
+        return None, f"{origin} does not have the shape of the maps {shape}"
+    return level(scan, order=1, lines="difference", warn=False), origin
+
+
+def domain_ids_layer_data(labels, *, pixel_size_nm, name="domain ids", translate=None) -> LayerData | None:
+    """A points layer writing each domain's id (the ``domain`` column of ``domains.csv``) inside it.
+
+    Placed as in the report (:func:`domains.report.domain_label_positions`).
+
+    Returns
+    -------
+    tuple or None
+        ``(coordinates (row, col), add_kwargs, "points")``; None with no domain.
+    """
+    from domains.report import domain_label_positions
+
+    array = labels.compute() if _is_dask(labels) else np.asarray(labels)
+    dy, dx = _pixel_pair(pixel_size_nm)
+    positions = domain_label_positions(array, pixel_size_nm=(dy, dx))
+    if not positions:
+        return None
+    ids = np.array(list(positions), dtype=int)
+    coords = np.array([[y / dy, x / dx] for x, y in positions.values()])
+    kwargs = {
+        "name": name, "features": {"domain": ids}, "size": 0.5, "face_color": "transparent",
+        "border_color": "transparent", "text": {"string": "{domain}", "color": "white", "size": 11},
+        "metadata": {META_KEY: {"kind": "domain_ids", "pixel_size_nm": [dy, dx]}},
+        **_spatial_kwargs((dy, dx), translate),
+    }
+    return (coords, kwargs, "points")
+
+
 def read_bundle_layers(path, *, lazy_threshold_bytes: int = BUNDLE_LAZY_BYTES) -> list[LayerData]:
-    """Layers for a result bundle: maps, domain labels, walls and defects.
+    """Layers for a result bundle, ready to look at: topograph, domains, walls, defects on top.
 
     Parameters
     ----------
@@ -420,7 +554,14 @@ def read_bundle_layers(path, *, lazy_threshold_bytes: int = BUNDLE_LAZY_BYTES) -
     Returns
     -------
     list of tuple
-        Layer data tuples; names end in ``" (<folder name>)"``.
+        Layer data tuples, bottom first: ``topography`` (visible, grey; see
+        :func:`bundle_topography`), the amplitude (``amp <component>``), phase
+        (``phase <component>``), drift and other maps (hidden), ``domains``
+        (labels in the shared palette, translucent), ``walls`` (black),
+        ``defects`` and ``domain ids``. Every layer's metadata holds the bundle
+        folder and the lock-in width the analysis used
+        (``metadata["domains"]["analysis_sigma_nm"]``); the domains layer holds
+        the rows of ``domains.csv`` (``metadata["domains"]["table"]``).
 
     Raises
     ------
@@ -431,20 +572,42 @@ def read_bundle_layers(path, *, lazy_threshold_bytes: int = BUNDLE_LAZY_BYTES) -
 
     bundle = read_bundle(path)
     maps = bundle_maps(bundle.maps, lazy_threshold_bytes=lazy_threshold_bytes)
-    suffix = f" ({Path(bundle.path).name})"
-    layers = maps_layer_data(maps, suffix=suffix)
-    pixel = None
+    summary = bundle.summary if isinstance(bundle.summary, dict) else {}
+    layers = maps_layer_data(maps)
+    pixel, shape = None, None
     if maps:
         pixel = next(iter(maps.values()))[1]["pixel_size_nm"]
-    elif isinstance(bundle.summary.get("input"), dict):
-        pixel = bundle.summary["input"].get("pixel_size_nm")
-    defects = (bundle.summary.get("defects") or {}) if isinstance(bundle.summary, dict) else {}
+        shape = tuple(next(iter(maps.values()))[0].shape[-2:])
+    elif isinstance(summary.get("input"), dict):
+        pixel = summary["input"].get("pixel_size_nm")
+    if "topography" not in maps:
+        topo, origin = bundle_topography(bundle, shape)
+        if topo is not None:
+            data, kwargs, kind = scan_layer_data(topo, name="topography")
+            kwargs["colormap"] = "gray"
+            kwargs["metadata"][META_KEY]["origin"] = origin
+            layers.insert(0, (data, kwargs, kind))
+        else:
+            _decline(f"cdw-domains: {Path(bundle.path).name}: no topograph under the domains ({origin}).")
+    defects = summary.get("defects") or {}
     if pixel is not None and isinstance(defects, dict):
-        points = defects_layer_data(defects.get("list"), pixel_size_nm=pixel, name="defects" + suffix)
+        # Markers about 1/40 of the frame, so they are seen when the whole map is in view.
+        size = max(8.0, min(shape) / 40) if shape else 8.0
+        points = defects_layer_data(defects.get("list"), pixel_size_nm=pixel, name="defects", size=size)
         if points is not None:
             layers.append(points)
-    for data, kwargs, _ in layers:
-        kwargs.setdefault("metadata", {}).setdefault(META_KEY, {})["bundle"] = str(bundle.path)
+    if pixel is not None and "labels" in maps:
+        ids = domain_ids_layer_data(maps["labels"][0], pixel_size_nm=pixel)
+        if ids is not None:
+            layers.append(ids)
+    sigma = summary.get("sigma_nm")
+    for data, kwargs, kind in layers:
+        meta = kwargs.setdefault("metadata", {}).setdefault(META_KEY, {})
+        meta["bundle"] = str(bundle.path)
+        if isinstance(sigma, (int, float)) and math.isfinite(sigma):
+            meta["analysis_sigma_nm"] = float(sigma)
+        if meta.get("path") == "labels" and "domains" in bundle.tables:
+            meta["table"] = {"columns": list(bundle.columns.get("domains") or []), "rows": bundle.tables["domains"]}
     return layers
 
 
@@ -493,11 +656,44 @@ def get_reader(path) -> Callable[[Any], list[LayerData]] | None:
             return _bundle_reader(target)
         if target.name == "summary.json" and is_bundle(target.parent):
             return _bundle_reader(target.parent)
-        if target.suffix.lower() in SCAN_SUFFIXES and target.exists() and _has_pixel_size(target):
-            return _scan_reader(target)
+        if target.suffix.lower() in SCAN_SUFFIXES and target.exists():
+            if _has_pixel_size(target):
+                return _scan_reader(target)
+            _decline(missing_pixel_size_message(target))
     except Exception:  # a reader hook must not raise: napari would stop trying others
         return None
     return None
+
+
+def missing_pixel_size_message(path) -> str:
+    """What the reader says of a scan file whose pixel size is unknown.
+
+    Examples
+    --------
+    >>> print(missing_pixel_size_message("scan.npy"))  # doctest: +NORMALIZE_WHITESPACE
+    cdw-domains did not open scan.npy: its pixel size is missing (no sidecar scan.json with "pixel_size_nm").
+    Write scan.json, e.g. {"pixel_size_nm": 0.05}, and open it again; any other reader shows it in pixels only.
+    """
+    file = Path(os.fspath(path))
+    sidecar = file.with_suffix(".json").name
+    return (f"cdw-domains did not open {file.name}: its pixel size is missing (no sidecar {sidecar} with "
+            f'"pixel_size_nm").\nWrite {sidecar}, e.g. {{"pixel_size_nm": 0.05}}, and open it again; '
+            "any other reader shows it in pixels only.")
+
+
+def _decline(message: str) -> None:
+    """Tell the user why something is not opened: the log, and napari's notification area when napari runs.
+
+    A reader hook returns None for a path it does not read (napari then tries
+    other readers), so the reason goes to napari's notification manager
+    (``napari.utils.notifications.show_warning``), never raised.
+    """
+    logger.warning(message)
+    try:
+        from napari.utils.notifications import show_warning
+    except ImportError:  # plain Python use: the log is enough
+        return
+    show_warning(message)
 
 
 def _scan_reader(target: Path):

@@ -442,6 +442,15 @@ def analysis_layer_data(analysis, *, source: str = "", translate: Sequence[float
                                     translate=translate)
         if points is not None:
             layers.append(points)
+    table = (analysis.tables or {}).get("domains")
+    sigma = analysis.summary.get("sigma_nm")
+    for _, kwargs, _ in layers:
+        meta = kwargs.setdefault("metadata", {}).setdefault(META_KEY, {})
+        if isinstance(sigma, (int, float)) and math.isfinite(sigma):
+            meta["analysis_sigma_nm"] = float(sigma)
+        if meta.get("path") == "labels" and table:
+            columns, rows = table
+            meta["table"] = {"columns": list(columns), "rows": list(rows)}
     return layers
 
 

@@ -20,7 +20,8 @@ import domains  # noqa: E402
 from domains.io import save_scan, write_bundle  # noqa: E402
 from domains.pipeline import make_scene  # noqa: E402
 from napari_plugin import _reader, _sample_data, _widgets  # noqa: E402
-from napari_plugin._qt import AnalysisWidget, LockinWidget  # noqa: E402
+from domains._palette import DOMAIN_PALETTE, WALL_COLOUR, label_colours, rgba  # noqa: E402
+from napari_plugin._qt import AnalysisWidget, DomainsTableWidget, LockinWidget  # noqa: E402
 
 pytestmark = pytest.mark.gui
 
@@ -78,7 +79,7 @@ def test_manifest_is_valid_and_every_python_name_imports():
     assert {"*.npy", "*.npz", "*.tif", "*.tiff", "*.h5", "*.hdf5", "*.zarr", "*.txt", "*.csv"} <= set(
         reader.filename_patterns)
     assert {s.key for s in manifest.contributions.sample_data} == {"cdw", "stripes", "moire"}
-    assert len(manifest.contributions.widgets) == 2
+    assert len(manifest.contributions.widgets) == 3  # derived: lock-in, analysis, domains table
 
 
 # --------------------------------------------------------------------------- plain functions
@@ -104,7 +105,7 @@ def test_reader_reads_a_saved_scene_with_its_pixel_size(tmp_path, cdw):
     assert map_kwargs["metadata"]["domains"]["bias_V"] == pytest.approx(0.25)
 
 
-def test_reader_declines_without_raising(tmp_path):
+def test_reader_declines_without_raising(tmp_path, caplog):
     bare = tmp_path / "bare.npy"
     np.save(bare, np.zeros((8, 8)))  # no sidecar: no pixel size
     (tmp_path / "notes.json").write_text("{not json")
@@ -113,6 +114,16 @@ def test_reader_declines_without_raising(tmp_path):
     for path in (bare, tmp_path / "notes.npy", tmp_path / "picture.png", tmp_path / "missing.npy", tmp_path,
                  [str(bare), str(bare)], 42, None):
         assert _reader.get_reader(path if not isinstance(path, Path) else str(path)) is None
+    # The bare file is declined with the reason: its pixel size is missing (common practice, no source:
+    # a reader that refuses says why).
+    caplog.clear()
+    from napari.utils.notifications import notification_manager
+
+    before = len(notification_manager.records)
+    with caplog.at_level("WARNING", logger="napari_plugin._reader"):
+        assert _reader.get_reader(str(bare)) is None
+    assert "bare.npy" in caplog.text and "pixel size is missing" in caplog.text and "bare.json" in caplog.text
+    assert any("pixel size is missing" in str(n.message) for n in notification_manager.records[before:])
 
 
 def test_reader_lays_out_a_grid_along_bias(tmp_path):
@@ -158,15 +169,19 @@ def test_bundle_reader_makes_maps_labels_walls_and_defects(tmp_path):
     assert _reader.get_reader(str(path)) is not None
     assert _reader.get_reader(str(path / "summary.json")) is not None
     layers = {kw["name"]: (data, kw, kind) for data, kw, kind in _reader.get_reader(str(path))(str(path))}
-    suffix = " (result)"
+    suffix = ""
+    # This bundle has neither a topograph map nor an input file or scene to make one from.
     assert set(layers) == {name + suffix for name in (
-        "domains", "walls", "amplitude cdw_1", "phase cdw_1", "drift |u|", "twist angle", "defects")}
+        "domains", "walls", "amp cdw_1", "phase cdw_1", "drift |u|", "twist angle", "defects", "domain ids")}
     for data, kwargs, kind in layers.values():
         assert kwargs["scale"] == pytest.approx((0.05, 0.04))
         assert kwargs["units"] == ("nm", "nm")
     data, kwargs, kind = layers["domains" + suffix]
     assert kind == "labels" and data.dtype == np.int32
+    assert kwargs["metadata"]["domains"]["table"]["rows"] == [{"label": 1}, {"label": 2}]  # derived: the CSV
     np.testing.assert_array_equal(data, maps["labels"][0])
+    _, ids_kwargs, _ = layers["domain ids" + suffix]
+    assert sorted(ids_kwargs["features"]["domain"]) == [1, 2]  # derived: two domains, one id each
     data, kwargs, kind = layers["walls" + suffix]
     assert kind == "labels"
     np.testing.assert_array_equal(data.astype(bool), maps["walls"][0])
@@ -321,6 +336,13 @@ def test_analysis_widget_shows_an_analysis_over_its_layer(make_napari_viewer, sm
                        superlattice="3x3", sigma_nm=0.5)
     # Only layers with a bias are offered as maps, never the topograph itself.
     assert {layer.name for layer in widget._maps.choices} == {"CDW dI/dV -0.25 V", "CDW dI/dV +0.25 V"}
+    # A levelled copy of the topograph has a bias too, but it is no dI/dV map (common practice, no source).
+    from domains.level import level
+
+    _add(viewer, _reader.scan_layer_data(level(cdw.topography, order=1, lines="difference", warn=False),
+                                         name="CDW topography (levelled)"))
+    widget.reset_choices()
+    assert "CDW topography (levelled)" not in {layer.name for layer in widget._maps.choices}
     config = _widgets.analysis_config(order=widget._order.value, superlattice=widget._superlattice.value,
                                       sigma_nm=widget._sigma.value)
     assert (config.superlattice, config.sigma_nm) == ("3x3", 0.5)
@@ -329,7 +351,7 @@ def test_analysis_widget_shows_an_analysis_over_its_layer(make_napari_viewer, sm
     widget.show_analysis(analysis, viewer.layers["CDW topography"])
     suffix = " (CDW topography)"
     for name, kind in (("domains", napari.layers.Labels), ("walls", napari.layers.Labels),
-                       ("amplitude cdw_1", napari.layers.Image), ("phase cdw_1", napari.layers.Image),
+                       ("amp cdw_1", napari.layers.Image), ("phase cdw_1", napari.layers.Image),
                        ("defects", napari.layers.Points)):
         layer = viewer.layers[name + suffix]
         assert isinstance(layer, kind), name
@@ -371,9 +393,9 @@ def test_viewer_open_uses_the_reader(make_napari_viewer, tmp_path):
     path, _, _ = _write_small_bundle(tmp_path / "bundle")
     viewer = make_napari_viewer()
     added = viewer.open(str(path), plugin="cdw-domains")
-    assert {layer.name for layer in added} >= {"domains (bundle)", "walls (bundle)", "defects (bundle)"}
-    assert isinstance(viewer.layers["defects (bundle)"], napari.layers.Points)
-    np.testing.assert_allclose(viewer.layers["domains (bundle)"].scale, (0.05, 0.04))
+    assert {layer.name for layer in added} >= {"domains", "walls", "defects"}
+    assert isinstance(viewer.layers["defects"], napari.layers.Points)
+    np.testing.assert_allclose(viewer.layers["domains"].scale, (0.05, 0.04))
 
 
 def test_screenshot_of_the_cdw_scene_is_not_blank(make_napari_viewer, tmp_path):
@@ -391,6 +413,103 @@ def test_screenshot_of_the_cdw_scene_is_not_blank(make_napari_viewer, tmp_path):
     assert np.var(shot[..., :3].astype(float)) > 0
     iio.imwrite(tmp_path / "cdw_scene.png", shot)
     assert (tmp_path / "cdw_scene.png").stat().st_size > 0
+
+
+# --------------------------------------------------------------------------- a bundle, ready on open
+
+
+@pytest.fixture(scope="module")
+def demo_bundle(tmp_path_factory):
+    """The bundle of the built-in CDW demo (the whole pipeline: made once for this module)."""
+    from domains.pipeline import run_demo
+
+    report_path = run_demo(tmp_path_factory.mktemp("demo") / "b", scene="cdw", progress=False)
+    return report_path.parent
+
+
+def test_moire_sample_offers_no_topograph_as_a_map(make_napari_viewer):
+    viewer = make_napari_viewer()
+    try:
+        layers = _sample_data.moire_scene()
+    except NotImplementedError as err:  # the core may not provide this scene yet
+        assert "moire" in str(err)
+        return
+    for layer_data in layers:
+        _add(viewer, layer_data)
+    widget = AnalysisWidget(viewer)
+    widget.set_options(topography=layers[1][1]["name"])
+    # derived: the moiré scene has topographs only (raw and levelled), so no dI/dV map to offer
+    assert [layer.name for layer in widget._maps.choices] == []
+
+
+def test_bundle_opens_ready_to_read_and_the_table_selects_domains(make_napari_viewer, qtbot, demo_bundle):
+    import imageio.v3 as iio
+    from qtpy.QtCore import Qt
+
+    from domains.io import read_bundle
+
+    bundle = read_bundle(demo_bundle)
+    viewer = make_napari_viewer(show=True)
+    viewer.open(str(demo_bundle), plugin="cdw-domains")
+    names = [layer.name for layer in viewer.layers]
+    # Order, bottom first (common practice, no source: the image under its overlays).
+    assert names[0] == "topography"
+    assert names.index("topography") < names.index("domains") < names.index("walls")
+    assert names.index("walls") < names.index("defects")
+    components = [key for key, _ in bundle.maps["amplitude"].members()]
+    assert len(components) == 3  # derived: a 3x3 CDW of a triangular lattice has three wavevectors
+    for c in components:
+        assert f"amp {c}" in names and f"phase {c}" in names
+        assert not viewer.layers[f"amp {c}"].visible and not viewer.layers[f"phase {c}"].visible
+    for name in ("topography", "domains", "walls", "defects"):
+        assert viewer.layers[name].visible, name
+    # Short unique names without doubled words (common practice, no source).
+    assert len(set(names)) == len(names)
+    for name in names:
+        words = name.split()
+        assert len(words) == len(set(words)) and len(name) <= 16, name
+    # The topograph is the scene's (levelled), on the maps' grid.
+    topo = viewer.layers["topography"]
+    assert topo.data.shape == bundle.maps["labels"].shape
+    np.testing.assert_allclose(topo.scale, bundle.summary["input"]["pixel_size_nm"])
+    # The domains: translucent, in the shared palette, neighbours distinct; walls black.
+    domains_layer = viewer.layers["domains"]
+    assert domains_layer.opacity <= 0.5  # common practice, no source: the topograph shows through
+    labels = np.asarray(domains_layer.data)
+    expected = label_colours(labels)
+    for label, colour in expected.items():
+        np.testing.assert_allclose(domains_layer.colormap.map(label), rgba(colour), atol=1e-6)  # derived: palette
+    assert set(expected.values()) <= set(DOMAIN_PALETTE)
+    np.testing.assert_allclose(viewer.layers["walls"].colormap.map(1), rgba(WALL_COLOUR), atol=1e-6)
+
+    # The lock-in widget shows the sigma of the analysis, not an automatic one.
+    lockin = LockinWidget(viewer)
+    viewer.window.add_dock_widget(lockin, name="Lock-in")
+    lockin.reset_choices()
+    assert lockin._image.value is topo
+    # derived: summary.json sigma_nm, shown with the widget's 3 decimals
+    assert lockin.sigma_nm == pytest.approx(bundle.summary["sigma_nm"], abs=5e-4)
+    assert not lockin._auto.value
+
+    # The domains table lists domains.csv; a click on a row shows that domain alone.
+    table = DomainsTableWidget(viewer)
+    dock = viewer.window.add_dock_widget(table, name="Domains table", area="right")
+    qtbot.waitUntil(dock.isVisible, timeout=2000)
+    rows = bundle.tables["domains"]
+    assert table.table.rowCount() == len(rows)  # derived: one row per line of domains.csv
+    header = [table.table.horizontalHeaderItem(j).text() for j in range(table.table.columnCount())]
+    assert header == bundle.columns["domains"]
+    viewer.reset_view()
+    shot = viewer.screenshot(canvas_only=False, flash=False)
+    iio.imwrite("/tmp/viewer.png", shot)
+    assert np.var(shot[..., :3].astype(float)) > 0  # common practice, no source: not a blank picture
+    row = len(rows) - 1
+    item = table.table.item(row, 0)
+    table.table.scrollToItem(item)
+    qtbot.mouseClick(table.table.viewport(), Qt.MouseButton.LeftButton,
+                     pos=table.table.visualItemRect(item).center())
+    assert domains_layer.selected_label == rows[row]["domain"]  # derived: the clicked row's domain column
+    assert domains_layer.show_selected_label
 
 
 # --------------------------------------------------------------------------- the example

@@ -2,5 +2,6 @@
 
 from ._analysis import AnalysisWidget
 from ._lockin import LockinWidget
+from ._table import DomainsTableWidget
 
-__all__ = ["AnalysisWidget", "LockinWidget"]
+__all__ = ["AnalysisWidget", "DomainsTableWidget", "LockinWidget"]

@@ -94,8 +94,10 @@ class AnalysisWidget(Container):
 
     def _map_choices(self, widget=None):
         topo = self._topography.value if hasattr(self, "_topography") else None
+        # A map is a layer with a bias that is not a topograph (raw or levelled): only dI/dV and current maps.
         return [(layer.name, layer) for layer in self._image_layers()
-                if layer is not topo and layer.metadata.get(model.META_KEY, {}).get("bias_V") is not None]
+                if layer is not topo and layer.metadata.get(model.META_KEY, {}).get("bias_V") is not None
+                and layer.metadata.get(model.META_KEY, {}).get("channel") != "topography"]
 
     def run(self, *_) -> None:
         """Start the analysis in a worker thread with the current choices."""

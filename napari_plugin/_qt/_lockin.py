@@ -45,6 +45,8 @@ class LockinWidget(Container):
       and delete to remove one, drag to move it.
     - **σ (nm)**: lock-in width; with *automatic* ticked it follows
       :func:`domains.choose_sigma` for the picked q and the detected peaks.
+      Choosing a layer of an analysis (e.g. a bundle's topograph) sets the σ
+      that analysis used and unticks *automatic*.
     - **Demodulate**: ``domains.lockin`` at each picked q; adds or updates the
       layers ``amplitude qj (<image>)`` (2|A|) and ``phase qj (<image>)``
       (arg A) over the image, with its pixel size. Once made, they follow
@@ -83,6 +85,8 @@ class LockinWidget(Container):
         self._demod_button.changed.connect(self.demodulate)
         self._sigma.changed.connect(self._on_sigma_changed)
         self._auto.changed.connect(self._on_auto_changed)
+        self._image.changed.connect(self._on_image_changed)
+        self._on_image_changed(self._image.value)
         # napari connects reset_choices for docked widgets; this covers undocked use too.
         self._viewer.layers.events.inserted.connect(self.reset_choices)
         self._viewer.layers.events.removed.connect(self.reset_choices)
@@ -140,6 +144,20 @@ class LockinWidget(Container):
         return [(layer.name, layer) for layer in self._viewer.layers
                 if isinstance(layer, napari.layers.Image) and layer.ndim == 2 and not layer.rgb
                 and (layer.metadata or {}).get(model.META_KEY, {}).get("kind") not in ("lockin",)]
+
+    def _on_image_changed(self, layer=None) -> None:
+        """An image from an analysis (a bundle) brings the σ that analysis used, with "automatic" unticked."""
+        meta = (getattr(layer, "metadata", None) or {}).get(model.META_KEY) or {}
+        sigma = meta.get("analysis_sigma_nm")
+        if sigma is None or self._made:
+            return
+        self._setting_sigma = True
+        try:
+            self._auto.value = False
+            self._sigma.value = float(sigma)
+        finally:
+            self._setting_sigma = False
+        self._status.value = f"σ = {float(sigma):.3g} nm, as in the analysis of {layer.name}; Show spectrum next."
 
     def _ensure_spectrum_viewer(self) -> "napari.viewer.Viewer":
         if self._spectrum_viewer is None:

@@ -1,0 +1,168 @@
+"""The report: domain ids and colours on the map, integer count ticks, human table cells, curves with units.
+
+Every synthetic input is built here from arrays whose truth is known by construction.
+"""
+
+import re
+
+import numpy as np
+import pytest
+
+from domains import report
+from domains._palette import DEFECT_LABELS, DOMAIN_PALETTE, label_adjacency, label_colours
+
+
+def _checkerboard_labels(n_rows=3, n_cols=4, cell=12, wall=True):
+    """Rectangular domains 1..n_rows*n_cols in a grid of cells, with one-pixel walls (0) between them."""
+    labels = np.zeros((n_rows * cell, n_cols * cell), np.int32)
+    for i in range(n_rows):
+        for j in range(n_cols):
+            labels[i * cell:(i + 1) * cell, j * cell:(j + 1) * cell] = i * n_cols + j + 1
+    if wall:
+        labels[::cell, :] = 0
+        labels[:, ::cell] = 0
+        labels[0, :] = labels[1, :]  # the frame edge is not a wall
+        labels[:, 0] = labels[:, 1]
+    return labels
+
+
+def test_adjacency_of_a_grid_of_cells_across_walls():
+    labels = _checkerboard_labels()
+    graph = label_adjacency(labels)
+    # derived: cell (i, j) touches (i±1, j) and (i, j±1) across the one-pixel walls; diagonal cells meet
+    # only at a corner and count as neighbours only if the nearest-label fill makes them share an edge.
+    for i in range(3):
+        for j in range(4):
+            me = i * 4 + j + 1
+            for di, dj in ((1, 0), (-1, 0), (0, 1), (0, -1)):
+                if 0 <= i + di < 3 and 0 <= j + dj < 4:
+                    assert (i + di) * 4 + (j + dj) + 1 in graph[me]  # derived: edge-sharing cells
+            far = [(i + 2) * 4 + j + 1] if i + 2 < 3 else []
+            assert not set(far) & graph[me]  # derived: cells two rows apart never touch
+
+
+def test_colouring_is_proper_for_every_pair_of_adjacent_labels():
+    rng = np.random.default_rng(4)
+    # A Voronoi map of 40 random seeds: domains of irregular shape with many neighbours each.
+    seeds = rng.uniform(0, 120, size=(40, 2))
+    rows, cols = np.mgrid[0:120, 0:120]
+    distance = (rows[..., None] - seeds[:, 0]) ** 2 + (cols[..., None] - seeds[:, 1]) ** 2
+    labels = np.argmin(distance, axis=-1).astype(np.int32) + 1
+    colours = label_colours(labels)
+    # Adjacency counted directly on the label image (no wall here): horizontal and vertical pixel pairs.
+    pairs = set()
+    for a, b in ((labels[:, :-1], labels[:, 1:]), (labels[:-1, :], labels[1:, :])):
+        cut = a != b
+        pairs |= {tuple(sorted(p)) for p in zip(a[cut].tolist(), b[cut].tolist())}
+    assert len(pairs) > 40  # derived: a planar Voronoi map of 40 cells has more edges than cells
+    for p, q in pairs:
+        assert colours[p] != colours[q], (p, q)  # derived: a proper colouring of the adjacency graph
+    assert set(colours.values()) <= set(DOMAIN_PALETTE)  # common practice, no source: one shared palette
+
+
+def test_domain_figure_writes_one_id_per_domain_at_a_point_inside_it():
+    labels = _checkerboard_labels()
+    walls = labels == 0
+    pixel = 0.1
+    topo = np.sin(np.arange(labels.size).reshape(labels.shape) / 3.0)
+    defects = [{"x_nm": 1.2, "y_nm": 1.2, "winding": 1}, {"x_nm": 2.4, "y_nm": 1.2, "winding": -1}]
+    fig = report.domain_figure(topo, labels, walls, pixel_size_nm=pixel, defects=defects,
+                               states={1: "3x3 m=(0,0)"}, as_figure=True)
+    try:
+        ax = fig.axes[0]
+        ids = {t.get_text(): t.get_position() for t in ax.texts if (t.get_gid() or "").startswith("domain-id-")}
+        # derived: twelve cells, labelled 1..12, one text each
+        assert sorted(ids, key=int) == [str(v) for v in range(1, 13)]
+        for text, (x, y) in ids.items():
+            row, col = int(round(y / pixel)), int(round(x / pixel))
+            assert labels[row, col] == int(text)  # derived: the id sits inside its own domain
+        legend = [t.get_text() for t in ax.get_legend().get_texts()]
+        assert "1: 3x3 m=(0,0)" in legend  # derived: the state name given for domain 1
+        assert f"{DEFECT_LABELS[1]} (1)" in legend and f"{DEFECT_LABELS[-1]} (1)" in legend  # derived: one of each
+        assert "wall" in legend  # derived: the map has walls
+    finally:
+        import matplotlib.pyplot as plt
+
+        plt.close(fig)
+
+
+def test_label_position_of_a_non_convex_domain_falls_inside_it():
+    # An L-shaped domain: its centroid lies in the notch, outside the domain (derived: centroid of an L).
+    labels = np.full((40, 40), 2, np.int32)
+    labels[:, :10] = 1
+    labels[30:, :] = 1
+    x, y = report.domain_label_positions(labels, pixel_size_nm=1.0)[1]
+    assert labels[int(round(y)), int(round(x))] == 1  # derived: the label is placed inside the L
+
+
+def test_histogram_count_ticks_are_integers():
+    import matplotlib.pyplot as plt
+
+    for values in ([12.5, 30.1, 31.0], [1, 2, 2, 3, 3, 3]):
+        fig = report.histogram_figure(values, xlabel="area (nm²)", title="t", as_figure=True)
+        try:
+            ax = fig.axes[0]
+            fig.canvas.draw()
+            ticks = ax.get_yticks()
+            assert len(ticks) >= 2
+            assert np.allclose(ticks, np.round(ticks))  # derived: a count is a whole number
+            if all(float(v).is_integer() for v in values):
+                xticks = ax.get_xticks()
+                assert np.allclose(xticks, np.round(xticks))  # derived: the values themselves are counts
+        finally:
+            plt.close(fig)
+
+
+def test_tables_use_human_words_and_one_value_per_cell():
+    rows = [{"domain": 1, "touches_edge": True, "phase": [1.8, -1.6, -0.4], "width": None, "shift": -0.0},
+            {"domain": 2, "touches_edge": False, "phase": "0.0;119.4;-119.8", "width": float("nan"), "shift": -1e-9}]
+    page = report.html_table(["domain", "touches_edge", "phase", "width", "shift"], rows)
+    cells = re.findall(r"<td>(.*?)</td>", page)
+    # derived: the rows above, in words
+    assert cells == ["1", "yes", "1.8, -1.6, -0.4", "–", "0", "2", "no", "0, 119.4, -119.8", "–", "-1e-09"]
+    columns, split = report.split_list_columns(["domain", "phase"], rows)
+    assert columns == ["domain", "phase_1", "phase_2", "phase_3"]  # derived: three components
+    assert split[1]["phase_2"] == pytest.approx(119.4)  # derived: second packed value
+
+
+def test_rendered_report_has_no_python_words_or_negative_zero(tmp_path):
+    labels = _checkerboard_labels(2, 2)
+    png = report.domain_figure(np.zeros(labels.shape), labels, labels == 0, pixel_size_nm=0.2)
+    curves = [("domain 1", [-0.25, 0.25], [1.0, 1.0], [0.01, 0.01]),
+              ("domain 2", [-0.25, 0.25], [1.005, 0.995], [0.01, 0.01])]
+    (tmp_path / "figures").mkdir()
+    (tmp_path / "figures" / "domains.png").write_bytes(png)
+    (tmp_path / "figures" / "conductance.png").write_bytes(
+        report.curves_figure(curves, xlabel="bias (V)", ylabel="mean conductance", units="nS", title="t"))
+    summary = {"order_kind": "commensurate", "moire": None, "truth": {"flag": True, "other": False},
+               "phases_deg": [0.0, -0.0, 120.0], "offset": -0.00001, "zero": -0.0}
+    rows = [{"domain": 1, "touches_edge": True, "width_nm": None, "delta_phi_deg": "1.8;-1.6;-0.4", "x": -0.0}]
+    page = report.render_html(title="test", summary=summary, parameters={"sigma_nm": None, "flag": False},
+                              sections=[("Domains", [("domains", "Domains."), ("conductance", "Conductance."),
+                                                     (None, report.html_table(list(rows[0]), rows))])],
+                              headline={"domains": 4})
+    (tmp_path / "report.html").write_text(page, encoding="utf-8")
+    text = re.sub(r"<[^>]+>", " ", page)  # the words a reader sees
+    for word in (r"\bNone\b", r"\bTrue\b", r"\bFalse\b", r"\bnan\b", r"-0\.0000", r"-0(?![.\d])"):
+        assert not re.search(word, text), word  # common practice, no source: no Python words in a report
+    assert "1.8;-1.6" not in text  # derived: packed cells are split for reading
+    for name in re.findall(r"src='(figures/[^']+)'", page):
+        assert (tmp_path / name).read_bytes()[:4] == b"\x89PNG"  # derived: every figure the page names exists
+
+
+def test_curves_agreement_and_units():
+    import matplotlib.pyplot as plt
+
+    # derived: |1.00 - 1.01| = 0.01 < 2 * sqrt(0.01² + 0.01²) = 0.028, so the two curves agree
+    same = [("a", [0.1, 0.2], [1.00, 2.0], [0.01, 0.02]), ("b", [0.1, 0.2], [1.01, 2.0], [0.01, 0.02])]
+    assert not report.differs_within_errors(same)
+    # derived: |1.00 - 1.10| = 0.1 > 0.028
+    assert report.differs_within_errors(same + [("c", [0.1], [1.10], [0.01])])
+    fig = report.curves_figure(same, xlabel="bias (V)", ylabel="mean conductance", units="nS", title="t",
+                               as_figure=True)
+    try:
+        ax = fig.axes[0]
+        assert ax.get_ylabel() == "mean conductance (nS)"  # derived: the units given
+        assert any(t.get_gid() == "same-within-errors" for t in ax.texts)  # derived: the curves agree
+    finally:
+        plt.close(fig)
