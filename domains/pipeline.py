@@ -563,7 +563,8 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                                                limits=(-math.pi, math.pi),
                                                title=f"Phase of {names[0]}" + (" (drift-free, relative)" if kind == "commensurate" else ""),
                                                units="rad")
-        figures["domains"] = report.domain_figure(image, labels, walls, pixel_size_nm=pixel, defects=defects)
+        figures["domains"] = report.domain_figure(image, labels, walls, pixel_size_nm=pixel, defects=defects,
+                                                  states={r["domain"]: r["state"] for r in domain_rows})
         figures["areas"] = report.histogram_figure([r["area_nm2"] for r in domain_rows], xlabel="domain area (nm²)",
                                                    title=f"{len(domain_rows)} domains")
         sections.append(("Order and domains", [
@@ -576,6 +577,8 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         ]))
     else:
         bar("bias comparison and moiré", n=3)
+    # The image the labels belong to (levelled, drift-corrected), so a viewer shows the bundle on its own.
+    out_maps["topography"] = (np.asarray(fill, np.float32), {**attrs, "units": topography.metadata.get("units", "nm")})
     out_maps["labels"] = (labels.astype(np.int32), {**attrs, "units": "label"})
     out_maps["walls"] = (walls.astype(bool), {**attrs, "units": "bool"})
 
