@@ -13,6 +13,7 @@ import tempfile
 from pathlib import Path
 
 import numpy as np
+import pytest
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 from scipy import ndimage
@@ -96,7 +97,7 @@ def test_lockin_is_linear(case):
     # derived: the NaN pixels (too little valid weight) depend on the mask only, not on the image.
     assert np.array_equal(np.isfinite(combined), np.isfinite(parts))
     finite = np.isfinite(combined)
-    assert finite.any()
+    assert finite.any()  # common practice, no source: a mask never hides a whole 64 px frame from the filter
     # The normaliser of the normalised convolution, G * (valid pixels), zero outside the frame (METHODS §1);
     # rounding errors of the numerator are divided by it.
     valid = np.ones((rows, cols)) if mask is None else (~mask).astype(float)
@@ -143,7 +144,8 @@ def translation_case(draw):
 def test_translation_shifts_the_lockin_phase(case):
     n, pixel, sigma_px, m, (d_row, d_col), phi = case
     sigma_nm = sigma_px * pixel
-    assert sigma_px * aliased_distance(m, [-m[0], -m[1]], n) * 2 * np.pi / n >= 6.6  # the premise above
+    # derived: the premise stated in translation_case (aliased distance of -q from q, in units of 1 / sigma).
+    assert sigma_px * aliased_distance(m, [-m[0], -m[1]], n) * 2 * np.pi / n >= 6.6
     q = 2 * np.pi * np.array(m, dtype=float) / (n * pixel)  # (qx, qy): m[0] periods along x, m[1] along y
     y, x = np.mgrid[:n, :n] * pixel
     image = np.cos(q[0] * x + q[1] * y + phi)
@@ -154,7 +156,7 @@ def test_translation_shifts_the_lockin_phase(case):
     # exp(-4.5^2 / 2) / (sqrt(2 pi) sigma dk) < 3e-6 of its amplitude for sigma dk >= 6.6 (derived: Gaussian
     # tail at a straight edge).
     inside = trusted_mask((n, n), sigma_nm=sigma_nm, pixel_size_nm=pixel, margin_sigma=4.5)
-    assert inside.sum() > 0
+    assert inside.sum() > 0  # derived: 4.5 sigma <= 18 px from each edge of a >= 96 px frame leaves pixels
     d_nm = np.array([d_col * pixel, d_row * pixel])  # (x, y) of the shift
     change = wrap(phase(after) - phase(before) + q @ d_nm)
     # derived: I'(r) = I(r - d) turns cos(q.r + phi) into cos(q.r + phi - q.d), so arg A shifts by -q.d
@@ -487,26 +489,22 @@ def invalid_config(draw):
     return name, table
 
 
-_folders = []
-
-
-def _topography_folder():
-    """A tiny valid topography (a 3x3 CDW-like pattern, 48 px) written once for the command-line checks."""
-    if not _folders:
-        folder = Path(tempfile.mkdtemp(prefix="props-cli-"))
-        y, x = np.mgrid[:48, :48] * 0.1
-        image = sum(np.cos(6.0 * (np.cos(t) * x + np.sin(t) * y)) for t in (0.2, 0.2 + 2 * np.pi / 3, 0.2 + 4 * np.pi / 3))
-        np.save(folder / "topo.npy", image.astype(np.float32))
-        (folder / "topo.json").write_text(json.dumps({"pixel_size_nm": 0.1}), encoding="utf-8")
-        _folders.append(folder)
-    return _folders[0]
+@pytest.fixture(scope="module")
+def topography(tmp_path_factory):
+    """A tiny valid topography (three waves 120 degrees apart, 48 px, with its sidecar) for the command line."""
+    folder = tmp_path_factory.mktemp("props-cli")
+    y, x = np.mgrid[:48, :48] * 0.1
+    angles = (0.2, 0.2 + 2 * np.pi / 3, 0.2 + 4 * np.pi / 3)
+    image = sum(np.cos(6.0 * (np.cos(t) * x + np.sin(t) * y)) for t in angles)
+    np.save(folder / "topo.npy", image.astype(np.float32))
+    (folder / "topo.json").write_text(json.dumps({"pixel_size_nm": 0.1}), encoding="utf-8")
+    return folder / "topo.npy"
 
 
 @reproducible(200)
 @given(invalid_config())
-def test_invalid_config_exits_2_with_one_line(case):
+def test_invalid_config_exits_2_with_one_line(topography, case):
     name, table = case
-    topography = _topography_folder() / "topo.npy"
     with tempfile.TemporaryDirectory() as folder:
         config_path = Path(folder) / "bad.toml"
         config_path.write_text(toml_text(table), encoding="utf-8")
@@ -556,11 +554,11 @@ def invalid_sidecar(draw):
 
 @reproducible(60)
 @given(invalid_sidecar())
-def test_invalid_sidecar_exits_2_with_one_line(case):
+def test_invalid_sidecar_exits_2_with_one_line(topography, case):
     name, sidecar = case
     with tempfile.TemporaryDirectory() as folder:
         image = Path(folder) / "topo.npy"
-        np.save(image, np.load(_topography_folder() / "topo.npy"))
+        np.save(image, np.load(topography))
         (Path(folder) / "topo.json").write_text(json.dumps(sidecar), encoding="utf-8")
         stderr, stdout = io.StringIO(), io.StringIO()
         with contextlib.redirect_stderr(stderr), contextlib.redirect_stdout(stdout):
