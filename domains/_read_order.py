@@ -354,8 +354,10 @@ def _is_mixing_set(s, t, u, q, bin_q):
         b = c["basis"]
         pts.append(np.array([h * b[0] + k * b[1] for h in range(-2, 3) for k in range(-2, 3)]))
     sums = (pts[0][:, None, :] + pts[1][None, :, :]).reshape(-1, 2)
+    # Peaks split by a tip change or creep sit up to their sets' closure misfit off: allow for it.
+    tol = (2 + t["closure"] + u["closure"]) * bin_q
     for m in s["idx"]:
-        if min(np.min(np.hypot(*(sums - q[m]).T)), np.min(np.hypot(*(sums + q[m]).T))) > 2 * bin_q:
+        if min(np.min(np.hypot(*(sums - q[m]).T)), np.min(np.hypot(*(sums + q[m]).T))) > tol:
             return False
     return True
 
@@ -440,6 +442,16 @@ def find_lattice(peaks, *, shape, pixel_size_nm, given=None, a_nm=None, max_atom
     for c in cands:
         g = math.sqrt(c["area"] / (math.sqrt(3) / 2)) if c["kind"] == "hexagonal" else math.sqrt(c["area"])
         c["a"] = 4 * math.pi / (math.sqrt(3) * g) if c["kind"] == "hexagonal" else 2 * math.pi / g
+    if cands:
+        # A set a thousand times weaker (in power) than the strongest regular one is a product of two
+        # weak terms (mixing), not atoms: a CDW up to ~30 times the atomic corrugation keeps its Bragg
+        # peaks above this floor (derived: 31.6^2 = 1000).
+        top = max(c["power"] for c in cands)
+        faint = [c for c in cands if c["power"] < 1e-3 * top]
+        if faint:
+            reasons.append(f"{len(faint)} closed set(s) of peaks are over 1000 times weaker than the strongest: "
+                           "not lattices")
+            cands = [c for c in cands if c["power"] >= 1e-3 * top]
     keep = [c for c in cands if not any(_is_harmonic_set(c, f, q, power, bin_q) for f in cands)]
     if len(keep) < len(cands):
         reasons.append(f"{len(cands) - len(keep)} complete set(s) of peaks are harmonics of a much stronger finer set")
