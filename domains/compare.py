@@ -1418,3 +1418,504 @@ def _json_float(value):
         return None
     value = float(value)
     return value if math.isfinite(value) else None
+
+
+# --------------------------------------------------------------------------- electronic contrast and types
+
+NORMALISATIONS = ("frame", "setpoint", "none")
+
+#: Significance level of the electronic-type tests (the family-wise false-alarm rate of
+#: reporting a second type on a scene with one). A judgement (common practice, no source).
+TYPES_ALPHA = 0.01
+
+#: A network of wall differences whose chi-square has a p-value below this is inconsistent
+#: (a multiplicative tip change, a setpoint error): its errors are scaled by the Birge ratio.
+BIRGE_ALPHA = 0.05
+
+
+def _sparse_norm2(rows, cols, weights, shape, sigma_px, pad):
+    """sum over pixels of (K * w)^2, w given by pixel indices and weights, K a unit-sum Gaussian of ``sigma_px``."""
+    r0, r1 = max(int(rows.min()) - pad, 0), min(int(rows.max()) + pad + 1, shape[0])
+    c0, c1 = max(int(cols.min()) - pad, 0), min(int(cols.max()) + pad + 1, shape[1])
+    w = np.zeros((r1 - r0, c1 - c0))
+    np.add.at(w, (rows - r0, cols - c0), weights)
+    f = ndimage.gaussian_filter(w, sigma_px, mode="constant", truncate=4.0)
+    return float(np.sum(f * f))
+
+
+def _kernel_norm2(sigma_px):
+    """sum K^2 of the discrete unit-sum Gaussian (about 1 / (4 pi sigma_y sigma_x) in pixels; derived)."""
+    half = int(math.ceil(4 * max(sigma_px))) + 1
+    delta = np.zeros((2 * half + 1, 2 * half + 1))
+    delta[half, half] = 1.0
+    return float(np.sum(ndimage.gaussian_filter(delta, sigma_px, mode="constant", truncate=4.0) ** 2))
+
+
+def _neighbour_pairs(labels, gap_px, min_contact):
+    """Pairs (a, b), a < b, of domains that touch or face each other across a wall of at most ``gap_px`` pixels."""
+    counts = {}
+    for s in range(1, gap_px + 2):
+        for a, b in ((labels[:, :-s], labels[:, s:]), (labels[:-s], labels[s:])):
+            edge = (a != b) & (a > 0) & (b > 0)
+            if not edge.any():
+                continue
+            lo, hi = np.minimum(a[edge], b[edge]), np.maximum(a[edge], b[edge])
+            keys, n = np.unique(lo * (labels.max() + 1) + hi, return_counts=True)
+            for key, c in zip(keys.tolist(), n.tolist()):
+                counts[key] = counts.get(key, 0) + c
+    base = int(labels.max()) + 1
+    return sorted((k // base, k % base) for k, c in counts.items() if c / (gap_px + 1) >= min_contact)
+
+
+@dataclass(frozen=True, eq=False)
+class ContrastSet:
+    """Per-domain values of one quantity (mean conductance or order amplitude) at every bias, with errors.
+
+    Attributes
+    ----------
+    quantity : str
+        "conductance" or "amplitude".
+    mean, mean_se : ndarray (n_biases, n_domains)
+        Mean over the domain's interior and its standard error.
+    frame, frame_se : ndarray (n_biases, n_domains)
+        Mean minus the area-weighted mean of all domains (contrast relative to the frame).
+    contrast, contrast_se : ndarray (n_biases, n_domains)
+        Contrast relative to the frame solved from the wall differences alone (robust to
+        offsets that change from scan line to scan line); area-weighted mean zero.
+    cov : ndarray (n_biases, n_domains, n_domains)
+        Covariance of ``contrast``.
+    birge : ndarray (n_biases,)
+        Factor applied to the errors of ``contrast`` (1 when the wall network is consistent).
+    network_chi2, network_dof : ndarray (n_biases,)
+        Chi-square of the wall differences about the solution, and its degrees of freedom.
+    noise : ndarray (n_biases,)
+        Robust pixel scatter of the smoothed field (1.4826 MAD about each domain's median).
+    pairs : tuple of (int, int)
+        Neighbouring domains (a < b).
+    wall_delta, wall_se : ndarray (n_biases, n_pairs)
+        Local difference a - b in a band either side of the wall, and its error.
+    wall_row_matched : ndarray of bool (n_pairs,)
+        Whether the difference was taken row by row (else band mean against band mean).
+    """
+
+    quantity: str
+    mean: np.ndarray
+    mean_se: np.ndarray
+    frame: np.ndarray
+    frame_se: np.ndarray
+    contrast: np.ndarray
+    contrast_se: np.ndarray
+    cov: np.ndarray
+    birge: np.ndarray
+    network_chi2: np.ndarray
+    network_dof: np.ndarray
+    noise: np.ndarray
+    pairs: tuple
+    wall_delta: np.ndarray
+    wall_se: np.ndarray
+    wall_row_matched: np.ndarray
+
+
+@dataclass(frozen=True, eq=False)
+class ElectronicContrast:
+    """Per-domain contrast of conductance maps (and order amplitude) at several biases, with errors.
+
+    Built by :func:`domain_electronic_contrast`. ``units`` are the maps' units after the
+    normalisation (``unit_token`` is the form used in column headers).
+    """
+
+    biases_V: tuple
+    domains: tuple
+    area_nm2: np.ndarray
+    units: str
+    unit_token: str
+    normalisation: str
+    normalisation_note: str
+    scale: tuple
+    sigma_nm: float
+    conductance: ContrastSet
+    amplitude: ContrastSet | None = None
+
+    def sets(self):
+        """The quantities present: conductance, then the order amplitude if computed."""
+        return [s for s in (self.conductance, self.amplitude) if s is not None]
+
+    def rows(self) -> list[dict]:
+        """One row per domain and bias for ``contrast.csv``, one value per cell, units in the headers."""
+        u = self.unit_token
+        out = []
+        for i, d in enumerate(self.domains):
+            for k, b in enumerate(self.biases_V):
+                row = {"domain": int(d), "bias_V": float(b), "area_nm2": float(self.area_nm2[i])}
+                for s in self.sets():
+                    p = "" if s.quantity == "conductance" else "amplitude_"
+                    row[f"{p}mean_{u}"] = _json_float(s.mean[k, i])
+                    row[f"{p}mean_{u}_se"] = _json_float(s.mean_se[k, i])
+                    row[f"{p}contrast_{u}"] = _json_float(s.contrast[k, i])
+                    row[f"{p}contrast_{u}_se"] = _json_float(s.contrast_se[k, i])
+                    row[f"{p}frame_contrast_{u}"] = _json_float(s.frame[k, i])
+                    row[f"{p}frame_contrast_{u}_se"] = _json_float(s.frame_se[k, i])
+                out.append(row)
+        return out
+
+    def wall_rows(self) -> list[dict]:
+        """One row per pair of neighbouring domains, bias and quantity: the local difference across the wall."""
+        u = self.unit_token
+        out = []
+        for s in self.sets():
+            for m, (a, b) in enumerate(s.pairs):
+                for k, bias in enumerate(self.biases_V):
+                    delta, se = float(s.wall_delta[k, m]), float(s.wall_se[k, m])
+                    z = delta / se if se > 0 else float("nan")
+                    out.append({"quantity": s.quantity, "domain_a": int(a), "domain_b": int(b), "bias_V": float(bias),
+                                f"difference_{u}": _json_float(delta), f"difference_{u}_se": _json_float(se),
+                                "z": _json_float(z),
+                                "p": _json_float(2 * stats.norm.sf(abs(z)) if math.isfinite(z) else float("nan")),
+                                "row_matched": bool(s.wall_row_matched[m])})
+        return out
+
+    def to_summary(self) -> dict:
+        """JSON-ready summary: normalisation, units, and per quantity the network consistency per bias."""
+        return {
+            "biases_V": [float(b) for b in self.biases_V], "domains": [int(d) for d in self.domains],
+            "units": self.units, "normalisation": self.normalisation, "normalisation_note": self.normalisation_note,
+            "scale": [float(s) for s in self.scale], "sigma_nm": float(self.sigma_nm),
+            "quantities": {s.quantity: {"birge_ratio": [float(v) for v in s.birge],
+                                        "network_chi2": [_json_float(v) for v in s.network_chi2],
+                                        "network_dof": [int(v) for v in s.network_dof],
+                                        "noise": [_json_float(v) for v in s.noise],
+                                        "n_walls": len(s.pairs)} for s in self.sets()},
+        }
+
+
+def _setpoint_list(setpoints_A, maps_in_order, biases):
+    """Setpoint per bias from a dict {bias: A} or a sequence in the order of ``maps``."""
+    if setpoints_A is None:
+        raise InputError("normalisation = 'setpoint' needs setpoints_A (one setpoint current in A per map), got None")
+    if isinstance(setpoints_A, dict):
+        try:
+            given = {float(k): v for k, v in setpoints_A.items()}
+        except (TypeError, ValueError):
+            raise InputError(f"setpoints_A keys must be biases in V, got {list(setpoints_A)!r}") from None
+    else:
+        values = list(np.ravel(np.asarray(setpoints_A, dtype=object)))
+        if len(values) != len(maps_in_order):
+            raise InputError(f"setpoints_A must hold one setpoint per map ({len(maps_in_order)}), got {len(values)}")
+        given = dict(zip(maps_in_order, values))
+    out = []
+    for b in biases:
+        v = given.get(b)
+        try:
+            v = float(v)
+        except (TypeError, ValueError):
+            v = float("nan")
+        if not (math.isfinite(v) and v > 0):
+            raise InputError(f"setpoints_A must give a positive current in A for the map at {b:g} V, "
+                             f"got {given.get(b)!r}")
+        out.append(v)
+    return out
+
+
+def _region_stats(field, weights_of, norm2, kernel_norm2, noise):
+    """Weighted sums of ``field`` and their errors: var = noise^2 sum (K*w)^2 / sum K^2 (derived)."""
+    values = np.array([float(np.sum(field[r, c] * w)) for r, c, w in weights_of])
+    se = noise * np.sqrt(np.asarray(norm2) / kernel_norm2)
+    return values, se
+
+
+def _solve_network(pairs, delta, se, area, frame, frame_var):
+    """Contrasts mu (area-weighted mean zero per connected component) from wall differences mu_a - mu_b.
+
+    Weighted least squares with one linear constraint per connected component of the
+    wall graph (its area-weighted mean equals that of the frame contrasts), solved
+    through the KKT system; the covariance is M H M with M the top-left block of the
+    inverse KKT matrix and H = A^T W A (derived; Lawson & Hanson, Solving Least Squares
+    Problems, 1974, ch. 20; from memory).
+    """
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    n = len(area)
+    m = len(pairs)
+    if m:
+        ia = np.array([p[0] for p in pairs])
+        ib = np.array([p[1] for p in pairs])
+        graph = coo_matrix((np.ones(m), (ia, ib)), shape=(n, n))
+        ncomp, comp = connected_components(graph, directed=False)
+    else:
+        ncomp, comp = n, np.arange(n)
+    A = np.zeros((m, n))
+    if m:
+        A[np.arange(m), ia] = 1.0
+        A[np.arange(m), ib] = -1.0
+    ok = np.isfinite(delta) & np.isfinite(se) & (se > 0)
+    W = np.where(ok, 1.0 / np.where(ok, se, 1.0) ** 2, 0.0)
+    d = np.where(ok, delta, 0.0)
+    H = A.T @ (W[:, None] * A)
+    C = np.zeros((ncomp, n))
+    e = np.zeros(ncomp)
+    cvar = np.zeros((ncomp, n))
+    for c in range(ncomp):
+        members = comp == c
+        wts = area * members / area[members].sum()
+        C[c] = wts
+        e[c] = float(np.sum(wts * frame))
+        cvar[c] = wts
+    K = np.block([[H, C.T], [C, np.zeros((ncomp, ncomp))]])
+    Kinv = np.linalg.pinv(K, rcond=1e-12)
+    M, N = Kinv[:n, :n], Kinv[:n, n:]
+    mu = M @ (A.T @ (W * d)) + N @ e
+    cov = M @ H @ M.T
+    if ncomp > 1:
+        # The constraint values come from the frame contrasts (independent domain means): add their variance.
+        ecov = (cvar * frame_var[None, :]) @ cvar.T
+        cov = cov + N @ ecov @ N.T
+    resid = (A @ mu - d) * np.sqrt(W)
+    chi2 = float(np.sum(resid[ok] ** 2))
+    dof = int(ok.sum()) - (n - ncomp)
+    birge = 1.0
+    if dof > 0 and stats.chi2.sf(chi2, dof) < BIRGE_ALPHA:
+        birge = math.sqrt(chi2 / dof)
+        cov = cov * birge**2
+    return mu, cov, birge, chi2, dof
+
+
+def _contrast_set(quantity, fields, interior, ids, area, domain_w, wall_w, pairs, row_matched, kernel_norm2,
+                  dom_norm2, wall_norm2):
+    nb, nd, nw = len(fields), len(ids), len(pairs)
+    out = {k: np.full((nb, nd), np.nan) for k in ("mean", "mean_se", "frame", "frame_se", "contrast", "contrast_se")}
+    cov = np.full((nb, nd, nd), np.nan)
+    birge, chi2, dof, noise = np.ones(nb), np.full(nb, np.nan), np.zeros(nb, int), np.full(nb, np.nan)
+    wd, ws = np.full((nb, nw), np.nan), np.full((nb, nw), np.nan)
+    flat = interior.ravel()
+    sel = flat > 0
+    frac = area / area.sum()
+    for k, f in enumerate(fields):
+        v = f.ravel()[sel]
+        lab = flat[sel]
+        med = np.zeros(int(flat.max()) + 1)
+        for d in ids:
+            med[d] = np.median(v[lab == d])
+        noise[k] = 1.4826 * float(np.median(np.abs(v - med[lab])))  # robust std (common practice, no source)
+        mean, mean_se = _region_stats(f, domain_w, dom_norm2, kernel_norm2, noise[k])
+        frame_mean = float(np.sum(frac * mean))
+        fr = mean - frame_mean
+        var = mean_se**2
+        fr_var = var * (1 - frac) ** 2 + (np.sum(frac**2 * var) - frac**2 * var)
+        delta, dse = _region_stats(f, wall_w, wall_norm2, kernel_norm2, noise[k]) if nw else (np.zeros(0), np.zeros(0))
+        mu, cv, birge[k], chi2[k], dof[k] = _solve_network(pairs, delta, dse, area, fr, var)
+        out["mean"][k], out["mean_se"][k] = mean, mean_se
+        out["frame"][k], out["frame_se"][k] = fr, np.sqrt(fr_var)
+        out["contrast"][k], out["contrast_se"][k] = mu, np.sqrt(np.clip(np.diag(cv), 0, None))
+        cov[k] = cv
+        wd[k], ws[k] = delta, dse
+    index = {d: i for i, d in enumerate(ids)}
+    return ContrastSet(quantity, out["mean"], out["mean_se"], out["frame"], out["frame_se"], out["contrast"],
+                       out["contrast_se"], cov, birge, chi2, dof, noise,
+                       tuple((int(ids[a]), int(ids[b])) for a, b in pairs), wd, ws, np.asarray(row_matched, bool))
+
+
+def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="nS", mask=None, normalisation="frame",
+                               setpoints_A=None, q=None, margin_sigma=3.5, band_sigma=3.0):
+    """Per-domain conductance (and order amplitude) at each bias, relative to the frame and across each wall.
+
+    Each map is first normalised (``normalisation``): "frame" divides it by its frame
+    mean (values in % of the frame mean), "setpoint" multiplies it by I_ref / I_map so
+    that every map refers to the setpoint current of the lowest-bias map (a
+    constant-current dI/dV map scales with the setpoint current; common practice, no
+    source), "none" leaves it. It is then smoothed by the unit-sum Gaussian of
+    ``sigma_nm`` (which removes the CDW and atomic modulation when sigma |Q| >~ 3,
+    METHODS §1).
+
+    - **Domain mean**: over the domain's interior (``margin_sigma`` sigma from other
+      labels, walls, masks and the edge).
+    - **Wall difference** between neighbours a and b: pixels of a's interior within
+      (``margin_sigma`` + ``band_sigma``) sigma of b, against those of b near a, taken row by
+      row (scan line by scan line), so any offset that depends only on the scan line (a
+      tip change, a slow drift of the tip between lines) cancels; walls nearly along the
+      rows (less than one correlation length 2 sqrt(pi) sigma of shared rows) use band
+      means instead.
+    - **Contrast** of each domain relative to the frame: the weighted least-squares
+      solution of the network of wall differences mu_a - mu_b, area-weighted mean zero;
+      if the network is inconsistent (chi-square p < ``BIRGE_ALPHA``) its errors are
+      scaled by the Birge ratio sqrt(chi2/dof) [2]_. ``frame`` is the plain mean minus the
+      frame mean, which a tip change biases.
+    - **Errors**: a weighted sum sum w F of the smoothed field F = K * g has
+      variance s_w^2 sum (K * w)^2 for white noise of pixel variance s_w^2, and the scatter
+      of F is s_F^2 = s_w^2 sum K^2, so var = s_F^2 sum (K * w)^2 / sum K^2 (derived). For a
+      region of area S much larger than sigma^2 this is s_F^2 4 pi sigma^2 / S: one
+      independent sigma-patch per 4 pi sigma^2 (derived: the autocorrelation of
+      Gaussian-smoothed white noise is exp(-r^2 / 4 sigma^2)). s_F is the pooled robust
+      scatter (1.4826 MAD) of F about each domain's median.
+    - **Order amplitude** (with ``q``): the lock-in amplitude sqrt(sum_j (2|A_j|)^2) [1]_
+      of the normalised map, treated with the same estimators (it is already smooth on
+      the scale sigma).
+
+    Parameters
+    ----------
+    maps : dict {bias_V: (row, col) array or Scan}
+        Maps (e.g. dI/dV) on the labels' pixel grid, drift-corrected like the topograph.
+    labels : (row, col) int array
+        0 = wall or unassigned, 1..N domains.
+    pixel_size_nm : float or (float, float)
+        Pixel size, nm.
+    sigma_nm : float
+        Smoothing (and lock-in) width, nm.
+    units : str
+        Units of the maps (the sidecar's ``units``, e.g. "nS").
+    mask : (row, col) bool array, optional
+        True where pixels are untrusted.
+    normalisation : {"frame", "setpoint", "none"}
+        How maps taken at different times are put on one scale.
+    setpoints_A : dict {bias_V: A} or sequence, optional
+        Setpoint current of each map (needed for "setpoint"), a sequence in the order of ``maps``.
+    q : (k, 2) array_like, optional
+        Order wavevectors (qx, qy), rad/nm: adds the order amplitude.
+    margin_sigma, band_sigma : float
+        Interior margin and width of the band beside each wall, in units of sigma.
+
+    Returns
+    -------
+    ElectronicContrast
+
+    Raises
+    ------
+    InputError
+        Bad maps, labels, normalisation or setpoints.
+
+    References
+    ----------
+    .. [1] J. A. Slezak et al., PNAS 105, 3203 (2008). doi:10.1073/pnas.0706795105
+    .. [2] R. T. Birge, Phys. Rev. 40, 207 (1932). doi:10.1103/PhysRev.40.207
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> labels = np.ones((96, 96), np.int32); labels[:, 48:] = 2
+    >>> noise = np.random.default_rng(0).normal(0, 0.05, (2, 96, 96))
+    >>> maps = {-0.3: 1.0 + 0.2 * (labels == 1) + noise[0], 0.3: 1.0 - 0.1 * (labels == 1) + noise[1]}
+    >>> c = domain_electronic_contrast(maps, labels, pixel_size_nm=0.1, sigma_nm=0.4, normalisation="none")
+    >>> np.round(c.conductance.wall_delta[:, 0], 2).tolist(), c.conductance.pairs
+    ([0.2, -0.1], ((1, 2),))
+    """
+    pixel = pixel_size_pair(pixel_size_nm)
+    dy, dx = pixel
+    sigma_nm = positive(sigma_nm, "sigma_nm")
+    margin_sigma = positive(margin_sigma, "margin_sigma")
+    band_sigma = positive(band_sigma, "band_sigma")
+    if normalisation not in NORMALISATIONS:
+        raise InputError(f"normalisation must be one of {', '.join(NORMALISATIONS)}, got {normalisation!r}")
+    if not isinstance(units, str) or not units.strip():
+        raise InputError(f"units must be a non-empty string (the maps' units, e.g. 'nS'), got {units!r}")
+    labels_in = np.asarray(labels)
+    maps = _check_maps(maps, labels_in.shape, pixel, like="the labels")
+    labels = _labels(labels_in, labels_in.shape)
+    given_order = list(maps)
+    biases = sorted(maps)
+    bad = _mask(mask, labels.shape)
+    for image in maps.values():
+        bad |= ~np.isfinite(image)
+    if q is not None:
+        q = _q(q)
+    ids = np.unique(labels[labels > 0])
+    if ids.size < 1:
+        raise InputError("labels hold no domain (every pixel is 0)")
+
+    # Normalisation.
+    if normalisation == "setpoint":
+        setpoints = _setpoint_list(setpoints_A, given_order, biases)
+        scale = [setpoints[0] / s for s in setpoints]
+        note = (f"each map scaled by I_ref / I_map to the setpoint {setpoints[0]:.3g} A of the map at "
+                f"{biases[0]:+.2f} V")
+        shown_units, token = units, units
+    elif normalisation == "frame":
+        scale = []
+        for b in biases:
+            m = float(np.mean(maps[b][~bad])) if (~bad).any() else float("nan")
+            if not (math.isfinite(m) and m != 0):
+                raise InputError(f"normalisation = 'frame' needs a nonzero frame mean; the map at {b:g} V has {m!r}")
+            scale.append(100.0 / m)
+        note = "each map divided by its frame mean (values in % of the frame mean)"
+        shown_units, token = f"% of frame mean ({units})", "pct"
+    else:
+        scale = [1.0] * len(biases)
+        note = "maps used as recorded (no normalisation)"
+        shown_units, token = units, units
+    token = "".join(ch if ch.isalnum() else "_" for ch in token).strip("_") or "value"
+
+    interior = _interior_labels(labels, sigma_nm=sigma_nm, pixel_size=pixel, mask=bad, margin_sigma=margin_sigma)
+    missing = [int(d) for d in ids if not np.any(interior == d)]
+    if missing:
+        ids = np.array([d for d in ids if d not in missing])
+        if ids.size < 1:
+            raise InputError(f"no domain has an interior {margin_sigma:g} sigma from its walls "
+                             f"(sigma_nm = {sigma_nm:g}); use a smaller sigma_nm")
+    area = np.bincount(labels.ravel(), minlength=int(labels.max()) + 1)[ids] * dy * dx
+    sigma_px = (sigma_nm / dy, sigma_nm / dx)
+    pad = int(math.ceil(4 * max(sigma_px))) + 1
+    kn2 = _kernel_norm2(sigma_px)
+
+    # Domain estimators: the mean over the interior.
+    domain_w, dom_norm2 = [], []
+    for d in ids:
+        r, c = np.nonzero(interior == d)
+        w = np.full(r.size, 1.0 / r.size)
+        domain_w.append((r, c, w))
+        dom_norm2.append(_sparse_norm2(r, c, w, labels.shape, sigma_px, pad))
+
+    # Wall estimators: row-matched band differences.
+    index = {int(d): i for i, d in enumerate(ids)}
+    gap = max(2, int(math.ceil(sigma_nm / min(dy, dx))))
+    candidates = [(a, b) for a, b in _neighbour_pairs(labels, gap, min_contact=sigma_nm / min(dy, dx))
+                  if a in index and b in index]
+    reach = (margin_sigma + band_sigma) * sigma_nm
+    min_rows = 2 * math.sqrt(math.pi) * sigma_nm / dy
+    pairs, wall_w, wall_norm2, row_matched = [], [], [], []
+    for a, b in candidates:
+        both = (labels == a) | (labels == b)
+        rr, cc = np.nonzero(both)
+        extra = int(math.ceil(reach / min(dy, dx))) + 2
+        r0, r1 = max(rr.min() - extra, 0), min(rr.max() + extra + 1, labels.shape[0])
+        c0, c1 = max(cc.min() - extra, 0), min(cc.max() + extra + 1, labels.shape[1])
+        lab = labels[r0:r1, c0:c1]
+        inner = interior[r0:r1, c0:c1]
+        near_b = ndimage.distance_transform_edt(lab != b, sampling=pixel) <= reach
+        near_a = ndimage.distance_transform_edt(lab != a, sampling=pixel) <= reach
+        band_a, band_b = (inner == a) & near_b, (inner == b) & near_a
+        if not band_a.any() or not band_b.any():
+            continue
+        ra, ca = np.nonzero(band_a)
+        rb, cb = np.nonzero(band_b)
+        shared = np.intersect1d(ra, rb)
+        if shared.size >= min_rows:
+            keep_a, keep_b = np.isin(ra, shared), np.isin(rb, shared)
+            ra, ca, rb, cb = ra[keep_a], ca[keep_a], rb[keep_b], cb[keep_b]
+            na = np.bincount(ra, minlength=lab.shape[0])
+            nbb = np.bincount(rb, minlength=lab.shape[0])
+            wa = 1.0 / (shared.size * na[ra])
+            wb = -1.0 / (shared.size * nbb[rb])
+            matched = True
+        else:
+            wa, wb = np.full(ra.size, 1.0 / ra.size), np.full(rb.size, -1.0 / rb.size)
+            matched = False
+        r = np.concatenate([ra, rb]) + r0
+        c = np.concatenate([ca, cb]) + c0
+        w = np.concatenate([wa, wb])
+        pairs.append((index[a], index[b]))
+        wall_w.append((r, c, w))
+        wall_norm2.append(_sparse_norm2(r, c, w, labels.shape, sigma_px, pad))
+        row_matched.append(matched)
+
+    # Fields: the smoothed normalised map, and the order amplitude.
+    cond_fields, amp_fields = [], []
+    for b, s in zip(biases, scale):
+        image = _fill_invalid(maps[b] * s, bad)
+        cond_fields.append(ndimage.gaussian_filter(image, sigma_px, mode="reflect", truncate=4.0))
+        if q is not None:
+            a = lockin(image, q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=bad)
+            amp_fields.append(np.sqrt(np.sum((2 * np.abs(a)) ** 2, axis=0)))
+    args = (interior, ids, area, domain_w, wall_w, pairs, row_matched, kn2, dom_norm2, wall_norm2)
+    conductance = _contrast_set("conductance", cond_fields, *args)
+    amplitude = _contrast_set("amplitude", amp_fields, *args) if q is not None else None
+    return ElectronicContrast(tuple(float(b) for b in biases), tuple(int(d) for d in ids), area, shown_units, token,
+                              normalisation, note, tuple(float(s) for s in scale), sigma_nm, conductance, amplitude)
