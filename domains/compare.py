@@ -16,13 +16,18 @@ from ._scan import Scan, _is_dask, pixel_size_pair
 __all__ = [
     "BiasComparison",
     "ContrastVerdict",
+    "ContrastSet",
     "DomainPhaseShift",
+    "ElectronicContrast",
+    "ElectronicTypes",
     "Fingerprints",
     "Registration",
     "apply_shift",
     "classify_contrast",
     "compare_biases",
     "domain_contrast",
+    "domain_electronic_contrast",
+    "electronic_types",
     "fingerprint_peaks",
     "grid_fingerprints",
     "phase_difference",
@@ -1919,3 +1924,337 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
     amplitude = _contrast_set("amplitude", amp_fields, *args) if q is not None else None
     return ElectronicContrast(tuple(float(b) for b in biases), tuple(int(d) for d in ids), area, shown_units, token,
                               normalisation, note, tuple(float(s) for s in scale), sigma_nm, conductance, amplitude)
+
+
+def _letters(i):
+    """Type names A, B, ..., Z, AA, AB, ..."""
+    s = ""
+    i += 1
+    while i:
+        i, r = divmod(i - 1, 26)
+        s = chr(65 + r) + s
+    return s
+
+
+def _fmt_bias(b):
+    return f"{b:+.2f} V".replace("-", "−")
+
+
+def _pm(value, se):
+    """'0.80 ± 0.10': the error to two significant digits if it starts with 1 or 2, else one; the value alike."""
+    if not (math.isfinite(se) and se > 0):
+        return f"{value:.3g}"
+    exp = math.floor(math.log10(se))
+    lead = se / 10**exp
+    digits = max(0, -exp + (1 if lead < 3 else 0))
+    return f"{value:.{digits}f} ± {se:.{digits}f}".replace("-", "−")
+
+
+@dataclass(frozen=True, eq=False)
+class ElectronicTypes:
+    """Domains grouped into electronic types by their contrast at every bias.
+
+    Attributes
+    ----------
+    contrast : ElectronicContrast
+        The per-domain contrasts the grouping used.
+    types : tuple of tuple of int
+        Member domains of each type; type i is named ``names[i]`` (A, B, ...).
+    names : tuple of str
+    features : tuple of (str, float)
+        (quantity, bias_V) of each compared value.
+    value, se : ndarray (n_types, n_features)
+        Area-weighted mean contrast of each type and its standard error.
+    pair_diff, pair_se, pair_z, pair_p : ndarray (n_types, n_types, n_features)
+        Difference type i minus type j, error, z and two-sided p.
+    alpha : float
+        Family-wise significance level of a test over all features.
+    z_threshold : float
+        |z| above which one feature differs (Šidák level 1 - (1 - alpha)^(1/n_features)).
+    homogeneity_chi2, homogeneity_dof, homogeneity_p : float
+        Test that all domains share one type.
+    """
+
+    contrast: ElectronicContrast
+    types: tuple
+    names: tuple
+    features: tuple
+    value: np.ndarray
+    se: np.ndarray
+    pair_diff: np.ndarray
+    pair_se: np.ndarray
+    pair_z: np.ndarray
+    pair_p: np.ndarray
+    alpha: float
+    z_threshold: float
+    homogeneity_chi2: float
+    homogeneity_dof: int
+    homogeneity_p: float
+
+    @property
+    def n_types(self) -> int:
+        """Number of electronic types."""
+        return len(self.types)
+
+    def type_of(self) -> dict:
+        """{domain: type name}."""
+        return {d: self.names[i] for i, members in enumerate(self.types) for d in members}
+
+    def _header(self, quantity, bias, what="contrast"):
+        p = "" if quantity == "conductance" else "amplitude_"
+        return f"{p}{what}_{self.contrast.unit_token}_at_{bias:+.2f}V"
+
+    def rows(self) -> list[dict]:
+        """One row per type for ``types.csv``: members, area and contrast with error at each bias."""
+        area = dict(zip(self.contrast.domains, self.contrast.area_nm2))
+        out = []
+        for i, members in enumerate(self.types):
+            row = {"type": self.names[i], "domains": ";".join(str(d) for d in members), "n_domains": len(members),
+                   "area_nm2": float(sum(area[d] for d in members))}
+            for f, (quantity, bias) in enumerate(self.features):
+                h = self._header(quantity, bias)
+                row[h] = _json_float(self.value[i, f])
+                row[h + "_se"] = _json_float(self.se[i, f])
+            out.append(row)
+        return out
+
+    def domain_rows(self) -> list[dict]:
+        """One row per domain: its type, area and, at each bias, mean and contrast with errors."""
+        c = self.contrast
+        kind = self.type_of()
+        out = []
+        for i, d in enumerate(c.domains):
+            row = {"domain": int(d), "type": kind[d], "area_nm2": float(c.area_nm2[i])}
+            for s in c.sets():
+                for k, bias in enumerate(c.biases_V):
+                    for what, arr, err in (("mean", s.mean, s.mean_se), ("contrast", s.contrast, s.contrast_se),
+                                           ("frame_contrast", s.frame, s.frame_se)):
+                        h = self._header(s.quantity, bias, what)
+                        row[h] = _json_float(arr[k, i])
+                        row[h + "_se"] = _json_float(err[k, i])
+            out.append(row)
+        return out
+
+    def differences(self, i, j) -> list[dict]:
+        """Feature by feature, type i minus type j: difference, error, z, p and whether it is significant."""
+        return [{"quantity": q, "bias_V": float(b), "difference": _json_float(self.pair_diff[i, j, f]),
+                 "difference_se": _json_float(self.pair_se[i, j, f]), "z": _json_float(self.pair_z[i, j, f]),
+                 "p": _json_float(self.pair_p[i, j, f]),
+                 "significant": bool(abs(self.pair_z[i, j, f]) > self.z_threshold)}
+                for f, (q, b) in enumerate(self.features)]
+
+    def sentences(self) -> list[str]:
+        """The result in words, one sentence per pair of types (and one for the grouping)."""
+        c = self.contrast
+        unit = "% of the frame mean" if c.normalisation == "frame" else c.units
+        n = self.n_types
+        if n == 1:
+            return [f"1 electronic type: all {len(c.domains)} domains agree within errors at every bias "
+                    f"(χ² = {self.homogeneity_chi2:.1f} for {self.homogeneity_dof} degrees of freedom, "
+                    f"p = {self.homogeneity_p:.2g}; {c.normalisation_note})."]
+
+        def members(i):
+            m = self.types[i]
+            return f"domain{'s' if len(m) > 1 else ''} {', '.join(str(d) for d in m)}"
+
+        def clause(i, j, quantity):
+            words = ("brighter", "darker") if quantity == "conductance" else ("larger", "smaller")
+            parts, none = [], []
+            for f, (q, b) in enumerate(self.features):
+                if q != quantity:
+                    continue
+                d, s, z = self.pair_diff[i, j, f], self.pair_se[i, j, f], self.pair_z[i, j, f]
+                if abs(z) > self.z_threshold:
+                    parts.append((words[0] if d > 0 else words[1], _fmt_bias(b), _pm(abs(d), s)))
+                else:
+                    none.append(_fmt_bias(b))
+            return parts, none
+
+        def join(parts, first_target):
+            said = []
+            for k, (word, bias, value) in enumerate(parts):
+                if k == 0:
+                    said.append(f"is {word} than {first_target} at {bias} by {value} {unit}")
+                else:
+                    said.append(f"{word} at {bias} by {value} {unit}")
+            if len(said) > 1:
+                return ", ".join(said[:-1]) + " and " + said[-1]
+            return said[0] if said else ""
+
+        out = []
+        pairs = [(i, j) for i in range(n) for j in range(i + 1, n)]
+        for k, (i, j) in enumerate(pairs):
+            parts, none = clause(i, j, "conductance")
+            target = f"type {self.names[j]}" + (f" ({members(j)})" if n == 2 else "")
+            if n == 2:
+                head = f"2 electronic types: type {self.names[i]} ({members(i)}) "
+            else:
+                head = ("" if k else f"{n} electronic types: "
+                        + "; ".join(f"type {self.names[t]} ({members(t)})" for t in range(n)) + ". ") \
+                       + f"Type {self.names[i]} "
+            if parts:
+                body = join(parts, target)
+            else:
+                body = f"does not differ from {target} in conductance at any bias"
+            tail = f"; no significant difference at {', '.join(none)}" if parts and none else ""
+            sentence = head + body + tail
+            if self.contrast.amplitude is not None:
+                aparts, _ = clause(i, j, "amplitude")
+                if aparts:
+                    said = [f"{w} at {b} by {v} {unit}" for w, b, v in aparts]
+                    sentence += f"; its order amplitude is {said[0]}" + "".join(f", {s}" for s in said[1:])
+            out.append(sentence + ".")
+        return out
+
+    def to_summary(self) -> dict:
+        """JSON-ready dict for ``summary.json``: the types, their contrasts, the pairwise tests and the sentences."""
+        c = self.contrast
+        return {
+            "n_types": self.n_types, "alpha": self.alpha, "z_threshold": self.z_threshold,
+            "homogeneity": {"chi2": _json_float(self.homogeneity_chi2), "dof": int(self.homogeneity_dof),
+                            "p": _json_float(self.homogeneity_p)},
+            "units": c.units, "normalisation": c.normalisation, "normalisation_note": c.normalisation_note,
+            "types": [{"type": self.names[i], "domains": [int(d) for d in m],
+                       "contrast": [{"quantity": q, "bias_V": float(b), "value": _json_float(self.value[i, f]),
+                                     "se": _json_float(self.se[i, f])} for f, (q, b) in enumerate(self.features)]}
+                      for i, m in enumerate(self.types)],
+            "differences": [{"types": [self.names[i], self.names[j]], "features": self.differences(i, j)}
+                            for i in range(self.n_types) for j in range(i + 1, self.n_types)],
+            "sentences": self.sentences(),
+            "contrast": c.to_summary(),
+        }
+
+
+def electronic_types(contrast, *, alpha=TYPES_ALPHA, use_amplitude=True):
+    """Group domains into electronic types: merge while no remaining difference is significant.
+
+    The features are the wall-network contrasts of :func:`domain_electronic_contrast`
+    at every bias (conductance, and the order amplitude if computed and
+    ``use_amplitude``), with their full covariance. First a homogeneity test: chi^2 =
+    sum over features of c^T C^+ c (C^+ the pseudo-inverse of the contrasts'
+    covariance, dof its rank); if p >= ``alpha`` there is one type, so the rate of a
+    false second type on a one-type scene is at most ``alpha`` (derived). Otherwise
+    agglomerative merging [1]_: starting from single domains, the two groups whose
+    largest |z| over the features is smallest are merged while that |z| is below the
+    Šidák threshold z* = Phi^-1(1 - a/2), a = 1 - (1 - alpha)^(1/n_features) [2]_. A
+    group's value is the area-weighted mean of its members' contrasts; the variance of
+    a difference u^T c is u^T C u. The translational variant plays no part.
+
+    Parameters
+    ----------
+    contrast : ElectronicContrast
+        From :func:`domain_electronic_contrast`.
+    alpha : float
+        Family-wise significance level, in (0, 0.5).
+    use_amplitude : bool
+        Use the order amplitude too, when present.
+
+    Returns
+    -------
+    ElectronicTypes
+
+    Raises
+    ------
+    InputError
+        If ``contrast`` is not an ElectronicContrast or ``alpha`` is out of range.
+
+    References
+    ----------
+    .. [1] J. H. Ward, J. Am. Stat. Assoc. 58, 236 (1963) (agglomerative grouping).
+       doi:10.1080/01621459.1963.10500845
+    .. [2] Z. Šidák, J. Am. Stat. Assoc. 62, 626 (1967). doi:10.1080/01621459.1967.10482935
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> labels = np.zeros((128, 128), np.int32)
+    >>> labels[:64, :64], labels[:64, 64:], labels[64:, :64], labels[64:, 64:] = 1, 2, 3, 4
+    >>> step = np.where(np.isin(labels, (1, 4)), 0.2, -0.2)
+    >>> noise = np.random.default_rng(0).normal(0, 0.05, (2, 128, 128))
+    >>> maps = {-0.3: 1 + step + noise[0], 0.3: 1 - step + noise[1]}
+    >>> c = domain_electronic_contrast(maps, labels, pixel_size_nm=0.1, sigma_nm=0.4, normalisation="none")
+    >>> t = electronic_types(c)
+    >>> t.types
+    ((1, 4), (2, 3))
+    >>> print(t.sentences()[0])  # doctest: +NORMALIZE_WHITESPACE
+    2 electronic types: type A (domains 1, 4) is brighter than type B (domains 2, 3) at −0.30 V
+    by 0.3993 ± 0.0012 nS and darker at +0.30 V by 0.4007 ± 0.0011 nS.
+    """
+    if not isinstance(contrast, ElectronicContrast):
+        raise InputError(f"contrast must be an ElectronicContrast from domain_electronic_contrast, "
+                         f"got {type(contrast).__name__}")
+    try:
+        alpha = float(alpha)
+    except (TypeError, ValueError):
+        alpha = float("nan")
+    if not 0 < alpha < 0.5:
+        raise InputError(f"alpha must be a significance level in (0, 0.5), got {alpha!r}")
+    sets = [contrast.conductance] + ([contrast.amplitude] if use_amplitude and contrast.amplitude is not None else [])
+    features, values, covs = [], [], []
+    for s in sets:
+        for k, b in enumerate(contrast.biases_V):
+            if np.all(np.isfinite(s.contrast[k])) and np.all(np.isfinite(s.cov[k])):
+                features.append((s.quantity, float(b)))
+                values.append(s.contrast[k])
+                covs.append(s.cov[k])
+    nd = len(contrast.domains)
+    area = np.asarray(contrast.area_nm2, float)
+    nf = len(features)
+    a_feature = 1 - (1 - alpha) ** (1 / max(nf, 1))
+    z_thr = float(stats.norm.isf(a_feature / 2))
+
+    chi2, dof = 0.0, 0
+    for v, C in zip(values, covs):
+        if nd < 2:
+            break
+        Cp = np.linalg.pinv(C, rcond=1e-10, hermitian=True)
+        chi2 += float(v @ Cp @ v)
+        dof += int(np.linalg.matrix_rank(C, tol=1e-10 * max(np.abs(C).max(), 1e-300), hermitian=True))
+    p_hom = float(stats.chi2.sf(chi2, dof)) if dof else 1.0
+
+    def weights(group):
+        u = np.zeros(nd)
+        idx = list(group)
+        u[idx] = area[idx] / area[idx].sum()
+        return u
+
+    def max_z(g, h):
+        u = weights(g) - weights(h)
+        zs = [abs(u @ v) / math.sqrt(max(u @ C @ u, 1e-300)) for v, C in zip(values, covs)]
+        return max(zs) if zs else 0.0
+
+    groups = [[i] for i in range(nd)]
+    if p_hom >= alpha or nf == 0:
+        groups = [list(range(nd))]
+    while len(groups) > 1:
+        best, pair = None, None
+        for i in range(len(groups)):
+            for j in range(i + 1, len(groups)):
+                z = max_z(groups[i], groups[j])
+                if best is None or z < best:
+                    best, pair = z, (i, j)
+        if best >= z_thr:
+            break
+        i, j = pair
+        groups[i] = groups[i] + groups[j]
+        del groups[j]
+    ids = contrast.domains
+    groups = sorted((sorted(g, key=lambda i: ids[i]) for g in groups), key=lambda g: ids[g[0]])
+    nt = len(groups)
+    value, se = np.zeros((nt, nf)), np.zeros((nt, nf))
+    diff, dse = np.zeros((nt, nt, nf)), np.zeros((nt, nt, nf))
+    U = [weights(g) for g in groups]
+    for f, (v, C) in enumerate(zip(values, covs)):
+        for i in range(nt):
+            value[i, f] = U[i] @ v
+            se[i, f] = math.sqrt(max(U[i] @ C @ U[i], 0.0))
+            for j in range(nt):
+                u = U[i] - U[j]
+                diff[i, j, f] = u @ v
+                dse[i, j, f] = math.sqrt(max(u @ C @ u, 0.0))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        z = np.where(dse > 0, diff / np.where(dse > 0, dse, 1), 0.0)
+    p = 2 * stats.norm.sf(np.abs(z))
+    return ElectronicTypes(contrast, tuple(tuple(int(ids[i]) for i in g) for g in groups),
+                           tuple(_letters(i) for i in range(nt)), tuple(features), value, se, diff, dse, z, p,
+                           alpha, z_thr, chi2, dof, p_hom)
