@@ -1433,9 +1433,6 @@ NORMALISATIONS = ("frame", "setpoint", "none")
 #: reporting a second type on a scene with one). A judgement (common practice, no source).
 TYPES_ALPHA = 0.01
 
-#: A network of wall differences whose chi-square has a p-value below this is inconsistent
-#: (a multiplicative tip change, a setpoint error): its errors are scaled by the Birge ratio.
-BIRGE_ALPHA = 0.05
 
 #: Relative change of the tip's gain (its density of states) during or between maps that the
 #: grouping into electronic types tolerates. A judgement (common practice, no source).
@@ -1489,16 +1486,12 @@ class ContrastSet:
     frame, frame_se : ndarray (n_biases, n_domains)
         Mean minus the area-weighted mean of all domains (contrast relative to the frame).
     contrast, contrast_se : ndarray (n_biases, n_domains)
-        Contrast relative to the frame solved from the wall differences alone (robust to
+        Contrast relative to the frame from the model F = a(row) + mu_domain (robust to
         offsets that change from scan line to scan line); area-weighted mean zero.
     cov : ndarray (n_biases, n_domains, n_domains)
         Covariance of ``contrast``.
-    birge : ndarray (n_biases,)
-        Factor applied to the errors of ``contrast`` (1 when the wall network is consistent).
-    network_chi2, network_dof : ndarray (n_biases,)
-        Chi-square of the wall differences about the solution, and its degrees of freedom.
     noise : ndarray (n_biases,)
-        Robust pixel scatter of the smoothed field (1.4826 MAD about each domain's median).
+        Robust pixel scatter s_F of the smoothed field (from differences along the scan lines).
     pairs : tuple of (int, int)
         Neighbouring domains (a < b).
     wall_delta, wall_se : ndarray (n_biases, n_pairs)
@@ -1515,9 +1508,6 @@ class ContrastSet:
     contrast: np.ndarray
     contrast_se: np.ndarray
     cov: np.ndarray
-    birge: np.ndarray
-    network_chi2: np.ndarray
-    network_dof: np.ndarray
     noise: np.ndarray
     pairs: tuple
     wall_delta: np.ndarray
@@ -1584,15 +1574,12 @@ class ElectronicContrast:
         return out
 
     def to_summary(self) -> dict:
-        """JSON-ready summary: normalisation, units, and per quantity the network consistency per bias."""
+        """JSON-ready summary: normalisation, units, and per quantity the noise and the number of walls."""
         return {
             "biases_V": [float(b) for b in self.biases_V], "domains": [int(d) for d in self.domains],
             "units": self.units, "normalisation": self.normalisation, "normalisation_note": self.normalisation_note,
             "scale": [float(s) for s in self.scale], "sigma_nm": float(self.sigma_nm),
-            "quantities": {s.quantity: {"birge_ratio": [float(v) for v in s.birge],
-                                        "network_chi2": [_json_float(v) for v in s.network_chi2],
-                                        "network_dof": [int(v) for v in s.network_dof],
-                                        "noise": [_json_float(v) for v in s.noise],
+            "quantities": {s.quantity: {"noise": [_json_float(v) for v in s.noise],
                                         "n_walls": len(s.pairs)} for s in self.sets()},
         }
 
@@ -1632,116 +1619,100 @@ def _region_stats(field, weights_of, norm2, kernel_norm2, noise):
     return values, se
 
 
-def _solve_network(pairs, delta, se, area, frame, frame_var):
-    """Contrasts mu (area-weighted mean zero per connected component) from wall differences mu_a - mu_b.
+def _row_offset_model(interior, ids, area, sigma_px, kernel_norm2):
+    """Pixel weights of the per-domain contrasts in the model F = a(row) + mu_domain + noise.
 
-    Weighted least squares with one linear constraint per connected component of the
-    wall graph (its area-weighted mean equals that of the frame contrasts), solved
-    through the KKT system; the covariance is M H M with M the top-left block of the
-    inverse KKT matrix and H = A^T W A (derived; Lawson & Hanson, Solving Least Squares
-    Problems, 1974, ch. 20; from memory).
+    Least squares over every interior pixel with one free offset per scan line: within
+    a row the offset is eliminated by subtracting the row's mean, leaving the normal
+    matrix M = sum_rows [diag(n_r) - n_r n_r^T / N_r] (n_r the pixel count of each domain
+    in row r, N_r their sum). The contrasts are fixed by one constraint per connected
+    group of domains (domains linked by shared rows): area-weighted mean zero over the
+    frame. mu = sum_p W(p) F(p) with W(p) = G (x_p - n_r / N_r), G the top-left block of the
+    inverse KKT matrix (derived; Lawson & Hanson, Solving Least Squares Problems, 1974;
+    from memory). Any offset that depends only on the scan line (a tip change, a slow
+    change of the tip between lines) cancels exactly. Returns (rows, cols, W (nd, npix),
+    covariance factor S (nd, nd) with cov = s_F^2 S, number of groups).
     """
-    from scipy.sparse import coo_matrix
+    nd = len(ids)
+    index = np.zeros(int(interior.max()) + 1, int)
+    index[ids] = np.arange(nd)
+    rows, cols = np.nonzero(interior > 0)
+    dom = index[interior[rows, cols]]
+    nrow = interior.shape[0]
+    cnt = np.zeros((nrow, nd))
+    np.add.at(cnt, (rows, dom), 1.0)
+    n_r = cnt.sum(1)
+    used = n_r > 0
+    frac = np.zeros_like(cnt)
+    frac[used] = cnt[used] / n_r[used, None]
+    M = np.diag(cnt.sum(0)) - cnt[used].T @ frac[used]
+    link = (np.abs(M) > 1e-9 * max(np.abs(M).max(), 1.0)).astype(float)
     from scipy.sparse.csgraph import connected_components
 
-    n = len(area)
-    m = len(pairs)
-    if m:
-        ia = np.array([p[0] for p in pairs])
-        ib = np.array([p[1] for p in pairs])
-        graph = coo_matrix((np.ones(m), (ia, ib)), shape=(n, n))
-        ncomp, comp = connected_components(graph, directed=False)
-    else:
-        ncomp, comp = n, np.arange(n)
-    A = np.zeros((m, n))
-    if m:
-        A[np.arange(m), ia] = 1.0
-        A[np.arange(m), ib] = -1.0
-    ok = np.isfinite(delta) & np.isfinite(se) & (se > 0)
-    W = np.where(ok, 1.0 / np.where(ok, se, 1.0) ** 2, 0.0)
-    d = np.where(ok, delta, 0.0)
-    H = A.T @ (W[:, None] * A)
-    C = np.zeros((ncomp, n))
-    e = np.zeros(ncomp)
-    cvar = np.zeros((ncomp, n))
+    ncomp, comp = connected_components(link, directed=False)
+    C = np.zeros((ncomp, nd))
     for c in range(ncomp):
         members = comp == c
-        wts = area * members / area[members].sum()
-        C[c] = wts
-        e[c] = float(np.sum(wts * frame))
-        cvar[c] = wts
-    K = np.block([[H, C.T], [C, np.zeros((ncomp, ncomp))]])
-    Kinv = np.linalg.pinv(K, rcond=1e-12)
-    M, N = Kinv[:n, :n], Kinv[:n, n:]
-    mu = M @ (A.T @ (W * d)) + N @ e
-    cov = M @ H @ M.T
-    if ncomp > 1:
-        # The constraint values come from the frame contrasts (independent domain means): add their variance.
-        ecov = (cvar * frame_var[None, :]) @ cvar.T
-        cov = cov + N @ ecov @ N.T
-    resid = (A @ mu - d) * np.sqrt(W)
-    chi2 = float(np.sum(resid[ok] ** 2))
-    dof = int(ok.sum()) - (n - ncomp)
-    birge = 1.0
-    if dof > 0 and stats.chi2.sf(chi2, dof) < BIRGE_ALPHA:
-        birge = math.sqrt(chi2 / dof)
-        cov = cov * birge**2
-    return mu, cov, birge, chi2, dof
+        C[c, members] = area[members] / area[members].sum()
+    K = np.block([[M, C.T], [C, np.zeros((ncomp, ncomp))]])
+    G = np.linalg.pinv(K, rcond=1e-12)[:nd, :nd]
+    W = G[:, dom] - G @ frac[rows].T  # (nd, npix)
+    # Covariance factor: sum_p (K * W_d)(K * W_e) / sum K^2, one Gaussian filter per domain (derived).
+    filtered = []
+    for d in range(nd):
+        w = np.zeros(interior.shape)
+        w[rows, cols] = W[d]
+        filtered.append(ndimage.gaussian_filter(w, sigma_px, mode="constant", truncate=4.0).ravel())
+    filtered = np.array(filtered)
+    S = filtered @ filtered.T / kernel_norm2
+    return rows, cols, W, S, ncomp, comp
 
 
-def _components(pairs, n):
-    from scipy.sparse import coo_matrix
-    from scipy.sparse.csgraph import connected_components
+def _field_noise(field, interior, lag_px):
+    """Pixel scatter s_F of a smoothed field from differences along the scan lines, robust to line offsets.
 
-    if not pairs:
-        return n
-    ia, ib = np.array([p[0] for p in pairs]), np.array([p[1] for p in pairs])
-    return connected_components(coo_matrix((np.ones(len(pairs)), (ia, ib)), shape=(n, n)), directed=False)[0]
-
-
-def _network_walls(pairs, row_matched, n):
-    """Which walls enter the network: the row-matched ones, plus the others only where needed for connectivity.
-
-    A wall nearly along the scan lines is compared band against band, so a change of the
-    tip between the two bands enters its difference; row-matched walls are immune.
+    For F = K * (white noise), F(x + L) - F(x) has variance 2 s_F^2 (1 - exp(-L^2 / 4 sigma^2))
+    (derived from the autocorrelation of Gaussian-smoothed white noise). Pairs of pixels
+    L apart in one row and one domain's interior are used, so offsets of whole scan lines
+    (tip changes) and the domains' own contrasts cancel; the scale is 1.4826 times the
+    median absolute difference (common practice, no source).
     """
-    use = np.asarray(row_matched, bool).copy()
-    if not len(pairs):
-        return use
-    full = _components(list(pairs), n)
-    for m in np.nonzero(~use)[0]:
-        if _components([p for p, u in zip(pairs, use) if u], n) == full:
-            break
-        use[m] = True
-    return use
+    lag = int(lag_px[0])
+    a, b = interior[:, :-lag], interior[:, lag:]
+    same = (a > 0) & (a == b)
+    if not same.any():
+        return float("nan")
+    diff = (field[:, lag:] - field[:, :-lag])[same]
+    return float(1.4826 * np.median(np.abs(diff - np.median(diff))) / math.sqrt(2 * lag_px[1]))
 
 
 def _contrast_set(quantity, fields, interior, ids, area, domain_w, wall_w, pairs, row_matched, kernel_norm2,
-                  dom_norm2, wall_norm2):
+                  dom_norm2, wall_norm2, lag_px, model):
     nb, nd, nw = len(fields), len(ids), len(pairs)
     out = {k: np.full((nb, nd), np.nan) for k in ("mean", "mean_se", "frame", "frame_se", "contrast", "contrast_se")}
     cov = np.full((nb, nd, nd), np.nan)
-    birge, chi2, dof, noise = np.ones(nb), np.full(nb, np.nan), np.zeros(nb, int), np.full(nb, np.nan)
+    noise = np.full(nb, np.nan)
     wd, ws = np.full((nb, nw), np.nan), np.full((nb, nw), np.nan)
     flat = interior.ravel()
     sel = flat > 0
     frac = area / area.sum()
     for k, f in enumerate(fields):
-        v = f.ravel()[sel]
-        lab = flat[sel]
-        med = np.zeros(int(flat.max()) + 1)
-        for d in ids:
-            med[d] = np.median(v[lab == d])
-        noise[k] = 1.4826 * float(np.median(np.abs(v - med[lab])))  # robust std (common practice, no source)
+        noise[k] = _field_noise(f, interior, lag_px)
         mean, mean_se = _region_stats(f, domain_w, dom_norm2, kernel_norm2, noise[k])
         frame_mean = float(np.sum(frac * mean))
         fr = mean - frame_mean
         var = mean_se**2
         fr_var = var * (1 - frac) ** 2 + (np.sum(frac**2 * var) - frac**2 * var)
         delta, dse = _region_stats(f, wall_w, wall_norm2, kernel_norm2, noise[k]) if nw else (np.zeros(0), np.zeros(0))
-        use = _network_walls(pairs, row_matched, nd)
-        mu, cv, birge[k], chi2[k], dof[k] = _solve_network([p for p, u in zip(pairs, use) if u], delta[use],
-                                                           dse[use], area, fr, var)
+        rows, cols, W, S, ncomp, comp = model
+        mu = W @ f[rows, cols]
+        cv = noise[k] ** 2 * S
+        if ncomp > 1:
+            # Groups of domains that share no scan line: each group's mean follows the frame contrasts.
+            for c in range(ncomp):
+                members = comp == c
+                shift = float(np.sum(frac[members] * fr[members]) / frac[members].sum())
+                mu[members] += shift
         out["mean"][k], out["mean_se"][k] = mean, mean_se
         out["frame"][k], out["frame_se"][k] = fr, np.sqrt(fr_var)
         out["contrast"][k], out["contrast_se"][k] = mu, np.sqrt(np.clip(np.diag(cv), 0, None))
@@ -1749,7 +1720,7 @@ def _contrast_set(quantity, fields, interior, ids, area, domain_w, wall_w, pairs
         wd[k], ws[k] = delta, dse
     index = {d: i for i, d in enumerate(ids)}
     return ContrastSet(quantity, out["mean"], out["mean_se"], out["frame"], out["frame_se"], out["contrast"],
-                       out["contrast_se"], cov, birge, chi2, dof, noise,
+                       out["contrast_se"], cov, noise,
                        tuple((int(ids[a]), int(ids[b])) for a, b in pairs), wd, ws, np.asarray(row_matched, bool))
 
 
@@ -1770,21 +1741,24 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
     - **Wall difference** between neighbours a and b: pixels of a's interior within
       (``margin_sigma`` + ``band_sigma``) sigma of b, against those of b near a, taken row by
       row (scan line by scan line), so any offset that depends only on the scan line (a
-      tip change, a slow drift of the tip between lines) cancels; walls nearly along the
-      rows (less than one correlation length 2 sqrt(pi) sigma of shared rows) use band
-      means instead.
-    - **Contrast** of each domain relative to the frame: the weighted least-squares
-      solution of the network of wall differences mu_a - mu_b, area-weighted mean zero;
-      if the network is inconsistent (chi-square p < ``BIRGE_ALPHA``) its errors are
-      scaled by the Birge ratio sqrt(chi2/dof) [2]_. ``frame`` is the plain mean minus the
-      frame mean, which a tip change biases.
+      tip change, a slow drift of the tip between lines) cancels; walls along the rows,
+      whose bands share fewer than 3 rows, use band means instead (``row_matched`` False).
+    - **Contrast** of each domain relative to the frame: least squares of the model
+      F = a(row) + mu_domain over every interior pixel, one free offset per scan line, the
+      area-weighted mean of mu zero (the local difference generalised to every pair of
+      domains that share scan lines): offsets of whole scan lines cancel exactly.
+      ``frame`` is the plain mean minus the area-weighted frame mean, which a tip change
+      between lines biases. A change of the tip's gain is not removed (see
+      :func:`electronic_types`).
     - **Errors**: a weighted sum sum w F of the smoothed field F = K * g has
       variance s_w^2 sum (K * w)^2 for white noise of pixel variance s_w^2, and the scatter
       of F is s_F^2 = s_w^2 sum K^2, so var = s_F^2 sum (K * w)^2 / sum K^2 (derived). For a
       region of area S much larger than sigma^2 this is s_F^2 4 pi sigma^2 / S: one
       independent sigma-patch per 4 pi sigma^2 (derived: the autocorrelation of
-      Gaussian-smoothed white noise is exp(-r^2 / 4 sigma^2)). s_F is the pooled robust
-      scatter (1.4826 MAD) of F about each domain's median.
+      Gaussian-smoothed white noise is exp(-r^2 / 4 sigma^2)). s_F is measured from
+      differences of F along the scan lines within domains (robust to line offsets). The
+      contrasts' full covariance follows from the same formula with the model's pixel
+      weights.
     - **Order amplitude** (with ``q``): the lock-in amplitude sqrt(sum_j (2|A_j|)^2) [1]_
       of the normalised map, treated with the same estimators (it is already smooth on
       the scale sigma).
@@ -1824,7 +1798,6 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
     References
     ----------
     .. [1] J. A. Slezak et al., PNAS 105, 3203 (2008). doi:10.1073/pnas.0706795105
-    .. [2] R. T. Birge, Phys. Rev. 40, 207 (1932). doi:10.1103/PhysRev.40.207
 
     Examples
     --------
@@ -1907,7 +1880,7 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
     candidates = [(a, b) for a, b in _neighbour_pairs(labels, gap, min_contact=sigma_nm / min(dy, dx))
                   if a in index and b in index]
     reach = (margin_sigma + band_sigma) * sigma_nm
-    min_rows = 2 * math.sqrt(math.pi) * sigma_nm / dy
+    min_rows = 3  # any shared rows give an unbiased row-matched difference; few give a large (exact) error
     pairs, wall_w, wall_norm2, row_matched = [], [], [], []
     for a, b in candidates:
         both = (labels == a) | (labels == b)
@@ -1948,11 +1921,17 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
     cond_fields, amp_fields = [], []
     for b, s in zip(biases, scale):
         image = _fill_invalid(maps[b] * s, bad)
-        cond_fields.append(ndimage.gaussian_filter(image, sigma_px, mode="reflect", truncate=4.0))
+        smooth = ndimage.gaussian_filter(image, sigma_px, mode="reflect", truncate=4.0)
+        cond_fields.append(smooth)
         if q is not None:
-            a = lockin(image, q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=bad)
+            # The slowly varying part is removed first: its leak exp(-sigma^2 q^2 / 2) into the lock-in
+            # at q would add a ripple to the amplitude (METHODS §1; derived).
+            a = lockin(image - smooth, q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=bad)
             amp_fields.append(np.sqrt(np.sum((2 * np.abs(a)) ** 2, axis=0)))
-    args = (interior, ids, area, domain_w, wall_w, pairs, row_matched, kn2, dom_norm2, wall_norm2)
+    lag = max(1, int(round(4 * sigma_px[1])))
+    lag_px = (lag, 1 - math.exp(-((lag / sigma_px[1]) ** 2) / 4))
+    model = _row_offset_model(interior, ids, area, sigma_px, kn2)
+    args = (interior, ids, area, domain_w, wall_w, pairs, row_matched, kn2, dom_norm2, wall_norm2, lag_px, model)
     conductance = _contrast_set("conductance", cond_fields, *args)
     amplitude = _contrast_set("amplitude", amp_fields, *args) if q is not None else None
     return ElectronicContrast(tuple(float(b) for b in biases), tuple(int(d) for d in ids), area, shown_units, token,
@@ -2173,7 +2152,7 @@ class ElectronicTypes:
 def electronic_types(contrast, *, alpha=TYPES_ALPHA, gain_tolerance=GAIN_TOLERANCE, use_amplitude=True):
     """Group domains into electronic types: merge while no remaining difference is significant.
 
-    The features are the wall-network contrasts of :func:`domain_electronic_contrast`
+    The features are the line-offset-free contrasts of :func:`domain_electronic_contrast`
     at every bias (conductance, and the order amplitude if computed and
     ``use_amplitude``), with their full covariance. First a homogeneity test: chi^2 =
     sum over features of c^T C^+ c (C^+ the pseudo-inverse of the contrasts'
@@ -2229,7 +2208,7 @@ def electronic_types(contrast, *, alpha=TYPES_ALPHA, gain_tolerance=GAIN_TOLERAN
     ((1, 4), (2, 3))
     >>> print(t.sentences()[0])  # doctest: +NORMALIZE_WHITESPACE
     2 electronic types: type A (domains 1, 4) is brighter than type B (domains 2, 3) at −0.30 V
-    by 0.3989 ± 0.0017 nS and darker at +0.30 V by 0.3997 ± 0.0016 nS.
+    by 0.4006 ± 0.0010 nS and darker at +0.30 V by 0.4001 ± 0.0010 nS.
     """
     if not isinstance(contrast, ElectronicContrast):
         raise InputError(f"contrast must be an ElectronicContrast from domain_electronic_contrast, "
