@@ -1693,8 +1693,6 @@ def _contrast_set(quantity, fields, interior, ids, area, domain_w, wall_w, pairs
     cov = np.full((nb, nd, nd), np.nan)
     noise = np.full(nb, np.nan)
     wd, ws = np.full((nb, nw), np.nan), np.full((nb, nw), np.nan)
-    flat = interior.ravel()
-    sel = flat > 0
     frac = area / area.sum()
     for k, f in enumerate(fields):
         noise[k] = _field_noise(f, interior, lag_px)
@@ -1711,14 +1709,15 @@ def _contrast_set(quantity, fields, interior, ids, area, domain_w, wall_w, pairs
             # Groups of domains that share no scan line: each group's mean follows the frame contrasts.
             for c in range(ncomp):
                 members = comp == c
-                shift = float(np.sum(frac[members] * fr[members]) / frac[members].sum())
-                mu[members] += shift
+                u = frac[members] / frac[members].sum()
+                mu[members] += float(np.sum(u * fr[members]))
+                # The shift's variance (frame contrasts of one group, independent means; derived).
+                cv[np.ix_(members, members)] += float(np.sum(u**2 * fr_var[members]))
         out["mean"][k], out["mean_se"][k] = mean, mean_se
         out["frame"][k], out["frame_se"][k] = fr, np.sqrt(fr_var)
         out["contrast"][k], out["contrast_se"][k] = mu, np.sqrt(np.clip(np.diag(cv), 0, None))
         cov[k] = cv
         wd[k], ws[k] = delta, dse
-    index = {d: i for i, d in enumerate(ids)}
     return ContrastSet(quantity, out["mean"], out["mean_se"], out["frame"], out["frame_se"], out["contrast"],
                        out["contrast_se"], cov, noise,
                        tuple((int(ids[a]), int(ids[b])) for a, b in pairs), wd, ws, np.asarray(row_matched, bool))
@@ -1876,7 +1875,7 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
 
     # Wall estimators: row-matched band differences.
     index = {int(d): i for i, d in enumerate(ids)}
-    gap = max(2, int(math.ceil(sigma_nm / min(dy, dx))))
+    gap = max(2, int(math.ceil(3 * sigma_nm / min(dy, dx))))  # walls labelled 0 up to 3 sigma wide
     candidates = [(a, b) for a, b in _neighbour_pairs(labels, gap, min_contact=sigma_nm / min(dy, dx))
                   if a in index and b in index]
     reach = (margin_sigma + band_sigma) * sigma_nm
@@ -2071,6 +2070,8 @@ class ElectronicTypes:
         c = self.contrast
         unit = "% of the frame mean" if c.normalisation == "frame" else c.units
         n = self.n_types
+        if n == 1 and len(c.domains) == 1:
+            return [f"1 electronic type: a single domain ({c.normalisation_note})."]
         if n == 1:
             return [f"1 electronic type: all {len(c.domains)} domains agree within errors at every bias "
                     f"(χ² = {self.homogeneity_chi2:.1f} for {self.homogeneity_dof} degrees of freedom, "
