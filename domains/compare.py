@@ -26,6 +26,7 @@ __all__ = [
     "classify_contrast",
     "compare_biases",
     "domain_contrast",
+    "default_normalisation",
     "domain_electronic_contrast",
     "electronic_types",
     "fingerprint_peaks",
@@ -1721,6 +1722,42 @@ def _contrast_set(quantity, fields, interior, ids, area, domain_w, wall_w, pairs
     return ContrastSet(quantity, out["mean"], out["mean_se"], out["frame"], out["frame_se"], out["contrast"],
                        out["contrast_se"], cov, noise,
                        tuple((int(ids[a]), int(ids[b])) for a, b in pairs), wd, ws, np.asarray(row_matched, bool))
+
+
+def default_normalisation(setpoints_A):
+    """The normalisation for maps with these setpoints: "setpoint" if all are known and differ, else "none" or "frame".
+
+    Maps recorded at one known setpoint need none; at known different setpoints they are
+    scaled to one (a constant-current dI/dV map scales with the setpoint current; common
+    practice, no source); with any setpoint unknown each map is divided by its frame mean.
+
+    Parameters
+    ----------
+    setpoints_A : sequence of float or None
+        Setpoint current of each map, A (None where unknown).
+
+    Returns
+    -------
+    str
+        "setpoint", "none" or "frame".
+
+    Examples
+    --------
+    >>> default_normalisation([1e-10, 1.5e-10]), default_normalisation([1e-10, 1e-10]), default_normalisation([None])
+    ('setpoint', 'none', 'frame')
+    """
+    values = []
+    for v in setpoints_A:
+        try:
+            v = float(v)
+        except (TypeError, ValueError):
+            return "frame"
+        if not (math.isfinite(v) and v > 0):
+            return "frame"
+        values.append(v)
+    if not values:
+        return "frame"
+    return "none" if np.allclose(values, values[0], rtol=1e-6, atol=0.0) else "setpoint"
 
 
 def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="nS", mask=None, normalisation="frame",

@@ -217,3 +217,13 @@ def test_bad_inputs_raise_input_error():
         electronic_types({"not": "a contrast"})
     with pytest.raises(InputError, match="n_types"):  # common practice, no source
         electronic_types_scene(shape=(64, 64), n_types=4)
+
+
+def test_default_normalisation_follows_the_setpoints():
+    from domains.compare import default_normalisation
+
+    # common practice, no source: different known setpoints call for a setpoint scaling; unknown ones for the
+    # frame mean; one setpoint for none.
+    assert default_normalisation([1e-10, 1.5e-10, 1e-10]) == "setpoint"
+    assert default_normalisation([2e-11, 2e-11]) == "none"  # common practice, no source
+    assert default_normalisation([1e-10, None]) == "frame"  # common practice, no source
