@@ -1687,6 +1687,47 @@ def _field_noise(field, interior, lag_px):
     return float(1.4826 * np.median(np.abs(diff - np.median(diff))) / math.sqrt(2 * lag_px[1]))
 
 
+def _link_groups(mu, cv, comp, ncomp, frac, fr, fr_var, pairs, delta, dse):
+    """Shift groups of domains that share no scan line so that their walls' local differences hold.
+
+    Within a group the contrasts are fixed by the line-offset model up to one shift per
+    group. The shifts s_c are the weighted least-squares solution of s_c(a) - s_c(b) =
+    Delta_ab - mu_a + mu_b over the walls between groups, with sum_c W_c s_c = 0 (W_c the
+    group's area fraction); a group with no such wall follows its frame contrasts
+    (biased by a tip change between lines). Their covariance is added (derived).
+    """
+    W = np.array([frac[comp == c].sum() for c in range(ncomp)])
+    rows_, rhs, var = [], [], []
+    for m, (a, b) in enumerate(pairs):
+        ca, cb = comp[a], comp[b]
+        if ca != cb and np.isfinite(delta[m]) and dse[m] > 0:
+            r = np.zeros(ncomp)
+            r[ca], r[cb] = 1.0, -1.0
+            rows_.append(r)
+            rhs.append(delta[m] - mu[a] + mu[b])
+            var.append(dse[m] ** 2)
+    # Groups without walls to others: a weak tie to the frame contrasts (their group mean).
+    for c in range(ncomp):
+        u = frac[comp == c] / W[c]
+        r = np.zeros(ncomp)
+        r[c] = 1.0
+        rows_.append(r)
+        rhs.append(float(np.sum(u * fr[comp == c])))
+        linked = any(comp[a] != comp[b] and (comp[a] == c or comp[b] == c) for a, b in pairs)
+        var.append(float(np.sum(u**2 * fr_var[comp == c])) * (1e6 if linked else 1.0))
+    A = np.array(rows_)
+    w = 1 / np.array(var)
+    H = A.T @ (w[:, None] * A)
+    K = np.block([[H, W[:, None]], [W[None, :], np.zeros((1, 1))]])
+    Kinv = np.linalg.pinv(K, rcond=1e-12)
+    G = Kinv[:ncomp, :ncomp]
+    shift = G @ (A.T @ (w * np.array(rhs)))
+    scov = G @ H @ G.T
+    mu = mu + shift[comp]
+    cv = cv + scov[np.ix_(comp, comp)]
+    return mu, cv
+
+
 def _contrast_set(quantity, fields, interior, ids, area, domain_w, wall_w, pairs, row_matched, kernel_norm2,
                   dom_norm2, wall_norm2, lag_px, model):
     nb, nd, nw = len(fields), len(ids), len(pairs)
@@ -1707,13 +1748,7 @@ def _contrast_set(quantity, fields, interior, ids, area, domain_w, wall_w, pairs
         mu = W @ f[rows, cols]
         cv = noise[k] ** 2 * S
         if ncomp > 1:
-            # Groups of domains that share no scan line: each group's mean follows the frame contrasts.
-            for c in range(ncomp):
-                members = comp == c
-                u = frac[members] / frac[members].sum()
-                mu[members] += float(np.sum(u * fr[members]))
-                # The shift's variance (frame contrasts of one group, independent means; derived).
-                cv[np.ix_(members, members)] += float(np.sum(u**2 * fr_var[members]))
+            mu, cv = _link_groups(mu, cv, comp, ncomp, frac, fr, fr_var, pairs, delta, dse)
         out["mean"][k], out["mean_se"][k] = mean, mean_se
         out["frame"][k], out["frame_se"][k] = fr, np.sqrt(fr_var)
         out["contrast"][k], out["contrast_se"][k] = mu, np.sqrt(np.clip(np.diag(cv), 0, None))
