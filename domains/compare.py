@@ -1694,7 +1694,10 @@ def _link_groups(mu, cv, comp, ncomp, frac, fr, fr_var, pairs, delta, dse):
     group. The shifts s_c are the weighted least-squares solution of s_c(a) - s_c(b) =
     Delta_ab - mu_a + mu_b over the walls between groups, with sum_c W_c s_c = 0 (W_c the
     group's area fraction); a group with no such wall follows its frame contrasts
-    (biased by a tip change between lines). Their covariance is added (derived).
+    (biased by a tip change between lines). Their covariance is added (derived). The
+    caller adds to each wall's error the range of the line offsets seen within the
+    groups: a wall between groups lies along the scan lines, so a tip change between its
+    two bands cannot be told from contrast.
     """
     W = np.array([frac[comp == c].sum() for c in range(ncomp)])
     rows_, rhs, var = [], [], []
@@ -1729,7 +1732,7 @@ def _link_groups(mu, cv, comp, ncomp, frac, fr, fr_var, pairs, delta, dse):
 
 
 def _contrast_set(quantity, fields, interior, ids, area, domain_w, wall_w, pairs, row_matched, kernel_norm2,
-                  dom_norm2, wall_norm2, lag_px, model):
+                  dom_norm2, wall_norm2, lag_px, model, sigma_px):
     nb, nd, nw = len(fields), len(ids), len(pairs)
     out = {k: np.full((nb, nd), np.nan) for k in ("mean", "mean_se", "frame", "frame_se", "contrast", "contrast_se")}
     cov = np.full((nb, nd, nd), np.nan)
@@ -1748,7 +1751,15 @@ def _contrast_set(quantity, fields, interior, ids, area, domain_w, wall_w, pairs
         mu = W @ f[rows, cols]
         cv = noise[k] ** 2 * S
         if ncomp > 1:
-            mu, cv = _link_groups(mu, cv, comp, ncomp, frac, fr, fr_var, pairs, delta, dse)
+            # Line offsets seen inside the groups: a wall between groups may straddle such a change.
+            index = np.zeros(int(interior.max()) + 1, int)
+            index[ids] = np.arange(nd)
+            dom = index[interior[rows, cols]]
+            n_r = np.bincount(rows, minlength=f.shape[0])
+            a_r = np.bincount(rows, f[rows, cols] - mu[dom], f.shape[0])[n_r > 0] / n_r[n_r > 0]
+            a_r = ndimage.median_filter(a_r, size=max(3, int(2 * math.sqrt(math.pi) * sigma_px[0]) | 1))
+            step = float(a_r.max() - a_r.min()) if a_r.size else 0.0
+            mu, cv = _link_groups(mu, cv, comp, ncomp, frac, fr, fr_var, pairs, delta, np.hypot(dse, step))
         out["mean"][k], out["mean_se"][k] = mean, mean_se
         out["frame"][k], out["frame_se"][k] = fr, np.sqrt(fr_var)
         out["contrast"][k], out["contrast_se"][k] = mu, np.sqrt(np.clip(np.diag(cv), 0, None))
@@ -2002,7 +2013,8 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
     lag = max(1, int(round(4 * sigma_px[1])))
     lag_px = (lag, 1 - math.exp(-((lag / sigma_px[1]) ** 2) / 4))
     model = _row_offset_model(interior, ids, area, sigma_px, kn2)
-    args = (interior, ids, area, domain_w, wall_w, pairs, row_matched, kn2, dom_norm2, wall_norm2, lag_px, model)
+    args = (interior, ids, area, domain_w, wall_w, pairs, row_matched, kn2, dom_norm2, wall_norm2, lag_px, model,
+            sigma_px)
     conductance = _contrast_set("conductance", cond_fields, *args)
     amplitude = _contrast_set("amplitude", amp_fields, *args) if q is not None else None
     return ElectronicContrast(tuple(float(b) for b in biases), tuple(int(d) for d in ids), area, shown_units, token,
