@@ -227,3 +227,13 @@ def test_default_normalisation_follows_the_setpoints():
     assert default_normalisation([1e-10, 1.5e-10, 1e-10]) == "setpoint"
     assert default_normalisation([2e-11, 2e-11]) == "none"  # common practice, no source
     assert default_normalisation([1e-10, None]) == "frame"  # common practice, no source
+
+
+@pytest.mark.parametrize("n_types", [2, 3])
+def test_types_over_layouts_with_a_line_offset_tip_change(n_types):
+    """Several layouts; the tip change adds an offset from one scan line on (no gain change)."""
+    for seed in range(3):
+        scene = electronic_types_scene(shape=(512, 512), n_types=n_types, n_domains=6, rng=300 + seed,
+                                       tip_change_contrast=1.0, tip_change_offset_nS=0.2)
+        _, types = _analyse(scene)
+        _check_types(scene, types)
