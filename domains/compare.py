@@ -16,13 +16,19 @@ from ._scan import Scan, _is_dask, pixel_size_pair
 __all__ = [
     "BiasComparison",
     "ContrastVerdict",
+    "ContrastSet",
     "DomainPhaseShift",
+    "ElectronicContrast",
+    "ElectronicTypes",
     "Fingerprints",
     "Registration",
     "apply_shift",
     "classify_contrast",
     "compare_biases",
     "domain_contrast",
+    "default_normalisation",
+    "domain_electronic_contrast",
+    "electronic_types",
     "fingerprint_peaks",
     "grid_fingerprints",
     "phase_difference",
@@ -1418,3 +1424,963 @@ def _json_float(value):
         return None
     value = float(value)
     return value if math.isfinite(value) else None
+
+
+# --------------------------------------------------------------------------- electronic contrast and types
+
+NORMALISATIONS = ("frame", "setpoint", "none")
+
+#: Significance level of the electronic-type tests (the family-wise false-alarm rate of
+#: reporting a second type on a scene with one). A judgement (common practice, no source).
+TYPES_ALPHA = 0.01
+
+
+#: Relative change of the tip's gain (its density of states) during or between maps that the
+#: grouping into electronic types tolerates. A judgement (common practice, no source).
+GAIN_TOLERANCE = 0.2
+
+
+def _sparse_norm2(rows, cols, weights, shape, sigma_px, pad):
+    """sum over pixels of (K * w)^2, w given by pixel indices and weights, K a unit-sum Gaussian of ``sigma_px``."""
+    r0, r1 = max(int(rows.min()) - pad, 0), min(int(rows.max()) + pad + 1, shape[0])
+    c0, c1 = max(int(cols.min()) - pad, 0), min(int(cols.max()) + pad + 1, shape[1])
+    w = np.zeros((r1 - r0, c1 - c0))
+    np.add.at(w, (rows - r0, cols - c0), weights)
+    f = ndimage.gaussian_filter(w, sigma_px, mode="constant", truncate=4.0)
+    return float(np.sum(f * f))
+
+
+def _kernel_norm2(sigma_px):
+    """sum K^2 of the discrete unit-sum Gaussian (about 1 / (4 pi sigma_y sigma_x) in pixels; derived)."""
+    half = int(math.ceil(4 * max(sigma_px))) + 1
+    delta = np.zeros((2 * half + 1, 2 * half + 1))
+    delta[half, half] = 1.0
+    return float(np.sum(ndimage.gaussian_filter(delta, sigma_px, mode="constant", truncate=4.0) ** 2))
+
+
+def _neighbour_pairs(labels, gap_px, min_contact):
+    """Pairs (a, b), a < b, of domains that touch or face each other across a wall of at most ``gap_px`` pixels."""
+    counts = {}
+    for s in range(1, gap_px + 2):
+        for a, b in ((labels[:, :-s], labels[:, s:]), (labels[:-s], labels[s:])):
+            edge = (a != b) & (a > 0) & (b > 0)
+            if not edge.any():
+                continue
+            lo, hi = np.minimum(a[edge], b[edge]), np.maximum(a[edge], b[edge])
+            keys, n = np.unique(lo * (labels.max() + 1) + hi, return_counts=True)
+            for key, c in zip(keys.tolist(), n.tolist()):
+                counts[key] = counts.get(key, 0) + c
+    base = int(labels.max()) + 1
+    return sorted((k // base, k % base) for k, c in counts.items() if c / (gap_px + 1) >= min_contact)
+
+
+@dataclass(frozen=True, eq=False)
+class ContrastSet:
+    """Per-domain values of one quantity (mean conductance or order amplitude) at every bias, with errors.
+
+    Attributes
+    ----------
+    quantity : str
+        "conductance" or "amplitude".
+    mean, mean_se : ndarray (n_biases, n_domains)
+        Mean over the domain's interior and its standard error.
+    frame, frame_se : ndarray (n_biases, n_domains)
+        Mean minus the area-weighted mean of all domains (contrast relative to the frame).
+    contrast, contrast_se : ndarray (n_biases, n_domains)
+        Contrast relative to the frame from the model F = a(row) + mu_domain (robust to
+        offsets that change from scan line to scan line); area-weighted mean zero.
+    cov : ndarray (n_biases, n_domains, n_domains)
+        Covariance of ``contrast``.
+    noise : ndarray (n_biases,)
+        Robust pixel scatter s_F of the smoothed field (from differences along the scan lines).
+    pairs : tuple of (int, int)
+        Neighbouring domains (a < b).
+    wall_delta, wall_se : ndarray (n_biases, n_pairs)
+        Local difference a - b in a band either side of the wall, and its error.
+    wall_row_matched : ndarray of bool (n_pairs,)
+        Whether the difference was taken row by row (else band mean against band mean).
+    """
+
+    quantity: str
+    mean: np.ndarray
+    mean_se: np.ndarray
+    frame: np.ndarray
+    frame_se: np.ndarray
+    contrast: np.ndarray
+    contrast_se: np.ndarray
+    cov: np.ndarray
+    noise: np.ndarray
+    pairs: tuple
+    wall_delta: np.ndarray
+    wall_se: np.ndarray
+    wall_row_matched: np.ndarray
+
+
+@dataclass(frozen=True, eq=False)
+class ElectronicContrast:
+    """Per-domain contrast of conductance maps (and order amplitude) at several biases, with errors.
+
+    Built by :func:`domain_electronic_contrast`. ``units`` are the maps' units after the
+    normalisation (``unit_token`` is the form used in column headers).
+    """
+
+    biases_V: tuple
+    domains: tuple
+    area_nm2: np.ndarray
+    units: str
+    unit_token: str
+    normalisation: str
+    normalisation_note: str
+    scale: tuple
+    sigma_nm: float
+    conductance: ContrastSet
+    amplitude: ContrastSet | None = None
+
+    def sets(self):
+        """The quantities present: conductance, then the order amplitude if computed."""
+        return [s for s in (self.conductance, self.amplitude) if s is not None]
+
+    def rows(self) -> list[dict]:
+        """One row per domain and bias for ``contrast.csv``, one value per cell, units in the headers."""
+        u = self.unit_token
+        out = []
+        for i, d in enumerate(self.domains):
+            for k, b in enumerate(self.biases_V):
+                row = {"domain": int(d), "bias_V": float(b), "area_nm2": float(self.area_nm2[i])}
+                for s in self.sets():
+                    p = "" if s.quantity == "conductance" else "amplitude_"
+                    row[f"{p}mean_{u}"] = _json_float(s.mean[k, i])
+                    row[f"{p}mean_{u}_se"] = _json_float(s.mean_se[k, i])
+                    row[f"{p}contrast_{u}"] = _json_float(s.contrast[k, i])
+                    row[f"{p}contrast_{u}_se"] = _json_float(s.contrast_se[k, i])
+                    row[f"{p}frame_contrast_{u}"] = _json_float(s.frame[k, i])
+                    row[f"{p}frame_contrast_{u}_se"] = _json_float(s.frame_se[k, i])
+                out.append(row)
+        return out
+
+    def wall_rows(self) -> list[dict]:
+        """One row per pair of neighbouring domains, bias and quantity: the local difference across the wall."""
+        u = self.unit_token
+        out = []
+        for s in self.sets():
+            for m, (a, b) in enumerate(s.pairs):
+                for k, bias in enumerate(self.biases_V):
+                    delta, se = float(s.wall_delta[k, m]), float(s.wall_se[k, m])
+                    z = delta / se if se > 0 else float("nan")
+                    out.append({"quantity": s.quantity, "domain_a": int(a), "domain_b": int(b), "bias_V": float(bias),
+                                f"difference_{u}": _json_float(delta), f"difference_{u}_se": _json_float(se),
+                                "z": _json_float(z),
+                                "p": _json_float(2 * stats.norm.sf(abs(z)) if math.isfinite(z) else float("nan")),
+                                "row_matched": bool(s.wall_row_matched[m])})
+        return out
+
+    def to_summary(self) -> dict:
+        """JSON-ready summary: normalisation, units, and per quantity the noise and the number of walls."""
+        return {
+            "biases_V": [float(b) for b in self.biases_V], "domains": [int(d) for d in self.domains],
+            "units": self.units, "normalisation": self.normalisation, "normalisation_note": self.normalisation_note,
+            "scale": [float(s) for s in self.scale], "sigma_nm": float(self.sigma_nm),
+            "quantities": {s.quantity: {"noise": [_json_float(v) for v in s.noise],
+                                        "n_walls": len(s.pairs)} for s in self.sets()},
+        }
+
+
+def _setpoint_list(setpoints_A, maps_in_order, biases):
+    """Setpoint per bias from a dict {bias: A} or a sequence in the order of ``maps``."""
+    if setpoints_A is None:
+        raise InputError("normalisation = 'setpoint' needs setpoints_A (one setpoint current in A per map), got None")
+    if isinstance(setpoints_A, dict):
+        try:
+            given = {float(k): v for k, v in setpoints_A.items()}
+        except (TypeError, ValueError):
+            raise InputError(f"setpoints_A keys must be biases in V, got {list(setpoints_A)!r}") from None
+    else:
+        values = list(np.ravel(np.asarray(setpoints_A, dtype=object)))
+        if len(values) != len(maps_in_order):
+            raise InputError(f"setpoints_A must hold one setpoint per map ({len(maps_in_order)}), got {len(values)}")
+        given = dict(zip(maps_in_order, values))
+    out = []
+    for b in biases:
+        v = given.get(b)
+        try:
+            v = float(v)
+        except (TypeError, ValueError):
+            v = float("nan")
+        if not (math.isfinite(v) and v > 0):
+            raise InputError(f"setpoints_A must give a positive current in A for the map at {b:g} V, "
+                             f"got {given.get(b)!r}")
+        out.append(v)
+    return out
+
+
+def _region_stats(field, weights_of, norm2, kernel_norm2, noise):
+    """Weighted sums of ``field`` and their errors: var = noise^2 sum (K*w)^2 / sum K^2 (derived)."""
+    values = np.array([float(np.sum(field[r, c] * w)) for r, c, w in weights_of])
+    se = noise * np.sqrt(np.asarray(norm2) / kernel_norm2)
+    return values, se
+
+
+def _row_offset_model(interior, ids, area, sigma_px, kernel_norm2):
+    """Pixel weights of the per-domain contrasts in the model F = a(row) + mu_domain + noise.
+
+    Least squares over every interior pixel with one free offset per scan line: within
+    a row the offset is eliminated by subtracting the row's mean, leaving the normal
+    matrix M = sum_rows [diag(n_r) - n_r n_r^T / N_r] (n_r the pixel count of each domain
+    in row r, N_r their sum). The contrasts are fixed by one constraint per connected
+    group of domains (domains linked by shared rows): area-weighted mean zero over the
+    frame. mu = sum_p W(p) F(p) with W(p) = G (x_p - n_r / N_r), G the top-left block of the
+    inverse KKT matrix (derived; Lawson & Hanson, Solving Least Squares Problems, 1974;
+    from memory). Any offset that depends only on the scan line (a tip change, a slow
+    change of the tip between lines) cancels exactly. Returns (rows, cols, W (nd, npix),
+    covariance factor S (nd, nd) with cov = s_F^2 S, number of groups).
+    """
+    nd = len(ids)
+    index = np.zeros(int(interior.max()) + 1, int)
+    index[ids] = np.arange(nd)
+    rows, cols = np.nonzero(interior > 0)
+    dom = index[interior[rows, cols]]
+    nrow = interior.shape[0]
+    cnt = np.zeros((nrow, nd))
+    np.add.at(cnt, (rows, dom), 1.0)
+    n_r = cnt.sum(1)
+    used = n_r > 0
+    frac = np.zeros_like(cnt)
+    frac[used] = cnt[used] / n_r[used, None]
+    M = np.diag(cnt.sum(0)) - cnt[used].T @ frac[used]
+    link = (np.abs(M) > 1e-9 * max(np.abs(M).max(), 1.0)).astype(float)
+    from scipy.sparse.csgraph import connected_components
+
+    ncomp, comp = connected_components(link, directed=False)
+    C = np.zeros((ncomp, nd))
+    for c in range(ncomp):
+        members = comp == c
+        C[c, members] = area[members] / area[members].sum()
+    K = np.block([[M, C.T], [C, np.zeros((ncomp, ncomp))]])
+    G = np.linalg.pinv(K, rcond=1e-12)[:nd, :nd]
+    W = G[:, dom] - G @ frac[rows].T  # (nd, npix)
+    # Covariance factor: sum_p (K * W_d)(K * W_e) / sum K^2, one Gaussian filter per domain (derived).
+    filtered = []
+    for d in range(nd):
+        w = np.zeros(interior.shape)
+        w[rows, cols] = W[d]
+        filtered.append(ndimage.gaussian_filter(w, sigma_px, mode="constant", truncate=4.0).ravel())
+    filtered = np.array(filtered)
+    S = filtered @ filtered.T / kernel_norm2
+    return rows, cols, W, S, ncomp, comp
+
+
+def _field_noise(field, interior, lag_px):
+    """Pixel scatter s_F of a smoothed field from differences along the scan lines, robust to line offsets.
+
+    For F = K * (white noise), F(x + L) - F(x) has variance 2 s_F^2 (1 - exp(-L^2 / 4 sigma^2))
+    (derived from the autocorrelation of Gaussian-smoothed white noise). Pairs of pixels
+    L apart in one row and one domain's interior are used, so offsets of whole scan lines
+    (tip changes) and the domains' own contrasts cancel; the scale is 1.4826 times the
+    median absolute difference (common practice, no source).
+    """
+    lag = int(lag_px[0])
+    a, b = interior[:, :-lag], interior[:, lag:]
+    same = (a > 0) & (a == b)
+    if not same.any():
+        return float("nan")
+    diff = (field[:, lag:] - field[:, :-lag])[same]
+    return float(1.4826 * np.median(np.abs(diff - np.median(diff))) / math.sqrt(2 * lag_px[1]))
+
+
+def _link_groups(mu, cv, comp, ncomp, frac, fr, fr_var, pairs, delta, dse):
+    """Shift groups of domains that share no scan line so that their walls' local differences hold.
+
+    Within a group the contrasts are fixed by the line-offset model up to one shift per
+    group. The shifts s_c are the weighted least-squares solution of s_c(a) - s_c(b) =
+    Delta_ab - mu_a + mu_b over the walls between groups, with sum_c W_c s_c = 0 (W_c the
+    group's area fraction); a group with no such wall follows its frame contrasts
+    (biased by a tip change between lines). Their covariance is added (derived). The
+    caller adds to each wall's error the range of the line offsets seen within the
+    groups: a wall between groups lies along the scan lines, so a tip change between its
+    two bands cannot be told from contrast.
+    """
+    W = np.array([frac[comp == c].sum() for c in range(ncomp)])
+    rows_, rhs, var = [], [], []
+    for m, (a, b) in enumerate(pairs):
+        ca, cb = comp[a], comp[b]
+        if ca != cb and np.isfinite(delta[m]) and dse[m] > 0:
+            r = np.zeros(ncomp)
+            r[ca], r[cb] = 1.0, -1.0
+            rows_.append(r)
+            rhs.append(delta[m] - mu[a] + mu[b])
+            var.append(dse[m] ** 2)
+    # Groups without walls to others: a weak tie to the frame contrasts (their group mean).
+    for c in range(ncomp):
+        u = frac[comp == c] / W[c]
+        r = np.zeros(ncomp)
+        r[c] = 1.0
+        rows_.append(r)
+        rhs.append(float(np.sum(u * fr[comp == c])))
+        linked = any(comp[a] != comp[b] and (comp[a] == c or comp[b] == c) for a, b in pairs)
+        var.append(float(np.sum(u**2 * fr_var[comp == c])) * (1e6 if linked else 1.0))
+    A = np.array(rows_)
+    w = 1 / np.array(var)
+    H = A.T @ (w[:, None] * A)
+    K = np.block([[H, W[:, None]], [W[None, :], np.zeros((1, 1))]])
+    Kinv = np.linalg.pinv(K, rcond=1e-12)
+    G = Kinv[:ncomp, :ncomp]
+    shift = G @ (A.T @ (w * np.array(rhs)))
+    scov = G @ H @ G.T
+    mu = mu + shift[comp]
+    cv = cv + scov[np.ix_(comp, comp)]
+    return mu, cv
+
+
+def _contrast_set(quantity, fields, interior, ids, area, domain_w, wall_w, pairs, row_matched, kernel_norm2,
+                  dom_norm2, wall_norm2, lag_px, model, sigma_px):
+    nb, nd, nw = len(fields), len(ids), len(pairs)
+    out = {k: np.full((nb, nd), np.nan) for k in ("mean", "mean_se", "frame", "frame_se", "contrast", "contrast_se")}
+    cov = np.full((nb, nd, nd), np.nan)
+    noise = np.full(nb, np.nan)
+    wd, ws = np.full((nb, nw), np.nan), np.full((nb, nw), np.nan)
+    frac = area / area.sum()
+    for k, f in enumerate(fields):
+        noise[k] = _field_noise(f, interior, lag_px)
+        mean, mean_se = _region_stats(f, domain_w, dom_norm2, kernel_norm2, noise[k])
+        frame_mean = float(np.sum(frac * mean))
+        fr = mean - frame_mean
+        var = mean_se**2
+        fr_var = var * (1 - frac) ** 2 + (np.sum(frac**2 * var) - frac**2 * var)
+        delta, dse = _region_stats(f, wall_w, wall_norm2, kernel_norm2, noise[k]) if nw else (np.zeros(0), np.zeros(0))
+        rows, cols, W, S, ncomp, comp = model
+        mu = W @ f[rows, cols]
+        cv = noise[k] ** 2 * S
+        if ncomp > 1:
+            # Line offsets seen inside the groups: a wall between groups may straddle such a change.
+            index = np.zeros(int(interior.max()) + 1, int)
+            index[ids] = np.arange(nd)
+            dom = index[interior[rows, cols]]
+            n_r = np.bincount(rows, minlength=f.shape[0])
+            a_r = np.bincount(rows, f[rows, cols] - mu[dom], f.shape[0])[n_r > 0] / n_r[n_r > 0]
+            a_r = ndimage.median_filter(a_r, size=max(3, int(2 * math.sqrt(math.pi) * sigma_px[0]) | 1))
+            step = float(a_r.max() - a_r.min()) if a_r.size else 0.0
+            mu, cv = _link_groups(mu, cv, comp, ncomp, frac, fr, fr_var, pairs, delta, np.hypot(dse, step))
+        out["mean"][k], out["mean_se"][k] = mean, mean_se
+        out["frame"][k], out["frame_se"][k] = fr, np.sqrt(fr_var)
+        out["contrast"][k], out["contrast_se"][k] = mu, np.sqrt(np.clip(np.diag(cv), 0, None))
+        cov[k] = cv
+        wd[k], ws[k] = delta, dse
+    return ContrastSet(quantity, out["mean"], out["mean_se"], out["frame"], out["frame_se"], out["contrast"],
+                       out["contrast_se"], cov, noise,
+                       tuple((int(ids[a]), int(ids[b])) for a, b in pairs), wd, ws, np.asarray(row_matched, bool))
+
+
+def default_normalisation(setpoints_A):
+    """The normalisation for maps with these setpoints: "setpoint" if all are known and differ, else "none" or "frame".
+
+    Maps recorded at one known setpoint need none; at known different setpoints they are
+    scaled to one (a constant-current dI/dV map scales with the setpoint current; common
+    practice, no source); with any setpoint unknown each map is divided by its frame mean.
+
+    Parameters
+    ----------
+    setpoints_A : sequence of float or None
+        Setpoint current of each map, A (None where unknown).
+
+    Returns
+    -------
+    str
+        "setpoint", "none" or "frame".
+
+    Examples
+    --------
+    >>> default_normalisation([1e-10, 1.5e-10]), default_normalisation([1e-10, 1e-10]), default_normalisation([None])
+    ('setpoint', 'none', 'frame')
+    """
+    values = []
+    for v in setpoints_A:
+        try:
+            v = float(v)
+        except (TypeError, ValueError):
+            return "frame"
+        if not (math.isfinite(v) and v > 0):
+            return "frame"
+        values.append(v)
+    if not values:
+        return "frame"
+    return "none" if np.allclose(values, values[0], rtol=1e-6, atol=0.0) else "setpoint"
+
+
+def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="nS", mask=None, normalisation="frame",
+                               setpoints_A=None, q=None, margin_sigma=3.5, band_sigma=3.0):
+    """Per-domain conductance (and order amplitude) at each bias, relative to the frame and across each wall.
+
+    Each map is first normalised (``normalisation``): "frame" divides it by its frame
+    mean (values in % of the frame mean), "setpoint" multiplies it by I_ref / I_map so
+    that every map refers to the setpoint current of the lowest-bias map (a
+    constant-current dI/dV map scales with the setpoint current; common practice, no
+    source), "none" leaves it. It is then smoothed by the unit-sum Gaussian of
+    ``sigma_nm`` (which removes the CDW and atomic modulation when sigma |Q| >~ 3,
+    METHODS §1).
+
+    - **Domain mean**: over the domain's interior (``margin_sigma`` sigma from other
+      labels, walls, masks and the edge).
+    - **Wall difference** between neighbours a and b: pixels of a's interior within
+      (``margin_sigma`` + ``band_sigma``) sigma of b, against those of b near a, taken row by
+      row (scan line by scan line), so any offset that depends only on the scan line (a
+      tip change, a slow drift of the tip between lines) cancels; walls along the rows,
+      whose bands share fewer than 3 rows, use band means instead (``row_matched`` False).
+    - **Contrast** of each domain relative to the frame: least squares of the model
+      F = a(row) + mu_domain over every interior pixel, one free offset per scan line, the
+      area-weighted mean of mu zero (the local difference generalised to every pair of
+      domains that share scan lines): offsets of whole scan lines cancel exactly.
+      ``frame`` is the plain mean minus the area-weighted frame mean, which a tip change
+      between lines biases. A change of the tip's gain is not removed (see
+      :func:`electronic_types`).
+    - **Errors**: a weighted sum sum w F of the smoothed field F = K * g has
+      variance s_w^2 sum (K * w)^2 for white noise of pixel variance s_w^2, and the scatter
+      of F is s_F^2 = s_w^2 sum K^2, so var = s_F^2 sum (K * w)^2 / sum K^2 (derived). For a
+      region of area S much larger than sigma^2 this is s_F^2 4 pi sigma^2 / S: one
+      independent sigma-patch per 4 pi sigma^2 (derived: the autocorrelation of
+      Gaussian-smoothed white noise is exp(-r^2 / 4 sigma^2)). s_F is measured from
+      differences of F along the scan lines within domains (robust to line offsets). The
+      contrasts' full covariance follows from the same formula with the model's pixel
+      weights.
+    - **Order amplitude** (with ``q``): the lock-in amplitude sqrt(sum_j (2|A_j|)^2) [1]_
+      of the normalised map, treated with the same estimators (it is already smooth on
+      the scale sigma).
+
+    Parameters
+    ----------
+    maps : dict {bias_V: (row, col) array or Scan}
+        Maps (e.g. dI/dV) on the labels' pixel grid, drift-corrected like the topograph.
+    labels : (row, col) int array
+        0 = wall or unassigned, 1..N domains.
+    pixel_size_nm : float or (float, float)
+        Pixel size, nm.
+    sigma_nm : float
+        Smoothing (and lock-in) width, nm.
+    units : str
+        Units of the maps (the sidecar's ``units``, e.g. "nS").
+    mask : (row, col) bool array, optional
+        True where pixels are untrusted.
+    normalisation : {"frame", "setpoint", "none"}
+        How maps taken at different times are put on one scale.
+    setpoints_A : dict {bias_V: A} or sequence, optional
+        Setpoint current of each map (needed for "setpoint"), a sequence in the order of ``maps``.
+    q : (k, 2) array_like, optional
+        Order wavevectors (qx, qy), rad/nm: adds the order amplitude.
+    margin_sigma, band_sigma : float
+        Interior margin and width of the band beside each wall, in units of sigma.
+
+    Returns
+    -------
+    ElectronicContrast
+
+    Raises
+    ------
+    InputError
+        Bad maps, labels, normalisation or setpoints.
+
+    References
+    ----------
+    .. [1] J. A. Slezak et al., PNAS 105, 3203 (2008). doi:10.1073/pnas.0706795105
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> labels = np.ones((96, 96), np.int32); labels[:, 48:] = 2
+    >>> noise = np.random.default_rng(0).normal(0, 0.05, (2, 96, 96))
+    >>> maps = {-0.3: 1.0 + 0.2 * (labels == 1) + noise[0], 0.3: 1.0 - 0.1 * (labels == 1) + noise[1]}
+    >>> c = domain_electronic_contrast(maps, labels, pixel_size_nm=0.1, sigma_nm=0.4, normalisation="none")
+    >>> np.round(c.conductance.wall_delta[:, 0], 2).tolist(), c.conductance.pairs
+    ([0.2, -0.1], ((1, 2),))
+    """
+    pixel = pixel_size_pair(pixel_size_nm)
+    dy, dx = pixel
+    sigma_nm = positive(sigma_nm, "sigma_nm")
+    margin_sigma = positive(margin_sigma, "margin_sigma")
+    band_sigma = positive(band_sigma, "band_sigma")
+    if normalisation not in NORMALISATIONS:
+        raise InputError(f"normalisation must be one of {', '.join(NORMALISATIONS)}, got {normalisation!r}")
+    if not isinstance(units, str) or not units.strip():
+        raise InputError(f"units must be a non-empty string (the maps' units, e.g. 'nS'), got {units!r}")
+    labels_in = np.asarray(labels)
+    maps = _check_maps(maps, labels_in.shape, pixel, like="the labels")
+    labels = _labels(labels_in, labels_in.shape)
+    given_order = list(maps)
+    biases = sorted(maps)
+    bad = _mask(mask, labels.shape)
+    for image in maps.values():
+        bad |= ~np.isfinite(image)
+    if q is not None:
+        q = _q(q)
+    ids = np.unique(labels[labels > 0])
+    if ids.size < 1:
+        raise InputError("labels hold no domain (every pixel is 0)")
+
+    # Normalisation.
+    if normalisation == "setpoint":
+        setpoints = _setpoint_list(setpoints_A, given_order, biases)
+        scale = [setpoints[0] / s for s in setpoints]
+        note = (f"each map scaled by I_ref / I_map to the setpoint {setpoints[0]:.3g} A of the map at "
+                f"{biases[0]:+.2f} V")
+        shown_units, token = units, units
+    elif normalisation == "frame":
+        scale = []
+        for b in biases:
+            m = float(np.mean(maps[b][~bad])) if (~bad).any() else float("nan")
+            if not (math.isfinite(m) and m != 0):
+                raise InputError(f"normalisation = 'frame' needs a nonzero frame mean; the map at {b:g} V has {m!r}")
+            scale.append(100.0 / m)
+        note = "each map divided by its frame mean (values in % of the frame mean)"
+        shown_units, token = f"% of frame mean ({units})", "pct"
+    else:
+        scale = [1.0] * len(biases)
+        note = "maps used as recorded (no normalisation)"
+        shown_units, token = units, units
+    token = "".join(ch if ch.isalnum() else "_" for ch in token).strip("_") or "value"
+
+    interior = _interior_labels(labels, sigma_nm=sigma_nm, pixel_size=pixel, mask=bad, margin_sigma=margin_sigma)
+    missing = [int(d) for d in ids if not np.any(interior == d)]
+    if missing:
+        ids = np.array([d for d in ids if d not in missing])
+        if ids.size < 1:
+            raise InputError(f"no domain has an interior {margin_sigma:g} sigma from its walls "
+                             f"(sigma_nm = {sigma_nm:g}); use a smaller sigma_nm")
+    area = np.bincount(labels.ravel(), minlength=int(labels.max()) + 1)[ids] * dy * dx
+    sigma_px = (sigma_nm / dy, sigma_nm / dx)
+    pad = int(math.ceil(4 * max(sigma_px))) + 1
+    kn2 = _kernel_norm2(sigma_px)
+
+    # Domain estimators: the mean over the interior.
+    domain_w, dom_norm2 = [], []
+    for d in ids:
+        r, c = np.nonzero(interior == d)
+        w = np.full(r.size, 1.0 / r.size)
+        domain_w.append((r, c, w))
+        dom_norm2.append(_sparse_norm2(r, c, w, labels.shape, sigma_px, pad))
+
+    # Wall estimators: row-matched band differences.
+    index = {int(d): i for i, d in enumerate(ids)}
+    gap = max(2, int(math.ceil(3 * sigma_nm / min(dy, dx))))  # walls labelled 0 up to 3 sigma wide
+    candidates = [(a, b) for a, b in _neighbour_pairs(labels, gap, min_contact=sigma_nm / min(dy, dx))
+                  if a in index and b in index]
+    reach = (margin_sigma + band_sigma) * sigma_nm
+    min_rows = 3  # any shared rows give an unbiased row-matched difference; few give a large (exact) error
+    pairs, wall_w, wall_norm2, row_matched = [], [], [], []
+    for a, b in candidates:
+        both = (labels == a) | (labels == b)
+        rr, cc = np.nonzero(both)
+        extra = int(math.ceil(reach / min(dy, dx))) + 2
+        r0, r1 = max(rr.min() - extra, 0), min(rr.max() + extra + 1, labels.shape[0])
+        c0, c1 = max(cc.min() - extra, 0), min(cc.max() + extra + 1, labels.shape[1])
+        lab = labels[r0:r1, c0:c1]
+        inner = interior[r0:r1, c0:c1]
+        near_b = ndimage.distance_transform_edt(lab != b, sampling=pixel) <= reach
+        near_a = ndimage.distance_transform_edt(lab != a, sampling=pixel) <= reach
+        band_a, band_b = (inner == a) & near_b, (inner == b) & near_a
+        if not band_a.any() or not band_b.any():
+            continue
+        ra, ca = np.nonzero(band_a)
+        rb, cb = np.nonzero(band_b)
+        shared = np.intersect1d(ra, rb)
+        if shared.size >= min_rows:
+            keep_a, keep_b = np.isin(ra, shared), np.isin(rb, shared)
+            ra, ca, rb, cb = ra[keep_a], ca[keep_a], rb[keep_b], cb[keep_b]
+            na = np.bincount(ra, minlength=lab.shape[0])
+            nbb = np.bincount(rb, minlength=lab.shape[0])
+            wa = 1.0 / (shared.size * na[ra])
+            wb = -1.0 / (shared.size * nbb[rb])
+            matched = True
+        else:
+            wa, wb = np.full(ra.size, 1.0 / ra.size), np.full(rb.size, -1.0 / rb.size)
+            matched = False
+        r = np.concatenate([ra, rb]) + r0
+        c = np.concatenate([ca, cb]) + c0
+        w = np.concatenate([wa, wb])
+        pairs.append((index[a], index[b]))
+        wall_w.append((r, c, w))
+        wall_norm2.append(_sparse_norm2(r, c, w, labels.shape, sigma_px, pad))
+        row_matched.append(matched)
+
+    # Fields: the smoothed normalised map, and the order amplitude.
+    cond_fields, amp_fields = [], []
+    for b, s in zip(biases, scale):
+        image = _fill_invalid(maps[b] * s, bad)
+        smooth = ndimage.gaussian_filter(image, sigma_px, mode="reflect", truncate=4.0)
+        cond_fields.append(smooth)
+        if q is not None:
+            # The slowly varying part is removed first: its leak exp(-sigma^2 q^2 / 2) into the lock-in
+            # at q would add a ripple to the amplitude (METHODS §1; derived).
+            a = lockin(image - smooth, q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=bad)
+            amp_fields.append(np.sqrt(np.sum((2 * np.abs(a)) ** 2, axis=0)))
+    lag = max(1, int(round(4 * sigma_px[1])))
+    lag_px = (lag, 1 - math.exp(-((lag / sigma_px[1]) ** 2) / 4))
+    model = _row_offset_model(interior, ids, area, sigma_px, kn2)
+    args = (interior, ids, area, domain_w, wall_w, pairs, row_matched, kn2, dom_norm2, wall_norm2, lag_px, model,
+            sigma_px)
+    conductance = _contrast_set("conductance", cond_fields, *args)
+    amplitude = _contrast_set("amplitude", amp_fields, *args) if q is not None else None
+    return ElectronicContrast(tuple(float(b) for b in biases), tuple(int(d) for d in ids), area, shown_units, token,
+                              normalisation, note, tuple(float(s) for s in scale), sigma_nm, conductance, amplitude)
+
+
+def _letters(i):
+    """Type names A, B, ..., Z, AA, AB, ..."""
+    s = ""
+    i += 1
+    while i:
+        i, r = divmod(i - 1, 26)
+        s = chr(65 + r) + s
+    return s
+
+
+def _fmt_bias(b):
+    return f"{b:+.2f} V".replace("-", "−")
+
+
+def _pm(value, se):
+    """'0.80 ± 0.10': the error to two significant digits if it starts with 1 or 2, else one; the value alike."""
+    if not (math.isfinite(se) and se > 0):
+        return f"{value:.3g}"
+    exp = math.floor(math.log10(se))
+    lead = se / 10**exp
+    digits = max(0, -exp + (1 if lead < 3 else 0))
+    return f"{value:.{digits}f} ± {se:.{digits}f}".replace("-", "−")
+
+
+@dataclass(frozen=True, eq=False)
+class ElectronicTypes:
+    """Domains grouped into electronic types by their contrast at every bias.
+
+    Attributes
+    ----------
+    contrast : ElectronicContrast
+        The per-domain contrasts the grouping used.
+    types : tuple of tuple of int
+        Member domains of each type; type i is named ``names[i]`` (A, B, ...).
+    names : tuple of str
+    features : tuple of (str, float)
+        (quantity, bias_V) of each compared value.
+    value, se : ndarray (n_types, n_features)
+        Area-weighted mean contrast of each type and its standard error.
+    pair_diff, pair_se, pair_z, pair_p : ndarray (n_types, n_types, n_features)
+        Difference type i minus type j, error, z and two-sided p.
+    alpha : float
+        Family-wise significance level of a test over all features.
+    z_threshold : float
+        |z| above which one feature differs (Šidák level 1 - (1 - alpha)^(1/n_features)).
+    homogeneity_chi2, homogeneity_dof, homogeneity_p : float
+        Test that all domains share one type.
+    gain_tolerance : float
+        Relative allowance for a change of the tip's gain.
+    pair_z_tolerant : ndarray (n_types, n_types, n_features)
+        Difference over its error and the gain allowance combined; decides significance.
+    """
+
+    contrast: ElectronicContrast
+    types: tuple
+    names: tuple
+    features: tuple
+    value: np.ndarray
+    se: np.ndarray
+    pair_diff: np.ndarray
+    pair_se: np.ndarray
+    pair_z: np.ndarray
+    pair_p: np.ndarray
+    alpha: float
+    z_threshold: float
+    homogeneity_chi2: float
+    homogeneity_dof: int
+    homogeneity_p: float
+    gain_tolerance: float = 0.0
+    pair_z_tolerant: np.ndarray | None = None
+
+    def significant(self, i, j, f) -> bool:
+        """Whether types i and j differ in feature f: |z| above the threshold with the gain allowance."""
+        z = self.pair_z if self.pair_z_tolerant is None else self.pair_z_tolerant
+        return bool(abs(z[i, j, f]) > self.z_threshold)
+
+    @property
+    def n_types(self) -> int:
+        """Number of electronic types."""
+        return len(self.types)
+
+    def type_of(self) -> dict:
+        """{domain: type name}."""
+        return {d: self.names[i] for i, members in enumerate(self.types) for d in members}
+
+    def _header(self, quantity, bias, what="contrast"):
+        p = "" if quantity == "conductance" else "amplitude_"
+        return f"{p}{what}_{self.contrast.unit_token}_at_{bias:+.2f}V"
+
+    def rows(self) -> list[dict]:
+        """One row per type for ``types.csv``: members, area and contrast with error at each bias."""
+        area = dict(zip(self.contrast.domains, self.contrast.area_nm2))
+        out = []
+        for i, members in enumerate(self.types):
+            row = {"type": self.names[i], "domains": ";".join(str(d) for d in members), "n_domains": len(members),
+                   "area_nm2": float(sum(area[d] for d in members))}
+            for f, (quantity, bias) in enumerate(self.features):
+                h = self._header(quantity, bias)
+                row[h] = _json_float(self.value[i, f])
+                row[h + "_se"] = _json_float(self.se[i, f])
+            out.append(row)
+        return out
+
+    def domain_rows(self) -> list[dict]:
+        """One row per domain: its type, area and, at each bias, mean and contrast with errors."""
+        c = self.contrast
+        kind = self.type_of()
+        out = []
+        for i, d in enumerate(c.domains):
+            row = {"domain": int(d), "type": kind[d], "area_nm2": float(c.area_nm2[i])}
+            for s in c.sets():
+                for k, bias in enumerate(c.biases_V):
+                    for what, arr, err in (("mean", s.mean, s.mean_se), ("contrast", s.contrast, s.contrast_se),
+                                           ("frame_contrast", s.frame, s.frame_se)):
+                        h = self._header(s.quantity, bias, what)
+                        row[h] = _json_float(arr[k, i])
+                        row[h + "_se"] = _json_float(err[k, i])
+            out.append(row)
+        return out
+
+    def differences(self, i, j) -> list[dict]:
+        """Feature by feature, type i minus type j: difference, error, z, p and whether it is significant."""
+        return [{"quantity": q, "bias_V": float(b), "difference": _json_float(self.pair_diff[i, j, f]),
+                 "difference_se": _json_float(self.pair_se[i, j, f]), "z": _json_float(self.pair_z[i, j, f]),
+                 "p": _json_float(self.pair_p[i, j, f]),
+                 "significant": self.significant(i, j, f)}
+                for f, (q, b) in enumerate(self.features)]
+
+    def sentences(self) -> list[str]:
+        """The result in words, one sentence per pair of types (and one for the grouping)."""
+        c = self.contrast
+        unit = "% of the frame mean" if c.normalisation == "frame" else c.units
+        n = self.n_types
+        if n == 1 and len(c.domains) == 1:
+            return [f"1 electronic type: a single domain ({c.normalisation_note})."]
+        if n == 1:
+            return [f"1 electronic type: all {len(c.domains)} domains agree within errors at every bias "
+                    f"(χ² = {self.homogeneity_chi2:.1f} for {self.homogeneity_dof} degrees of freedom, "
+                    f"p = {self.homogeneity_p:.2g}; {c.normalisation_note})."]
+
+        def members(i):
+            m = self.types[i]
+            return f"domain{'s' if len(m) > 1 else ''} {', '.join(str(d) for d in m)}"
+
+        def clause(i, j, quantity):
+            words = ("brighter", "darker") if quantity == "conductance" else ("larger", "smaller")
+            parts, none = [], []
+            for f, (q, b) in enumerate(self.features):
+                if q != quantity:
+                    continue
+                d, s = self.pair_diff[i, j, f], self.pair_se[i, j, f]
+                if self.significant(i, j, f):
+                    parts.append((words[0] if d > 0 else words[1], _fmt_bias(b), _pm(abs(d), s)))
+                else:
+                    none.append(_fmt_bias(b))
+            return parts, none
+
+        def join(parts, first_target):
+            said = []
+            for k, (word, bias, value) in enumerate(parts):
+                if k == 0:
+                    said.append(f"is {word} than {first_target} at {bias} by {value} {unit}")
+                else:
+                    said.append(f"{word} at {bias} by {value} {unit}")
+            if len(said) > 1:
+                return ", ".join(said[:-1]) + " and " + said[-1]
+            return said[0] if said else ""
+
+        out = []
+        pairs = [(i, j) for i in range(n) for j in range(i + 1, n)]
+        for k, (i, j) in enumerate(pairs):
+            parts, none = clause(i, j, "conductance")
+            target = f"type {self.names[j]}" + (f" ({members(j)})" if n == 2 else "")
+            if n == 2:
+                head = f"2 electronic types: type {self.names[i]} ({members(i)}) "
+            else:
+                head = ("" if k else f"{n} electronic types: "
+                        + "; ".join(f"type {self.names[t]} ({members(t)})" for t in range(n)) + ". ") \
+                       + f"Type {self.names[i]} "
+            if parts:
+                body = join(parts, target)
+            else:
+                body = f"does not differ from {target} in conductance at any bias"
+            tail = f"; no significant difference at {', '.join(none)}" if parts and none else ""
+            sentence = head + body + tail
+            if self.contrast.amplitude is not None:
+                aparts, _ = clause(i, j, "amplitude")
+                if aparts:
+                    said = [f"{w} at {b} by {v} {unit}" for w, b, v in aparts]
+                    sentence += f"; its order amplitude is {said[0]}" + "".join(f", {s}" for s in said[1:])
+            out.append(sentence + ".")
+        return out
+
+    def to_summary(self) -> dict:
+        """JSON-ready dict for ``summary.json``: the types, their contrasts, the pairwise tests and the sentences."""
+        c = self.contrast
+        return {
+            "n_types": self.n_types, "alpha": self.alpha, "z_threshold": self.z_threshold,
+            "gain_tolerance": self.gain_tolerance,
+            "homogeneity": {"chi2": _json_float(self.homogeneity_chi2), "dof": int(self.homogeneity_dof),
+                            "p": _json_float(self.homogeneity_p)},
+            "units": c.units, "normalisation": c.normalisation, "normalisation_note": c.normalisation_note,
+            "types": [{"type": self.names[i], "domains": [int(d) for d in m],
+                       "contrast": [{"quantity": q, "bias_V": float(b), "value": _json_float(self.value[i, f]),
+                                     "se": _json_float(self.se[i, f])} for f, (q, b) in enumerate(self.features)]}
+                      for i, m in enumerate(self.types)],
+            "differences": [{"types": [self.names[i], self.names[j]], "features": self.differences(i, j)}
+                            for i in range(self.n_types) for j in range(i + 1, self.n_types)],
+            "sentences": self.sentences(),
+            "contrast": c.to_summary(),
+        }
+
+
+def electronic_types(contrast, *, alpha=TYPES_ALPHA, gain_tolerance=GAIN_TOLERANCE, use_amplitude=True):
+    """Group domains into electronic types: merge while no remaining difference is significant.
+
+    The features are the line-offset-free contrasts of :func:`domain_electronic_contrast`
+    at every bias (conductance, and the order amplitude if computed and
+    ``use_amplitude``), with their full covariance. First a homogeneity test: chi^2 =
+    sum over features of c^T C^+ c (C^+ the pseudo-inverse of the contrasts'
+    covariance, dof its rank); if p >= ``alpha`` there is one type, so the rate of a
+    false second type on a one-type scene is at most ``alpha`` (derived). Otherwise
+    agglomerative merging [1]_: starting from single domains, the two groups whose
+    largest |z| over the features is smallest are merged while that |z| is below the
+    Šidák threshold z* = Phi^-1(1 - a/2), a = 1 - (1 - alpha)^(1/n_features) [2]_. A
+    group's value is the area-weighted mean of its members' contrasts; the variance of
+    a difference u^T c is u^T C u, plus (``gain_tolerance`` times the larger of the two
+    groups' |contrast|)^2: a tip whose gain changes during a map (a change of its density
+    of states) scales the contrast of the lines scanned after it, which no offset
+    correction removes. The same z* and allowance decide which differences between
+    types are called significant. The translational variant plays no part.
+
+    Parameters
+    ----------
+    contrast : ElectronicContrast
+        From :func:`domain_electronic_contrast`.
+    alpha : float
+        Family-wise significance level, in (0, 0.5).
+    gain_tolerance : float
+        Relative allowance for a change of the tip's gain, >= 0 (0.2: 20 %).
+    use_amplitude : bool
+        Use the order amplitude too, when present.
+
+    Returns
+    -------
+    ElectronicTypes
+
+    Raises
+    ------
+    InputError
+        If ``contrast`` is not an ElectronicContrast or ``alpha`` is out of range.
+
+    References
+    ----------
+    .. [1] J. H. Ward, J. Am. Stat. Assoc. 58, 236 (1963) (agglomerative grouping).
+       doi:10.1080/01621459.1963.10500845
+    .. [2] Z. Šidák, J. Am. Stat. Assoc. 62, 626 (1967). doi:10.1080/01621459.1967.10482935
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> labels = np.zeros((128, 128), np.int32)
+    >>> labels[:64, :64], labels[:64, 64:], labels[64:, :64], labels[64:, 64:] = 1, 2, 3, 4
+    >>> step = np.where(np.isin(labels, (1, 4)), 0.2, -0.2)
+    >>> noise = np.random.default_rng(0).normal(0, 0.05, (2, 128, 128))
+    >>> maps = {-0.3: 1 + step + noise[0], 0.3: 1 - step + noise[1]}
+    >>> c = domain_electronic_contrast(maps, labels, pixel_size_nm=0.1, sigma_nm=0.4, normalisation="none")
+    >>> t = electronic_types(c)
+    >>> t.types
+    ((1, 4), (2, 3))
+    >>> print(t.sentences()[0])  # doctest: +NORMALIZE_WHITESPACE
+    2 electronic types: type A (domains 1, 4) is brighter than type B (domains 2, 3) at −0.30 V
+    by 0.4006 ± 0.0010 nS and darker at +0.30 V by 0.4001 ± 0.0010 nS.
+    """
+    if not isinstance(contrast, ElectronicContrast):
+        raise InputError(f"contrast must be an ElectronicContrast from domain_electronic_contrast, "
+                         f"got {type(contrast).__name__}")
+    try:
+        alpha = float(alpha)
+    except (TypeError, ValueError):
+        alpha = float("nan")
+    if not 0 < alpha < 0.5:
+        raise InputError(f"alpha must be a significance level in (0, 0.5), got {alpha!r}")
+    try:
+        tol = float(gain_tolerance)
+    except (TypeError, ValueError):
+        tol = float("nan")
+    if not (math.isfinite(tol) and tol >= 0):
+        raise InputError(f"gain_tolerance must be a finite fraction >= 0, got {gain_tolerance!r}")
+    sets = [contrast.conductance] + ([contrast.amplitude] if use_amplitude and contrast.amplitude is not None else [])
+    features, values, covs = [], [], []
+    for s in sets:
+        for k, b in enumerate(contrast.biases_V):
+            if np.all(np.isfinite(s.contrast[k])) and np.all(np.isfinite(s.cov[k])):
+                features.append((s.quantity, float(b)))
+                values.append(s.contrast[k])
+                covs.append(s.cov[k])
+    nd = len(contrast.domains)
+    area = np.asarray(contrast.area_nm2, float)
+    nf = len(features)
+    a_feature = 1 - (1 - alpha) ** (1 / max(nf, 1))
+    z_thr = float(stats.norm.isf(a_feature / 2))
+
+    chi2, dof = 0.0, 0
+    for v, C in zip(values, covs):
+        if nd < 2:
+            break
+        Cp = np.linalg.pinv(C, rcond=1e-10, hermitian=True)
+        chi2 += float(v @ Cp @ v)
+        dof += int(np.linalg.matrix_rank(C, tol=1e-10 * max(np.abs(C).max(), 1e-300), hermitian=True))
+    p_hom = float(stats.chi2.sf(chi2, dof)) if dof else 1.0
+
+    def weights(group):
+        u = np.zeros(nd)
+        idx = list(group)
+        u[idx] = area[idx] / area[idx].sum()
+        return u
+
+    def max_z(g, h):
+        ug, uh = weights(g), weights(h)
+        u = ug - uh
+        zs = [abs(u @ v) / math.sqrt(max(u @ C @ u + (tol * max(abs(ug @ v), abs(uh @ v))) ** 2, 1e-300))
+              for v, C in zip(values, covs)]
+        return max(zs) if zs else 0.0
+
+    groups = [[i] for i in range(nd)]
+    if p_hom >= alpha or nf == 0:
+        groups = [list(range(nd))]
+    while len(groups) > 1:
+        best, pair = None, None
+        for i in range(len(groups)):
+            for j in range(i + 1, len(groups)):
+                z = max_z(groups[i], groups[j])
+                if best is None or z < best:
+                    best, pair = z, (i, j)
+        if best >= z_thr:
+            break
+        i, j = pair
+        groups[i] = groups[i] + groups[j]
+        del groups[j]
+    ids = contrast.domains
+    groups = sorted((sorted(g, key=lambda i: ids[i]) for g in groups), key=lambda g: ids[g[0]])
+    nt = len(groups)
+    value, se = np.zeros((nt, nf)), np.zeros((nt, nf))
+    diff, dse, sys = np.zeros((nt, nt, nf)), np.zeros((nt, nt, nf)), np.zeros((nt, nt, nf))
+    U = [weights(g) for g in groups]
+    for f, (v, C) in enumerate(zip(values, covs)):
+        for i in range(nt):
+            value[i, f] = U[i] @ v
+            se[i, f] = math.sqrt(max(U[i] @ C @ U[i], 0.0))
+            for j in range(nt):
+                u = U[i] - U[j]
+                diff[i, j, f] = u @ v
+                dse[i, j, f] = math.sqrt(max(u @ C @ u, 0.0))
+                sys[i, j, f] = tol * max(abs(U[i] @ v), abs(U[j] @ v))
+    total = np.sqrt(dse**2 + sys**2)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        z = np.where(dse > 0, diff / np.where(dse > 0, dse, 1), 0.0)
+        zt = np.where(total > 0, diff / np.where(total > 0, total, 1), 0.0)
+    p = 2 * stats.norm.sf(np.abs(z))
+    return ElectronicTypes(contrast, tuple(tuple(int(ids[i]) for i in g) for g in groups),
+                           tuple(_letters(i) for i in range(nt)), tuple(features), value, se, diff, dse, z, p,
+                           alpha, z_thr, chi2, dof, p_hom, tol, zt)

@@ -36,7 +36,7 @@ from .cdw import Scene, _assign_variants, _rng, smooth_partition, voronoi_labels
 from .moire import twisted_bilayer
 
 __all__ = ["Conditions", "scan_displacement", "supercell_geometry", "supercell_cdw_scene",
-           "incommensurate_cdw_scene", "bilayer_scene", "real_scene", "REAL_SCENES"]
+           "incommensurate_cdw_scene", "bilayer_scene", "real_scene", "REAL_SCENES", "electronic_types_scene"]
 
 # Lattice-coordinate maps of the hexagonal point group (act on row vectors m: m -> m P).
 _MIRROR = np.array([[1, 0], [1, -1]])  # reflection about a1: a1 -> a1, a2 -> a1 - a2
@@ -1166,3 +1166,171 @@ def real_scene(kind, *, size=1024, rng=0, **overrides):
     scene.truth["scene"] = kind
     scene.truth["seed"] = int(rng) if isinstance(rng, (int, np.integer)) else None
     return scene
+
+
+# --------------------------------------------------------------------------- electronic types
+
+
+def _type_offsets(n_types, biases_V):
+    """Default conductance offsets (nS) per type and bias, x = V / max|V|: -0.4 x, +0.4 x, +0.25 (derived patterns)."""
+    x = np.asarray(biases_V, float) / max(np.abs(biases_V).max(), 1e-12)
+    patterns = [-0.4 * x, 0.4 * x, np.full_like(x, 0.25)]
+    if n_types == 1:
+        return np.zeros((1, len(x)))
+    return np.array(patterns[:n_types])
+
+
+def electronic_types_scene(*, shape=(1024, 1024), pixel_size_nm=0.05, a_nm=0.336, angle_deg=7.0, n_types=2,
+                           n_domains=10, biases_V=(-0.3, -0.1, 0.1, 0.3), offsets_nS=None, cdw_amplitude_nS=None,
+                           base_nS=1.0, noise_nS=0.05, lattice_nS=0.03, tip_change=True, tip_change_contrast=0.85,
+                           tip_change_offset_nS=0.15, setpoint_ratio=1.5, wall_width_nm=0.25, rng=0):
+    """A 3×3 CDW in Voronoi domains whose electronic type (conductance, CDW amplitude) is independent of the variant.
+
+    The topograph is :func:`supercell_cdw_scene` with M = 3 I (nine translational
+    variants, neighbours in different variants). Each domain also gets an electronic
+    type t, drawn independently of its variant. The true conductance at bias V_k is
+
+    g_k(r) = b_k + sum_d w_d(r) [delta_{t(d),k} + s_k a_{t(d),k} sum_j cos(Q_j . r + phi_j^d)]
+    + l sum_j cos(G_j . r),
+
+    w_d the smoothed Voronoi partition, b_k = ``base_nS`` (1 + 0.8 |V_k| / 1 V), s_k = sign(V_k)
+    (filled- and empty-state CDW contrasts complementary), l = ``lattice_nS``. The maps are
+    taken at different times: map k is recorded at the setpoint I_k (I_0 = 100 pA, every
+    odd-numbered map at ``setpoint_ratio`` I_0), and a constant-current dI/dV map scales
+    with the setpoint current, m_k = (I_k / I_0) g_k (common practice, no source). With
+    ``tip_change``, the tip changes at a row of map n // 2: from that row on, and in every
+    later map, m -> c m + o (c = ``tip_change_contrast``, o = ``tip_change_offset_nS``).
+    White noise of ``noise_nS`` is added last.
+
+    Parameters
+    ----------
+    shape : (int, int)
+        Image shape (row, col).
+    pixel_size_nm : float
+        Pixel size, nm (must resolve the atoms).
+    a_nm, angle_deg : float
+        Lattice constant (nm) and direction of a1 (degrees), an invented layered crystal.
+    n_types : {1, 2, 3}
+        Number of electronic types.
+    n_domains : int
+        Number of Voronoi domains (at least ``n_types``).
+    biases_V : sequence of float
+        Bias of each map, V (distinct, nonzero).
+    offsets_nS : (n_types, n_biases) array_like, optional
+        delta_{t,k}, nS. Default with x = V / max|V|: type 0 -0.4 x, type 1 +0.4 x,
+        type 2 +0.25 (bright at negative bias, the opposite, and the same at both).
+    cdw_amplitude_nS : (n_types, n_biases) array_like, optional
+        a_{t,k}, nS; default 0.06 (1 + 0.5 t) at every bias.
+    base_nS, noise_nS, lattice_nS : float
+        Background conductance at 0 V, white noise per pixel and the atomic term, nS.
+    tip_change : bool
+        Whether the tip changes (contrast and offset) between maps.
+    tip_change_contrast, tip_change_offset_nS : float
+        c and o of the tip change.
+    setpoint_ratio : float
+        Setpoint of the odd-numbered maps over that of the even-numbered ones.
+    wall_width_nm : float
+        Gaussian width of the walls, nm.
+    rng : int or numpy.random.Generator
+        Seed.
+
+    Returns
+    -------
+    Scene
+        kind "electronic_types"; ``maps`` are conductance Scans (nS) with ``setpoint_A``.
+        ``truth["electronic"]``: ``type_of_domain`` ({label: type}), ``offsets_nS``,
+        ``cdw_amplitude_nS``, ``biases_V``, ``setpoints_A``, ``tip_change``,
+        ``area_px`` per domain, ``type_contrast_nS`` (n_types, n_biases: delta_t minus its
+        area-weighted mean over the frame's domains, the truth of a contrast relative to the
+        frame) and the other truths of :func:`supercell_cdw_scene`. ``truth_maps["type"]``
+        is the type of each pixel.
+
+    References
+    ----------
+    .. [1] J. M. Carpinelli et al., Nature 381, 398 (1996) (complementary filled- and
+       empty-state CDW images). doi:10.1038/381398a0
+
+    Examples
+    --------
+    >>> scene = electronic_types_scene(shape=(96, 96), n_domains=4, rng=1)
+    >>> len(scene.maps), sorted(set(scene.truth["electronic"]["type_of_domain"].values()))
+    (4, [0, 1])
+    """
+    gen = _rng(rng)
+    shape = _shape(shape)
+    if int(n_types) != n_types or not 1 <= int(n_types) <= 3:
+        raise InputError(f"n_types must be 1, 2 or 3, got {n_types!r}")
+    n_types = int(n_types)
+    if int(n_domains) != n_domains or int(n_domains) < n_types:
+        raise InputError(f"n_domains must be a whole number >= n_types = {n_types}, got {n_domains!r}")
+    biases = np.asarray(biases_V, float).ravel()
+    if biases.size < 1 or not np.all(np.isfinite(biases)) or len(set(biases.tolist())) != biases.size \
+            or np.any(biases == 0):
+        raise InputError(f"biases_V must be distinct, finite, nonzero biases in V, got {biases_V!r}")
+    nb = biases.size
+    offsets = _type_offsets(n_types, biases) if offsets_nS is None else np.asarray(offsets_nS, float)
+    amps = (0.06 * (1 + 0.5 * np.arange(n_types))[:, None] * np.ones(nb) if cdw_amplitude_nS is None
+            else np.asarray(cdw_amplitude_nS, float))
+    for name, arr in (("offsets_nS", offsets), ("cdw_amplitude_nS", amps)):
+        if arr.shape != (n_types, nb) or not np.all(np.isfinite(arr)):
+            raise InputError(f"{name} must be finite with shape (n_types, n_biases) = {(n_types, nb)}, "
+                             f"got shape {arr.shape}")
+    if not float(setpoint_ratio) > 0:
+        raise InputError(f"setpoint_ratio must be positive, got {setpoint_ratio!r}")
+    if not float(tip_change_contrast) > 0:
+        raise InputError(f"tip_change_contrast must be positive, got {tip_change_contrast!r}")
+
+    base = supercell_cdw_scene(shape=shape, pixel_size_nm=pixel_size_nm, a_nm=a_nm, angle_deg=angle_deg,
+                               supercell=((3, 0), (0, 3)), n_domains=int(n_domains), cdw_to_lattice=2.0,
+                               wall_width_nm=wall_width_nm, conditions=Conditions(white_noise_nm=0.004),
+                               biases_V=(), rng=gen)
+    pixel = pixel_size_pair(pixel_size_nm)
+    labels = base.truth_maps["labels"]
+    ids = np.arange(1, int(n_domains) + 1)
+    type_of = gen.permutation(np.arange(int(n_domains)) % n_types)
+    y, x = np.mgrid[: shape[0], : shape[1]]
+    sx, sy = x * pixel[1], y * pixel[0]
+    q_cdw = np.array(base.truth["q_cdw_rad_per_nm"])
+    bragg = np.array(base.truth["lattice"]["q_bragg_rad_per_nm"])
+    lattice = sum(np.cos(g[0] * sx + g[1] * sy) for g in bragg)
+    sigma = (max(wall_width_nm, 1e-9) / pixel[0], max(wall_width_nm, 1e-9) / pixel[1])
+    offset_map = np.zeros((nb,) + shape)
+    cdw_map = np.zeros((nb,) + shape)
+    for entry in base.truth["domains"]:
+        d = entry["label"]
+        w = (ndimage.gaussian_filter((labels == d).astype(float), sigma, mode="nearest") if wall_width_nm > 0
+             else (labels == d).astype(float))
+        t = int(type_of[d - 1])
+        wave = sum(np.cos(q[0] * sx + q[1] * sy + p) for q, p in zip(q_cdw, entry["phases_rad"]))
+        for k in range(nb):
+            offset_map[k] += w * offsets[t, k]
+            cdw_map[k] += w * amps[t, k] * np.sign(biases[k]) * wave
+    setpoints = np.where(np.arange(nb) % 2 == 1, float(setpoint_ratio), 1.0) * 1e-10
+    tc_map, tc_row = nb // 2, int(round(shape[0] * gen.uniform(0.35, 0.65)))
+    maps = []
+    for k, bias in enumerate(biases):
+        g = base_nS * (1 + 0.8 * abs(bias)) + offset_map[k] + cdw_map[k] + lattice_nS * lattice
+        m = g * setpoints[k] / setpoints[0]
+        if tip_change and k >= tc_map:
+            rows = slice(tc_row if k == tc_map else 0, None)
+            m[rows] = tip_change_contrast * m[rows] + tip_change_offset_nS
+        m = m + gen.normal(0, noise_nS, shape)
+        maps.append(Scan(m, pixel_size_nm=pixel, channel="conductance", bias_V=float(bias),
+                         setpoint_A=float(setpoints[k]), source=f"<synthetic electronic types scene, {bias:+.2f} V>",
+                         metadata={"units": "nS"}))
+    area = np.bincount(labels.ravel(), minlength=int(n_domains) + 1)[1:].astype(float)
+    mean_offset = (area[:, None] * offsets[type_of]).sum(0) / area.sum()
+    truth = dict(base.truth)
+    truth["electronic"] = {
+        "type_of_domain": {int(d): int(type_of[d - 1]) for d in ids},
+        "offsets_nS": offsets.tolist(), "cdw_amplitude_nS": amps.tolist(), "biases_V": biases.tolist(),
+        "base_nS": [float(base_nS * (1 + 0.8 * abs(b))) for b in biases], "lattice_nS": float(lattice_nS),
+        "noise_nS": float(noise_nS), "setpoints_A": setpoints.tolist(), "area_px": area.tolist(),
+        "type_contrast_nS": (offsets - mean_offset[None, :]).tolist(),
+        "tip_change": ({"map_index": tc_map, "row": tc_row, "contrast": float(tip_change_contrast),
+                        "offset_nS": float(tip_change_offset_nS), "formula": "m -> c m + o"} if tip_change else None),
+    }
+    truth_maps = dict(base.truth_maps)
+    truth_maps["type"] = type_of[labels - 1].astype(np.int32)
+    topography = base.topography
+    return Scene("electronic_types", topography, maps, truth, truth_maps)
