@@ -787,6 +787,21 @@ def _is_moire_combination(q, bragg, second_bragg, inv, tol, pixel=None):
     return False
 
 
+def _on_a_streak(q, all_q, bin_q):
+    """Whether q is an integer multiple (2..12) of a shorter detected peak along the same line: the
+    harmonics of a one-dimensional feature (a step edge, a line artefact), not an order of its own."""
+    qa = float(np.hypot(*q))
+    for v in all_q:
+        va = float(np.hypot(*v))
+        if va < 1e-9 or va > 0.5 * qa:
+            continue
+        for sgn in (1, -1):
+            n = round(qa / va)
+            if 2 <= n <= 12 and np.hypot(*(q - sgn * n * v)) <= max(2 * bin_q, 0.5 * n * bin_q):
+                return True
+    return False
+
+
 def _is_combination(f, fundamentals, tol_frac, basis):
     """Whether fractional point f is an integer combination (|c| <= 2, at most two terms) of fundamentals
     plus a lattice vector."""
@@ -925,8 +940,11 @@ def read_order(image, *, pixel_size_nm, lattice_reading, mask=None, peaks=None, 
         # of a triple) is a harmonic.
         candidates.sort(key=lambda p: -p.power)
         fundamentals, fund_q = [], []
+        all_q = np.array([p.q for p in peaks]).reshape(-1, 2)
         for p in candidates:
             if p.q_abs_rad_per_nm > 1.05 * gmin:
+                continue
+            if _on_a_streak(p.q, all_q, bin_q):
                 continue
             f = np.asarray(p.hk)
             partners = [a for a, qq in zip(fundamentals, fund_q)
@@ -938,6 +956,18 @@ def read_order(image, *, pixel_size_nm, lattice_reading, mask=None, peaks=None, 
             if len(fundamentals) >= 3 * max_families + 2:
                 break
         cand_q = np.array(fund_q).reshape(-1, 2)
+        # Order peaks a hundred times weaker (in power) than the weakest Bragg peak are mixing products
+        # (two layers, steps, a nonlinear response), not an order of their own: a CDW a tenth of the atomic
+        # corrugation is the faintest one read (common practice, no source).
+        bragg_power = [p.power for p, r in zip(peaks, roled) if r is not None and r.role == "bragg"]
+        if bragg_power and len(cand_q):
+            floor_power = 0.01 * min(bragg_power)
+            power_of = {tuple(p.q): p.power for p in candidates}
+            strong_enough = np.array([power_of.get(tuple(c), np.inf) >= floor_power for c in cand_q])
+            if not strong_enough.all():
+                reasons.append(f"{int((~strong_enough).sum())} candidate order peak(s) are over 100 times weaker "
+                               "than the Bragg peaks: mixing products, not order")
+                cand_q = cand_q[strong_enough]
     if given_superlattice is not None:
         from .fourier import _superlattice_override
 
@@ -1017,14 +1047,39 @@ def read_order(image, *, pixel_size_nm, lattice_reading, mask=None, peaks=None, 
         ordered_groups = [g for _, g in sorted(zip(strength, groups), key=lambda t: -t[0])]
         # Keep the families that form complete sets first (triple-q), then singles, up to max_families
         # (singles of one orientation each are gathered as one stripe family below).
+        # A family far weaker than the strongest (a tenth of its amplitude) is a side effect of it or of the
+        # scan (step edges, mixing), not a second order (common practice, no source).
+        top_strength = max(strength) if strength else 0.0
+        strength_of = {id(g): st for st, g in zip(strength, groups)}
+        weak = [g for g in ordered_groups if strength_of[id(g)] < 0.1 * top_strength]
+        if weak:
+            reasons.append(f"{len(weak)} order family(ies) below a tenth of the strongest one's amplitude: ignored")
+            ordered_groups = [g for g in ordered_groups if strength_of[id(g)] >= 0.1 * top_strength]
         triples = [g for g in ordered_groups if len(g[0]) == 3][:max_families]
         singles = [g for g in ordered_groups if len(g[0]) < 3]
+        if second is not None and not triples and singles:
+            # Two atomic layers mix into many lone peaks; only a closed triple-q set is an order of its own.
+            reasons.append(f"{len(singles)} lone peak(s) beside two atomic lattices: mixing products of the layers")
+            singles = []
         chosen = triples if triples else singles[:3]
         for idx, signs in chosen:
             js = [verdicts[i][0] for i in idx]
             kinds = {verdicts[i][1] for i in idx}
             qs = np.array([s * verdicts[i][2] for i, s in zip(idx, signs)])
             errs = np.array([verdicts[i][4] for i in idx])
+            if len(idx) == 3 and [verdicts[i][1] for i in idx].count("commensurate") == 2:
+                # A triple-q wave closes (Q1 + Q2 + Q3 = 0): two exact members fix the third exactly.
+                odd = next(i for i in idx if verdicts[i][1] != "commensurate")
+                exact = -sum(s_ * verdicts[i][3] for i, s_ in zip(idx, signs) if i != odd)
+                s_odd = signs[idx.index(odd)]
+                q_exact = s_odd * exact @ basis
+                measured = verdicts[odd][2]
+                if np.hypot(*(q_exact - measured)) <= 0.05 * np.hypot(*measured):
+                    verdicts[odd] = (verdicts[odd][0], "commensurate", q_exact, s_odd * exact, verdicts[odd][4])
+                    qs = np.array([s_ * verdicts[i][2] for i, s_ in zip(idx, signs)])
+                    kinds = {"commensurate"}
+                    reasons.append("a triple-q order closes (Q1 + Q2 + Q3 = 0): its third wavevector is fixed by "
+                                   "the two commensurate ones")
             if kinds == {"commensurate"}:
                 coef = np.array([s * verdicts[i][3] for i, s in zip(idx, signs)])
                 m_mat, name, nvar, chir = supercell_name(coef, lat)
