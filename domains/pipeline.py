@@ -813,6 +813,9 @@ def _headline(summary):
             verdicts = [d["verdict"]["verdict"] for d in pair["domains"]]
             counts = ", ".join(f"{verdicts.count(v)} {v}" for v in sorted(set(verdicts)))
             rows[f"contrast {pair['bias_1_V']:+.2f} V vs {pair['bias_2_V']:+.2f} V"] = counts + " (domains)"
+    types = summary.get("electronic_types")
+    if types and types.get("sentences"):
+        rows["electronic types"] = types["sentences"][0]
     moire = summary.get("moire")
     if moire:
         rows["moiré period"] = _pm(moire.get("period_nm"), moire.get("period_nm_err"), "nm")
@@ -1080,7 +1083,9 @@ def _bias_step(summary, tables, figures, sections, topo, corrected_maps, map_sca
                        [r["map_mean_se"] for r in mine]))
     figures["conductance"] = report.curves_figure(curves, xlabel="bias (V)", ylabel="mean map value",
                                                   title="Per-domain mean conductance at each bias")
-    sections.append(("Bias comparison", [
+    types_items = _electronic_types_step(summary, tables, figures, map_scans, corrected_maps, labels, order_q,
+                                         sigma_nm, pixel, mask)
+    sections.append(("Bias comparison", types_items + [
         ("contrast", "Δφ_j = arg(A_j(V1) A_j(V2)*) of each order component in each domain, with standard errors: "
                      "±180° is an inverted contrast, 0° an unchanged one."),
         ("conductance", "Mean conductance of each domain at each bias, with standard errors."),
@@ -1088,6 +1093,59 @@ def _bias_step(summary, tables, figures, sections, topo, corrected_maps, map_sca
                "'inverted' needs every component compatible with π.</p>"
          + report.html_table(["bias_1_V", "bias_2_V", "domain", "delta_phi_deg", "verdict", "confidence"], verdict_rows)),
     ]))
+
+
+def _electronic_types_step(summary, tables, figures, map_scans, corrected_maps, labels, order_q, sigma_nm, pixel,
+                           mask):
+    """Which domains differ electronically: per-domain contrast with errors at every bias, and types.
+
+    Maps taken at other setpoints are scaled to one setpoint (or to their frame mean when a setpoint is
+    unknown); contrasts are free of scan-line offsets (domains.compare.domain_electronic_contrast), and
+    domains are grouped into types while their differences are not significant
+    (domains.compare.electronic_types). Returns the report items.
+    """
+    from . import compare
+
+    maps = {float(sc.bias_V): np.asarray(m, float) for sc, m in zip(map_scans, corrected_maps)}
+    setpoints = [sc.setpoint_A for sc in map_scans]
+    units = (map_scans[0].metadata or {}).get("units", "arb. units")
+    norm = compare.default_normalisation(setpoints)
+    try:
+        ec = compare.domain_electronic_contrast(maps, labels, pixel_size_nm=pixel, sigma_nm=sigma_nm, units=units,
+                                                mask=mask, normalisation=norm,
+                                                setpoints_A=setpoints if norm == "setpoint" else None, q=order_q)
+        types = compare.electronic_types(ec)
+    except InputError as err:
+        summary["electronic_types"] = {"note": f"not measured: {err}"}
+        return []
+    summary["electronic_types"] = types.to_summary()
+    rows = types.rows()
+    if rows:
+        tables["types"] = (list(rows[0]), rows)
+    drows = types.domain_rows()
+    if drows:
+        tables["domain_contrast"] = (list(drows[0]), drows)
+    # A map coloured by type and, per type, its contrast at every bias with errors.
+    lut = np.zeros(int(labels.max()) + 1, np.int32)
+    for i, members in enumerate(types.types):
+        lut[list(members)] = i + 1
+    type_map = lut[labels]
+    figures["types"] = report.domain_figure(np.asarray(corrected_maps[0]), type_map, labels == 0,
+                                            pixel_size_nm=pixel, title=f"{types.n_types} electronic type(s)",
+                                            states={i + 1: f"type {n}" for i, n in enumerate(types.names)})
+    curves = []
+    biases = [b for q_, b in types.features if q_ == "conductance"]
+    cols = [f for f, (q_, _) in enumerate(types.features) if q_ == "conductance"]
+    for i, name in enumerate(types.names):
+        curves.append((f"type {name}", biases, [float(types.value[i, f]) for f in cols],
+                       [float(types.se[i, f]) for f in cols]))
+    unit = ec.to_summary().get("units", units) if hasattr(ec, "to_summary") else units
+    figures["type_contrast"] = report.curves_figure(curves, xlabel="bias (V)", ylabel="contrast to the frame",
+                                                    units=unit, title="Conductance contrast of each electronic type")
+    words = " ".join(types.sentences())
+    return [(None, "<h3>Electronic types</h3><p>" + words + "</p>"),
+            ("types", "Domains coloured by electronic type (walls in black)."),
+            ("type_contrast", "Contrast of each type to the frame at each bias, with standard errors.")]
 
 
 def _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_nm, pixel, mask):
