@@ -1,6 +1,6 @@
 """Spatial lock-in: demodulate an image at wavevectors q to get local amplitude, phase and wavevector.
 
-The kernel works in Fourier space (METHODS §1, Fourier form) and touches only the part of the
+The kernel works in Fourier space (docs/methods.md §1, Fourier form) and touches only the part of the
 spectrum where the Gaussian transfer exp(-sigma^2 |k - q|^2 / 2) is not negligible:
 
 1. one real FFT along the rows, shared by every q, then FFTs along the columns only for the
@@ -329,7 +329,7 @@ def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized
     width ``sigma_nm``. For I = A0 cos(q.r + phi), 2|A| = A0 and arg A = phi.
 
     Computed in Fourier space: A = exp(-i q.r) IFFT[I~(k) exp(-sigma^2 |k - q|^2 / 2)]
-    (METHODS §1), with one real forward FFT shared by every q and only the
+    (docs/methods.md §1), with one real forward FFT shared by every q and only the
     window of the spectrum where the transfer exceeds ``TRANSFER_EPS`` (1e-10
     for float32, 1e-16 for float64) transformed back. Dropping the rest changes
     A by at most eps * sqrt(sum I^2) / w(r), w the normaliser below (Parseval),
@@ -358,7 +358,7 @@ def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized
         straight edge does not halve the amplitude. Without a mask the weight is
         separable, (g * 1_rows)(y) (g * 1_cols)(x), and costs two 1-D FFTs.
         "periodic": the frame is taken as periodic (exact for an image holding
-        whole periods, and the Fourier form of METHODS §1).
+        whole periods, and the Fourier form of docs/methods.md §1).
     step : int, optional
         Return A only at the pixels (s m, s n), s = ``step``: rows 0, s, 2s, ...
         and columns 0, s, 2s, ..., shape (ceil(rows / s), ceil(cols / s)). The
@@ -594,7 +594,7 @@ def phase_gradient(a, *, pixel_size_nm):
     """Gradient of the phase of A without unwrapping, (d/dx, d/dy) in rad/nm.
 
     Uses grad(phi) = Im(conj(A) grad A) / |A|^2, which is blind to the 2 pi jumps
-    of the wrapped phase (METHODS §3).
+    of the wrapped phase (docs/methods.md §3).
 
     Parameters
     ----------
@@ -669,7 +669,7 @@ def trusted_mask(shape, *, sigma_nm, pixel_size_nm, mask=None, margin_sigma=2.5)
         True where pixels are untrusted.
     margin_sigma : float
         Distance, in units of sigma, that a pixel must keep from the edge and
-        from masked pixels (METHODS §1 recommends 2 to 3).
+        from masked pixels (docs/methods.md §1 recommends 2 to 3).
 
     Returns
     -------
@@ -694,7 +694,7 @@ def choose_sigma(q, *, leakage=0.01, include_dc=True):
     """Lock-in width that keeps every other Fourier peak's leakage below ``leakage``.
 
     A peak at distance dk leaks in with weight exp(-sigma^2 dk^2 / 2), so
-    sigma = sqrt(2 ln(1/leakage)) / dk_min (METHODS §1: sigma dk >= 3.03 for 1 %).
+    sigma = sqrt(2 ln(1/leakage)) / dk_min (docs/methods.md §1: sigma dk >= 3.03 for 1 %).
     The peaks considered are +q, -q of every given wavevector and, with
     ``include_dc``, the origin.
 

@@ -1197,7 +1197,7 @@ def _frac_text(c):
 
 
 def _unidirectional(image, families, pixel, mask, leakage, false_alarm, anisotropy_threshold):
-    """Whether one component dominates locally in most ordered pixels (stripes), per METHODS §6."""
+    """Whether one component dominates locally in most ordered pixels (stripes), per docs/methods.md §6."""
     from .order import orientation_order
 
     q = np.concatenate([f.q_rad_per_nm for f in families])

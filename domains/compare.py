@@ -453,7 +453,7 @@ def apply_shift(image, shift_px, *, mode="spline", order=3):
 def undo_displacement(image, displacement_nm, *, pixel_size_nm, order=3):
     """Resample an image through a displacement field: T'(r) = T(r - u(r)).
 
-    This is the resampling step of drift correction [1]_ (METHODS §2): with u
+    This is the resampling step of drift correction [1]_ (docs/methods.md §2): with u
     the field measured on the scan, it puts every channel of that scan on an
     undistorted grid.
 
@@ -1386,7 +1386,7 @@ def compare_biases(topograph, maps, labels, q, *, sigma_nm, pixel_size_nm, bragg
     reg_sigma = None
     if bragg_q is not None:
         # Lock-in and low-pass widths that keep both the Bragg and the order peaks
-        # apart (below 1 % leakage, METHODS §1).
+        # apart (below 1 % leakage, docs/methods.md §1).
         reg_sigma = choose_sigma(np.vstack([_q(bragg_q, "bragg_q"), q]))[0]
     registrations = {}
     for bias in biases:
@@ -1816,7 +1816,7 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
     constant-current dI/dV map scales with the setpoint current; common practice, no
     source), "none" leaves it. It is then smoothed by the unit-sum Gaussian of
     ``sigma_nm`` (which removes the CDW and atomic modulation when sigma |Q| >~ 3,
-    METHODS §1).
+    docs/methods.md §1).
 
     - **Domain mean**: over the domain's interior (``margin_sigma`` sigma from other
       labels, walls, masks and the edge).
@@ -2007,7 +2007,7 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
         cond_fields.append(smooth)
         if q is not None:
             # The slowly varying part is removed first: its leak exp(-sigma^2 q^2 / 2) into the lock-in
-            # at q would add a ripple to the amplitude (METHODS §1; derived).
+            # at q would add a ripple to the amplitude (docs/methods.md §1; derived).
             a = lockin(image - smooth, q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=bad)
             amp_fields.append(np.sqrt(np.sum((2 * np.abs(a)) ** 2, axis=0)))
     lag = max(1, int(round(4 * sigma_px[1])))

@@ -1,7 +1,7 @@
 """The Fourier step: power spectrum, peak finding with sub-pixel refinement, and lattice and superlattice indexing.
 
 Every wavevector is (qx, qy) in rad/nm with x along columns and y along rows
-(DESIGN.md, Conventions); the period of a peak is 2 pi / |q|. Peaks are
+(docs/methods.md, Conventions); the period of a peak is 2 pi / |q|. Peaks are
 reported once per +q/-q pair, in the half-plane qy > 0 (or qy = 0, qx > 0), so
 their angles lie in [0, 180) degrees.
 """
@@ -477,7 +477,7 @@ def power_spectrum(image, *, pixel_size_nm, mask=None, window="hann"):
 
     A least-squares plane over the valid pixels is subtracted, masked and NaN
     pixels are set to the mean, a periodic Hann window is applied along both
-    axes (METHODS §7), and the squared modulus of the FFT is returned with the
+    axes (docs/methods.md §7), and the squared modulus of the FFT is returned with the
     zero wavevector at the centre (``numpy.fft.fftshift`` layout).
 
     Parameters
@@ -917,7 +917,7 @@ def _detect(power, shape, pixel, max_peaks, min_q, snr, false_alarm, interpolate
 def _auto_sigma_px(qj, others, pixel, shape):
     """Lock-in width (nm) that keeps every other peak, its mirror and q = 0 below 0.1 % leakage.
 
-    Leakage of a peak dk away is exp(-sigma^2 dk^2 / 2) (METHODS §1); 0.1 % needs
+    Leakage of a peak dk away is exp(-sigma^2 dk^2 / 2) (docs/methods.md §1); 0.1 % needs
     sigma dk >= 3.72. Capped at 1/12 of the frame so that the trusted region (2.5 sigma
     from each edge) keeps more than half the frame, and at least 1.5 pixels.
     """

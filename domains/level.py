@@ -471,7 +471,7 @@ def line_offsets(image, *, method="median", mask=None, warn=True, jump_threshold
     "median" and "mean" set every line to the same median (mean) level. This
     removes any line-to-line offset pattern, but also any image content that is
     constant along a line: a modulation cos(2 pi y / lambda) along the slow-scan
-    axis is deleted entirely (METHODS §7), and a wave with a small x component
+    axis is deleted entirely (docs/methods.md §7), and a wave with a small x component
     is weakened. "median" is robust to bright features; "mean" is exact for
     additive offsets on an unmasked image.
 

@@ -135,7 +135,7 @@ def _decompose(K, G, *, poisson, reference):
     Gc = np.swapaxes(np.asarray(G, dtype=float), -1, -2)
     eye = np.eye(2)
     if reference == "layer1":
-        # T^-T = I - K G^-1 (METHODS §4), G the Bragg vectors of layer 1.
+        # T^-T = I - K G^-1 (docs/methods.md §4), G the Bragg vectors of layer 1.
         mt = eye - Kc @ _pinv_cols(np.broadcast_to(Gc, np.broadcast_shapes(Gc.shape, Kc.shape)))
     else:
         # G the mean lattice: G1 = G + K/2, G2 = G - K/2, so T^-T = G2 G1^-1 exactly,
@@ -430,7 +430,7 @@ def twist_strain_from_wavevectors(K, G, *, poisson=POISSON_GRAPHENE, reference="
     T = (I - K G⁻¹)^{-T} (G the Bragg vectors of layer 1), then the polar
     decomposition T = U P gives θ from U and E = P - I; the uniaxial model
     E = R(φs) diag(ε, -νε) R(φs)ᵀ gives |ε| = (λ1 - λ2)/(1 + ν) from the
-    principal strains, its sign from the trace (1 - ν)ε [derived, METHODS §4].
+    principal strains, its sign from the trace (1 - ν)ε [derived, docs/methods.md §4].
 
     Parameters
     ----------
@@ -512,7 +512,7 @@ def _noise_std(image):
 
 
 def _refine_q(image, q, *, sigma_nm, pixel_size, mask, region, iterations=3):
-    """q <- q + <grad phi>, the |A|²-weighted mean over ``region`` (METHODS §7: the best sub-pixel estimate).
+    """q <- q + <grad phi>, the |A|²-weighted mean over ``region`` (docs/methods.md §7: the best sub-pixel estimate).
 
     Returns the refined q, and the last lock-in field with the q it was taken at
     (its local wavevector q_used + grad phi is valid whatever the small detuning).
@@ -542,7 +542,7 @@ def find_moire_q(image, *, pixel_size_nm, q_max_rad_per_nm=None, mask=None, refi
     the strongest overall (the search is repeated below a ladder of |q|
     limits, so that many strong atomic peaks cannot hide it). With
     ``refine`` each vector is
-    refined by the lock-in phase gradient (METHODS §7).
+    refined by the lock-in phase gradient (docs/methods.md §7).
 
     Parameters
     ----------
@@ -730,7 +730,7 @@ def moire_maps(image, moire_q=None, *, pixel_size_nm, a_nm=None, bragg_q=None, s
     The lock-in at each moiré wavevector gives the local moiré vectors
     K_j(r) = q_j + ∇φ_j (Hÿtch et al. 1998); with the Bragg vectors G they give
     T(r) = (I - K G⁻¹)^{-T}, and its polar decomposition the local twist and
-    heterostrain (METHODS §4). The reference q are first refined to the
+    heterostrain (docs/methods.md §4). The reference q are first refined to the
     frame's mean wavevectors.
 
     Two modes:

@@ -215,7 +215,7 @@ def variant_templates(coefficients):
     """Phase patterns of the translational variants of a commensurate superlattice.
 
     A lattice translation R = m1 a1 + m2 a2 shifts component j by
-    -Q_j . R = -2 pi (h_j m1 + k_j m2) (METHODS §5); the distinct patterns over all
+    -Q_j . R = -2 pi (h_j m1 + k_j m2) (docs/methods.md §5); the distinct patterns over all
     (m1, m2) are the variants (n^2 of them for an n x n CDW, 3 for sqrt3 x sqrt3).
 
     Parameters
@@ -436,7 +436,7 @@ def orientation_order(a_components, *, threshold=None, anisotropy_threshold=0.5)
     anisotropy_threshold : float
         Smallest (|A_1|^2 - |A_2|^2) / (|A_1|^2 + |A_2|^2) (largest and second
         largest) for a pixel to be assigned; 0.5 means one component carries
-        three times the power of the other (METHODS §6).
+        three times the power of the other (docs/methods.md §6).
 
     Returns
     -------
@@ -618,7 +618,7 @@ def family_order(a_components, groups, *, coefficients=None, bragg_phase=None, t
     """States of an order made of families: which family dominates locally, and its translational variant.
 
     One family (a triple-q CDW) reduces to :func:`commensurate_order`. Several
-    families are told apart by their amplitudes, as stripes are (METHODS §6):
+    families are told apart by their amplitudes, as stripes are (docs/methods.md §6):
     the family whose mean |A|^2 is largest wins where its anisotropy against the
     next is above ``anisotropy_threshold``. Inside the winning family a
     commensurate order is quantised to its translational variants (|det M| for

@@ -39,7 +39,7 @@ class Config:
     order : str
         "auto", "commensurate", "stripes", "moire" or "none".
     sigma_nm : float or None
-        Lock-in width for the order maps; default from the leakage bound (METHODS §1).
+        Lock-in width for the order maps; default from the leakage bound (docs/methods.md §1).
     leakage : float
         Largest leakage of a neighbouring peak allowed by the automatic sigma.
     drift : bool
@@ -53,7 +53,7 @@ class Config:
         (halfway between a variant's centre and its cell boundary), and the
         anisotropy threshold for stripes.
     anisotropy_threshold : float
-        Smallest anisotropy for a stripe orientation (METHODS §6).
+        Smallest anisotropy for a stripe orientation (docs/methods.md §6).
     min_domain_area_nm2 : float or None
         Smallest domain kept; default the area of a disc of radius 2 sigma (the resolution).
     a_nm : float or None
@@ -714,7 +714,7 @@ def _choose_sigma(config, order_q, lattice_q, moire_q, shape, pixel):
         return sigma, "no peaks: 8 pixels"
     sigma, nearest = choose_sigma(np.vstack(peaks), leakage=config.leakage)
     why = (f"leakage of the nearest peak (dk = {nearest:.4g} rad/nm) below {config.leakage:g}: "
-           f"sigma = sqrt(2 ln(1/leakage)) / dk (METHODS §1)")
+           f"sigma = sqrt(2 ln(1/leakage)) / dk (docs/methods.md §1)")
     floor = 1.5 * max(pixel)
     if sigma < floor:
         sigma, why = floor, why + f"; raised to 1.5 pixels ({floor:.3g} nm)"
@@ -741,7 +741,7 @@ def _drift_summary(result):
 
 
 def write_analysis(analysis: Analysis, out, *, command_line, inputs, overwrite=False):
-    """Write an :class:`Analysis` as the result bundle of DESIGN.md (atomically) and return its path.
+    """Write an :class:`Analysis` as the result bundle of docs/bundle.md (atomically) and return its path.
 
     Parameters
     ----------

@@ -75,7 +75,7 @@ def segment_states(state, confidence, ordered, *, pixel_size_nm, min_area_nm2, c
         reaches the rest of the ordered pixels.
     bridge_nm : float
         Gaps in ``ordered`` narrower than about twice this are bridged before growing:
-        at a pi phase slip the amplitude falls to zero (METHODS §5), and the wall
+        at a pi phase slip the amplitude falls to zero (docs/methods.md §5), and the wall
         between the two domains must still be drawn. A morphological closing with a
         disc of this radius in pixels (of the smaller pixel side), computed by
         :func:`disc_closing` (distance transforms: cost and memory independent of
@@ -362,7 +362,7 @@ def wall_profile_fit(fields, grown, a, b, *, sigma_nm, pixel_size_nm, segment=No
     the wall. An intrinsic wall that is a Gaussian-smoothed step of width w,
     seen through the Gaussian lock-in of width sigma, has W = sqrt(w^2 +
     sigma^2) exactly, for any phase jump, because the model is linear in S; the
-    amplitude dip to |cos(dphi/2)| and the phase ramp both follow from it (METHODS §5).
+    amplitude dip to |cos(dphi/2)| and the phase ramp both follow from it (docs/methods.md §5).
     Subtracting sigma in quadrature from the width of the phase or amplitude
     profile alone would be wrong for large jumps, which is why the complex
     profile is fitted.

@@ -5,7 +5,7 @@ Everything here is plain Python: it turns what the ``domains`` core returns (a
 *layer data tuples* ``(data, add_kwargs, layer_type)``. No napari or Qt import
 is needed to build them, so they can be tested and reused without a display.
 
-Layer coordinates follow DESIGN.md: data axes (row, col), world axes (y, x) in
+Layer coordinates follow docs/methods.md (Conventions): data axes (row, col), world axes (y, x) in
 nm, ``scale`` = pixel size in nm, origin at the centre of pixel (0, 0).
 
 A scan file is read only when its pixel size is known, that is when a sidecar

@@ -1,4 +1,4 @@
-"""The `domains` command: exit statuses, messages naming the file, no tracebacks (DESIGN.md contract)."""
+"""The `domains` command: exit statuses, messages naming the file, no tracebacks (docs/README.md contract)."""
 
 import json
 import subprocess
@@ -37,7 +37,7 @@ BAD_INPUTS = {
 @pytest.mark.parametrize("case", sorted(BAD_INPUTS))
 @pytest.mark.parametrize("command", ["peaks", "analyze"])
 def test_bad_input_exits_2_naming_the_file(case, command, tmp_path, capsys):
-    # DESIGN.md contract: bad input -> one-line message naming the file, exit 2, no traceback
+    # docs/README.md contract: bad input -> one-line message naming the file, exit 2, no traceback
     path = BAD_INPUTS[case](tmp_path)
     argv = [command, str(path)] + (["--out", str(tmp_path / "out")] if command == "analyze" else [])
     assert main(argv) == 2

@@ -29,10 +29,10 @@ from domains.compare import (
 
 PX = 0.1          # nm per pixel
 N = 192           # pixels per side
-SIGMA = 0.5       # nm; sigma |Q| = 3.5 keeps every other peak's leakage below 0.3 % (METHODS §1)
+SIGMA = 0.5       # nm; sigma |Q| = 3.5 keeps every other peak's leakage below 0.3 % (docs/methods.md §1)
 Q_MAG = 2 * np.pi / 0.9  # rad/nm, a triple-q order with 0.9 nm wavefront spacing
 # The three translational variants of a commensurate 3x3 order: phi_j = -2 pi n_j / 3,
-# sum n_j = 0 (derived, METHODS §5).
+# sum n_j = 0 (derived, docs/methods.md §5).
 VARIANT_PHASES = {1: (0.0, 0.0, 0.0), 2: (-2 * np.pi / 3, 2 * np.pi / 3, 0.0), 3: (2 * np.pi / 3, 0.0, -2 * np.pi / 3)}
 
 
@@ -91,7 +91,7 @@ def expected_phase_se(noise, amplitude, n_pixels):
 # ----------------------------------------------------------------------------- registration
 
 REG_N, REG_PX = 128, 0.05
-# Bragg peaks on whole FFT bins (the METHODS §2 lattice), so the frame is periodic and
+# Bragg peaks on whole FFT bins (the docs/methods.md §2 lattice), so the frame is periodic and
 # scipy.ndimage.fourier_shift moves it exactly.
 REG_BRAGG = 2 * np.pi * np.array([(16, 0), (-8, 14), (-8, -14)]) / (REG_N * REG_PX)
 
@@ -295,7 +295,7 @@ def test_compare_biases_registers_and_classifies_each_domain():
     n, px = 240, 0.05
     a_nm = 0.33                                     # invented lattice constant
     bragg = triple_q(4 * np.pi / (np.sqrt(3) * a_nm), 5.0)
-    q = bragg / 3                                   # commensurate 3x3 order (METHODS §5)
+    q = bragg / 3                                   # commensurate 3x3 order (docs/methods.md §5)
     region, labels = strip_layout(n)
     delta = {1: (np.pi,) * 3, 2: (0.0,) * 3, 3: (np.pi, np.pi, np.pi / 3)}
     expected = {1: "inverted", 2: "not inverted", 3: "dephased"}

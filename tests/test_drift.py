@@ -18,7 +18,7 @@ from domains.drift import (
 N = 256
 PIX = 0.025  # nm per pixel; the invented lattice has a 16-pixel (0.4 nm) Bragg period
 ROWS, COLS = np.mgrid[:N, :N].astype(float)
-# METHODS §2: integer-bin, approximately hexagonal Bragg vectors, in cycles per frame.
+# docs/methods.md §2: integer-bin, approximately hexagonal Bragg vectors, in cycles per frame.
 CYCLES = np.array([[16, 0], [-8, 14], [-8, -14]])
 Q_PX = 2 * np.pi * CYCLES / N  # rad/px
 Q_NM = Q_PX / PIX  # rad/nm
@@ -33,7 +33,7 @@ def lattice(u_px=None, phases=(0.0, 0.0, 0.0), weights=(1.0, 1.0, 1.0), q_px=Q_P
 
 
 def methods_u(rows, cols):
-    """METHODS §2 imposed field, in px: (1.2 sin(2 pi y/N) + 0.01 x, 0.8 cos(2 pi x/N))."""
+    """docs/methods.md §2 imposed field, in px: (1.2 sin(2 pi y/N) + 0.01 x, 0.8 cos(2 pi x/N))."""
     return np.array([1.2 * np.sin(2 * np.pi * rows / N) + 0.01 * cols, 0.8 * np.cos(2 * np.pi * cols / N)])
 
 
@@ -46,7 +46,7 @@ def inverse_map(field, iterations=60):
 
 
 def interior(result, margin_sigma=3.0):
-    """At least 3 sigma from the frame edge and from the NaN border of the correction (METHODS §1: 2-3 sigma)."""
+    """At least 3 sigma from the frame edge and from the NaN border of the correction (docs/methods.md §1: 2-3 sigma)."""
     return domains.trusted_mask(
         (N, N), sigma_nm=result.sigma_nm, pixel_size_nm=PIX, mask=result.mask, margin_sigma=margin_sigma
     )
@@ -65,7 +65,7 @@ def test_first_pass_is_smoothed_truth(methods_scene):
     field = displacement_field(image, Q_NM, sigma_nm=10 * PIX, pixel_size_nm=PIX, translation="lattice") / PIX
     trusted = domains.trusted_mask((N, N), sigma_nm=10 * PIX, pixel_size_nm=PIX)
     smoothed = np.stack([ndimage.gaussian_filter(c, 10, mode="nearest", truncate=6) for c in u])
-    # METHODS §2 [derived]: one pass recovers G_sigma * u_true; interior error < 0.04 px.
+    # docs/methods.md §2 [derived]: one pass recovers G_sigma * u_true; interior error < 0.04 px.
     assert np.max(np.abs(field - smoothed)[:, trusted]) < 0.04
     # "remove" differs from "lattice" only by the rigid translation (the mean of u over the trusted region).
     removed = displacement_field(image, Q_NM, sigma_nm=10 * PIX, pixel_size_nm=PIX) / PIX
@@ -79,9 +79,9 @@ def test_methods_check_value(methods_scene):
     truth = inverse_map(methods_u)
     region = interior(result)
     assert region.sum() > 0.5 * N * N
-    # METHODS §2 check [derived]: interior u error < 0.04 px against the exact inverse map U = u(r - U).
+    # docs/methods.md §2 check [derived]: interior u error < 0.04 px against the exact inverse map U = u(r - U).
     assert np.max(np.abs(result.u_nm / PIX - truth)[:, region]) < 0.04
-    # METHODS §2 check [derived]: residual |theta| < 0.03 rad after correction (trusted region).
+    # docs/methods.md §2 check [derived]: residual |theta| < 0.03 rad after correction (trusted region).
     assert np.max(result.residual_max_rad) < 0.03
     assert result.converged and 1 <= result.iterations <= 5
     # derived: the corrected image is the ideal lattice; a 0.04 px error moves it by at most sum_j |Q_j| * 0.04.
@@ -106,7 +106,7 @@ def test_rigid_shift_matches_cross_correlation():
     assert np.max(np.abs(wrapped) / np.hypot(*Q_PX.T)) < 0.05
     # With translation="remove" a rigid shift is no distortion at all (derived). Checked >= 4 sigma from
     # the edges (edge leakage < 5 * 3e-5 rad); what remains is the leakage of the two neighbouring peaks
-    # at |dk| = |Q| (METHODS §1): 2 exp(-(sigma |Q|)^2 / 2) = 7.8e-4 rad, i.e. 2.0e-3 px.
+    # at |dk| = |Q| (docs/methods.md §1): 2 exp(-(sigma |Q|)^2 / 2) = 7.8e-4 rad, i.e. 2.0e-3 px.
     removed = displacement_field(image, Q_NM, sigma_nm=10 * PIX, pixel_size_nm=PIX) / PIX
     deep = domains.trusted_mask((N, N), sigma_nm=10 * PIX, pixel_size_nm=PIX, margin_sigma=4)
     assert np.max(np.abs(removed[:, deep])) < 2.5e-3
@@ -129,7 +129,7 @@ def test_large_displacement_is_unwrapped():
     # derived: the first pass misses at most (1 - exp(-sigma^2 k^2 / 2)) * 4 px = 0.12 px of the 4 px sine
     # (k = 2 pi / N); a tear by a wrong unwrap would be >= a / sqrt(3) = 10.7 px (a = 18.5 px here).
     assert error < 0.15
-    assert np.max(result.residual_max_rad) < 0.03  # METHODS §2 tolerance, derived
+    assert np.max(result.residual_max_rad) < 0.03  # docs/methods.md §2 tolerance, derived
 
 
 def test_same_field_straightens_second_channel(methods_scene):
@@ -139,7 +139,7 @@ def test_same_field_straightens_second_channel(methods_scene):
     truth = 0.5 + lattice(None, phases, weights)
     out = correct_channels({"conductance": conductance}, result, pixel_size_nm=PIX)["conductance"]
     region = interior(result)
-    # derived: a displacement error of 0.04 px (METHODS §2) changes the map by at most |grad g| * 0.04.
+    # derived: a displacement error of 0.04 px (docs/methods.md §2) changes the map by at most |grad g| * 0.04.
     gradient = np.sum(np.asarray(weights) * np.hypot(*Q_PX.T))
     assert np.max(np.abs(out - truth)[region]) < gradient * 0.04
     # derived: its lock-in phases become flat (the distorted map spreads by |Q| * |u| ~ 0.5 rad).
@@ -149,7 +149,7 @@ def test_same_field_straightens_second_channel(methods_scene):
         before = np.angle(a_before[j][region] * np.exp(-1j * p))
         after = np.angle(a_after[j][region] * np.exp(-1j * p))
         assert np.max(np.abs(before)) > 0.3
-        assert np.max(np.abs(after)) < 0.03  # METHODS §2 residual tolerance
+        assert np.max(np.abs(after)) < 0.03  # docs/methods.md §2 residual tolerance
 
 
 def test_channels_stack_dict_scan_agree(methods_scene):

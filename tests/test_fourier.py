@@ -187,7 +187,7 @@ def test_commensurate_nxn_cdw(n):
     result = analyze_spectrum(_cdw_image(HEX.bragg / n), pixel_size_nm=DX_CDW)
     sup = result.superlattice
     assert result.lattice.kind == "hexagonal"
-    # Derived: Q_j = G_j / n is the n x n order (METHODS §5).
+    # Derived: Q_j = G_j / n is the n x n order (docs/methods.md §5).
     assert sup.order == f"{n}x{n}" and sup.commensurate and sup.n_sites == n * n
     assert_allclose(sup.q, result.lattice.bragg / n, atol=1e-12)
     roles = [p.role for p in result.peaks]
@@ -274,7 +274,7 @@ def test_moire_candidates_of_two_rotated_lattices():
     moire = [p for p in result.peaks if p.role == "moire"]
     assert len(moire) >= 3
     # Hermann, J. Phys.: Condens. Matter 24, 314210 (2012): lambda = a / (2 sin(theta / 2));
-    # a hexagonal moire of period lambda has |k| = 4 pi / (sqrt(3) lambda) (METHODS §4).
+    # a hexagonal moire of period lambda has |k| = 4 pi / (sqrt(3) lambda) (docs/methods.md §4).
     lam = a / (2 * math.sin(math.radians(twist) / 2))
     k_expected = 4 * math.pi / (math.sqrt(3) * lam)
     fundamental = sorted(moire, key=lambda p: p.q_abs_rad_per_nm)[:3]

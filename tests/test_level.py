@@ -163,7 +163,7 @@ WAVE_Y = np.cos(2 * np.pi * ROWS / WAVELENGTH_PX)
 
 def test_row_mean_deletes_a_modulation_along_y():
     corrected, _ = line_offsets(WAVE_Y, method="mean", warn=False)
-    # derived (METHODS §7): every row of cos(2 pi y / lambda) is constant, so the row mean removes it entirely
+    # derived (docs/methods.md §7): every row of cos(2 pi y / lambda) is constant, so the row mean removes it entirely
     assert_allclose(corrected - corrected.mean(), 0.0, rtol=0, atol=1e-12)
 
 
@@ -189,7 +189,7 @@ def test_difference_keeps_the_modulation_while_removing_jumps():
     # after the plane fit (tolerance: common practice, no source)
     assert np.abs(flat - expected).max() < 0.1
     mean_levelled = level(Scan(image, pixel_size_nm=0.1), order=1, lines="mean", warn=False).data
-    assert np.abs(np.sum(mean_levelled * WAVE_Y)) < 1e-9  # derived (METHODS §7): the row mean deletes it
+    assert np.abs(np.sum(mean_levelled * WAVE_Y)) < 1e-9  # derived (docs/methods.md §7): the row mean deletes it
 
 
 def test_line_offsets_with_mask_and_empty_row():
@@ -333,8 +333,8 @@ PIXEL_NM = 0.05
 A_NM = 0.02  # corrugation amplitude of each cosine
 NOISE_NM = 0.01  # white noise per pixel
 STEP_NM = 0.6  # 30 corrugation amplitudes
-PERIOD_NM = 1.032  # 3a of a 3x3 CDW with a = 0.344 nm (METHODS §5)
-Q_NM = 4 * np.pi / (np.sqrt(3) * PERIOD_NM)  # METHODS §4: peaks of a hexagonal pattern at 4 pi / (sqrt 3 lambda)
+PERIOD_NM = 1.032  # 3a of a 3x3 CDW with a = 0.344 nm (docs/methods.md §5)
+Q_NM = 4 * np.pi / (np.sqrt(3) * PERIOD_NM)  # docs/methods.md §4: peaks of a hexagonal pattern at 4 pi / (sqrt 3 lambda)
 RR, CC = np.mgrid[0:N_REAL, 0:N_REAL].astype(float)
 
 

@@ -36,13 +36,13 @@ def real_space_reference(image, q, sigma_px, pixel_size):
     return filt(image * np.cos(arg)) - 1j * filt(image * np.sin(arg))
 
 
-# --- METHODS §1 check values --------------------------------------------------------------------
+# --- docs/methods.md §1 check values --------------------------------------------------------------------
 
 
 def test_methods_check_values():
     q = 2 * np.pi * np.array([20, 7]) / N
     a = lockin(wave(q, 1.7, 0.9), q, sigma_nm=8, pixel_size_nm=1, boundary="periodic")
-    # METHODS §1 [derived]: 2|A| = A0 = 1.7 and arg A = phi = 0.9 to 1e-9 on a periodic image.
+    # docs/methods.md §1 [derived]: 2|A| = A0 = 1.7 and arg A = phi = 0.9 to 1e-9 on a periodic image.
     assert_allclose(amplitude(a), 1.7, rtol=0, atol=1e-9)
     assert_allclose(phase(a), 0.9, rtol=0, atol=1e-9)
 
@@ -53,7 +53,7 @@ def test_detuned_wave_and_local_wavevector():
     a = lockin(wave(q_true, 1.7, 0.9), q_ref, sigma_nm=8, pixel_size_nm=1)
     deep = inner(a.shape, 48)  # >= 6 sigma from the edges: the normalised filter is the full Gaussian there
     expected = 1.7 * math.exp(-(8**2) * (2 * np.pi * 1.5 / N) ** 2 / 2)
-    assert_allclose(expected, 1.62784, atol=5e-6)  # METHODS §1 check value [derived]
+    assert_allclose(expected, 1.62784, atol=5e-6)  # docs/methods.md §1 check value [derived]
     # derived: 2|A| = A0 exp(-sigma^2 dq^2 / 2); Gaussian mass beyond 6 sigma is 1.5e-8.
     assert_allclose(amplitude(a)[deep], expected, rtol=1e-6)
     k = local_wavevector(a, q_ref, pixel_size_nm=1)
@@ -124,7 +124,7 @@ def test_dask_equals_memory(with_mask):
     lazy = lockin(da.from_array(image, chunks=CHUNKS), q, sigma_nm=2.0, pixel_size_nm=1.0, mask=mask)
     assert isinstance(lazy, da.Array)
     result = lazy.compute()
-    # DESIGN.md: chunked and in-memory results agree to float32 precision. A normalised convolution
+    # docs/README.md: chunked and in-memory results agree to float32 precision. A normalised convolution
     # divides by the filtered weight w = G * valid, so a rounding error of 1e-6 of the numerator
     # becomes 1e-6 / w of the result (derived; w from scipy.ndimage, the reference library).
     scale = np.nanmax(np.abs(memory))
@@ -166,7 +166,7 @@ def test_normalized_edge_keeps_amplitude():
     # derived: at the corner the conjugate term escapes only through two half-Gaussians,
     # |half transform| <= sqrt(2/pi) / (2 q sigma) each: product < 0.03.
     assert abs(amplitude(a)[0, 0] - 1.7) < 1.7 * 0.03
-    # Contrast, plain zero padding (METHODS §1: halves at an edge, quarters at a corner). On the pixel grid
+    # Contrast, plain zero padding (docs/methods.md §1: halves at an edge, quarters at a corner). On the pixel grid
     # the kept mass at the top row is sum_{n>=0} g(n) = (1 + g(0)) / 2, g(0) = 1 / (sqrt(2 pi) sigma) [derived].
     zero = real_space_reference(image, q, sigma, (1.0, 1.0))
     kept = (1 + 1 / (math.sqrt(2 * math.pi) * sigma)) / 2
@@ -231,7 +231,7 @@ def test_trusted_mask_margins():
     to_mask = np.hypot(rows - 40, cols - 40) * pixel
     to_edge = (np.minimum.reduce([rows, cols, 79 - rows, 79 - cols]) + 0.5) * pixel  # edge: half a pixel out
     distance = np.minimum(to_mask, to_edge)
-    # METHODS §1 (2-3 sigma, common practice): nothing closer than 2.5 sigma is trusted; everything
+    # docs/methods.md §1 (2-3 sigma, common practice): nothing closer than 2.5 sigma is trusted; everything
     # more than 2.5 sigma + 1 pixel away is.
     assert not np.any(t & (distance < 2.5 * sigma))
     assert np.all(t[distance >= 2.5 * sigma + pixel])
@@ -244,7 +244,7 @@ def test_choose_sigma_leakage():
     q1 = 2 * np.pi * np.array([40, 0]) / N
     q2 = 2 * np.pi * np.array([40, 12]) / N  # the nearest neighbour of q1, 12 bins away
     sigma, dk = choose_sigma([q1, q2], leakage=0.01)
-    # METHODS §1 [derived]: sigma dk = sqrt(2 ln 100) = 3.035 for 1 % leakage.
+    # docs/methods.md §1 [derived]: sigma dk = sqrt(2 ln 100) = 3.035 for 1 % leakage.
     assert_allclose(sigma * dk, math.sqrt(2 * math.log(100)), rtol=1e-12)
     assert_allclose(round(sigma * dk, 2), 3.03, atol=0.005)
     assert_allclose(dk, 2 * np.pi * 12 / N, rtol=1e-12)
@@ -281,7 +281,7 @@ def test_bad_arguments():
         lockin(da.zeros((64, 64), chunks=32), [1.0, 0.0], sigma_nm=2, pixel_size_nm=1, boundary="periodic")
     with pytest.raises(InputError, match="leakage"):
         choose_sigma([[1.0, 0.0]], leakage=1.5)
-    assert issubclass(InputError, ValueError)  # DESIGN.md: bad input is a ValueError
+    assert issubclass(InputError, ValueError)  # docs/README.md: bad input is a ValueError
 
 
 # --- kernel: dtypes, textbook agreement with masks, decimated grid --------------------------------
@@ -362,14 +362,14 @@ def test_methods_check_values_float32_and_decimated():
     image = wave(q, 1.7, 0.9).astype(np.float32)
     for step in (None, 4):
         a = lockin(image, q, sigma_nm=8, pixel_size_nm=1, boundary="periodic", step=step)
-        # METHODS §1 [derived]: 2|A| = 1.7, arg A = 0.9; float32 image: rounding 1e-7 relative (6e-8 of 1.7,
+        # docs/methods.md §1 [derived]: 2|A| = 1.7, arg A = 0.9; float32 image: rounding 1e-7 relative (6e-8 of 1.7,
         # a few ulps after the FFTs, derived).
         assert_allclose(amplitude(a), 1.7, rtol=2e-6)
         assert_allclose(phase(a), 0.9, rtol=0, atol=2e-6)
     q_true = q + np.array([2 * np.pi * 1.5 / N, 0.0])
     a = lockin(wave(q_true, 1.7, 0.9), q, sigma_nm=8, pixel_size_nm=1, step=4)
     assert a.shape == (64, 64)
-    # METHODS §1 check value [derived]: detuned by 2 pi 1.5 / 256 px^-1 -> 2|A| = 1.62784 (5 digits given),
+    # docs/methods.md §1 check value [derived]: detuned by 2 pi 1.5 / 256 px^-1 -> 2|A| = 1.62784 (5 digits given),
     # at the sampled pixels >= 6 sigma from the edges.
     assert_allclose(amplitude(a)[12:-12, 12:-12], 1.62784, atol=5e-6)
 
@@ -424,7 +424,7 @@ def test_dask_equals_memory_irregular_chunks_and_step(step, dtype, sigma):
     lazy = lockin(da.from_array(image, chunks=chunks), q, sigma_nm=sigma, pixel_size_nm=1.0, step=step)
     result = lazy.compute()
     assert result.shape == memory.shape and result.dtype == memory.dtype
-    # DESIGN.md: chunked and in-memory agree to float32 precision. float32: rounding of 1e-6 of the numerator;
+    # docs/README.md: chunked and in-memory agree to float32 precision. float32: rounding of 1e-6 of the numerator;
     # float64: the Gaussian tail beyond the 6-sigma overlap and zero padding, erfc(6 / sqrt 2) / 2 = 1e-9 per
     # side; both divided by the weight w >= 0.2 left next to the NaN pixel (derived).
     rel = 2e-6 if dtype == np.float32 else 2 * math.erfc(6 / math.sqrt(2))

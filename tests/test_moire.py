@@ -36,7 +36,7 @@ G_GR = reciprocal(A_GR * np.array([1.0, 0.0]), A_GR * np.array([0.5, np.sqrt(3) 
 
 
 def test_hermann_periods():
-    # Hermann, J. Phys.: Condens. Matter 2012, lambda = a / (2 sin(theta/2)); METHODS §4 values [derived].
+    # Hermann, J. Phys.: Condens. Matter 2012, lambda = a / (2 sin(theta/2)); docs/methods.md §4 values [derived].
     assert_allclose(moire_period(A_GR, 1.1), 12.814, atol=5e-4)
     assert_allclose(moire_period(A_GR, 1.05), 13.424, atol=5e-4)
     assert_allclose(moire_period(A_GR, 2.02), 6.978, atol=5e-4)
@@ -45,7 +45,7 @@ def test_hermann_periods():
 
 
 def test_yankowitz_mismatch_values():
-    # Yankowitz et al., Nat. Phys. 2012 formula; METHODS §4 values for delta = 0.018 [derived].
+    # Yankowitz et al., Nat. Phys. 2012 formula; docs/methods.md §4 values for delta = 0.018 [derived].
     p0, _ = moire_period_mismatch(A_GR, 0.0, 0.018)
     p1, phi1 = moire_period_mismatch(A_GR, 1.0, 0.018)
     p2, phi2 = moire_period_mismatch(A_GR, 2.0, 0.018)
@@ -57,7 +57,7 @@ def test_yankowitz_mismatch_values():
 
 def test_heterostrain_check_values_and_exact_inversion():
     K = moire_wavevectors(G_GR, 1.1, 0.2, 0.0, poisson=0.16)
-    # METHODS §4 check values [derived]: theta 1.1 deg, eps 0.2 %, phi_s 0 on layer 2.
+    # docs/methods.md §4 check values [derived]: theta 1.1 deg, eps 0.2 %, phi_s 0 on layer 2.
     assert_allclose(moire_wavelengths(K), [12.850, 12.203, 13.542], atol=5e-4)
     # derived: k_j = G1_j - G2_j with G2 the reciprocal lattice of the transformed vectors T a_i.
     c, s = np.cos(np.radians(1.1)), np.sin(np.radians(1.1))
@@ -171,7 +171,7 @@ def _check_ase_bilayer(atoms, a_nm, theta):
 
 
 def test_heterostrain_from_rendered_image_period_mode():
-    # Unresolved atoms: the moiré alone, 1.1 deg and 0.2 % along x (the METHODS §4 case).
+    # Unresolved atoms: the moiré alone, 1.1 deg and 0.2 % along x (the docs/methods.md §4 case).
     px = 0.25
     image, truth = twisted_bilayer(shape=(320, 320), pixel_size_nm=px, theta_deg=1.1,
                                    heterostrain_percent=0.2, heterostrain_angle_deg=0.0)

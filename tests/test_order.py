@@ -1,4 +1,4 @@
-"""Order parameters, domains, walls and defects against analytic truths (METHODS §5, §6)."""
+"""Order parameters, domains, walls and defects against analytic truths (docs/methods.md §5, §6)."""
 
 import math
 
@@ -49,7 +49,7 @@ def test_halves_shifted_by_one_lattice_vector():
         return np.angle(np.array([np.mean(np.exp(1j * np.angle(c[region]))) for c in a]))
 
     dphi = np.angle(np.exp(1j * (mean_phase(right) - mean_phase(left))))
-    # derived (METHODS §5): R = a1 gives n_j = (1, 0, -1) and dphi = -(2 pi / 3)(1, 0, -1)
+    # derived (docs/methods.md §5): R = a1 gives n_j = (1, 0, -1) and dphi = -(2 pi / 3)(1, 0, -1)
     assert_allclose(dphi, np.angle(np.exp(-1j * 2 * np.pi / 3 * np.array([1, 0, -1]))), atol=0.02)
     # derived: the sum of the phases is translation invariant
     sums = [np.angle(np.mean(np.exp(1j * order.phase_sum_rad[r]))) for r in (left, right)]
@@ -60,7 +60,7 @@ def test_halves_shifted_by_one_lattice_vector():
 
 
 def test_nine_translations_give_nine_variants():
-    # derived (METHODS §5): the n^2 = 9 translations of a 3x3 CDW are 9 distinct variants
+    # derived (docs/methods.md §5): the n^2 = 9 translations of a 3x3 CDW are 9 distinct variants
     shape = (3 * 96, 3 * 96)
     labels = np.zeros(shape, np.int32)
     for i in range(3):
@@ -124,7 +124,7 @@ def test_global_offset_keeps_domains_off_the_quantisation_boundary():
 
 
 def test_sharp_wall_amplitude_minimum_is_half():
-    # derived (METHODS §5): a sharp 2 pi/3 slip dips the lock-in amplitude to |cos(pi/3)| = 0.5
+    # derived (docs/methods.md §5): a sharp 2 pi/3 slip dips the lock-in amplitude to |cos(pi/3)| = 0.5
     scene = _halves(noise_nm=0.0, lattice_nm=0.0)
     a, _, _ = _order(scene)
     profile = domains.amplitude(a[0])[80, 60:170] / scene.truth["cdw_nm"]

@@ -81,7 +81,7 @@ def test_stripe_orientation_domains_match_the_truth():
     where = (labels > 0) & _outside_walls(truth, result.summary["sigma_nm"], scene.topography.pixel_size_nm[0])
     assert adjusted_rand_score(truth[where], labels[where]) >= 0.95
     assert result.summary["domains"]["count"] == scene.truth["n_domains"]
-    # Both orientations are found (METHODS §6): the states name the stripe direction q1 or q2.
+    # Both orientations are found (docs/methods.md §6): the states name the stripe direction q1 or q2.
     assert {r["state"].split()[0] for r in result.tables["domains"][1]} == {"q1", "q2"}
 
 

@@ -98,7 +98,7 @@ def test_lockin_is_linear(case):
     assert np.array_equal(np.isfinite(combined), np.isfinite(parts))
     finite = np.isfinite(combined)
     assert finite.any()  # common practice, no source: a mask never hides a whole 64 px frame from the filter
-    # The normaliser of the normalised convolution, G * (valid pixels), zero outside the frame (METHODS §1);
+    # The normaliser of the normalised convolution, G * (valid pixels), zero outside the frame (docs/methods.md §1);
     # rounding errors of the numerator are divided by it.
     valid = np.ones((rows, cols)) if mask is None else (~mask).astype(float)
     weight = ndimage.gaussian_filter(valid, (sigma_nm / dy, sigma_nm / dx), mode="constant", truncate=6)
@@ -210,7 +210,7 @@ def test_global_phase_offset_leaves_the_partition(case):
     reference = order_of(np.zeros(3))
     moved = order_of(phi0)
     # derived: each component's phase noise (< 0.3 rad) stays well inside its variant's cell, whose half-width
-    # is pi / 3 per component (METHODS §5), so the variants recover the drawn domains.
+    # is pi / 3 per component (docs/methods.md §5), so the variants recover the drawn domains.
     assert same_partition(reference, truth)
     # derived: the global offset is estimated and removed before quantising, so a constant phase added to
     # the components (the same for all three, or one per component) only relabels the variants.
@@ -513,7 +513,7 @@ def test_invalid_config_exits_2_with_one_line(topography, case):
         with contextlib.redirect_stderr(stderr), contextlib.redirect_stdout(stdout):
             status = main(["analyze", str(topography), "--config", str(config_path), "--out", str(out)])
         message = stderr.getvalue()
-        # DESIGN.md contract (command line): bad input exits 2 with a one-line message naming the file,
+        # docs/README.md contract (command line): bad input exits 2 with a one-line message naming the file,
         # and no traceback; nothing is written.
         assert status == 2, (name, table, status, message)
         assert message.count("\n") == 1 and message.endswith("\n"), (name, message)
@@ -522,7 +522,7 @@ def test_invalid_config_exits_2_with_one_line(topography, case):
         assert not out.exists(), name
 
 
-# One corruption each of a sidecar; every one breaks a rule of DESIGN.md's sidecar contract.
+# One corruption each of a sidecar; every one breaks a rule of docs/README.md's sidecar contract.
 SIDECAR_CORRUPTIONS = {
     "negative pixel": lambda v: {"pixel_size_nm": -v},
     "zero pixel": lambda v: {"pixel_size_nm": 0.0},
@@ -564,7 +564,7 @@ def test_invalid_sidecar_exits_2_with_one_line(topography, case):
         with contextlib.redirect_stderr(stderr), contextlib.redirect_stdout(stdout):
             status = main(["peaks", str(image)])
         message = stderr.getvalue()
-        # DESIGN.md contract (sidecar, command line): a malformed sidecar is bad input, exit 2 with one line
+        # docs/README.md contract (sidecar, command line): a malformed sidecar is bad input, exit 2 with one line
         # on stderr that names the image, and no traceback.
         assert status == 2, (name, sidecar, status, message)
         assert message.count("\n") == 1 and message.endswith("\n"), (name, message)

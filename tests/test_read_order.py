@@ -48,7 +48,7 @@ def test_supercell_names_and_variants_follow_the_sqrt_n_formula(h, k, theta):
     if n == 3:
         assert name == "sqrt3xsqrt3R30"
     else:
-        # derived: theta = atan(sqrt(3) k / (2h + k)); METHODS §8 gives 13.90 and 19.11 degrees
+        # derived: theta = atan(sqrt(3) k / (2h + k)); docs/methods.md §8 gives 13.90 and 19.11 degrees
         assert math.isclose(math.degrees(math.atan2(math.sqrt(3) * k, 2 * h + k)), theta, abs_tol=1e-3)
         assert name.startswith(f"sqrt{n}xsqrt{n}R") and abs(float(name.split("R")[1]) - theta) < 0.06
         # the mirror fraction (h, -k)/N is the other chirality (derived, see _hex_sqrt_fraction)

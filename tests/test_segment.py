@@ -84,7 +84,7 @@ def test_disc_fraction_equals_direct_convolution_and_the_lattice_count():
 
 @pytest.mark.parametrize("gap", [3, 8])
 def test_segment_states_draws_a_wall_across_a_bridged_gap(gap):
-    # derived (METHODS §5): at a pi slip the amplitude vanishes, so the ordered mask has a gap;
+    # derived (docs/methods.md §5): at a pi slip the amplitude vanishes, so the ordered mask has a gap;
     # bridge_nm = r pixels closes gaps of up to 2r pixels and the wall is drawn in it, one
     # pixel per row; a wider gap stays open and no wall is drawn (two separate regions).
     px = 0.1
@@ -230,7 +230,7 @@ def test_windings_of_noise_are_not_defects(with_vortex):
 
 
 def _three_strips(w1_nm, w2_nm, sigma_nm, noise, seed=0):
-    # derived (forward model, METHODS §5): a Gaussian-smoothed step of width w seen through a
+    # derived (forward model, docs/methods.md §5): a Gaussian-smoothed step of width w seen through a
     # Gaussian lock-in of width sigma is, in the complex field, a step of width sqrt(w^2 + sigma^2)
     from scipy.special import erf
 

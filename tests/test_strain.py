@@ -53,7 +53,7 @@ def test_lagrangian_stretch_gives_eulerian_0_00990():
     res = gpa(render_deformed(q, F), q, sigma_nm=SIGMA, pixel_size_nm=DX)
     t = res.trusted
     assert t.sum() > 1000
-    # METHODS §3 check value [derived]: e_xx = 1 - 1/1.01 = 0.00990 for a 1 % Lagrangian stretch.
+    # docs/methods.md §3 check value [derived]: e_xx = 1 - 1/1.01 = 0.00990 for a 1 % Lagrangian stretch.
     assert_allclose(np.median(res.exx[t]), 0.00990, atol=TOL_E)
     assert_allclose(res.exx[t], 1 - 1 / 1.01, atol=TOL_E)
     # derived: no shear, no stretch along y and no rotation for F = diag(1.01, 1).
@@ -70,7 +70,7 @@ def test_rigid_rotation_half_degree():
     c, s = np.cos(np.radians(0.5)), np.sin(np.radians(0.5))
     res = gpa(render_deformed(q, np.array([[c, -s], [s, c]])), q, sigma_nm=SIGMA, pixel_size_nm=DX)
     t = res.trusted
-    # METHODS §3 check value [derived]: omega = sin(0.5 deg) = 8.727e-3 rad, strain below 1e-4.
+    # docs/methods.md §3 check value [derived]: omega = sin(0.5 deg) = 8.727e-3 rad, strain below 1e-4.
     assert_allclose(res.rotation_rad[t], 8.727e-3, atol=TOL_E)
     for comp in (res.exx, res.eyy, res.exy):
         assert np.max(np.abs(comp[t])) < 1e-4

@@ -11,7 +11,7 @@ from domains.synth import cdw_scene, cdw_variant_phases, smooth_partition, strip
 @pytest.mark.parametrize("n", [2, 3, 4])
 def test_cdw_has_n_squared_translational_variants(n):
     phases = np.array([cdw_variant_phases(n, m1, m2) for m1 in range(n) for m2 in range(n)])
-    # derived (METHODS §5): a lattice translation R shifts phi_j by -2 pi n_j / n, so all
+    # derived (docs/methods.md §5): a lattice translation R shifts phi_j by -2 pi n_j / n, so all
     # offsets are multiples of 2 pi / n ...
     steps = phases / (2 * np.pi / n)
     assert_allclose(steps, np.round(steps), atol=1e-12)
@@ -29,7 +29,7 @@ def test_scene_variants_differ_between_neighbours_and_are_multiples_of_2pi_over_
     phases = {d["label"]: np.array(d["phases_rad"]) for d in scene.truth["domains"]}
     for p in phases.values():
         steps = p / (2 * np.pi / n)
-        assert_allclose(steps, np.round(steps), atol=1e-9)  # derived: METHODS §5
+        assert_allclose(steps, np.round(steps), atol=1e-9)  # derived: docs/methods.md §5
     # neighbours across a wall always differ, or there would be no wall
     edge = labels[:, :-1] != labels[:, 1:]
     for a, b in set(zip(labels[:, :-1][edge].tolist(), labels[:, 1:][edge].tolist())):
@@ -53,7 +53,7 @@ def test_truth_amplitude_is_the_linear_crossover_of_two_phases():
 
 
 def test_sharp_slip_shows_a_lockin_dip_of_cos_half_dphi():
-    # derived (METHODS §5): at a sharp phase slip dphi the lock-in amplitude dips to |cos(dphi/2)|
+    # derived (docs/methods.md §5): at a sharp phase slip dphi the lock-in amplitude dips to |cos(dphi/2)|
     # Lattice at 15 degrees: every Q_i +- Q_j lies 15 degrees off the wall normal, so the sharp
     # step of one component barely leaks into the lock-in (derived; see tests/test_order.py).
     shape = (128, 192)

@@ -71,7 +71,7 @@ def peak_amplitude(image, pixel_size, q):
 @pytest.mark.parametrize("M, hk", [(SQRT13, (3, 1)), (SQRT7, (2, 1)), (SQRT3, (1, 1))])
 def test_root_n_rotation_matches_the_hexagonal_formula(M, hk):
     h, k = hk
-    expected = math.degrees(math.atan(math.sqrt(3) * k / (2 * h + k)))  # derived: METHODS §8, atan(√3k/(2h+k))
+    expected = math.degrees(math.atan(math.sqrt(3) * k / (2 * h + k)))  # derived: docs/methods.md §8, atan(√3k/(2h+k))
     geom = supercell_geometry(M, 0.336, 5.0)
     assert abs(abs(geom["rotation_deg"]) - expected) < 1e-9  # derived, exact geometry
     assert geom["det"] == h * h + h * k + k * k  # derived: N = h² + hk + k²
@@ -93,7 +93,7 @@ def test_det_m_equals_the_number_of_distinct_variant_phase_sets(M):
     det = round(abs(np.linalg.det(np.array(M, float))))
     q = np.array(geom["q_cdw_rad_per_nm"])
     A = hex_basis(a, 3.0)
-    # derived (METHODS §8): translations R shift the phases by -Q.R; the distinct sets over all R
+    # derived (docs/methods.md §8): translations R shift the phases by -Q.R; the distinct sets over all R
     # are the translational variants, |det M| of them.
     sets = set()
     for m1 in range(-9, 10):

@@ -18,7 +18,7 @@ from domains.synth import electronic_types_scene
 
 PIXEL_NM = 0.05
 # derived: the 3x3 CDW of a = 0.336 nm has |Q| = 4 pi / (sqrt(3) 3 a) = 7.20 rad/nm; sigma |Q| >= 3 keeps
-# its leak into the smoothed map below exp(-4.5) = 1 % (METHODS §1), so sigma >= 0.42 nm.
+# its leak into the smoothed map below exp(-4.5) = 1 % (docs/methods.md §1), so sigma >= 0.42 nm.
 SIGMA_NM = 0.5
 
 
@@ -164,7 +164,7 @@ def test_one_type_false_alarm_rate_and_coverage():
     assert false_types <= stats.binom.isf(0.002, n_real, TYPES_ALPHA)  # binomial bound (scipy.stats)
     # derived: calibrated p-values are uniform, P(p < 0.1) = 0.1; binomial 99.8 % upper bound.
     assert small_p <= stats.binom.isf(0.002, n_real, 0.1)  # binomial bound (scipy.stats)
-    # METHODS §10 (derived from the normal law): 95.45 % within 2 se, 68.27 % within 1 se. The contrasts
+    # docs/methods.md §10 (derived from the normal law): 95.45 % within 2 se, 68.27 % within 1 se. The contrasts
     # of one realisation sum to zero with area weights, so they are mildly correlated: 4-sigma binomial bounds.
     for inside, p in ((inside_2, math.erf(2 / math.sqrt(2))), (inside_1, math.erf(1 / math.sqrt(2)))):
         sd = math.sqrt(p * (1 - p) / n_values)
@@ -187,7 +187,7 @@ def test_coverage_of_type_contrasts_without_tip_change():
         n += z.size
     for inside, p in ((inside_2, math.erf(2 / math.sqrt(2))), (inside_1, math.erf(1 / math.sqrt(2)))):
         sd = math.sqrt(p * (1 - p) / n)
-        assert abs(inside / n - p) < 4 * sd + 1 / n  # METHODS §10; binomial bound (derived)
+        assert abs(inside / n - p) < 4 * sd + 1 / n  # docs/methods.md §10; binomial bound (derived)
 
 
 def test_setpoint_normalisation_removes_the_setpoint_ratio():

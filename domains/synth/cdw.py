@@ -130,7 +130,7 @@ def cdw_variant_phases(n, m1, m2):
     """Phases of the three CDW components for the translational variant (m1, m2) of an n x n CDW.
 
     Translating the CDW by R = m1 a1 + m2 a2 shifts component j by -Q_j . R =
-    -2 pi n_j / n with n_j = G_j . R / 2 pi = (m1, m2, -m1 - m2) (METHODS §5).
+    -2 pi n_j / n with n_j = G_j . R / 2 pi = (m1, m2, -m1 - m2) (docs/methods.md §5).
 
     Parameters
     ----------

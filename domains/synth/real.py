@@ -15,7 +15,7 @@ The superlattice scenes describe a commensurate CDW by an integer supercell
 matrix M (A_super = M A, rows real-space basis vectors), whose reciprocal basis
 is B_super = M^{-T} B; the CDW wavevectors are the shortest vectors of B_super
 that are not Bragg vectors, and the |det M| lattice translations distinct modulo
-the superlattice are the translational variants (docs: METHODS §8).
+the superlattice are the translational variants (docs/methods.md §8).
 
 Every scene is invented: lattices, sizes and layouts belong to no real material
 or measurement.
@@ -409,7 +409,7 @@ def supercell_geometry(supercell, a_nm, angle_deg=0.0):
     are the shortest vectors of B_super that are not Bragg vectors, one of each
     ± pair (three at 120 degrees summing to zero for a triple-q star). A lattice
     translation R shifts component j by -Q_j . R; the |det M| translations distinct
-    modulo the superlattice are the translational variants (METHODS §8).
+    modulo the superlattice are the translational variants (docs/methods.md §8).
 
     Parameters
     ----------
@@ -811,7 +811,7 @@ def incommensurate_cdw_scene(*, shape=(1024, 1024), pixel_size_nm=0.05, a_nm=0.3
         kind "incommensurate_cdw". ``truth``: ``lattice``, ``n``, ``delta``,
         ``q_cdw_rad_per_nm`` (mean wavevectors (1 - δ) G / n), ``q_commensurate_rad_per_nm``,
         ``dq_rad_per_nm`` (|G| δ / n), ``discommensuration_spacing_nm`` (2π/|Δq|, the length over
-        which the phase against the commensurate wave winds by 2π, as METHODS §8 reports it),
+        which the phase against the commensurate wave winds by 2π, as docs/methods.md §8 reports it),
         ``slip_spacing_nm`` (2π/(n|Δq|) = d_G/δ, between successive 2π/n slips along G_j),
         and with discommensurations ``patches`` (label, R, variant). ``truth_maps``: ``labels``
         (patches; all 1 if uniform), ``variant`` ((m1 mod n) n + (m2 mod n)), ``slip_lines``,
