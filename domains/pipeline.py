@@ -230,24 +230,11 @@ def analyze(topography: Scan, *, maps=(), grid: Scan | None = None, config: Conf
     >>> result.summary["superlattice"]["order"], result.summary["domains"]["count"]
     ('3x3', 2)
     """
+    from ._checks import scans_for_analysis
+
     config = (config or Config()).validate()
-    if topography.is_grid:
-        raise InputError(f"{topography.source}: the topograph must be a 2-D image, got a 3-D grid")
-    for m in maps:
-        if m.is_grid:
-            raise InputError(f"{m.source}: a map must be a 2-D image; give grids with --grid")
-        if m.shape != topography.shape:
-            raise InputError(f"{m.source}: shape {m.shape} differs from the topograph's {topography.shape}")
-        if not np.allclose(m.pixel_size_nm, topography.pixel_size_nm, rtol=1e-6):
-            raise InputError(f"{m.source}: pixel size {m.pixel_size_nm} nm differs from the topograph's "
-                             f"{topography.pixel_size_nm} nm")
-        if m.bias_V is None:
-            raise InputError(f"{m.source}: the map has no bias; give bias_V in its sidecar")
-    if grid is not None:
-        if not grid.is_grid:
-            raise InputError(f"{grid.source}: --grid needs a 3-D array (energy, row, col)")
-        if grid.shape[1:] != topography.shape:
-            raise InputError(f"{grid.source}: grid slices {grid.shape[1:]} differ from the topograph's {topography.shape}")
+    # The same checks the command line makes before any work (one home for them).
+    scans_for_analysis(topography, maps, grid)
     return _run(_materialise(topography), [_materialise(m) for m in maps], grid, config, progress)
 
 
