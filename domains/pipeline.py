@@ -1367,6 +1367,16 @@ def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, im
     if reading is not None and reading.moire_from_bragg:
         # With both layers' atoms resolved: the same twist and heterostrain from the two Bragg lattices.
         summary["moire"]["from_bragg_peaks"] = reading.moire_from_bragg
+        mismatch = reading.moire_from_bragg.get("mismatch")
+        if mismatch is not None and abs(mismatch) > 0.002 and reading.moire_from_bragg.get("twist_deg") is not None:
+            # The twist maps invert the moiré for two layers of one lattice constant; with a lattice mismatch
+            # (Yankowitz et al. 2012) the mismatch reads as strain there, so the Bragg-peak values are quoted.
+            for key in ("twist_deg", "heterostrain_percent", "period_nm"):
+                summary["moire"][f"{key}_maps"] = summary["moire"].get(key)
+                summary["moire"][key] = reading.moire_from_bragg.get(key)
+            summary["moire"]["lattice_mismatch"] = abs(mismatch)
+            notes.append(f"Lattice mismatch of {100 * abs(mismatch):.2f} %: twist, heterostrain and period are "
+                         "quoted from the two layers' Bragg peaks; the twist maps assume equal lattice constants.")
     choices["moire"] = {"mode": maps.mode, "sigma_nm": maps.sigma_nm, "twist_tolerance_deg": twist.tolerance_deg,
                         "twist_tolerance_from": twist.tolerance_source}
     labels = twist.labels.astype(np.int32)
