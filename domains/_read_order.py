@@ -31,7 +31,7 @@ from ._errors import InputError
 from ._lockin import amplitude, choose_sigma, lockin, phase_gradient, trusted_mask
 
 __all__ = ["MAX_DETERMINANT", "LatticeReading", "OrderFamily", "OrderResult", "find_lattice", "read_order",
-           "slow_axis_drift_fit", "supercell_name"]
+           "order_basis", "slow_axis_drift_fit", "supercell_name"]
 
 #: Largest |det M| (number of translational variants) searched for a commensurate superlattice.
 MAX_DETERMINANT = 16
@@ -254,6 +254,30 @@ class OrderResult:
 # --------------------------------------------------------------------------------------
 # The lattice
 # --------------------------------------------------------------------------------------
+
+
+def order_basis(lattice):
+    """The basis in which order coefficients are written: the first two Bragg vectors (G1, G2).
+
+    They are the vectors whose phases the drift correction measures (G3 = -(G1 + G2) on a
+    hexagonal lattice), so coefficients, relative phases and variant templates share one basis.
+
+    Parameters
+    ----------
+    lattice : domains.fourier.Lattice
+
+    Returns
+    -------
+    (2, 2) ndarray
+        Rows G1, G2 in rad/nm.
+
+    Examples
+    --------
+    >>> from domains.fourier import Lattice
+    >>> order_basis(Lattice.from_params("square", 0.4)).shape
+    (2, 2)
+    """
+    return np.asarray(lattice.bragg, float)[:2]
 
 
 def _angle_between_deg(u, v):
@@ -900,7 +924,7 @@ def read_order(image, *, pixel_size_nm, lattice_reading, mask=None, peaks=None, 
     if lat is None:
         return _read_unresolved(image, pixel, mask, lattice_reading, peaks, reasons, leakage, false_alarm,
                                 given_q, anisotropy_threshold)
-    basis = np.asarray(lat.bragg, float)[:2]
+    basis = order_basis(lat)
     inv = np.linalg.inv(basis)
     bragg = np.asarray(lat.bragg, float)
     gmin = float(np.min(np.hypot(*bragg.T)))

@@ -1049,15 +1049,22 @@ def _drop_untrusted_terraces(labels, mask):
     return labels, labels == 0
 
 
-def _terrace_fit(x, mask, labels, order):
-    """Fit polynomial + offsets on the trusted terrace pixels (strided subsample above _TERRACE_FIT_PIXELS)."""
-    step = _subsample_step(x.shape, _TERRACE_FIT_PIXELS)
+def _terrace_sample(x, mask, labels, budget):
+    """A strided subsample of at most ``budget`` pixels: the step, the slices, the terrace labels there,
+    the usable pixels (on a terrace, finite, not masked) and their (row, col) in the subsample."""
+    step = _subsample_step(x.shape, budget)
     sub = (slice(None, None, step), slice(None, None, step))
     lab = labels[sub]
     good = (lab > 0) & np.isfinite(x[sub])
     if mask is not None:
         good &= ~mask[sub]
     rows, cols = np.nonzero(good)
+    return step, sub, lab, good, rows, cols
+
+
+def _terrace_fit(x, mask, labels, order):
+    """Fit polynomial + offsets on the trusted terrace pixels (strided subsample above _TERRACE_FIT_PIXELS)."""
+    step, sub, lab, good, rows, cols = _terrace_sample(x, mask, labels, _TERRACE_FIT_PIXELS)
     n_terraces = int(labels.max())
     present = np.bincount(lab[good], minlength=n_terraces + 1)
     if np.any(present[1:] == 0):
@@ -1073,13 +1080,8 @@ def _merge_terraces(x, mask, labels, offsets, poly, order, significance):
     The robust sigma is that of the residual with each line's median removed: the
     corrugation and the noise, not the line offsets.
     """
-    step = _subsample_step(x.shape, 2**18)  # a scale estimate: a quarter million pixels are plenty
-    sub = (slice(None, None, step), slice(None, None, step))
-    lab = labels[sub]
-    good = (lab > 0) & np.isfinite(x[sub])
-    if mask is not None:
-        good &= ~mask[sub]
-    rows, cols = np.nonzero(good)
+    # A scale estimate: a quarter million pixels are plenty.
+    step, sub, lab, good, rows, cols = _terrace_sample(x, mask, labels, 2**18)
     background = np.zeros(rows.size)
     for c, (i, j) in zip(poly, _terms(order)):
         background += c * _scaled(cols * step, x.shape[1]) ** i * _scaled(rows * step, x.shape[0]) ** j

@@ -1300,15 +1300,6 @@ def _marked_peaks(result, unindexed=12):
     return marked
 
 
-def _order_basis(lattice):
-    """The basis in which order coefficients are written: the first two Bragg vectors G1, G2.
-
-    They are the vectors whose phases the drift correction measures (G3 = -(G1 + G2) on a
-    hexagonal lattice), so relative phases and variant templates use the same basis.
-    """
-    return np.asarray(lattice.bragg, float)[:2]
-
-
 def _peaks_near_qy_axis(peaks, shape, pixel, bins=3):
     """Peaks within ``bins`` frequency bins of the qy axis (line offsets live on that axis)."""
     width_bin = 2 * np.pi / (shape[1] * pixel[1])
