@@ -168,18 +168,32 @@ class Analysis:
     sections: list
     notes: list = field(default_factory=list)
     choices: dict = field(default_factory=dict)
+    #: Wall-clock seconds spent in each named step (benchmarks read it; not part of the summary).
+    timings: dict = field(default_factory=dict)
 
 
 class _Progress:
-    """A progress bar that names the step about to run ("drift", "lock-in", "walls" ...)."""
+    """A progress bar that names the step about to run ("drift", "lock-in", "walls" ...).
+
+    It also times the steps: ``times[name]`` is the wall-clock time from the call that
+    announced ``name`` to the next call.
+    """
 
     def __init__(self, total, enabled):
+        import time
+
         from tqdm.auto import tqdm
 
+        self._clock = time.perf_counter
+        self._name, self._start, self.times = "level", self._clock(), {}
         self.bar = tqdm(total=total, desc="domains: level", unit="step", disable=not enabled, leave=False)
 
     def __call__(self, next_step=None, n=1):
+        now = self._clock()
+        self.times[self._name] = self.times.get(self._name, 0.0) + now - self._start
+        self._start = now
         if next_step:
+            self._name = next_step
             self.bar.set_description(f"domains: {next_step}")
         self.bar.update(n)
 
@@ -585,7 +599,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     bar.close()
     summary["choices"] = choices
     summary["notes"] = notes
-    return Analysis(config, summary, out_maps, tables, figures, sections, notes, choices)
+    return Analysis(config, summary, out_maps, tables, figures, sections, notes, choices, timings=dict(bar.times))
 
 
 def _variant_of(name):
