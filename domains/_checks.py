@@ -301,6 +301,10 @@ def config_values(config, where="configuration"):
     number(config.anisotropy_threshold, "anisotropy_threshold", low=0, high=1, high_open=False, where=where)
     if config.confidence is not None:
         number(config.confidence, "confidence", low=0, high=1, high_open=False, where=where)
+    step = config.grid_step
+    if step is not None and (isinstance(step, bool) or not isinstance(step, (int, np.integer)) or step < 1):
+        raise InputError(f"{where}: grid_step must be a positive integer number of pixels (1: full resolution), "
+                         f"got {step!r}")
     kind = None
     if config.lattice is not None:
         kind = lattice_table(config.lattice, where=where)["kind"]

@@ -29,6 +29,7 @@ import numpy as np
 
 from ._errors import InputError
 from ._lockin import amplitude, choose_sigma, lockin, phase_gradient, trusted_mask
+from ._scan import pixel_size_pair
 
 __all__ = ["MAX_DETERMINANT", "LatticeReading", "OrderFamily", "OrderResult", "find_lattice", "read_order",
            "order_basis", "slow_axis_drift_fit", "supercell_name"]
@@ -693,11 +694,15 @@ def _wavevector_stats(image, q, *, sigma_nm, pixel, mask, threshold, basis=None)
 
     Returns (local (k,2), local_err (k,), mean (k,2), mean_err (k,), presence (k,), amplitude (k,)).
     """
-    dy, dx = pixel
+    from ._grid import Grid, choose_step
+
     q = np.atleast_2d(q)
     k = len(q)
     allq = q if basis is None else np.vstack([q, basis])
-    a = lockin(image, allq, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask)
+    # On the decimated grid (the lock-in is band-limited): the samples are the full-resolution values.
+    grid = Grid(np.shape(image), pixel_size_pair(pixel), choose_step(sigma_nm, pixel, np.shape(image)))
+    dy, dx = pixel = grid.coarse_pixel_nm
+    a = lockin(image, allq, sigma_nm=sigma_nm, pixel_size_nm=grid.pixel_size_nm, mask=mask, step=grid.step)
     if a.ndim == 2:
         a = a[None]
     amp = amplitude(a[:k])
@@ -705,7 +710,8 @@ def _wavevector_stats(image, q, *, sigma_nm, pixel, mask, threshold, basis=None)
     if basis is not None:
         coef = q @ np.linalg.inv(basis)
         grad = grad[:, :k] - np.einsum("jb,abrc->ajrc", coef, grad[:, k:])
-    trusted = trusted_mask(np.shape(image), sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask)
+    trusted = grid.sample(trusted_mask(np.shape(image), sigma_nm=sigma_nm, pixel_size_nm=grid.pixel_size_nm,
+                                       mask=mask))
     local, local_err = np.full((k, 2), np.nan), np.full(k, np.nan)
     mean, mean_err = np.full((k, 2), np.nan), np.full(k, np.nan)
     presence, amp_med = np.zeros(k), np.zeros(k)
@@ -739,9 +745,12 @@ def _wavevector_stats(image, q, *, sigma_nm, pixel, mask, threshold, basis=None)
 def _noise_threshold(image, q, *, sigma_nm, pixel, mask, avoid, false_alarm):
     from .order import noise_floor
 
+    from ._grid import choose_step
+
     try:
+        # On the decimated grid: the samples are the full-resolution values (same statistics, fewer pixels).
         return noise_floor(image, q, sigma_nm=sigma_nm, pixel_size_nm=pixel, avoid_q=avoid, mask=mask,
-                           false_alarm=false_alarm).threshold
+                           false_alarm=false_alarm, step=choose_step(sigma_nm, pixel, np.shape(image))).threshold
     except InputError:
         return 0.0
 
@@ -1229,8 +1238,11 @@ def _unidirectional(image, families, pixel, mask, leakage, false_alarm, anisotro
         return True
     sigma, _ = choose_sigma(q, leakage=leakage)
     sigma = min(max(sigma, 1.5 * max(pixel)), min(image.shape[0] * pixel[0], image.shape[1] * pixel[1]) / 8)
-    a = lockin(image, q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
-    trusted = trusted_mask(image.shape, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
+    from ._grid import choose_step
+
+    step = choose_step(sigma, pixel, image.shape)  # the decimated grid: samples of the full-resolution field
+    a = lockin(image, q, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask, step=step)
+    trusted = trusted_mask(image.shape, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)[::step, ::step]
     thr = _noise_threshold(image, q, sigma_nm=sigma, pixel=pixel, mask=mask, avoid=q, false_alarm=false_alarm)
     o = orientation_order(a, threshold=thr, anisotropy_threshold=anisotropy_threshold)
     where = o.ordered & trusted

@@ -23,7 +23,7 @@ WALL_COLUMNS = [
 BOOTSTRAP_RESAMPLES = 2000
 
 
-def domain_table(labels, *, pixel_size_nm, state_names=None, amplitude=None, fields=None):
+def domain_table(labels, *, pixel_size_nm, state_names=None, amplitude=None, fields=None, sample_labels=None):
     """A row per domain: area, equivalent diameter, centroid, mean amplitude and phases, edge contact.
 
     Parameters
@@ -38,6 +38,10 @@ def domain_table(labels, *, pixel_size_nm, state_names=None, amplitude=None, fie
         Order amplitude; its mean over each domain (over components too) is reported.
     fields : (k, row, col) complex, optional
         Order-parameter fields; the circular mean phase of each component is reported (deg).
+    sample_labels : (row', col') int, optional
+        The labels on the grid of ``amplitude`` and ``fields`` when they are given on a
+        decimated grid (default: ``labels``); areas, centroids and edge contact always
+        come from ``labels``.
 
     Returns
     -------
@@ -56,22 +60,42 @@ def domain_table(labels, *, pixel_size_nm, state_names=None, amplitude=None, fie
     amp = None if amplitude is None else np.asarray(amplitude, dtype=float)
     if amp is not None and amp.ndim == 2:
         amp = amp[None]
+    on = labels if sample_labels is None else np.asarray(sample_labels)
+    n = int(max(labels.max(initial=0), on.max(initial=0))) + 1
+    flat = np.clip(on, 0, None).ravel()
+
+    def label_sum(values):
+        finite = np.isfinite(values)
+        return (np.bincount(flat, weights=np.where(finite, values, 0).ravel(), minlength=n),
+                np.bincount(flat, weights=finite.ravel().astype(float), minlength=n))
+
+    mean_amp = None
+    if amp is not None:
+        sums = [label_sum(a) for a in amp]
+        total, count = sum(t for t, _ in sums), sum(c for _, c in sums)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean_amp = total / count
+    phases = []
+    for f in fields if fields is not None else ():
+        f = np.asarray(f)
+        unit = f / np.where(np.abs(f) > 0, np.abs(f), 1)
+        re, cnt = label_sum(unit.real)
+        im, _ = label_sum(unit.imag)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            phases.append(np.degrees(np.angle((re + 1j * im) / cnt)))
     rows = []
     for region in regionprops(labels, spacing=(dy, dx)):
         r0, c0, r1, c1 = region.bbox
-        where = labels == region.label
+        lab = int(region.label)
         row = {
-            "domain": int(region.label),
-            "state": (state_names or {}).get(int(region.label), ""),
+            "domain": lab,
+            "state": (state_names or {}).get(lab, ""),
             "area_nm2": float(region.num_pixels * dx * dy),
             "equivalent_diameter_nm": float(2 * math.sqrt(region.num_pixels * dx * dy / math.pi)),
             "centroid_x_nm": float(region.centroid[1]),
             "centroid_y_nm": float(region.centroid[0]),
-            "mean_amplitude": float(np.nanmean(amp[:, where])) if amp is not None else math.nan,
-            "mean_phase_deg": ";".join(
-                f"{math.degrees(np.angle(np.nanmean(f[where] / np.where(np.abs(f[where]) > 0, np.abs(f[where]), 1)))):.1f}"
-                for f in fields
-            ) if fields is not None else "",
+            "mean_amplitude": float(mean_amp[lab]) if mean_amp is not None else math.nan,
+            "mean_phase_deg": ";".join(f"{p[lab]:.1f}" for p in phases) if fields is not None else "",
             "touches_edge": bool(r0 == 0 or c0 == 0 or r1 == labels.shape[0] or c1 == labels.shape[1]),
             "n_pixels": int(region.num_pixels),
         }

@@ -36,7 +36,7 @@ class NoiseFloor:
 
 
 def noise_floor(image, q, *, sigma_nm, pixel_size_nm, avoid_q=(), mask=None, trusted=None,
-                false_alarm=NOISE_FALSE_ALARM, n_probes=6):
+                false_alarm=NOISE_FALSE_ALARM, n_probes=6, step=None):
     """Noise floor of the lock-in amplitude, measured at empty wavevectors of the same length.
 
     The lock-in of noise is a complex Gaussian, so 2|A| follows a Rayleigh law;
@@ -65,6 +65,10 @@ def noise_floor(image, q, *, sigma_nm, pixel_size_nm, avoid_q=(), mask=None, tru
         Probability that pure noise exceeds the threshold at one pixel.
     n_probes : int
         How many empty wavevectors to use.
+    step : int, optional
+        Demodulate on the decimated grid (every ``step``-th row and column, see
+        :func:`domains.lockin`); ``trusted`` is then on that grid. The samples are
+        the full-resolution values, so the statistics are those of the full grid.
 
     Returns
     -------
@@ -108,10 +112,12 @@ def noise_floor(image, q, *, sigma_nm, pixel_size_nm, avoid_q=(), mask=None, tru
         )
     pick = np.linspace(0, len(candidates) - 1, min(n_probes, len(candidates))).round().astype(int)
     probes = np.array([candidates[i] for i in pick])
-    amps = amplitude(lockin(image, probes, sigma_nm=sigma_nm, pixel_size_nm=pixel_size_nm, mask=mask))
+    amps = amplitude(lockin(image, probes, sigma_nm=sigma_nm, pixel_size_nm=pixel_size_nm, mask=mask, step=step))
     if trusted is None:
         # Near edges and masks fewer pixels are averaged and the noise is larger: keep away.
         trusted = trusted_mask(np.shape(image), sigma_nm=sigma_nm, pixel_size_nm=pixel_size_nm, mask=mask)
+        if step:
+            trusted = trusted[::step, ::step]
     where = trusted & np.isfinite(amps[0])
     values = amps[:, where]
     scale = float(np.median(values) / np.sqrt(2 * np.log(2)))
@@ -301,7 +307,8 @@ def _scores(amp, centred, templates):
     return np.nan_to_num(scores, nan=-np.inf)
 
 
-def commensurate_order(a_cdw, coefficients, *, bragg_phase=None, threshold=None, trusted=None, rng=0):
+def commensurate_order(a_cdw, coefficients, *, bragg_phase=None, threshold=None, trusted=None, rng=0,
+                       offset_rad=None):
     """Quantise the relative CDW phases to the translational variants of a commensurate order.
 
     The global offset (the choice of origin) is removed first, so that domains sit
@@ -328,6 +335,9 @@ def commensurate_order(a_cdw, coefficients, *, bragg_phase=None, threshold=None,
         Pixels to use for the offset estimate.
     rng : int or numpy.random.Generator
         Chooses the pixels sampled for the offset search (fixed by default).
+    offset_rad : (k,) array_like, optional
+        Use this global offset (e.g. the one found on the whole frame, to classify a
+        few more pixels consistently) instead of estimating it.
 
     Returns
     -------
@@ -354,6 +364,8 @@ def commensurate_order(a_cdw, coefficients, *, bragg_phase=None, threshold=None,
     use = ordered if trusted is None else ordered & trusted
     if not use.any():
         use = np.isfinite(total)
+    if offset_rad is not None:
+        return _quantise(phi, amp, np.asarray(offset_rad, float), templates, ordered, coefficients, variants)
     # Per component, modulo its phase step 2 pi / d_j: the mean of exp(i d_j phi) is blind to the variant.
     steps = np.array([np.lcm.reduce([_denominator(c) for c in row]) for row in coefficients])
     weights = np.where(use, amp, 0.0)
@@ -384,6 +396,11 @@ def commensurate_order(a_cdw, coefficients, *, bragg_phase=None, threshold=None,
         if score > best_score + 1e-12:
             best_shift, best_score = np.array(shift), score
     offset = np.angle(np.exp(1j * (offset + 2 * np.pi * best_shift / steps)))
+    return _quantise(phi, amp, offset, templates, ordered, coefficients, variants)
+
+
+def _quantise(phi, amp, offset, templates, ordered, coefficients, variants):
+    """Each pixel's best variant, its score and margin, once the global offset is fixed."""
     centred = phi - offset[:, None, None]
     scores = _scores(amp, centred, templates)
     best = np.argmax(scores, axis=0)
@@ -614,7 +631,7 @@ class FamilyOrder:
 
 
 def family_order(a_components, groups, *, coefficients=None, bragg_phase=None, threshold=None, trusted=None,
-                 anisotropy_threshold=0.5, family_names=None):
+                 anisotropy_threshold=0.5, family_names=None, offsets_rad=None):
     """States of an order made of families: which family dominates locally, and its translational variant.
 
     One family (a triple-q CDW) reduces to :func:`commensurate_order`. Several
@@ -645,6 +662,9 @@ def family_order(a_components, groups, *, coefficients=None, bragg_phase=None, t
         Dominance needed to assign a family.
     family_names : list of str, optional
         A name per family (default "q1", "q2", ...).
+    offsets_rad : list of (len(group),) arrays, optional
+        The global offset of each family (:attr:`FamilyOrder.offsets_rad` of an earlier
+        call), to classify more pixels with the same variant labels.
 
     Returns
     -------
@@ -690,7 +710,8 @@ def family_order(a_components, groups, *, coefficients=None, bragg_phase=None, t
         here = family == gi
         if coef is not None:
             co = commensurate_order(a[g], coef[g], bragg_phase=bragg_phase, threshold=threshold,
-                                    trusted=None if trusted is None else trusted & here & strong)
+                                    trusted=None if trusted is None else trusted & here & strong,
+                                    offset_rad=None if offsets_rad is None else offsets_rad[gi])
             rel = relative_phase(a[g], coef[g], bragg_phase=bragg_phase)
             fields[g] = amp[g] / 2 * np.exp(1j * (rel - co.offset_rad[:, None, None]))
             base = len(names)

@@ -12,6 +12,7 @@ import numpy as np
 
 from . import report
 from ._errors import InputError
+from ._grid import Grid, choose_step
 from ._lockin import amplitude, choose_sigma, lockin, trusted_mask
 from ._scan import Scan
 
@@ -60,6 +61,10 @@ class Config:
         Atomic lattice constant for a moiré whose atoms are not resolved.
     twist_tolerance_deg : float or None
         Twist range of one twist domain; default from the twist uncertainty.
+    grid_step : int or None
+        Decimation step (input pixels) of the grid on which the order, domains, walls and
+        defects are computed; default the lock-in's lossless step, at most sigma / 2
+        (:func:`domains._grid.choose_step`); 1 computes everything at full resolution.
     """
 
     level_order: int = 1
@@ -78,6 +83,7 @@ class Config:
     min_domain_area_nm2: float | None = None
     a_nm: float | None = None
     twist_tolerance_deg: float | None = None
+    grid_step: int | None = None
 
     def validate(self, where="configuration"):
         """Raise InputError on values that are out of range or contradict each other."""
@@ -475,12 +481,19 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     labels = np.zeros(image.shape, np.int32)
     walls = np.zeros(image.shape, bool)
     fields_used = None
+    # The decimated analysis grid (docs/methods.md §1): lock-in fields are band-limited, so the order,
+    # domains, walls and defects are computed on samples every `step` pixels and brought back.
+    grid_ = Grid(image.shape, tuple(pixel), config.grid_step or choose_step(sigma_nm, pixel, image.shape))
+    step_, pc = grid_.step, grid_.coarse_pixel_nm
+    trusted_c = grid_.sample(trusted)
+    choices["grid"] = {"step_px": step_, "pixel_size_nm": list(pc), "shape": list(grid_.coarse_shape),
+                       "why": "given" if config.grid_step else "the lock-in's lossless step, at most sigma / 2"}
     if kind in ("commensurate", "stripes", "incommensurate"):
         names = _component_names("cdw" if kind != "stripes" else "stripe", len(order_q))
-        a_order = lockin(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask)
+        a_order = lockin(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask, step=step_)
         floor = order.noise_floor(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel,
-                                  avoid_q=lattice_q if lattice_q is not None else (), mask=mask, trusted=trusted,
-                                  false_alarm=config.false_alarm)
+                                  avoid_q=lattice_q if lattice_q is not None else (), mask=mask, trusted=trusted_c,
+                                  false_alarm=config.false_alarm, step=step_)
         choices["order_threshold"] = {"value": floor.threshold, "rayleigh_scale": floor.rayleigh_scale,
                                       "false_alarm_per_pixel": floor.false_alarm,
                                       "why": "Rayleigh tail of the lock-in amplitude measured at empty wavevectors"}
@@ -505,13 +518,13 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         bragg_phase = None
         if drift_result is not None and commensurate:
             # After correction the Bragg phase is a small residual: safe to scale by the coefficients.
-            bragg_phase = np.nan_to_num(drift_result.residual_phase_rad)
+            bragg_phase = np.nan_to_num(grid_.sample(drift_result.residual_phase_rad))
         state = order.family_order(a_order, groups, coefficients=coefficients, bragg_phase=bragg_phase,
-                                   threshold=floor.threshold, trusted=trusted,
+                                   threshold=floor.threshold, trusted=trusted_c,
                                    anisotropy_threshold=config.anisotropy_threshold, family_names=family_names)
         confidence = config.confidence or (order.variant_confidence(coefficients) if commensurate else 0.5)
-        seg = segment.segment_states(state.state, state.score, state.ordered, pixel_size_nm=pixel,
-                                     min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted,
+        seg = segment.segment_states(state.state, state.score, state.ordered, pixel_size_nm=pc,
+                                     min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted_c,
                                      bridge_nm=2 * sigma_nm)
         fields_used = state.fields
         state_names = {lab: state.names[v] for lab, v in seg.state.items()}
@@ -524,7 +537,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
             notes.append("Incommensurate order: no translational variants; regions show where order is present.")
         tip_rows = (choices.get("level_findings") or {}).get("tip_change_rows") or []
         if tip_rows and drift_result is not None:
-            seg, merged = _merge_across_tip_changes(seg, tip_rows, sigma_nm / pixel[0], state.names)
+            seg, merged = _merge_across_tip_changes(seg, grid_.coarse_rows(tip_rows), sigma_nm / pc[0], state.names)
             if merged:
                 notes.append(f"{merged} domain boundary(ies) lying along a tip-change row were merged: a lateral "
                              "jump of the tip shifts the lattice by a vector the drift correction can only know "
@@ -533,19 +546,37 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         choices["segmentation"] = {**seg.parameters, "islands_dropped": seg.islands,
                                    "min_area_why": "disc of radius 2 sigma (the resolution)" if config.min_domain_area_nm2 is None else "given"}
         bar("measure and maps")
-        labels, walls = seg.labels, seg.walls
+        labels_c, walls_c = seg.labels, seg.walls
         amp = amplitude(a_order)
         # A winding counts only where its own component carries order (stripes: not where it is absent).
         defects = []
         for j in range(len(a_order)):
             # |fields_used| is |A| = amplitude / 2: the same threshold on that scale.
-            found_j = segment.phase_defects(fields_used[j:j + 1], pixel_size_nm=pixel,
-                                            ordered=(amp[j] > floor.threshold) & trusted, sigma_nm=sigma_nm,
+            found_j = segment.phase_defects(fields_used[j:j + 1], pixel_size_nm=pc,
+                                            ordered=(amp[j] > floor.threshold) & trusted_c, sigma_nm=sigma_nm,
                                             amplitude_threshold=floor.threshold / 2)
-            defects += [{**d, "component": j} for d in found_j]
+            # Rows and columns on the input grid (positions in nm are the same on both grids).
+            defects += [{**d, "component": j, "row": d["row"] * step_, "col": d["col"] * step_} for d in found_j]
+        wall_rows = measure.wall_table(seg.grown, walls_c, pixel_size_nm=pc, fields=fields_used, sigma_nm=sigma_nm)
+
+        def score_at(rows, cols):
+            # The state's score at input pixels from the fields interpolated between samples (band-limited).
+            from scipy import ndimage
+
+            where = np.array([rows / step_, cols / step_])
+            a_at = np.stack([ndimage.map_coordinates(c.real, where, order=3, mode="nearest")
+                             + 1j * ndimage.map_coordinates(c.imag, where, order=3, mode="nearest")
+                             for c in a_order])[:, None, :]
+            bp = None if bragg_phase is None else np.nan_to_num(drift_result.residual_phase_rad[:, rows, cols])[:, None, :]
+            at = order.family_order(a_at, groups, coefficients=coefficients, bragg_phase=bp, threshold=floor.threshold,
+                                    anisotropy_threshold=config.anisotropy_threshold, family_names=family_names,
+                                    offsets_rad=state.offsets_rad)
+            return at.score[0], at.state[0]
+
+        labels, walls = _to_input_grid(grid_, seg, score_at, confidence)
+        # Areas, centroids and edge contact from the input-grid labels; amplitudes and phases from the samples.
         domain_rows = measure.domain_table(labels, pixel_size_nm=pixel, state_names=state_names, amplitude=amp,
-                                           fields=fields_used)
-        wall_rows = measure.wall_table(seg.grown, walls, pixel_size_nm=pixel, fields=fields_used, sigma_nm=sigma_nm)
+                                           fields=fields_used, sample_labels=labels_c)
         tables["domains"] = (measure.DOMAIN_COLUMNS, domain_rows)
         tables["walls"] = (measure.WALL_COLUMNS, wall_rows)
         summary["domains"] = measure.domain_summary(domain_rows, wall_rows, defects=defects)
@@ -554,13 +585,14 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         if not domain_rows:
             notes.append("Order was found but no domain passed the thresholds.")
         for name, a_j in zip(names, a_order):
-            out_maps[f"amplitude/{name}"] = (amplitude(a_j).astype(np.float32), {**attrs, "units": topography.metadata.get("units", "image units")})
-            out_maps[f"phase/{name}"] = (np.angle(a_j).astype(np.float32), {**attrs, "units": "rad"})
+            # On the decimated grid, with its own pixel size (sample (i, j) on input pixel (step i, step j)).
+            out_maps[f"amplitude/{name}"] = (amplitude(a_j).astype(np.float32), {**attrs, "pixel_size_nm": list(pc), "units": topography.metadata.get("units", "image units")})
+            out_maps[f"phase/{name}"] = (np.angle(a_j).astype(np.float32), {**attrs, "pixel_size_nm": list(pc), "units": "rad"})
         bar("bias comparison and moiré")
-        figures["amplitude"] = report.image_figure(amp.mean(axis=0), pixel_size_nm=pixel, cmap="viridis",
+        figures["amplitude"] = report.image_figure(amp.mean(axis=0), pixel_size_nm=pc, cmap="viridis",
                                                    title=f"Order amplitude (mean of {len(names)}), sigma = {sigma_nm:.3g} nm",
                                                    units=topography.metadata.get("units", ""))
-        figures["phase"] = report.image_figure(np.angle(fields_used[0]), pixel_size_nm=pixel, cmap="twilight",
+        figures["phase"] = report.image_figure(np.angle(fields_used[0]), pixel_size_nm=pc, cmap="twilight",
                                                limits=(-math.pi, math.pi),
                                                title=f"Phase of {names[0]}" + (" (drift-free, relative)" if kind == "commensurate" else ""),
                                                units="rad")
@@ -600,6 +632,56 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     summary["choices"] = choices
     summary["notes"] = notes
     return Analysis(config, summary, out_maps, tables, figures, sections, notes, choices, timings=dict(bar.times))
+
+
+def _to_input_grid(grid_, seg, score_at, confidence):
+    """Labels and one-pixel walls on the input grid from a segmentation on the decimated grid.
+
+    Away from walls every input pixel takes the domain of its nearest sample. Near walls (within one
+    sample of a change of domain) the boundary is refined at full resolution: the order's fields are
+    interpolated there from the samples (they are band-limited), ``score_at(rows, cols)`` gives the
+    state's score at those pixels, and the domains grow into the band by watershed on -score, as the
+    segmentation does on its own grid. Walls are then drawn one input pixel thin; pixels whose sample
+    carries no domain stay 0.
+
+    ``score_at(rows, cols)`` returns the score and the state at those input pixels. Inside the band
+    the seeds are, as in :func:`domains.segment.segment_states`, the pixels confident of their
+    domain's own state (score >= ``confidence``), so the floods start from smooth contours and meet
+    on the valley of the score, not on the staircase of the samples.
+    """
+    from scipy import ndimage
+    from skimage.segmentation import watershed
+
+    from .segment import thin_walls
+
+    if grid_.step == 1:
+        return seg.labels, seg.walls
+    grown_c = seg.grown
+    big = np.iinfo(np.int32).max
+    footprint = np.ones((3, 3), bool)
+    lo = ndimage.minimum_filter(np.where(grown_c > 0, grown_c, big), footprint=footprint)
+    hi = ndimage.maximum_filter(grown_c, footprint=footprint)
+    band_c = ndimage.binary_dilation((grown_c > 0) & (lo != hi) & (lo < big), footprint)
+    grown = grid_.to_input(grown_c)
+    band = grid_.to_input(band_c) & (grown > 0)
+    if band.any():
+        rows, cols = np.nonzero(band)
+        score, state = score_at(rows, cols)
+        score = np.nan_to_num(np.asarray(score, float), nan=0.0, neginf=0.0)
+        elevation = np.zeros(grown.shape, np.float32)
+        elevation[rows, cols] = -score
+        own = np.full(int(grown_c.max()) + 1, -2, np.int64)
+        for label, value in seg.state.items():
+            own[label] = value
+        here = grown[rows, cols]
+        core = (score >= confidence) & (np.asarray(state) == own[here])
+        markers = np.where(band, 0, grown)
+        markers[rows[core], cols[core]] = here[core]
+        grown = watershed(elevation, markers=markers, mask=grown > 0).astype(np.int32)
+    walls = thin_walls(grown)
+    has_domain = grid_.to_input((seg.labels > 0) | seg.walls)
+    labels = np.where(walls | ~has_domain, 0, grown).astype(np.int32)
+    return labels, walls
 
 
 def _variant_of(name):
