@@ -7,6 +7,15 @@ slowly varying [1]_. The spatial lock-in at Q_j gives theta_j(r) = Q_j . u(r)
 resampled as T'(r) = T(r - u(r)). The same u straightens every channel and
 bias of the same scan.
 
+Two grids. The lock-in phases are band-limited to about 1/sigma, so they are
+measured, unwrapped and solved on a decimated grid (every s-th row and column,
+s <= 0.6 sigma from :func:`domains.lossless_step`, where the decimated lock-in
+equals the full-resolution one exactly). A not-a-knot cubic spline through
+those samples gives u at every pixel, block of rows by block of rows, when the
+image is resampled; the full-resolution field is never needed at once (see
+:func:`correct_drift` for the error bound and :func:`straighten_rows` for one
+block).
+
 Sign convention: ``u`` here is the shift of the *sampling point*, T(r) = f(r + u).
 Geometric phase analysis [2]_ describes the same distortion by the shift of the
 *atoms*, I(r) = f(r - u_GPA), so u = -u_GPA.
@@ -14,17 +23,22 @@ Geometric phase analysis [2]_ describes the same distortion by the shift of the
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 from scipy import ndimage
+from scipy.interpolate import BSpline, NdBSpline
+from scipy.linalg import solve_banded
 from skimage.restoration import unwrap_phase
 
 from ._errors import InputError
-from ._lockin import _as_q_array, lockin, trusted_mask
+from ._lockin import _as_q_array, lockin, lossless_step
 from ._scan import Scan, _is_dask, pixel_size_pair
 
-__all__ = ["DriftResult", "apply_displacement", "correct_channels", "correct_drift", "displacement_field"]
+__all__ = ["DriftResult", "apply_displacement", "correct_channels", "correct_drift", "displacement_field",
+           "straighten_rows"]
 
 TRANSLATIONS = ("remove", "lattice")
 
@@ -32,6 +46,24 @@ TRANSLATIONS = ("remove", "lattice")
 #: shortest one are taken as a closed triple (hexagonal), for the phase-sum check.
 _CLOSURE_FRACTION = 0.25
 
+#: Relative Gaussian tail allowed to alias on the decimated grid (``lossless_step``): the step is
+#: then s <= pi sigma / 5.26 = 0.6 sigma.
+_STEP_TOLERANCE = 1e-6
+
+#: The decimated grid keeps at least this many samples along each axis (for the cubic spline and
+#: the unwrapping), whatever sigma is.
+_MIN_SAMPLES = 16
+
+#: Source rows read beyond the spline support on each side of a block, so that the cubic-spline
+#: prefilter, a recursive filter with pole z = sqrt(3) - 2 (Unser 1999), forgets where the block
+#: was cut: |z|^24 = 2e-14 of the coefficients, far below float32 (and at float64 rounding).
+_PREFILTER_ROWS = 24
+
+#: Output pixels resampled per block of rows: the temporaries are a few float64 copies of a block.
+_BLOCK_PIXELS = 1 << 18
+
+#: Edge pixels padded before the spline prefilter in mode "nearest", as scipy.ndimage does.
+_EDGE_PAD = 12
 
 def _wrap(phi):
     """Wrap angles to [-pi, pi)."""
@@ -150,24 +182,395 @@ def _phase_sum(theta, q, trusted):
     return mean, rms
 
 
-def _measure(image, q, sigma_nm, pixel_size, mask, translation):
-    """First pass: lock-in, unwrap, least squares. Returns u (2, row, col) nm and bookkeeping."""
-    a = lockin(image, q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=mask)
-    theta = np.angle(a)
+# --------------------------------------------------------------------------- the decimated grid
+
+
+def _decimation_step(sigma_nm, pixel_size, shape):
+    """Step of the decimated grid: lossless for the lock-in (s <= 0.6 sigma), and >= 16 samples per axis."""
+    step = lossless_step(sigma_nm, pixel_size, tolerance=_STEP_TOLERANCE)
+    return max(1, min(step, min(shape) // _MIN_SAMPLES))
+
+
+def _band_storage(matrix):
+    """((lower, upper), bands) of a square sparse banded matrix, as :func:`scipy.linalg.solve_banded` takes it."""
+    coo = matrix.tocoo()
+    rows, cols = coo.row.astype(np.int64), coo.col.astype(np.int64)
+    lower, upper = int(max(0, np.max(rows - cols))), int(max(0, np.max(cols - rows)))
+    bands = np.zeros((lower + upper + 1, matrix.shape[0]))
+    bands[upper + rows - cols, cols] = coo.data  # LAPACK band storage: ab[u + i - j, j] = a[i, j]
+    return (lower, upper), bands
+
+
+class _SplineAxis:
+    """The not-a-knot cubic spline through samples at pixels 0, s, 2s, ... of one axis.
+
+    ``basis`` (pixels x samples, sparse, four entries a row) evaluates the B-spline
+    coefficients at every pixel; the pixels after the last sample (fewer than s)
+    are extrapolated by the last cubic piece.
+    """
+
+    def __init__(self, n, step):
+        self.n, self.step = n, step
+        self.count = -(-n // step)
+        x = step * np.arange(self.count, dtype=float)
+        self.k = 3 if self.count >= 4 else 1
+        m = (self.k - 1) // 2
+        # Not-a-knot (de Boor 1978): the knots are the samples less the first and last m + 1 inner ones.
+        self.knots = np.r_[[x[0]] * (self.k + 1), x[m + 1 : self.count - m - 1], [x[-1]] * (self.k + 1)]
+        collocation = BSpline.design_matrix(x, self.knots, self.k)
+        # The collocation matrix is banded (k + 1 entries a row); keep it in LAPACK band storage, and its transpose.
+        self._bands = {"N": _band_storage(collocation), "T": _band_storage(collocation.T)}
+        self.basis = BSpline.design_matrix(np.arange(n, dtype=float), self.knots, self.k, extrapolate=True).tocsr()
+        self.basis_t = self.basis.T.tocsr()
+        self.basis32 = self.basis.astype(np.float32)
+
+    def solve(self, values, axis, trans="N"):
+        """Coefficients from samples along ``axis`` (trans="T": the transposed system)."""
+        moved = np.moveaxis(np.asarray(values, dtype=float), axis, 0)
+        flat = moved.reshape(self.count, -1)
+        (lower, upper), bands = self._bands[trans]
+        solved = solve_banded((lower, upper), bands, flat, check_finite=False)
+        return np.moveaxis(solved.reshape(moved.shape), 0, axis)
+
+    def nearest(self, first, stop):
+        """Index of the nearest sample of each pixel first ... stop - 1."""
+        return np.minimum(np.rint(np.arange(first, stop) / self.step).astype(int), self.count - 1)
+
+
+class _Grid:
+    """The decimated grid of a frame (rows and columns 0, s, 2s, ...) and its tensor-product cubic spline."""
+
+    def __init__(self, shape, step):
+        self.shape, self.step = tuple(int(n) for n in shape), int(step)
+        self.axes = (_SplineAxis(self.shape[0], self.step), _SplineAxis(self.shape[1], self.step))
+        self.coarse_shape = (self.axes[0].count, self.axes[1].count)
+
+    def sample(self, fine):
+        """The pixels of a full-resolution array that lie on the grid."""
+        return fine[..., :: self.step, :: self.step]
+
+    def coefficients(self, values):
+        """B-spline coefficients (..., rows, cols) of real samples (..., rows, cols)."""
+        return self.axes[1].solve(self.axes[0].solve(values, -2), -1)
+
+    def rows(self, coef, first, stop, dtype=np.float64):
+        """The spline at every pixel of rows first ... stop - 1: shape (..., stop - first, cols).
+
+        float32 halves the work where its precision (1e-7 of the values) is enough.
+        """
+        single = np.dtype(dtype) == np.float32
+        axis_y, axis_x = self.axes
+        by = (axis_y.basis32 if single else axis_y.basis)[first:stop]
+        bx = axis_x.basis32 if single else axis_x.basis
+        flat = coef.reshape((-1,) + coef.shape[-2:]).astype(dtype, copy=False)
+        out = np.empty((len(flat), stop - first, self.shape[1]), dtype=dtype)
+        for i, c in enumerate(flat):
+            out[i] = (bx @ (by @ c).T).T
+        return out.reshape(coef.shape[:-2] + out.shape[1:])
+
+    def at(self, coef, rows_px, cols_px):
+        """The spline at arbitrary points (pixel coordinates), for every leading component of ``coef``."""
+        points = np.stack([rows_px, cols_px], axis=-1)
+        knots = (self.axes[0].knots, self.axes[1].knots)
+        degree = (self.axes[0].k, self.axes[1].k)
+        return np.stack([NdBSpline(knots, c, degree, extrapolate=True)(points) for c in coef])
+
+    def nearest_invalid(self, invalid, first, stop):
+        """Pixels of rows first ... stop - 1 whose nearest grid sample is flagged in ``invalid``."""
+        return invalid[np.ix_(self.axes[0].nearest(first, stop), self.axes[1].nearest(0, self.shape[1]))]
+
+    def block_rows(self):
+        return max(1, _BLOCK_PIXELS // self.shape[1])
+
+    def mean_weights(self, region):
+        """Weights w on the grid with sum(w * v) = the mean over ``region`` (pixels) of the spline through v.
+
+        The spline is linear in its samples: with S the collocation matrices and B the
+        pixel bases of the two axes, the mean is <v, S_y^-T (B_y^T R B_x) S_x^-1> / |R|.
+        """
+        moment = np.zeros(self.coarse_shape)
+        by, bx_t = self.axes[0].basis, self.axes[1].basis_t
+        block = self.block_rows()
+        for r0 in range(0, self.shape[0], block):
+            part = region[r0 : r0 + block]
+            if part.any():
+                moment += (by[r0 : r0 + block].T @ (bx_t @ part.T.astype(float)).T)
+        moment /= np.count_nonzero(region)
+        return self.axes[1].solve(self.axes[0].solve(moment, -2, trans="T"), -1, trans="T")
+
+
+def _fill_nearest(values, invalid):
+    """Samples flagged ``invalid`` take the value of the nearest valid sample (the spline needs finite samples)."""
+    if not invalid.any() or invalid.all():
+        return values
+    index = ndimage.distance_transform_edt(invalid, return_distances=False, return_indices=True)
+    return values[..., index[0], index[1]]
+
+
+class _Field:
+    """A displacement (ux, uy) in nm known on the decimated grid; its spline gives it at any pixel."""
+
+    def __init__(self, grid, samples, invalid):
+        self.grid = grid
+        self.invalid = np.asarray(invalid, dtype=bool)
+        self.samples = np.where(self.invalid, np.nan, samples)
+        self.coef = grid.coefficients(_fill_nearest(np.asarray(samples, dtype=float), self.invalid))
+
+    def rows(self, first, stop):
+        """u at rows first ... stop - 1 (2, rows, cols) in nm; NaN where the nearest sample is invalid."""
+        u = self.grid.rows(self.coef, first, stop)
+        if self.invalid.any():
+            u[:, self.grid.nearest_invalid(self.invalid, first, stop)] = np.nan
+        return u
+
+    def at(self, rows_px, cols_px):
+        return self.grid.at(self.coef, rows_px, cols_px)
+
+    def largest_row_shift(self, pixel_size):
+        """max |u_y| / dy over every pixel of the frame (finite ones), in rows."""
+        largest = 0.0
+        block = self.grid.block_rows()
+        for r0 in range(0, self.grid.shape[0], block):
+            uy = self.grid.rows(self.coef[1:], r0, min(self.grid.shape[0], r0 + block))
+            largest = max(largest, float(np.max(np.abs(uy))))
+        return largest / pixel_size[0]
+
+
+def _trusted(bad, shape, sigma_nm, pixel_size, margin_sigma=2.5):
+    """``trusted_mask(shape, mask=bad)``, with the distance transform run only next to the bad pixels.
+
+    A pixel is trusted at least ``margin_sigma`` sigma from the frame edge (the
+    edge sits half a pixel outside the outermost row or column) and from every
+    pixel of ``bad``. The frame part is closed form; the distance to ``bad`` is
+    computed by :func:`scipy.ndimage.distance_transform_edt` on row blocks
+    with a halo of the margin, and only on the column ranges that have a bad
+    pixel within the margin, which gives the same answer: a bad pixel closer
+    than the margin always lies in the window.
+    """
+    dy, dx = pixel_size
+    ny, nx = shape
+    limit, half = margin_sigma * float(sigma_nm), 0.5 * min(dy, dx)
+    rows_ok = np.minimum(np.arange(1, ny + 1), np.arange(ny, 0, -1)) * dy - half >= limit
+    cols_ok = np.minimum(np.arange(1, nx + 1), np.arange(nx, 0, -1)) * dx - half >= limit
+    out = rows_ok[:, None] & cols_ok[None, :]
+    if bad is None or not out.any():
+        return out
+    out &= ~bad
+    hy = int(math.ceil((limit + half) / dy)) + 1
+    hx = int(math.ceil((limit + half) / dx)) + 1
+    block = max(hy, 64)
+    for r0 in range(0, ny, block):
+        r1 = min(ny, r0 + block)
+        if not rows_ok[r0:r1].any():
+            continue
+        a, b = max(0, r0 - hy), min(ny, r1 + hy)
+        window = bad[a:b]
+        columns = window.any(axis=0)
+        if not columns.any():
+            continue
+        near = np.convolve(columns, np.ones(2 * hx + 1), mode="same") > 0.5
+        edges = np.flatnonzero(np.diff(np.r_[0, near.astype(np.int8), 0]))
+        for c0, c1 in zip(edges[::2], edges[1::2]):
+            distance = ndimage.distance_transform_edt(~window[:, c0:c1], sampling=(dy, dx))
+            out[r0:r1, c0:c1] &= distance[r0 - a : r1 - a] - half >= limit
+    return out
+
+
+# --------------------------------------------------------------------------- resampling by blocks of rows
+
+
+def _resample_window(plane, coords, order, top, bottom):
+    """The spline of one window of source rows at ``coords`` (window pixels); NaN next to NaN sources.
+
+    ``top`` / ``bottom``: the window starts / ends at the frame edge, where mode "nearest" pads it
+    exactly as :func:`scipy.ndimage.map_coordinates` does; elsewhere the window holds
+    ``_PREFILTER_ROWS`` real rows beyond the support.
+    """
+    plane = np.array(plane, dtype=float)
+    bad = ~np.isfinite(plane)
+    if bad.all():
+        return np.full(coords.shape[1:], np.nan)
+    if bad.any():
+        # The spline prefilter is recursive: a NaN would spread along its row and column. The nearest
+        # valid pixel stands in (local, so the result does not depend on how the rows were blocked).
+        index = ndimage.distance_transform_edt(bad, return_distances=False, return_indices=True)
+        plane = plane[tuple(index)]
+    if order > 1:
+        pad_top, pad_bottom = (_EDGE_PAD if top else 0), (_EDGE_PAD if bottom else 0)
+        padded = np.pad(plane, ((pad_top, pad_bottom), (_EDGE_PAD, _EDGE_PAD)), mode="edge")
+        spline = ndimage.spline_filter(padded, order, output=np.float64, mode="nearest")
+        shifted = coords + np.array([pad_top, _EDGE_PAD], dtype=float)[:, None, None]
+        out = ndimage.map_coordinates(spline, shifted, order=order, mode="nearest", prefilter=False)
+    else:
+        out = ndimage.map_coordinates(plane, coords, order=order, mode="nearest", prefilter=False)
+    if bad.any():
+        reach = ndimage.map_coordinates(bad.astype(float), coords, order=1, mode="nearest", prefilter=False)
+        out[reach > 1e-9] = np.nan
+    return out
+
+
+def _resample_block(source, first, u, pixel_size, order, out_dtype, shape, carried=None):
+    """Rows first ... first + m of T(r - u(r)) for every plane of ``source`` (..., row, col).
+
+    ``u`` (2, m, col) is the displacement of those rows in nm. Only the source rows
+    that the spline reads are taken from ``source`` (any array that slices:
+    numpy, memmap, zarr, HDF5, dask). ``carried`` (row, col) bool, optional, is
+    carried along by linear interpolation (a mask: True wherever any weight
+    falls on it). Returns the planes (NaN where r - u(r) left the frame, where
+    u is NaN and next to NaN sources), ``outside`` and the carried mask.
+    """
+    ny, nx = shape
+    dy, dx = pixel_size
+    m = u.shape[1]
+    rows = (first + np.arange(m, dtype=float))[:, None] - u[1] / dy
+    cols = np.arange(nx, dtype=float)[None, :] - u[0] / dx
+    tol = 1e-6
+    with np.errstate(invalid="ignore"):
+        outside = ~(np.isfinite(rows) & np.isfinite(cols))
+        outside |= (rows < -tol) | (rows > ny - 1 + tol) | (cols < -tol) | (cols > nx - 1 + tol)
+    lead = () if source is None else tuple(source.shape[:-2])
+    planes = np.full(lead + (m, nx), np.nan, dtype=out_dtype)
+    if outside.all():
+        return planes, outside, (None if carried is None else outside.copy())
+    inside = rows[~outside]
+    reach = order + 1 + (_PREFILTER_ROWS if order > 1 else 0)
+    a = max(0, int(np.floor(inside.min())) - reach)
+    b = min(ny, int(np.ceil(inside.max())) + 1 + reach)
+    coords = np.stack([np.where(outside, a, rows) - a, np.where(outside, 0.0, cols)])
+    if source is not None:
+        window = np.asarray(source[..., a:b, :])
+        flat, out = window.reshape((-1, b - a, nx)), planes.reshape((-1, m, nx))
+        for i, plane in enumerate(flat):
+            out[i] = _resample_window(plane, coords, order, top=a == 0, bottom=b == ny)
+        planes[..., outside] = np.nan
+    moved = None
+    if carried is not None:
+        weight = ndimage.map_coordinates(np.asarray(carried[a:b], dtype=float), coords, order=1, mode="nearest",
+                                         prefilter=False)
+        moved = outside | ~(weight < 1e-9)
+    return planes, outside, moved
+
+
+def _straighten(source, rows_of_u, pixel_size, order, out_dtype, *, carried=None, first=0, stop=None, shape=None):
+    """Resample rows first ... stop - 1 block by block (u from ``rows_of_u(r0, r1)``).
+
+    Returns (planes or None, outside, carried mask or None). The temporaries are a
+    few float64 copies of one block; only the outputs are full size.
+    """
+    ny, nx = tuple(shape) if source is None else tuple(source.shape[-2:])
+    stop = ny if stop is None else stop
+    lead = () if source is None else tuple(source.shape[:-2])
+    planes = None if source is None else np.empty(lead + (stop - first, nx), dtype=out_dtype)
+    outside = np.empty((stop - first, nx), dtype=bool)
+    moved = None if carried is None else np.empty((stop - first, nx), dtype=bool)
+    block = max(1, _BLOCK_PIXELS // nx)
+    for r0 in range(first, stop, block):
+        r1 = min(stop, r0 + block)
+        p, o, c = _resample_block(source, r0, rows_of_u(r0, r1), pixel_size, order, out_dtype, (ny, nx), carried)
+        if planes is not None:
+            planes[..., r0 - first : r1 - first, :] = p
+        outside[r0 - first : r1 - first] = o
+        if moved is not None:
+            moved[r0 - first : r1 - first] = c
+    return planes, outside, moved
+
+
+def _out_dtype(dtype):
+    return np.float32 if dtype == np.float32 else np.float64
+
+
+def _check_order(order):
+    if isinstance(order, bool) or not isinstance(order, (int, np.integer)) or not 0 <= order <= 5:
+        raise InputError(f"order must be an integer from 0 to 5, got {order!r}")
+    return int(order)
+
+
+def _measure(work, q, sigma_nm, pixel_size, mask, bad, grid, translation):
+    """First pass on the decimated grid: lock-in, unwrap, least squares.
+
+    ``work`` is the float32 image (NaN allowed), ``bad`` the full-resolution
+    untrusted pixels (NaN or masked) or None. Returns the field, the wrapped
+    phases on the grid, the full-resolution trusted pixels and the target phases.
+    """
+    a = lockin(work, q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=mask, step=grid.step)
+    theta = np.angle(a).astype(float)
+    # Masked samples keep the lock-in's value there (the normalised convolution fills them from their
+    # neighbours): the drift does not stop at a glitched line. Only samples with no valid neighbours
+    # (NaN) are left out, and u is NaN around them.
     valid = np.all(np.isfinite(a), axis=0)
-    if mask is not None:
-        valid &= ~mask
-    trusted = trusted_mask(image.shape, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=~valid)
-    region = trusted if trusted.any() else valid
-    if not region.any():
+    if not valid.any():
         raise InputError("image: no valid pixels left for the lock-in (all NaN or masked)")
-    unwrapped = np.stack([_unwrap(t, valid) for t in theta])
-    mean = np.array([np.mean(t[region]) for t in unwrapped])
+    trusted = _trusted(bad, grid.shape, sigma_nm, pixel_size)
+    region = trusted if trusted.any() else (np.ones(grid.shape, bool) if bad is None else ~bad)
+    unwrapped = _fill_nearest(np.stack([_unwrap(t, valid) for t in theta]), ~valid)
+    # The mean over the trusted *pixels* of the interpolated phases, so that "remove" leaves u with zero
+    # mean there exactly (the spline is linear in its samples).
+    mean = np.einsum("kij,ij->k", unwrapped, grid.mean_weights(region))
     u = _solve(unwrapped - mean[:, None, None], q)
     target = _target_phases(q, mean, translation)
     if translation == "lattice":
         u += _lattice_translation(q, mean, target)[:, None, None]
-    return u, theta, trusted, target
+    return _Field(grid, u, ~valid), theta, trusted, target
+
+
+def _rotated_samples(a, target):
+    """The lock-in samples turned by their target phases, as real and imaginary planes (2k, rows, cols),
+    NaN samples replaced by their nearest valid neighbour, and the mask of those samples."""
+    invalid = ~np.all(np.isfinite(a), axis=0)
+    rotated = a.astype(np.complex128) * np.exp(-1j * np.asarray(target))[:, None, None]
+    planes = np.concatenate([rotated.real, rotated.imag])
+    if invalid.all():
+        return np.zeros_like(planes), invalid
+    return _fill_nearest(planes, invalid), invalid
+
+
+def _residual_rows(grid, coef, invalid, first, stop):
+    """Wrapped residual phases of rows first ... stop - 1 from the spline of the rotated lock-in."""
+    k = len(coef) // 2
+    # float32: the phase to 1e-7 rad, far below any tolerance, at half the cost.
+    values = grid.rows(coef, first, stop, dtype=np.float32)
+    residual = np.arctan2(values[k:], values[:k])
+    if invalid.any():
+        residual[:, grid.nearest_invalid(invalid, first, stop)] = np.nan
+    return residual
+
+
+def _residual_stats(grid, a, target, trusted):
+    """RMS and largest |residual phase| of each peak over the trusted pixels (full resolution).
+
+    The lock-in of the corrected image is known on the grid; its spline (real and
+    imaginary parts, turned by the targets) gives the residual at every pixel,
+    one block of rows at a time. Returns (rms, max, trusted) with ``trusted`` less
+    the pixels whose nearest lock-in sample is NaN.
+    """
+    planes, invalid = _rotated_samples(a, target)
+    k = len(a)
+    trusted = trusted & ~grid.nearest_invalid(invalid, 0, grid.shape[0]) if invalid.any() else trusted
+    if not trusted.any():
+        return np.full(k, np.nan), np.full(k, np.nan), trusted
+    coef = grid.coefficients(planes)
+    total, largest = np.zeros(k), np.zeros(k)
+    block = grid.block_rows()
+    for r0 in range(0, grid.shape[0], block):
+        r1 = min(grid.shape[0], r0 + block)
+        where = trusted[r0:r1]
+        if not where.any():
+            continue
+        residual = _residual_rows(grid, coef, invalid, r0, r1)
+        np.abs(residual, out=residual)
+        residual[:, ~where] = 0  # |residual| >= 0: zeros change neither the largest nor the sum of squares
+        largest = np.maximum(largest, residual.max(axis=(1, 2)))
+        np.square(residual, out=residual)
+        total += residual.sum(axis=(1, 2), dtype=np.float64)
+    return np.sqrt(total / np.count_nonzero(trusted)), largest, trusted
+
+
+def _prepare(image, mask):
+    """The float32 working copy for the lock-in and the full-resolution untrusted pixels (or None)."""
+    bad = ~np.isfinite(image)
+    if mask is not None:
+        bad |= mask
+    return image.astype(np.float32), (bad if bad.any() else None)
 
 
 def displacement_field(image, bragg_q, *, sigma_nm, pixel_size_nm, mask=None, translation="remove"):
@@ -176,8 +579,10 @@ def displacement_field(image, bragg_q, *, sigma_nm, pixel_size_nm, mask=None, tr
     The image is modelled as T(r) = sum_j cos(Q_j . (r + u(r))) [1]_. The
     lock-in at each ideal Bragg vector Q_j gives theta_j = Q_j . u (plus a
     constant); the phases are unwrapped (so that |Q_j . u| > pi does not tear
-    the field) and u is solved per pixel by least squares,
-    u = (M^T M)^-1 M^T theta with the Q_j as the rows of M.
+    the field) and u is solved by least squares,
+    u = (M^T M)^-1 M^T theta with the Q_j as the rows of M. All this is done on
+    the decimated grid of :func:`correct_drift` and brought to every pixel by
+    its cubic spline (error bound there).
 
     Parameters
     ----------
@@ -196,17 +601,19 @@ def displacement_field(image, bragg_q, *, sigma_nm, pixel_size_nm, mask=None, tr
     translation : {"remove", "lattice"}
         What to do with the constant part of u, a rigid translation of the
         whole lattice. "remove" (default): u has zero mean over the trusted
-        region, so correcting with it straightens the lattice without moving
-        it as a whole. "lattice": keep the translation that puts the ideal
-        lattice's origin at pixel (0, 0), i.e. every Bragg phase of the
+        region (pixels at least 2.5 sigma from the frame edge and from masked
+        or NaN pixels), so correcting with it straightens the lattice without
+        moving it as a whole. "lattice": keep the translation that puts the
+        ideal lattice's origin at pixel (0, 0), i.e. every Bragg phase of the
         corrected image is zero there (for a closed triple of hexagonal peaks,
         a third of their phase sum, which no displacement can change). Only
         this choice is defined modulo a lattice vector; the smallest is given.
 
     Returns
     -------
-    u : ndarray, shape (2, row, col)
-        (ux, uy) in nm; NaN where the lock-in has no valid neighbours.
+    u : ndarray, shape (2, row, col), float64
+        (ux, uy) in nm; NaN where the nearest sample of the decimated grid has
+        no valid lock-in neighbours.
 
     Raises
     ------
@@ -244,8 +651,10 @@ def displacement_field(image, bragg_q, *, sigma_nm, pixel_size_nm, mask=None, tr
     q = _check_bragg(bragg_q)
     pixel_size = pixel_size_pair(pixel_size_nm)
     mask = _check_mask(mask, image.shape)
-    u, _, _, _ = _measure(image.astype(float), q, sigma_nm, pixel_size, mask, translation)
-    return u
+    grid = _Grid(image.shape, _decimation_step(sigma_nm, pixel_size, image.shape))
+    work, bad = _prepare(image, mask)
+    field, _, _, _ = _measure(work, q, sigma_nm, pixel_size, mask, bad, grid, translation)
+    return field.rows(0, image.shape[0])
 
 
 def _check_mask(mask, shape, name="mask"):
@@ -257,46 +666,15 @@ def _check_mask(mask, shape, name="mask"):
     return mask
 
 
-def _source_coordinates(u, pixel_size):
-    """Pixel coordinates (row, col) of r - u(r), and where they leave the frame."""
-    dy, dx = pixel_size
-    ny, nx = u.shape[-2:]
-    rows = np.arange(ny, dtype=float)[:, None] - u[1] / dy
-    cols = np.arange(nx, dtype=float)[None, :] - u[0] / dx
-    tol = 1e-6
-    with np.errstate(invalid="ignore"):
-        outside = ~(np.isfinite(rows) & np.isfinite(cols))
-        outside |= (rows < -tol) | (rows > ny - 1 + tol) | (cols < -tol) | (cols > nx - 1 + tol)
-    rows = np.where(outside, 0.0, rows)
-    cols = np.where(outside, 0.0, cols)
-    return np.stack([rows, cols]), outside
-
-
-def _resample_plane(plane, coords, outside, order):
-    """One 2-D plane sampled at coords; NaN outside the frame and next to NaN source pixels."""
-    out_dtype = plane.dtype if plane.dtype in (np.float32, np.float64) else np.float64
-    plane = plane.astype(float)
-    bad = ~np.isfinite(plane)
-    if bad.all():
-        return np.full(coords.shape[1:], np.nan, dtype=out_dtype)
-    if bad.any():
-        # The spline prefilter is global: a single NaN would spread over the whole image.
-        plane = np.where(bad, np.mean(plane[~bad]), plane)
-    out = ndimage.map_coordinates(plane, coords, order=order, mode="nearest")
-    if bad.any():
-        reach = ndimage.map_coordinates(bad.astype(float), coords, order=1, mode="nearest")
-        out[reach > 1e-9] = np.nan
-    out[outside] = np.nan
-    return out.astype(out_dtype)
-
-
 def apply_displacement(image_or_stack, u, *, pixel_size_nm, order=3):
     """Resample an image, or every plane of a stack, as T'(r) = T(r - u(r)).
 
-    The spline interpolation of :func:`scipy.ndimage.map_coordinates` is
-    evaluated at r - u(r) for every output pixel r; the same field is used for
-    every plane of a stack (the channels or biases of one scan, or the energy
-    slices of an (energy, row, col) grid).
+    The spline interpolation of :func:`scipy.ndimage.map_coordinates` (mode
+    "nearest") is evaluated at r - u(r) for every output pixel r; the same field
+    is used for every plane of a stack (the channels or biases of one scan, or
+    the energy slices of an (energy, row, col) grid). The work goes by blocks of
+    rows, each reading only the source rows it needs, so the temporaries stay
+    a few float64 copies of one block.
 
     Parameters
     ----------
@@ -315,7 +693,8 @@ def apply_displacement(image_or_stack, u, *, pixel_size_nm, order=3):
     corrected : ndarray or dask array
         Same shape as the input; float32 stays float32, everything else
         becomes float64. NaN where r - u(r) lies outside the frame, where u is
-        NaN, and next to NaN pixels of the input.
+        NaN, and next to NaN pixels of the input (a NaN pixel takes its nearest
+        valid neighbour's value for the spline prefilter).
     outside : (row, col) ndarray of bool
         True where r - u(r) left the frame (or u was NaN).
 
@@ -348,53 +727,69 @@ def apply_displacement(image_or_stack, u, *, pixel_size_nm, order=3):
         raise InputError(f"image_or_stack must hold real numbers, got dtype {data.dtype}")
     if u.shape != (2,) + tuple(data.shape[-2:]):
         raise InputError(f"u must have shape (2, row, col) = {(2,) + tuple(data.shape[-2:])}, got {u.shape}")
-    if isinstance(order, bool) or not isinstance(order, (int, np.integer)) or not 0 <= order <= 5:
-        raise InputError(f"order must be an integer from 0 to 5, got {order!r}")
-    coords, outside = _source_coordinates(u, pixel_size)
-    out_dtype = np.float32 if data.dtype == np.float32 else np.float64
+    order = _check_order(order)
+    return _apply(data, lambda r0, r1: u[:, r0:r1], pixel_size, order)
 
-    def planes(block):
-        flat = np.asarray(block).reshape((-1,) + block.shape[-2:])
-        out = np.stack([_resample_plane(p, coords, outside, order) for p in flat]) if len(flat) else flat.astype(out_dtype)
-        return out.reshape(block.shape).astype(out_dtype)
 
-    if lazy:
+def _apply(data, rows_of_u, pixel_size, order):
+    """Resample an array or a dask stack with the field ``rows_of_u``; returns (corrected, outside)."""
+    out_dtype = _out_dtype(data.dtype)
+    shape = tuple(data.shape[-2:])
+    if _is_dask(data):
+        _, outside, _ = _straighten(None, rows_of_u, pixel_size, order, out_dtype, shape=shape)
+
+        def planes(block):
+            return _straighten(np.asarray(block), rows_of_u, pixel_size, order, out_dtype)[0]
+
         # Each task needs whole planes: the resampling moves pixels across chunk borders.
         whole = data.rechunk(data.chunks[:-2] + ((data.shape[-2],), (data.shape[-1],)))
         return whole.map_blocks(planes, dtype=out_dtype), outside
-    return planes(data), outside
+    planes, outside, _ = _straighten(data, rows_of_u, pixel_size, order, out_dtype)
+    return planes, outside
 
 
 @dataclass
 class DriftResult:
     """The outcome of :func:`correct_drift`.
 
+    The displacement is kept on the decimated grid (``u_coarse_nm``, every
+    ``step``-th row and column); its cubic spline gives it at any pixel.
+    ``u_nm`` and ``residual_phase_rad`` are evaluated from the grid on first
+    access, and :func:`straighten_rows` resamples any block of rows of any
+    channel without the full-resolution field.
+
     Attributes
     ----------
     corrected : ndarray
         The drift-corrected image, NaN where the source point left the frame.
-    u_nm : ndarray, shape (2, row, col)
-        The total displacement (ux, uy) in nm; apply it to other channels with
-        :func:`correct_channels`. Opposite in sign to the GPA displacement.
+        float32 for a float32 image, float64 otherwise.
     outside : ndarray of bool
-        True where r - u(r) left the frame.
+        True where r - u(r) left the frame (or u was NaN).
     mask : ndarray of bool
         Untrusted pixels of the corrected frame: ``outside``, NaN, and the
         input mask carried along by the correction.
     trusted : ndarray of bool
         Where the residual is measured: at least 2.5 sigma from the frame edge
         and from ``mask``.
-    residual_phase_rad : ndarray, shape (k, row, col)
-        Bragg phases of the corrected image less their targets, wrapped.
+    u_coarse_nm : ndarray, shape (2, ceil(row / step), ceil(col / step))
+        The total displacement (ux, uy) in nm at the pixels (step m, step n);
+        NaN where the lock-in had no valid neighbours.
+    step : int
+        The step of the decimated grid, in pixels.
+    lockin_coarse : complex ndarray, shape (k, ceil(row / step), ceil(col / step))
+        The lock-in of the corrected image at each Bragg vector on the grid.
+    target_phase_rad : ndarray, shape (k,)
+        The Bragg phases the correction aims at (see ``translation``).
     residual_rms_rad, residual_max_rad : ndarray, shape (k,)
-        RMS and largest |residual| of each peak over ``trusted``.
+        RMS and largest |residual| of each peak over ``trusted`` (every pixel).
     phase_sum_mean_rad, phase_sum_rms_rad : float or None
         For three peaks forming a closed triple (sum_j c_j Q_j = 0 with
         c_j = +-1, as for a hexagonal lattice), the circular mean and the RMS
-        spread of the wrapped sum sum_j c_j theta_j over the trusted region of
-        the *input* image. The sum is unchanged by any displacement, so a
-        spread well above the phase noise means the peaks do not belong to one
-        lattice (a wrong or misplaced peak). None for other peak sets.
+        spread of the wrapped sum sum_j c_j theta_j over the trusted samples of
+        the grid of the *input* image. The sum is unchanged by any
+        displacement, so a spread well above the phase noise means the peaks do
+        not belong to one lattice (a wrong or misplaced peak). None for other
+        peak sets.
     bragg_q_rad_per_nm : ndarray, shape (k, 2)
         The Bragg vectors used.
     snapped_to_pixels : bool
@@ -409,11 +804,13 @@ class DriftResult:
     """
 
     corrected: np.ndarray
-    u_nm: np.ndarray
     outside: np.ndarray
     mask: np.ndarray
     trusted: np.ndarray
-    residual_phase_rad: np.ndarray
+    u_coarse_nm: np.ndarray
+    step: int
+    lockin_coarse: np.ndarray
+    target_phase_rad: np.ndarray
     residual_rms_rad: np.ndarray
     residual_max_rad: np.ndarray
     phase_sum_mean_rad: float | None
@@ -425,6 +822,50 @@ class DriftResult:
     sigma_nm: float
     pixel_size_nm: tuple
     translation: str
+
+    @property
+    def shape(self) -> tuple:
+        """The frame (row, col)."""
+        return tuple(self.outside.shape)
+
+    @cached_property
+    def _field(self) -> _Field:
+        invalid = ~np.all(np.isfinite(self.u_coarse_nm), axis=0)
+        return _Field(_Grid(self.shape, self.step), self.u_coarse_nm, invalid)
+
+    @cached_property
+    def u_nm(self) -> np.ndarray:
+        """The total displacement (ux, uy) in nm at every pixel, (2, row, col) float64, from the grid's
+        cubic spline; apply it to other channels with :func:`correct_channels`. Opposite in sign to
+        the GPA displacement."""
+        return self._field.rows(0, self.shape[0])
+
+    @cached_property
+    def residual_phase_rad(self) -> np.ndarray:
+        """Bragg phases of the corrected image less their targets, wrapped, (k, row, col) float32: the
+        spline of the grid's lock-in (real and imaginary parts), its phase at every pixel."""
+        grid = self._field.grid
+        planes, invalid = _rotated_samples(self.lockin_coarse, self.target_phase_rad)
+        coef = grid.coefficients(planes)
+        out = np.empty((len(self.lockin_coarse),) + self.shape, dtype=np.float32)
+        block = grid.block_rows()
+        for r0 in range(0, self.shape[0], block):
+            r1 = min(self.shape[0], r0 + block)
+            out[:, r0:r1] = _residual_rows(grid, coef, invalid, r0, r1)
+        return out
+
+    def overlap_rows(self, order=3) -> int:
+        """The most source rows beyond a block of rows that :func:`straighten_rows` reads on either side.
+
+        ceil(max |u_y| / dy) for the largest displacement along the rows, plus the
+        spline support (order + 1) and, for order > 1, the rows that let the
+        prefilter forget the cut (24). A chunked caller gives each block of rows
+        this halo.
+        """
+        order = _check_order(order)
+        if "_largest_row_shift" not in self.__dict__:
+            self.__dict__["_largest_row_shift"] = self._field.largest_row_shift(self.pixel_size_nm)
+        return int(math.ceil(self.__dict__["_largest_row_shift"])) + order + 1 + (_PREFILTER_ROWS if order > 1 else 0)
 
     @property
     def note(self) -> str:
@@ -463,14 +904,24 @@ def correct_drift(
     measured again; their residual d gives the composed field
     u_new(r) = d(r) + u(r - d(r)) (the original image is always resampled
     once, so interpolation errors do not pile up), until max |residual| over
-    the trusted region is below ``tol_rad``, ``max_iter`` passes are done, or
+    the trusted pixels is below ``tol_rad``, ``max_iter`` passes are done, or
     a pass fails to shrink it by 10 % (the noise floor). The pass with the
     smallest residual is returned.
+
+    Two grids: the lock-ins, the unwrapping, the least squares and the
+    composition run on a decimated grid, every s-th row and column, s the
+    :func:`domains.lossless_step` of sigma (s <= 0.6 sigma; at most a
+    sixteenth of the frame), where the decimated lock-in equals the
+    full-resolution one at the samples. A not-a-knot cubic spline through the
+    samples gives u at every pixel, block of rows by block of rows, while the
+    image is resampled; the residual statistics come from the spline of the
+    corrected image's lock-in, also at every pixel.
 
     Parameters
     ----------
     image : (row, col) array_like
-        Topograph showing the lattice (read into memory).
+        Topograph showing the lattice (read into memory). float32 is kept;
+        anything else is resampled in float64.
     bragg_q : (k, 2) array_like
         Ideal Bragg wavevectors (qx, qy) in rad/nm, k >= 2 non-collinear.
     sigma_nm : float
@@ -483,7 +934,7 @@ def correct_drift(
         Largest number of resampling passes (>= 1).
     tol_rad : float
         Stop when every Bragg phase is within this of its target over the
-        trusted region. With noisy data the noise sets the floor.
+        trusted pixels. With noisy data the noise sets the floor.
     translation : {"remove", "lattice"}
         Handling of the rigid part of u; see :func:`displacement_field`.
     snap_to_pixels : bool
@@ -497,14 +948,15 @@ def correct_drift(
     Returns
     -------
     DriftResult
-        Corrected image, total displacement, residual phases and their
-        statistics, the hexagonal phase-sum check and the settings used.
+        Corrected image, the displacement on the decimated grid (and, on
+        access, at every pixel), residual phases and their statistics, the
+        hexagonal phase-sum check and the settings used.
 
     Raises
     ------
     InputError
         For a bad image, peaks, mask, sigma, pixel size, ``max_iter``,
-        ``tol_rad`` or ``translation``.
+        ``tol_rad``, ``order`` or ``translation``.
 
     Notes
     -----
@@ -513,6 +965,23 @@ def correct_drift(
     allows it. ``u_nm`` has the opposite sign of the displacement of geometric
     phase analysis [2]_.
 
+    Error of the interpolation. A component a sin(k . r) of the true field
+    appears in the measured one as a exp(-sigma^2 |k|^2 / 2). The cubic spline
+    through samples every s pixels reproduces a function within
+    (5 / 384) s^4 max |f''''| per axis [3]_ (the complete-spline constant; the
+    not-a-knot end condition adds a term that decays by |sqrt 3 - 2| = 0.27 per
+    sample away from the frame edge [4]_, to below 0.5 % of itself at the
+    2.5 sigma >= 4 samples of the trusted margin), so the spline misses at most
+    (5 / 384) ((k_x s)^4 + (k_y s)^4) a exp(-sigma^2 |k|^2 / 2) (1 + small).
+    For s <= 0.6 sigma this is at most 3.7e-3 a per axis, at |k| sigma = 2,
+    where the lock-in itself misses 86 % of the component, and below 2.2e-4 a
+    for wavelengths longer than 10 sigma. In terms of the largest strain e of
+    the true field (a |k| <= e): at most 2.0e-3 sigma e per axis, e.g.
+    5e-4 px for a 1 % strain at sigma = 23 px, far below the 0.04 px
+    displacement tolerance of docs/methods.md §2. The residual lock-in is
+    interpolated the same way (real and imaginary parts), so the residual phase
+    carries the same relative error.
+
     References
     ----------
     .. [1] M. J. Lawler et al., "Intra-unit-cell electronic nematicity of the
@@ -520,6 +989,11 @@ def correct_drift(
        doi:10.1038/nature09169
     .. [2] M. J. Hÿtch, E. Snoeck, R. Kilaas, Ultramicroscopy 74, 131 (1998).
        doi:10.1016/S0304-3991(98)00035-7
+    .. [3] C. A. Hall, W. W. Meyer, "Optimal error bounds for cubic spline
+       interpolation", J. Approx. Theory 16, 105 (1976).
+       doi:10.1016/0021-9045(76)90040-X
+    .. [4] M. Unser, "Splines: a perfect fit for signal and image processing",
+       IEEE Signal Process. Mag. 16(6), 22 (1999). doi:10.1109/79.799930
 
     Examples
     --------
@@ -532,9 +1006,11 @@ def correct_drift(
     >>> result = correct_drift(image, q, sigma_nm=6.0, pixel_size_nm=1.0)
     >>> bool(result.residual_max_rad.max() < 0.03), result.phase_sum_rms_rad < 0.01
     (True, True)
+    >>> result.step, result.u_coarse_nm.shape, result.u_nm.shape
+    (3, (2, 22, 22), (2, 64, 64))
     """
     _check_translation(translation)
-    image = _check_image(image).astype(float)
+    image = _check_image(image)
     q = _check_bragg(bragg_q)
     pixel_size = pixel_size_pair(pixel_size_nm)
     mask = _check_mask(mask, image.shape)
@@ -546,57 +1022,77 @@ def correct_drift(
         raise InputError(f"tol_rad must be a number, got {tol_rad!r}") from None
     if not tol_rad > 0:
         raise InputError(f"tol_rad must be positive, got {tol_rad}")
+    order = _check_order(order)
     if snap_to_pixels:
         q = _snap(q, image.shape, pixel_size)
         _check_bragg(q)
-    u, theta0, trusted0, target = _measure(image, q, sigma_nm, pixel_size, mask, translation)
-    sum_mean, sum_rms = _phase_sum(theta0, q, trusted0)
-    input_bad = ~np.isfinite(image) if mask is None else (~np.isfinite(image) | mask)
+    grid = _Grid(image.shape, _decimation_step(sigma_nm, pixel_size, image.shape))
+    out_dtype = _out_dtype(image.dtype)
+    work, input_bad = _prepare(image, mask)
+    field, theta0, trusted0, target = _measure(work, q, sigma_nm, pixel_size, mask, input_bad, grid, translation)
+    del work
+    sum_mean, sum_rms = _phase_sum(theta0, q, grid.sample(trusted0) & np.all(np.isfinite(theta0), axis=0))
+
+    def one_pass(field):
+        corrected, outside, bad = _straighten(image, field.rows, pixel_size, order, out_dtype, carried=input_bad)
+        bad = outside if bad is None else bad
+        bad |= ~np.isfinite(corrected)
+        # The lock-in leaves out the pixels of its mask, whatever they hold: no NaN copy is needed, and
+        # a float32 frame is used as it is.
+        work = corrected.astype(np.float32, copy=False)
+        a = lockin(work, q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad, step=grid.step)
+        del work
+        trusted = _trusted(bad, image.shape, sigma_nm, pixel_size)
+        rms, largest, trusted = _residual_stats(grid, a, target, trusted)
+        worst = float(np.max(largest)) if trusted.any() else np.inf
+        return worst, rms, largest, a, corrected, outside, bad, trusted
 
     best = None
     for iteration in range(1, max_iter + 1):
-        corrected, outside = apply_displacement(image, u, pixel_size_nm=pixel_size, order=order)
-        moved_bad = apply_displacement(input_bad.astype(float), u, pixel_size_nm=pixel_size, order=1)[0]
-        bad = outside | ~np.isfinite(corrected) | ~(moved_bad < 1e-9)
-        a = lockin(np.where(bad, np.nan, corrected), q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad)
-        residual = _wrap(np.angle(a) - target[:, None, None])
-        trusted = trusted_mask(image.shape, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad)
-        trusted &= np.all(np.isfinite(residual), axis=0)
-        worst = float(np.max(np.abs(residual[:, trusted]))) if trusted.any() else np.inf
+        worst, rms, largest, a, corrected, outside, bad, trusted = one_pass(field)
         stalled = best is not None and worst > 0.9 * best[0]
         if best is None or worst < best[0]:
-            best = (worst, iteration, corrected, u, outside, bad, trusted, residual)
+            best = (worst, iteration, field, a, rms, largest)
         # Once noise sets the floor, further passes only fit the correction to the noise.
         if worst < tol_rad or iteration == max_iter or stalled:
             break
-        valid = np.all(np.isfinite(a), axis=0) & ~bad
+        # The next field, on the decimated grid (as in the first pass, masked samples keep the lock-in's
+        # value from their neighbours, so the correction stays smooth across them).
+        valid = np.all(np.isfinite(a), axis=0)
+        residual = _wrap(np.angle(a).astype(float) - target[:, None, None])
         # Residuals are small after the first pass, but unwrap anyway: a pass can overshoot.
         unwrapped = np.stack([_unwrap(r, valid) for r in residual])
+        trusted_c = grid.sample(trusted) & valid
         for j, r in enumerate(unwrapped):
-            if trusted.any():
-                unwrapped[j] = r - 2 * np.pi * np.round(np.nanmean(r[trusted]) / (2 * np.pi))
-        d = np.nan_to_num(_solve(unwrapped, q))
-        # Compose: u_new(r) = d(r) + u(r - d(r)).
-        coords, _ = _source_coordinates(d, pixel_size)
-        u = d + np.stack([ndimage.map_coordinates(np.nan_to_num(c), coords, order=1, mode="nearest") for c in u])
-        u[:, ~np.all(np.isfinite(a), axis=0) & ~bad] = np.nan
+            if trusted_c.any():
+                unwrapped[j] = r - 2 * np.pi * np.round(np.mean(r[trusted_c]) / (2 * np.pi))
+        d = _solve(_fill_nearest(unwrapped, ~valid) if valid.any() else np.zeros_like(unwrapped), q)
+        # Compose: u_new(r) = d(r) + u(r - d(r)), at the samples.
+        rows_c = (grid.step * np.arange(grid.coarse_shape[0], dtype=float))[:, None] - d[1] / pixel_size[0]
+        cols_c = (grid.step * np.arange(grid.coarse_shape[1], dtype=float))[None, :] - d[0] / pixel_size[1]
+        field = _Field(grid, d + field.at(rows_c, cols_c), ~valid)
+        del corrected, outside, bad, trusted  # one full-size pass at a time
 
-    worst, iteration, corrected, u, outside, bad, trusted, residual = best
-    stats = residual[:, trusted] if trusted.any() else np.full((len(q), 1), np.nan)
+    worst, best_iteration, field, a, rms, largest = best
+    if best_iteration != iteration:
+        # The last pass did worse (the noise floor): redo the best one rather than keep two full frames.
+        _, _, _, _, corrected, outside, bad, trusted = one_pass(field)
     return DriftResult(
         corrected=corrected,
-        u_nm=u,
         outside=outside,
         mask=bad,
         trusted=trusted,
-        residual_phase_rad=residual,
-        residual_rms_rad=np.sqrt(np.mean(stats**2, axis=1)),
-        residual_max_rad=np.max(np.abs(stats), axis=1),
+        u_coarse_nm=field.samples,
+        step=grid.step,
+        lockin_coarse=a,
+        target_phase_rad=np.asarray(target, dtype=float),
+        residual_rms_rad=rms,
+        residual_max_rad=largest,
         phase_sum_mean_rad=sum_mean,
         phase_sum_rms_rad=sum_rms,
         bragg_q_rad_per_nm=q,
         snapped_to_pixels=bool(snap_to_pixels),
-        iterations=iteration,
+        iterations=best_iteration,
         converged=bool(worst < tol_rad),
         sigma_nm=float(sigma_nm),
         pixel_size_nm=pixel_size,
@@ -604,11 +1100,18 @@ def correct_drift(
     )
 
 
+def _check_drift(drift):
+    if not isinstance(drift, DriftResult):
+        raise InputError(f"drift must be a DriftResult from correct_drift, got {type(drift).__name__}")
+
+
 def correct_channels(images, drift, *, pixel_size_nm=None, order=3):
     """Apply the displacement of a drift correction to other channels of the same scan.
 
     Every channel and bias of one scan shares the drift, so the field found on
-    the topograph straightens them all [1]_.
+    the topograph straightens them all [1]_. The field comes from the drift
+    result's decimated grid block of rows by block of rows (see
+    :func:`straighten_rows`); only the outputs are full size.
 
     Parameters
     ----------
@@ -627,8 +1130,9 @@ def correct_channels(images, drift, *, pixel_size_nm=None, order=3):
     Returns
     -------
     Same kind as ``images``
-        Corrected arrays (NaN where the source point left the frame), or Scans
-        whose mask also covers those pixels.
+        Corrected arrays (NaN where the source point left the frame; float32
+        stays float32, anything else becomes float64), or Scans whose mask
+        also covers those pixels.
 
     Raises
     ------
@@ -653,14 +1157,15 @@ def correct_channels(images, drift, *, pixel_size_nm=None, order=3):
     >>> bool(np.allclose(out["conductance"], 2 * drift.corrected + 1, equal_nan=True))
     True
     """
-    if not isinstance(drift, DriftResult):
-        raise InputError(f"drift must be a DriftResult from correct_drift, got {type(drift).__name__}")
+    _check_drift(drift)
+    order = _check_order(order)
     if pixel_size_nm is not None:
         pixel_size = pixel_size_pair(pixel_size_nm)
         if not np.allclose(pixel_size, drift.pixel_size_nm, rtol=1e-9):
             raise InputError(
                 f"pixel_size_nm {pixel_size} differs from the drift result's {drift.pixel_size_nm}"
             )
+    field = drift._field
 
     def one(item, name):
         if isinstance(item, Scan):
@@ -671,15 +1176,90 @@ def correct_channels(images, drift, *, pixel_size_nm=None, order=3):
             data = one(item.data, name)
             mask = drift.outside.copy()
             if item.mask is not None:
-                moved = apply_displacement(item.mask.astype(float), drift.u_nm, pixel_size_nm=drift.pixel_size_nm, order=1)[0]
-                mask |= ~(moved < 1e-9)
+                moved = _straighten(None, field.rows, drift.pixel_size_nm, 1, np.float64,
+                                    carried=np.asarray(item.mask, dtype=bool), shape=drift.shape)[2]
+                mask |= moved
             return item.with_data(data, mask=mask)
-        shape = tuple(item.shape) if _is_dask(item) else np.shape(item)
-        if tuple(shape[-2:]) != drift.u_nm.shape[1:]:
-            raise InputError(f"{name}: frame {tuple(shape[-2:])} differs from the drift result's {drift.u_nm.shape[1:]}")
-        return apply_displacement(item, drift.u_nm, pixel_size_nm=drift.pixel_size_nm, order=order)[0]
+        data = item if _is_dask(item) or isinstance(item, np.ndarray) else np.asarray(item)
+        if data.ndim < 2 or tuple(data.shape[-2:]) != drift.shape:
+            raise InputError(f"{name}: frame {tuple(data.shape[-2:])} differs from the drift result's {drift.shape}")
+        if data.dtype.kind not in "biuf":
+            raise InputError(f"{name} must hold real numbers, got dtype {data.dtype}")
+        return _apply(data, field.rows, drift.pixel_size_nm, order)[0]
 
     if isinstance(images, dict):
         return {key: one(value, f"images[{key!r}]") for key, value in images.items()}
     return one(images, "images")
 
+
+def straighten_rows(image, drift, start, stop, *, order=3):
+    """Drift-correct rows ``start:stop`` of a frame, or of every plane of a stack, reading only the rows they need.
+
+    The displacement of those rows comes from the cubic spline of the drift
+    result's decimated grid (:class:`DriftResult` keeps it); the source rows read
+    are at most ``drift.overlap_rows(order)`` beyond the block on either side:
+    the largest displacement along the rows, the spline support, and 24 rows
+    after which the spline prefilter has forgotten the cut (|sqrt 3 - 2|^24 =
+    2e-14 [1]_). Blocks of any size therefore give the whole-frame result of
+    :func:`correct_channels` to float32 precision and better, so a frame larger
+    than memory (a memmap, zarr or HDF5 array, which are only sliced) can be
+    corrected block by block.
+
+    Parameters
+    ----------
+    image : (..., row, col) array
+        The channel(s) of the drift's frame; anything that slices as
+        ``image[..., a:b, :]`` (numpy, memmap, zarr, HDF5, dask).
+    drift : DriftResult
+        The result of :func:`correct_drift` on a frame of the same shape.
+    start, stop : int
+        The output rows, 0 <= start <= stop <= row.
+    order : int
+        Spline order of the resampling, 0 to 5.
+
+    Returns
+    -------
+    ndarray, shape (..., stop - start, col)
+        The corrected rows; float32 stays float32, anything else becomes
+        float64; NaN where the source point left the frame.
+
+    Raises
+    ------
+    InputError
+        If ``drift`` is not a DriftResult, the frame differs from the drift's,
+        or ``start``/``stop``/``order`` are out of range.
+
+    References
+    ----------
+    .. [1] M. Unser, "Splines: a perfect fit for signal and image processing",
+       IEEE Signal Process. Mag. 16(6), 22 (1999). doi:10.1109/79.799930
+    .. [2] M. J. Lawler et al., Nature 466, 347 (2010). doi:10.1038/nature09169
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> n = 64
+    >>> y, x = np.mgrid[:n, :n].astype(float)
+    >>> q = 2 * np.pi * np.array([[8, 0], [-4, 7], [-4, -7]]) / n
+    >>> topo = sum(np.cos(qx * (x + 0.5 * np.sin(2 * np.pi * y / n)) + qy * y) for qx, qy in q)
+    >>> drift = correct_drift(topo, q, sigma_nm=6.0, pixel_size_nm=1.0)
+    >>> blocks = [straighten_rows(topo, drift, r, min(n, r + 10)) for r in range(0, n, 10)]
+    >>> bool(np.allclose(np.concatenate(blocks), drift.corrected, rtol=0, atol=1e-12, equal_nan=True))
+    True
+    """
+    _check_drift(drift)
+    order = _check_order(order)
+    shape = tuple(np.shape(image)) if not hasattr(image, "shape") else tuple(image.shape)
+    if len(shape) < 2 or shape[-2:] != drift.shape:
+        raise InputError(f"image: frame {shape[-2:]} differs from the drift result's {drift.shape}")
+    for name, value in (("start", start), ("stop", stop)):
+        if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
+            raise InputError(f"{name} must be an integer row, got {value!r}")
+    if not 0 <= start <= stop <= shape[-2]:
+        raise InputError(f"rows start={start}, stop={stop} must satisfy 0 <= start <= stop <= {shape[-2]}")
+    source = image if hasattr(image, "shape") and hasattr(image, "dtype") else np.asarray(image)
+    if np.dtype(source.dtype).kind not in "biuf":
+        raise InputError(f"image must hold real numbers, got dtype {source.dtype}")
+    out_dtype = _out_dtype(source.dtype)
+    return _straighten(source, drift._field.rows, drift.pixel_size_nm, order, out_dtype,
+                       first=int(start), stop=int(stop))[0]
