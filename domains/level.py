@@ -330,16 +330,26 @@ def _neighbour_median(d):
     return local
 
 
-def _difference_offsets(x, threshold):
-    """Offsets built only from line-to-line jumps that stand out from the typical step."""
+def _line_steps(x):
+    """The median step between neighbouring lines (NaN where either is untrusted), a block of
+    lines at a time so that no full-size difference image is held."""
     nrows = x.shape[0]
-    # The median step between neighbouring lines (NaN where either is untrusted), a block of
-    # lines at a time so that no full-size difference image is held.
     d = np.full(max(nrows - 1, 0), np.nan)
     block = max(1, _BLOCK_PIXELS * 4 // max(x.shape[1], 1))
     for r0 in range(0, nrows - 1, block):
         r1 = min(nrows - 1, r0 + block)
         d[r0:r1] = _row_statistic(x[r0 + 1 : r1 + 1] - x[r0:r1], "median")
+    return d
+
+
+def _difference_offsets(x, threshold):
+    """Offsets built only from line-to-line jumps that stand out from the typical step."""
+    return _offsets_from_steps(_line_steps(x), x.shape[0], threshold)
+
+
+def _offsets_from_steps(d, nrows, threshold):
+    """:func:`_difference_offsets` from the line-to-line steps ``d`` (length ``nrows - 1``)."""
+    d = np.asarray(d, dtype=float)
     offsets = np.zeros(nrows)
     known = np.isfinite(d)
     if not known.any():
@@ -806,24 +816,47 @@ def _glitch_rows(x, floor):
         s, spread[start:stop] = _sticking_out(x[start:stop], x[start - 1 : stop - 1], x[start + 1 : stop + 1])
         mean[start:stop] = _row_mean(s)
         out[start:stop] = s
-    # The end lines: their one difference, against the typical one-sided difference nearby.
-    one_sided = []
+    (mean[0], out[0], top), (mean[-1], out[-1], bottom) = _glitch_ends(lambda r: x[r], n)
+    typical, spike_at = _glitch_thresholds(mean, spread, (top, bottom), floor)
+    count = np.sum(out > spike_at[:, None].astype(np.float32), axis=1).astype(float)
+    del out
+    return _glitch_verdict(mean, typical, count, m, floor)
+
+
+#: Rows at each end of an image that :func:`_glitch_ends` reads.
+_END_ROWS = 2 * _WINDOW_ROWS + 2
+
+
+def _glitch_ends(row, n):
+    """The first and last lines, with one neighbour each: (mean, sticking-out values, typical value) of each.
+
+    ``row(r)`` returns line r of the image (NaN on masked pixels); only the
+    :data:`_END_ROWS` lines at either end are asked for.
+    """
+    ends = []
     for r, other in ((0, 1), (n - 1, n - 2)):
-        d = x[r] - x[other]
+        d = row(r) - row(other)
         d = np.abs(d - np.nanmedian(d)) if np.isfinite(d).any() else d
-        out[r] = d
-        mean[r] = np.nanmean(d) if np.isfinite(d).any() else np.nan
+        mean = np.nanmean(d) if np.isfinite(d).any() else np.nan
         near = range(1, min(n - 1, 2 * _WINDOW_ROWS + 1)) if r == 0 else range(max(0, n - 2 * _WINDOW_ROWS - 2), n - 2)
-        steps = [x[k + 1] - x[k] for k in near]
+        steps = [row(k + 1) - row(k) for k in near]
         typical_step = [np.nanmean(np.abs(v - np.nanmedian(v))) for v in steps if np.isfinite(v).any()]
-        one_sided.append(np.median(typical_step) if typical_step else np.nan)
+        ends.append((mean, d, np.median(typical_step) if typical_step else np.nan))
+    return ends
+
+
+def _glitch_thresholds(mean, spread, one_sided, floor):
+    """The typical sticking-out of each line (within 8 lines) and the height above which a pixel is a spike."""
     typical = _local_median(np.concatenate([[np.nan], mean[1:-1], [np.nan]]), _WINDOW_ROWS)
     typical[0], typical[-1] = one_sided
     typical = np.where(np.isfinite(typical), typical, floor)
     typical = np.maximum(typical, floor)
     spike_at = np.maximum(_SPIKE_SIGMAS * _local_median(spread, _WINDOW_ROWS), floor)
-    count = np.sum(out > spike_at[:, None].astype(np.float32), axis=1).astype(float)
-    del out
+    return typical, spike_at
+
+
+def _glitch_verdict(mean, typical, count, m, floor):
+    """Glitched lines from their mean sticking-out and their count of spikes (see :func:`_glitch_rows`)."""
     typical_count = _local_median(count, _WINDOW_ROWS)
     min_spikes = max(4.0, _MIN_SPIKE_FRACTION * m)
     rough = np.where(np.isfinite(mean), mean > GLITCH_RATIO * typical + floor, False)
@@ -865,19 +898,36 @@ def _tip_changes(x, valid_rows, jump_threshold, floor):
     Returns (offsets per row to subtract, [(row, offset_jump, contrast_ratio), ...]).
     """
     n, m = x.shape
+    rows = np.flatnonzero(valid_rows)
+    if rows.size < 2 * _MIN_SEGMENT_ROWS or m < 8:
+        return np.zeros(n), []
+    xc = x if rows.size == n else x[rows]  # a view when no line is masked
+    rough = np.empty(rows.size)
+    block = max(1, 2**20 // m)
+    for start in range(0, rows.size, block):
+        rough[start : start + block] = _row_roughness(xc[start : start + block])
+    return _tip_changes_from(rough, _line_steps(xc), valid_rows, m, jump_threshold, floor)
+
+
+def _row_roughness(x):
+    """Roughness of each line along the fast axis: the robust spread of its pixel-to-pixel differences.
+
+    Blind to offsets, to step edges crossing the line and to slow noise.
+    """
+    d = np.diff(x, axis=1)
+    d -= _row_median(d, sampled=True)[:, None]
+    return 1.4826 * _row_median(np.abs(d), sampled=True)
+
+
+def _tip_changes_from(rough, line_steps, valid_rows, m, jump_threshold, floor):
+    """:func:`_tip_changes` from the roughness of the trusted lines and the steps between consecutive ones."""
+    n = valid_rows.size
     offsets = np.zeros(n)
     rows = np.flatnonzero(valid_rows)
     if rows.size < 2 * _MIN_SEGMENT_ROWS or m < 8:
         return offsets, []
-    xc = x if rows.size == n else x[rows]  # a view when no line is masked
-    # 1. Roughness of each line along the fast axis (robust spread of the pixel-to-pixel
-    #    differences): blind to offsets, to step edges crossing the line and to slow noise.
-    rough = np.empty(rows.size)
-    block = max(1, 2**20 // m)
-    for start in range(0, rows.size, block):
-        d = np.diff(xc[start : start + block], axis=1)
-        d -= _row_median(d, sampled=True)[:, None]
-        rough[start : start + block] = 1.4826 * _row_median(np.abs(d), sampled=True)
+    # 1. Roughness of each line along the fast axis (:func:`_row_roughness`).
+    rough = np.asarray(rough, dtype=float)
     rough = np.where(np.isfinite(rough), np.maximum(rough, floor), floor)
     log_rough = np.log(rough)
 
@@ -887,7 +937,7 @@ def _tip_changes(x, valid_rows, jump_threshold, floor):
 
     # 2. Offset jumps between consecutive trusted lines (glitched lines left out, so a
     #    jump across a glitched line is still seen), kept only where the new level persists.
-    steps = _difference_offsets(xc, jump_threshold)
+    steps = _offsets_from_steps(line_steps, rows.size, jump_threshold)
     jumps = np.diff(steps)
     events = {}
     persistent = np.zeros(rows.size)
@@ -1036,8 +1086,12 @@ def _fit_terraces(values, rows, cols, terrace, shape, order, n_terraces):
 
 def _drop_untrusted_terraces(labels, mask):
     """Terraces with too few trusted pixels (all inside a masked area) join the band; renumber the rest."""
-    trusted = np.bincount(labels[~mask], minlength=int(labels.max()) + 1)
-    keep = trusted >= _MIN_TERRACE_PIXELS
+    return _keep_trusted_terraces(labels, np.bincount(labels[~mask], minlength=int(labels.max()) + 1))
+
+
+def _keep_trusted_terraces(labels, trusted):
+    """:func:`_drop_untrusted_terraces` given the count of trusted pixels of each label."""
+    keep = np.asarray(trusted) >= _MIN_TERRACE_PIXELS
     keep[0] = False
     if keep.sum() < 2:
         return None, None
@@ -1050,48 +1104,53 @@ def _drop_untrusted_terraces(labels, mask):
 
 
 def _terrace_sample(x, mask, labels, budget):
-    """A strided subsample of at most ``budget`` pixels: the step, the slices, the terrace labels there,
-    the usable pixels (on a terrace, finite, not masked) and their (row, col) in the subsample."""
+    """A strided subsample of at most ``budget`` pixels: the step, the image there, the terrace labels
+    there, the usable pixels (on a terrace, finite, not masked) and their (row, col) in the subsample.
+
+    ``x`` may be a dask array (its subsample is read now) and ``labels`` an :class:`_Overview`.
+    """
     step = _subsample_step(x.shape, budget)
     sub = (slice(None, None, step), slice(None, None, step))
+    xs = np.asarray(x[sub].compute() if _is_dask(x) else x[sub])
     lab = labels[sub]
-    good = (lab > 0) & np.isfinite(x[sub])
+    good = (lab > 0) & np.isfinite(xs)
     if mask is not None:
         good &= ~mask[sub]
     rows, cols = np.nonzero(good)
-    return step, sub, lab, good, rows, cols
+    return step, xs, lab, good, rows, cols
 
 
 def _terrace_fit(x, mask, labels, order):
     """Fit polynomial + offsets on the trusted terrace pixels (strided subsample above _TERRACE_FIT_PIXELS)."""
-    step, sub, lab, good, rows, cols = _terrace_sample(x, mask, labels, _TERRACE_FIT_PIXELS)
+    step, xs, lab, good, rows, cols = _terrace_sample(x, mask, labels, _TERRACE_FIT_PIXELS)
     n_terraces = int(labels.max())
     present = np.bincount(lab[good], minlength=n_terraces + 1)
     if np.any(present[1:] == 0):
         raise InputError("a terrace has no trusted pixel left for the fit")
-    poly, offsets = _fit_terraces(x[sub][good], rows * step, cols * step, lab[good], x.shape, max(order, 0),
+    poly, offsets = _fit_terraces(xs[good], rows * step, cols * step, lab[good], x.shape, max(order, 0),
                                   n_terraces)
     return poly, offsets
 
 
-def _merge_terraces(x, mask, labels, offsets, poly, order, significance):
+def _merge_terraces(x, mask, labels, offsets, poly, order, significance, floor=None):
     """Join terraces whose offsets differ by less than ``significance`` robust sigmas of the levelled image.
 
     The robust sigma is that of the residual with each line's median removed: the
-    corrugation and the noise, not the line offsets.
+    corrugation and the noise, not the line offsets. ``floor`` is :func:`_floor` of
+    ``x`` (computed here when not given).
     """
     # A scale estimate: a quarter million pixels are plenty.
-    step, sub, lab, good, rows, cols = _terrace_sample(x, mask, labels, 2**18)
+    step, xs, lab, good, rows, cols = _terrace_sample(x, mask, labels, 2**18)
     background = np.zeros(rows.size)
     for c, (i, j) in zip(poly, _terms(order)):
         background += c * _scaled(cols * step, x.shape[1]) ** i * _scaled(rows * step, x.shape[0]) ** j
     residual = np.full(lab.shape, np.nan)
-    residual[good] = x[sub][good] - background - offsets[lab[good] - 1]
+    residual[good] = xs[good] - background - offsets[lab[good] - 1]
     # Each line's median removed: line noise is no corrugation and must not hide a step.
     residual -= _row_median(residual)[:, None]
     residual = residual[good]
     scale = 1.4826 * np.median(np.abs(residual)) if residual.size else 0.0
-    tol = max(significance * scale, _floor(x))
+    tol = max(significance * scale, _floor(x) if floor is None else floor)
     sorted_ids = np.argsort(offsets)
     group = np.zeros(offsets.size, int)
     g = 0
