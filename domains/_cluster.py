@@ -86,9 +86,9 @@ def _local_cluster(n_workers):
 
     threads = max(1, (os.cpu_count() or 1) // n_workers)
     # Processes (not threads): the numpy steps hold the GIL; 127.0.0.1 keeps the workers off the network;
-    # no web dashboard (it would need a free port and bokeh).
+    # the status server on a free port of 127.0.0.1 (never a fixed one another cluster may hold).
     return LocalCluster(n_workers=n_workers, threads_per_worker=threads, processes=True, host="127.0.0.1",
-                        dashboard_address=None)
+                        dashboard_address="127.0.0.1:0")
 
 
 @contextlib.contextmanager
