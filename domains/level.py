@@ -95,11 +95,18 @@ def _fit(values, rows, cols, shape, order):
 
 def _fit_blocks(blocks, shape, order):
     """:func:`_fit` over an iterable of (values, rows, cols) blocks."""
+    return _solve_r(*_r_update(np.zeros((0, len(_terms(order)) + 1)), blocks, shape, order), order)
+
+
+def _r_update(r_aug, blocks, shape, order):
+    """R of the QR factorisation of [design | values], updated with each (values, rows, cols) block.
+
+    Its last column is Q^T b, so Q itself is never formed; R factors of disjoint sets of
+    pixels stacked and factorised again give the R of their union (partial fits combine exactly).
+    Returns (R, number of pixels).
+    """
     terms = _terms(order)
     p = len(terms)
-    # R of the QR factorisation of the design matrix with the values as one more column:
-    # its last column is Q^T b, so Q itself is never formed.
-    r_aug = np.zeros((0, p + 1))
     total = 0
     for values, rows, cols in blocks:
         if values.size == 0:
@@ -109,6 +116,13 @@ def _fit_blocks(blocks, shape, order):
         v = _scaled(rows, shape[0])
         design = np.stack([u**i * v**j for i, j in terms] + [values.astype(float)], axis=1)
         r_aug = np.linalg.qr(np.vstack([r_aug, design]), mode="r")[: p + 1]
+    return r_aug, total
+
+
+def _solve_r(r_aug, total, order):
+    """The polynomial's coefficients from the R factor of :func:`_r_update`, or an InputError."""
+    terms = _terms(order)
+    p = len(terms)
     r_factor, rhs = r_aug[:p, :p], r_aug[:p, p]
     if total < len(terms):
         raise InputError(
@@ -151,9 +165,21 @@ def _fit_coefficients(image, mask, order):
     """Fit on all pixels of a numpy image, or on a strided subsample of a dask image."""
     shape = image.shape
     if _is_dask(image):
+        # Every step-th row and column of the global grid; each chunk reduces its own pixels to
+        # an R factor (a few numbers), and the factors combine exactly.
+        import dask
+
         step = _subsample_step(shape, FIT_MAX_PIXELS)
-        sample = np.asarray(image[::step, ::step].compute(), dtype=float)
-        sample_mask = mask[::step, ::step] if mask is not None else None
+        blocks = image.to_delayed()
+        masks = _aligned_mask(mask, image).to_delayed() if mask is not None else None
+        starts = [np.cumsum((0,) + tuple(c[:-1])) for c in image.chunks]
+        parts = [dask.delayed(_chunk_r_factor)(blocks[i, j], masks[i, j] if masks is not None else None,
+                                               int(starts[0][i]), int(starts[1][j]), step, shape, order)
+                 for i in range(blocks.shape[0]) for j in range(blocks.shape[1])]
+        parts = dask.compute(*parts)
+        r_aug = np.linalg.qr(np.vstack([np.zeros((0, len(_terms(order)) + 1))] + [r for r, _ in parts]),
+                             mode="r")[: len(_terms(order)) + 1]
+        return _solve_r(r_aug, sum(t for _, t in parts), order)
     else:
         # Row blocks of about _BLOCK_PIXELS pixels: no full-size float64 copy or index arrays.
         image = np.asarray(image)
@@ -169,11 +195,22 @@ def _fit_coefficients(image, mask, order):
                 yield part[good], rows + r0, cols
 
         return _fit_blocks(blocks(), shape, order)
-    good = np.isfinite(sample)
-    if sample_mask is not None:
-        good &= ~sample_mask
+
+
+def _chunk_r_factor(block, mask, r0, c0, step, shape, order):
+    """R factor (and pixel count) of one chunk's pixels on the global every-step-th grid."""
+    rs, cs = (-r0) % step, (-c0) % step
+    part = np.asarray(block[rs::step, cs::step], dtype=float)
+    good = np.isfinite(part)
+    if mask is not None:
+        good &= ~np.asarray(mask[rs::step, cs::step], dtype=bool)
     rows, cols = np.nonzero(good)
-    return _fit(sample[good], rows * step, cols * step, shape, order)
+    values = part[good]
+    rows = rows * step + r0 + rs
+    cols = cols * step + c0 + cs
+    pieces = ((values[i : i + _BLOCK_PIXELS], rows[i : i + _BLOCK_PIXELS], cols[i : i + _BLOCK_PIXELS])
+              for i in range(0, values.size, _BLOCK_PIXELS))
+    return _r_update(np.zeros((0, len(_terms(order)) + 1)), pieces, shape, order)
 
 
 def _background_from(coefficients, order, image, dtype):
@@ -1291,7 +1328,7 @@ def _level_with_findings(image, mask, order, lines, jump_threshold, terraces, gl
 
 #: Largest number of pixels in one chunk of whole rows while a lazy image is levelled
 #: (each worker thread holds a few float64 copies of a chunk).
-ROW_CHUNK_PIXELS = 2**21
+ROW_CHUNK_PIXELS = 2**20
 #: The terrace finder of a lazy image works on an overview of block means of at most this
 #: many pixels; the step-edge band is then masked in blocks of the overview's pixels.
 OVERVIEW_PIXELS = 2**22
@@ -1372,6 +1409,23 @@ def _row_pass(func, img, mask, p, ncols, halo=0):
     out = da.map_blocks(_run_rows, *arrays, fn=func, p=p, halo=halo, starts=starts, nb=nb,
                         chunks=(img.chunks[0], (ncols,)), dtype=float, meta=np.empty((0, 0)))
     return out.compute()
+
+
+def _gather(x, batch=8):
+    """A lazy array of whole-row chunks read into one numpy array, a few chunks at a time.
+
+    ``x.compute()`` would hold every chunk and their concatenation at once (twice the result).
+    """
+    import dask
+
+    out = np.empty(x.shape, x.dtype)
+    bounds = np.cumsum((0,) + tuple(x.chunks[0]))
+    for start in range(0, x.numblocks[0], batch):
+        stop = min(start + batch, x.numblocks[0])
+        parts = dask.compute(*[x.blocks[i] for i in range(start, stop)])
+        for i, part in zip(range(start, stop), parts):
+            out[bounds[i] : bounds[i + 1]] = part
+    return out
 
 
 def _filled(img, p):
@@ -1770,7 +1824,7 @@ def _level_lazy(image, mask, order, lines, jump_threshold, terraces=False, glitc
         p["fill"] = float(total) / float(count) if count else 0.0
     out = _map_chunks(_out_chunk, img, user, p, dtype)
     if found or nonfinite_count or mask is not None:
-        full_mask = np.asarray(_map_chunks(_mask_chunk, img, user, p, bool).compute())
+        full_mask = _gather(_map_chunks(_mask_chunk, img, user, p, bool))
     else:
         full_mask = None
     return out, full_mask, findings
