@@ -255,8 +255,10 @@ def polynomial_background(image, *, order=1, mask=None):
     column and row indices centred and scaled to [-1, 1] (which keeps the least-
     squares problem well conditioned; the fitted surface does not depend on it).
     For a dask image the coefficients are fitted on a strided subsample (every
-    s-th row and column, at most :data:`FIT_MAX_PIXELS` pixels), read now; the
-    background itself is evaluated lazily, chunk by chunk.
+    s-th row and column of the global grid, at most :data:`FIT_MAX_PIXELS`
+    pixels), read now: each chunk reduces its pixels to the R factor of a QR
+    factorisation, and the factors combine exactly, so no sample is gathered.
+    The background itself is evaluated lazily, chunk by chunk.
 
     Examples
     --------
