@@ -158,7 +158,7 @@ class Scan:
             mask = np.asarray(self.mask)
             if mask.shape != self.shape[-2:]:
                 raise InputError(f"{where}: mask shape {mask.shape} differs from the image shape {self.shape[-2:]}")
-            self.mask = mask.astype(bool)
+            self.mask = mask.astype(bool, copy=False)  # a bool mask is kept, not copied (it may be large)
 
     @property
     def shape(self) -> tuple[int, ...]:

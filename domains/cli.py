@@ -35,6 +35,16 @@ def _pixel_size(text):
         raise argparse.ArgumentTypeError(f"expected a positive, finite pixel size in nm, got {text!r}") from None
 
 
+def _scheduler(text):
+    from ._cluster import parse_scheduler  # light: dask.distributed is imported only when the run starts
+
+    try:
+        parse_scheduler(text, option="--scheduler")
+    except InputError as err:
+        raise argparse.ArgumentTypeError(str(err).removeprefix("--scheduler: ")) from None
+    return text
+
+
 def _parser() -> argparse.ArgumentParser:
     from . import __version__
 
@@ -65,7 +75,9 @@ def _parser() -> argparse.ArgumentParser:
     analyze.add_argument("--config", type=Path, metavar="FILE.toml", help="analysis parameters")
     analyze.add_argument("--out", type=Path, default=None, metavar="DIR",
                          help="bundle folder (default: TOPO's name + '-domains')")
-    analyze.add_argument("--scheduler", metavar="ADDRESS", help="dask.distributed scheduler address")
+    analyze.add_argument("--scheduler", type=_scheduler, metavar="ADDRESS",
+                         help="run the dask graphs on a dask.distributed cluster: a scheduler's address "
+                              "(tcp://HOST:PORT), or local:N to start N worker processes on this machine for the run")
     analyze.add_argument("--overwrite", action="store_true", help="replace an existing bundle")
 
     peaks = sub.add_parser("peaks", help="the indexed peak table of an image")

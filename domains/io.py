@@ -43,6 +43,11 @@ from ._scan import CHANNELS, Scan, _is_dask, pixel_size_pair
 #: lazily (memory map or chunked reads through dask) instead of being read whole.
 LAZY_THRESHOLD_BYTES = 512 * 2**20
 
+#: A lazily opened file laid out row by row on disk (.npy, an uncompressed TIFF, a contiguous
+#: HDF5 dataset) is read in chunks of whole rows of about this many bytes: each chunk is one
+#: contiguous read, and whole rows are what the levelling's per-row statistics need.
+LAZY_CHUNK_BYTES = 16 * 2**20
+
 #: Sidecar keys that fill fields of :class:`domains.Scan`; any other key is kept
 #: in ``Scan.metadata`` under its own name.
 SIDECAR_KEYS = ("pixel_size_nm", "channel", "bias_V", "setpoint_A", "energies_V", "mask")
@@ -222,6 +227,13 @@ class _LazyFile:
             pass
 
 
+def _row_chunks(shape, dtype):
+    """Chunks of whole rows (one energy slice at a time for a grid) of about :data:`LAZY_CHUNK_BYTES`."""
+    row_bytes = shape[-1] * np.dtype(dtype).itemsize
+    rows = int(min(shape[-2], max(1, LAZY_CHUNK_BYTES // max(row_bytes, 1))))
+    return (1,) * (len(shape) - 2) + (rows, shape[-1])
+
+
 def _as_dask(source, chunks="auto", lock=False):
     import dask.array as da
 
@@ -239,7 +251,8 @@ def _load_npy(where, file, inner, lazy_threshold):
     if mm.dtype.kind not in "biuf":
         raise InputError(f"{where}: expected real numbers, got dtype {mm.dtype}")
     if mm.nbytes > lazy_threshold:
-        return _as_dask(_LazyFile("npy", file, None, mm.shape, mm.dtype))
+        chunks = _row_chunks(mm.shape, mm.dtype) if not mm.flags.f_contiguous or mm.ndim < 2 else "auto"
+        return _as_dask(_LazyFile("npy", file, None, mm.shape, mm.dtype), chunks=chunks)
     return np.array(mm)
 
 
@@ -295,13 +308,15 @@ def _load_tiff(where, file, lazy_threshold):
             nbytes = int(np.prod(shape)) * np.dtype(dtype).itemsize
             if nbytes <= lazy_threshold:
                 return series.asarray()
+            contiguous = getattr(series, "dataoffset", None) is not None  # uncompressed, one block: rows
     except InputError:
         raise
     except (OSError, ValueError, tifffile.TiffFileError) as err:
         raise InputError(f"{where}: not a readable TIFF file ({err})") from None
     if np.dtype(dtype).kind not in "biuf":
         raise InputError(f"{where}: expected real numbers, got dtype {dtype}")
-    return _as_dask(_LazyFile("tiff", file, None, shape, dtype), lock=True)
+    chunks = _row_chunks(shape, dtype) if contiguous else "auto"
+    return _as_dask(_LazyFile("tiff", file, None, shape, dtype), chunks=chunks, lock=True)
 
 
 def _h5_datasets(group) -> list[str]:
@@ -335,12 +350,14 @@ def _load_hdf5(where, file, inner, lazy_threshold):
             if obj.size * obj.dtype.itemsize <= lazy_threshold:
                 return obj[()]
             shape, dtype = obj.shape, obj.dtype
+            # a contiguous dataset is laid out row by row; a chunked one keeps dask's choice
+            chunks = _row_chunks(shape, dtype) if obj.chunks is None else "auto"
     except InputError:
         raise
     except (OSError, ValueError, KeyError) as err:
         raise InputError(f"{where}: not a readable HDF5 file ({err})") from None
     # h5py serialises reads internally; the dask lock keeps one reader per file.
-    return _as_dask(_LazyFile("hdf5", file, inner, shape, dtype), lock=True)
+    return _as_dask(_LazyFile("hdf5", file, inner, shape, dtype), chunks=chunks, lock=True)
 
 
 def _load_zarr(where, file, inner, lazy_threshold):

@@ -24,10 +24,6 @@ from ._scan import Scan, _is_dask
 #: larger image is fitted on a regular strided subsample (every s-th row and column).
 FIT_MAX_PIXELS = 2**22
 
-#: Largest number of pixels the line statistics ("median", "difference") read from
-#: a lazy image; a wider image is sampled at every s-th column (all rows are kept).
-LINES_MAX_PIXELS = 2**24
-
 LINE_METHODS = ("median", "mean", "hann", "difference")
 
 _MAX_ORDER = 8
@@ -99,11 +95,18 @@ def _fit(values, rows, cols, shape, order):
 
 def _fit_blocks(blocks, shape, order):
     """:func:`_fit` over an iterable of (values, rows, cols) blocks."""
+    return _solve_r(*_r_update(np.zeros((0, len(_terms(order)) + 1)), blocks, shape, order), order)
+
+
+def _r_update(r_aug, blocks, shape, order):
+    """R of the QR factorisation of [design | values], updated with each (values, rows, cols) block.
+
+    Its last column is Q^T b, so Q itself is never formed; R factors of disjoint sets of
+    pixels stacked and factorised again give the R of their union (partial fits combine exactly).
+    Returns (R, number of pixels).
+    """
     terms = _terms(order)
     p = len(terms)
-    # R of the QR factorisation of the design matrix with the values as one more column:
-    # its last column is Q^T b, so Q itself is never formed.
-    r_aug = np.zeros((0, p + 1))
     total = 0
     for values, rows, cols in blocks:
         if values.size == 0:
@@ -113,6 +116,13 @@ def _fit_blocks(blocks, shape, order):
         v = _scaled(rows, shape[0])
         design = np.stack([u**i * v**j for i, j in terms] + [values.astype(float)], axis=1)
         r_aug = np.linalg.qr(np.vstack([r_aug, design]), mode="r")[: p + 1]
+    return r_aug, total
+
+
+def _solve_r(r_aug, total, order):
+    """The polynomial's coefficients from the R factor of :func:`_r_update`, or an InputError."""
+    terms = _terms(order)
+    p = len(terms)
     r_factor, rhs = r_aug[:p, :p], r_aug[:p, p]
     if total < len(terms):
         raise InputError(
@@ -155,9 +165,21 @@ def _fit_coefficients(image, mask, order):
     """Fit on all pixels of a numpy image, or on a strided subsample of a dask image."""
     shape = image.shape
     if _is_dask(image):
+        # Every step-th row and column of the global grid; each chunk reduces its own pixels to
+        # an R factor (a few numbers), and the factors combine exactly.
+        import dask
+
         step = _subsample_step(shape, FIT_MAX_PIXELS)
-        sample = np.asarray(image[::step, ::step].compute(), dtype=float)
-        sample_mask = mask[::step, ::step] if mask is not None else None
+        blocks = image.to_delayed()
+        masks = _aligned_mask(mask, image).to_delayed() if mask is not None else None
+        starts = [np.cumsum((0,) + tuple(c[:-1])) for c in image.chunks]
+        parts = [dask.delayed(_chunk_r_factor)(blocks[i, j], masks[i, j] if masks is not None else None,
+                                               int(starts[0][i]), int(starts[1][j]), step, shape, order)
+                 for i in range(blocks.shape[0]) for j in range(blocks.shape[1])]
+        parts = dask.compute(*parts)
+        r_aug = np.linalg.qr(np.vstack([np.zeros((0, len(_terms(order)) + 1))] + [r for r, _ in parts]),
+                             mode="r")[: len(_terms(order)) + 1]
+        return _solve_r(r_aug, sum(t for _, t in parts), order)
     else:
         # Row blocks of about _BLOCK_PIXELS pixels: no full-size float64 copy or index arrays.
         image = np.asarray(image)
@@ -173,11 +195,22 @@ def _fit_coefficients(image, mask, order):
                 yield part[good], rows + r0, cols
 
         return _fit_blocks(blocks(), shape, order)
-    good = np.isfinite(sample)
-    if sample_mask is not None:
-        good &= ~sample_mask
+
+
+def _chunk_r_factor(block, mask, r0, c0, step, shape, order):
+    """R factor (and pixel count) of one chunk's pixels on the global every-step-th grid."""
+    rs, cs = (-r0) % step, (-c0) % step
+    part = np.asarray(block[rs::step, cs::step], dtype=float)
+    good = np.isfinite(part)
+    if mask is not None:
+        good &= ~np.asarray(mask[rs::step, cs::step], dtype=bool)
     rows, cols = np.nonzero(good)
-    return _fit(sample[good], rows * step, cols * step, shape, order)
+    values = part[good]
+    rows = rows * step + r0 + rs
+    cols = cols * step + c0 + cs
+    pieces = ((values[i : i + _BLOCK_PIXELS], rows[i : i + _BLOCK_PIXELS], cols[i : i + _BLOCK_PIXELS])
+              for i in range(0, values.size, _BLOCK_PIXELS))
+    return _r_update(np.zeros((0, len(_terms(order)) + 1)), pieces, shape, order)
 
 
 def _background_from(coefficients, order, image, dtype):
@@ -222,8 +255,10 @@ def polynomial_background(image, *, order=1, mask=None):
     column and row indices centred and scaled to [-1, 1] (which keeps the least-
     squares problem well conditioned; the fitted surface does not depend on it).
     For a dask image the coefficients are fitted on a strided subsample (every
-    s-th row and column, at most :data:`FIT_MAX_PIXELS` pixels), read now; the
-    background itself is evaluated lazily, chunk by chunk.
+    s-th row and column of the global grid, at most :data:`FIT_MAX_PIXELS`
+    pixels), read now: each chunk reduces its pixels to the R factor of a QR
+    factorisation, and the factors combine exactly, so no sample is gathered.
+    The background itself is evaluated lazily, chunk by chunk.
 
     Examples
     --------
@@ -289,15 +324,7 @@ def _warn_slow_axis(method, stacklevel):
 
 
 def _masked_float(image, mask):
-    """A float64 copy (numpy or dask) with masked and non-finite pixels set to NaN."""
-    if _is_dask(image):
-        import dask.array as da
-
-        x = image.astype(float)
-        x = da.where(da.isfinite(x), x, np.nan)
-        if mask is not None:
-            x = da.where(da.from_array(mask, chunks=x.chunks), np.nan, x)
-        return x
+    """A float64 copy (numpy) with masked and non-finite pixels set to NaN."""
     x = np.array(image, dtype=float)
     x[~np.isfinite(x)] = np.nan
     if mask is not None:
@@ -330,16 +357,24 @@ def _neighbour_median(d):
     return local
 
 
-def _difference_offsets(x, threshold):
-    """Offsets built only from line-to-line jumps that stand out from the typical step."""
+def _line_steps(x):
+    """The median step between neighbouring lines (NaN where either is untrusted), a block of
+    lines at a time so that no full-size difference image is held."""
     nrows = x.shape[0]
-    # The median step between neighbouring lines (NaN where either is untrusted), a block of
-    # lines at a time so that no full-size difference image is held.
     d = np.full(max(nrows - 1, 0), np.nan)
     block = max(1, _BLOCK_PIXELS * 4 // max(x.shape[1], 1))
     for r0 in range(0, nrows - 1, block):
         r1 = min(nrows - 1, r0 + block)
         d[r0:r1] = _row_statistic(x[r0 + 1 : r1 + 1] - x[r0:r1], "median")
+    return d
+
+
+def _offsets_from_steps(d, nrows, threshold):
+    """Offsets built only from line-to-line jumps that stand out from the typical step.
+
+    ``d`` holds the steps between neighbouring lines (:func:`_line_steps`, length ``nrows - 1``).
+    """
+    d = np.asarray(d, dtype=float)
     offsets = np.zeros(nrows)
     known = np.isfinite(d)
     if not known.any():
@@ -382,48 +417,35 @@ def _difference_offsets(x, threshold):
 
 
 def _line_offsets(image, method, mask, jump_threshold):
-    """Offsets of every row (numpy), without warnings; numpy or dask image."""
-    lazy = _is_dask(image)
-    x = _masked_float(image, mask)
-    if lazy:
-        if method == "mean":
-            import dask.array as da
-
-            with warnings.catch_warnings():
-                # a fully masked row gives NaN ("mean of empty slice"), handled below
-                warnings.simplefilter("ignore", RuntimeWarning)
-                stat = da.nanmean(x, axis=1).compute()  # exact: a streaming reduction
-        else:
-            step = max(1, math.ceil(image.shape[0] * image.shape[1] / LINES_MAX_PIXELS))
-            sample = x[:, ::step].compute()
-            stat = None
+    """Offsets of every row (numpy), without warnings; numpy or dask image (read chunk by chunk of whole rows)."""
+    nrows = image.shape[0]
+    if _is_dask(image):
+        steps, stat = _line_offsets_lazy(image, method, mask, jump_threshold)
     else:
-        sample = x
-        stat = None
-    if method == "hann":
-        # A Hann-weighted mean along the line: exact for a constant offset, and blind (below
-        # 1e-3, Harris 1978) to any modulation more than about 3 frequency bins off the qy axis.
-        weights = np.hanning(image.shape[1] + 2)[1:-1]
-        if lazy:
-            import dask.array as da
-
-            num = (da.nan_to_num(x) * weights).sum(axis=1).compute()
-            den = (~da.isnan(x) * weights).sum(axis=1).compute()
+        x = _masked_float(image, mask)
+        steps = _line_steps(x) if method == "difference" else None
+        if method == "hann":
+            # A Hann-weighted mean along the line: exact for a constant offset, and blind (below
+            # 1e-3, Harris 1978) to any modulation more than about 3 frequency bins off the qy axis.
+            weights = np.hanning(image.shape[1] + 2)[1:-1]
+            stat = np.stack([(np.nan_to_num(x) * weights).sum(axis=1), (~np.isnan(x) * weights).sum(axis=1)], axis=1)
+        elif method in ("median", "mean"):
+            stat = _row_statistic(x, method)[:, None]
         else:
-            num = (np.nan_to_num(x) * weights).sum(axis=1)
-            den = (~np.isnan(x) * weights).sum(axis=1)
+            stat = None
+    if method == "hann":
+        num, den = stat[:, 0], stat[:, 1]
         stat = np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
         finite = np.isfinite(stat)
         offsets = np.where(finite, stat - (np.mean(stat[finite]) if finite.any() else 0.0), 0.0)
     elif method in ("median", "mean"):
-        if stat is None:
-            stat = _row_statistic(sample, method)
+        stat = stat[:, 0]
         finite = np.isfinite(stat)
         reference = (np.median if method == "median" else np.mean)(stat[finite]) if finite.any() else 0.0
         # A row with no trusted pixel keeps its level (offset 0).
         offsets = np.where(finite, stat - reference, 0.0)
     else:
-        offsets = _difference_offsets(sample, jump_threshold)
+        offsets = _offsets_from_steps(steps, nrows, jump_threshold)
         offsets -= np.median(offsets)
     return offsets
 
@@ -498,8 +520,9 @@ def line_offsets(image, *, method="median", mask=None, warn=True, jump_threshold
     for that. The method breaks down if more than about half of the steps are
     jumps.
 
-    For a dask image the statistics "median" and "difference" use every s-th
-    column (at most :data:`LINES_MAX_PIXELS` pixels are read); "mean" is exact.
+    A dask image is read chunk by chunk of whole rows (a chunk that splits rows
+    is rechunked first); every statistic is that of the in-memory image, and the
+    corrected image stays lazy.
 
     Examples
     --------
@@ -586,14 +609,8 @@ def nan_to_mask(image, mask=None):
 def _level_image(image, mask, order, lines, jump_threshold):
     """Level one 2-D image (numpy or dask) without warnings; returns (levelled, mask)."""
     if _is_dask(image):
-        out = image.astype(_float_dtype(image.dtype))
-        if lines is not None:
-            offsets = _line_offsets(out, lines, mask, jump_threshold)
-            out = out - offsets.astype(out.dtype)[:, None]
-        if order is not None:
-            coefficients = _fit_coefficients(out, mask, order)
-            out = out - _background_from(coefficients, order, out, out.dtype)
-        return out, mask  # non-finite pixels stay NaN: later steps treat them as masked
+        out, combined, _ = _level_lazy(image, mask, order, lines, jump_threshold)
+        return out, combined
     filled, combined = nan_to_mask(image, mask)
     nonfinite = ~np.isfinite(np.asarray(image)) if np.asarray(image).dtype.kind == "f" else None
     out = filled
@@ -611,10 +628,10 @@ def _level_image(image, mask, order, lines, jump_threshold):
 
 # --------------------------------------------------------------------------- real-data defects
 #
-# Terrace steps, glitched scan lines and tip changes. They are found on in-memory 2-D
-# images only; every statistic below is a per-row or per-pixel robust one (medians and
-# median absolute deviations), with fixed small kernels, so the cost grows with the
-# pixel count and no kernel grows with the image.
+# Terrace steps, glitched scan lines and tip changes, found on 2-D images. Every statistic
+# below is a per-row or per-pixel robust one (medians and median absolute deviations), with
+# fixed small kernels, so the cost grows with the pixel count and no kernel grows with the
+# image; a lazy image feeds the same functions chunk by chunk (see "lazy levelling" below).
 
 #: Robust standard deviations of the smoothed gradient above which a pixel is on a step edge.
 EDGE_THRESHOLD = 8.0
@@ -642,6 +659,9 @@ _MAX_TIP_CHANGES = 8
 # The terrace offsets are fitted on at most this many pixels (a strided subsample): 2**20
 # pixels fix an offset to noise / 1000, and the cost stays flat above 1024^2.
 _TERRACE_FIT_PIXELS = 2**20
+# The scale that decides whether two terraces are one comes from a strided subsample: a quarter
+# million pixels are plenty for a robust spread.
+_MERGE_SAMPLE_PIXELS = 2**18
 
 
 @dataclass(frozen=True, eq=False)
@@ -659,9 +679,11 @@ class LevelResult:
         removed from the image; in the data's units (nm for a topograph).
     terrace_labels : ndarray of int32 or None
         Terrace number (1, 2, ...; 1 is the largest) of every pixel, 0 on the
-        masked step-edge band; None when there is one terrace.
+        masked step-edge band; None when there is one terrace. A dask array for
+        a lazy scan.
     edge_mask : ndarray of bool or None
         The masked band along the step edges (True = on an edge); None when none.
+        A dask array for a lazy scan.
     glitch_rows : tuple of int
         Scan lines (rows) masked as glitched.
     tip_change_rows : tuple of int
@@ -806,24 +828,47 @@ def _glitch_rows(x, floor):
         s, spread[start:stop] = _sticking_out(x[start:stop], x[start - 1 : stop - 1], x[start + 1 : stop + 1])
         mean[start:stop] = _row_mean(s)
         out[start:stop] = s
-    # The end lines: their one difference, against the typical one-sided difference nearby.
-    one_sided = []
+    (mean[0], out[0], top), (mean[-1], out[-1], bottom) = _glitch_ends(lambda r: x[r], n)
+    typical, spike_at = _glitch_thresholds(mean, spread, (top, bottom), floor)
+    count = np.sum(out > spike_at[:, None].astype(np.float32), axis=1).astype(float)
+    del out
+    return _glitch_verdict(mean, typical, count, m, floor)
+
+
+#: Rows at each end of an image that :func:`_glitch_ends` reads.
+_END_ROWS = 2 * _WINDOW_ROWS + 2
+
+
+def _glitch_ends(row, n):
+    """The first and last lines, with one neighbour each: (mean, sticking-out values, typical value) of each.
+
+    ``row(r)`` returns line r of the image (NaN on masked pixels); only the
+    :data:`_END_ROWS` lines at either end are asked for.
+    """
+    ends = []
     for r, other in ((0, 1), (n - 1, n - 2)):
-        d = x[r] - x[other]
+        d = row(r) - row(other)
         d = np.abs(d - np.nanmedian(d)) if np.isfinite(d).any() else d
-        out[r] = d
-        mean[r] = np.nanmean(d) if np.isfinite(d).any() else np.nan
+        mean = np.nanmean(d) if np.isfinite(d).any() else np.nan
         near = range(1, min(n - 1, 2 * _WINDOW_ROWS + 1)) if r == 0 else range(max(0, n - 2 * _WINDOW_ROWS - 2), n - 2)
-        steps = [x[k + 1] - x[k] for k in near]
+        steps = [row(k + 1) - row(k) for k in near]
         typical_step = [np.nanmean(np.abs(v - np.nanmedian(v))) for v in steps if np.isfinite(v).any()]
-        one_sided.append(np.median(typical_step) if typical_step else np.nan)
+        ends.append((mean, d, np.median(typical_step) if typical_step else np.nan))
+    return ends
+
+
+def _glitch_thresholds(mean, spread, one_sided, floor):
+    """The typical sticking-out of each line (within 8 lines) and the height above which a pixel is a spike."""
     typical = _local_median(np.concatenate([[np.nan], mean[1:-1], [np.nan]]), _WINDOW_ROWS)
     typical[0], typical[-1] = one_sided
     typical = np.where(np.isfinite(typical), typical, floor)
     typical = np.maximum(typical, floor)
     spike_at = np.maximum(_SPIKE_SIGMAS * _local_median(spread, _WINDOW_ROWS), floor)
-    count = np.sum(out > spike_at[:, None].astype(np.float32), axis=1).astype(float)
-    del out
+    return typical, spike_at
+
+
+def _glitch_verdict(mean, typical, count, m, floor):
+    """Glitched lines from their mean sticking-out and their count of spikes (see :func:`_glitch_rows`)."""
     typical_count = _local_median(count, _WINDOW_ROWS)
     min_spikes = max(4.0, _MIN_SPIKE_FRACTION * m)
     rough = np.where(np.isfinite(mean), mean > GLITCH_RATIO * typical + floor, False)
@@ -865,19 +910,36 @@ def _tip_changes(x, valid_rows, jump_threshold, floor):
     Returns (offsets per row to subtract, [(row, offset_jump, contrast_ratio), ...]).
     """
     n, m = x.shape
+    rows = np.flatnonzero(valid_rows)
+    if rows.size < 2 * _MIN_SEGMENT_ROWS or m < 8:
+        return np.zeros(n), []
+    xc = x if rows.size == n else x[rows]  # a view when no line is masked
+    rough = np.empty(rows.size)
+    block = max(1, 2**20 // m)
+    for start in range(0, rows.size, block):
+        rough[start : start + block] = _row_roughness(xc[start : start + block])
+    return _tip_changes_from(rough, _line_steps(xc), valid_rows, m, jump_threshold, floor)
+
+
+def _row_roughness(x):
+    """Roughness of each line along the fast axis: the robust spread of its pixel-to-pixel differences.
+
+    Blind to offsets, to step edges crossing the line and to slow noise.
+    """
+    d = np.diff(x, axis=1)
+    d -= _row_median(d, sampled=True)[:, None]
+    return 1.4826 * _row_median(np.abs(d), sampled=True)
+
+
+def _tip_changes_from(rough, line_steps, valid_rows, m, jump_threshold, floor):
+    """:func:`_tip_changes` from the roughness of the trusted lines and the steps between consecutive ones."""
+    n = valid_rows.size
     offsets = np.zeros(n)
     rows = np.flatnonzero(valid_rows)
     if rows.size < 2 * _MIN_SEGMENT_ROWS or m < 8:
         return offsets, []
-    xc = x if rows.size == n else x[rows]  # a view when no line is masked
-    # 1. Roughness of each line along the fast axis (robust spread of the pixel-to-pixel
-    #    differences): blind to offsets, to step edges crossing the line and to slow noise.
-    rough = np.empty(rows.size)
-    block = max(1, 2**20 // m)
-    for start in range(0, rows.size, block):
-        d = np.diff(xc[start : start + block], axis=1)
-        d -= _row_median(d, sampled=True)[:, None]
-        rough[start : start + block] = 1.4826 * _row_median(np.abs(d), sampled=True)
+    # 1. Roughness of each line along the fast axis (:func:`_row_roughness`).
+    rough = np.asarray(rough, dtype=float)
     rough = np.where(np.isfinite(rough), np.maximum(rough, floor), floor)
     log_rough = np.log(rough)
 
@@ -887,7 +949,7 @@ def _tip_changes(x, valid_rows, jump_threshold, floor):
 
     # 2. Offset jumps between consecutive trusted lines (glitched lines left out, so a
     #    jump across a glitched line is still seen), kept only where the new level persists.
-    steps = _difference_offsets(xc, jump_threshold)
+    steps = _offsets_from_steps(line_steps, rows.size, jump_threshold)
     jumps = np.diff(steps)
     events = {}
     persistent = np.zeros(rows.size)
@@ -1036,8 +1098,12 @@ def _fit_terraces(values, rows, cols, terrace, shape, order, n_terraces):
 
 def _drop_untrusted_terraces(labels, mask):
     """Terraces with too few trusted pixels (all inside a masked area) join the band; renumber the rest."""
-    trusted = np.bincount(labels[~mask], minlength=int(labels.max()) + 1)
-    keep = trusted >= _MIN_TERRACE_PIXELS
+    return _keep_trusted_terraces(labels, np.bincount(labels[~mask], minlength=int(labels.max()) + 1))
+
+
+def _keep_trusted_terraces(labels, trusted):
+    """:func:`_drop_untrusted_terraces` given the count of trusted pixels of each label."""
+    keep = np.asarray(trusted) >= _MIN_TERRACE_PIXELS
     keep[0] = False
     if keep.sum() < 2:
         return None, None
@@ -1050,48 +1116,52 @@ def _drop_untrusted_terraces(labels, mask):
 
 
 def _terrace_sample(x, mask, labels, budget):
-    """A strided subsample of at most ``budget`` pixels: the step, the slices, the terrace labels there,
-    the usable pixels (on a terrace, finite, not masked) and their (row, col) in the subsample."""
+    """A strided subsample of at most ``budget`` pixels: the step, the image there, the terrace labels
+    there, the usable pixels (on a terrace, finite, not masked) and their (row, col) in the subsample.
+
+    ``x`` may be a dask array (its subsample is read now) and ``labels`` an :class:`_Overview`.
+    """
     step = _subsample_step(x.shape, budget)
     sub = (slice(None, None, step), slice(None, None, step))
+    xs = np.asarray(x[sub].compute() if _is_dask(x) else x[sub])
     lab = labels[sub]
-    good = (lab > 0) & np.isfinite(x[sub])
+    good = (lab > 0) & np.isfinite(xs)
     if mask is not None:
         good &= ~mask[sub]
     rows, cols = np.nonzero(good)
-    return step, sub, lab, good, rows, cols
+    return step, xs, lab, good, rows, cols
 
 
 def _terrace_fit(x, mask, labels, order):
     """Fit polynomial + offsets on the trusted terrace pixels (strided subsample above _TERRACE_FIT_PIXELS)."""
-    step, sub, lab, good, rows, cols = _terrace_sample(x, mask, labels, _TERRACE_FIT_PIXELS)
+    step, xs, lab, good, rows, cols = _terrace_sample(x, mask, labels, _TERRACE_FIT_PIXELS)
     n_terraces = int(labels.max())
     present = np.bincount(lab[good], minlength=n_terraces + 1)
     if np.any(present[1:] == 0):
         raise InputError("a terrace has no trusted pixel left for the fit")
-    poly, offsets = _fit_terraces(x[sub][good], rows * step, cols * step, lab[good], x.shape, max(order, 0),
+    poly, offsets = _fit_terraces(xs[good], rows * step, cols * step, lab[good], x.shape, max(order, 0),
                                   n_terraces)
     return poly, offsets
 
 
-def _merge_terraces(x, mask, labels, offsets, poly, order, significance):
+def _merge_terraces(x, mask, labels, offsets, poly, order, significance, floor=None):
     """Join terraces whose offsets differ by less than ``significance`` robust sigmas of the levelled image.
 
     The robust sigma is that of the residual with each line's median removed: the
-    corrugation and the noise, not the line offsets.
+    corrugation and the noise, not the line offsets. ``floor`` is :func:`_floor` of
+    ``x`` (computed here when not given).
     """
-    # A scale estimate: a quarter million pixels are plenty.
-    step, sub, lab, good, rows, cols = _terrace_sample(x, mask, labels, 2**18)
+    step, xs, lab, good, rows, cols = _terrace_sample(x, mask, labels, _MERGE_SAMPLE_PIXELS)
     background = np.zeros(rows.size)
     for c, (i, j) in zip(poly, _terms(order)):
         background += c * _scaled(cols * step, x.shape[1]) ** i * _scaled(rows * step, x.shape[0]) ** j
     residual = np.full(lab.shape, np.nan)
-    residual[good] = x[sub][good] - background - offsets[lab[good] - 1]
+    residual[good] = xs[good] - background - offsets[lab[good] - 1]
     # Each line's median removed: line noise is no corrugation and must not hide a step.
     residual -= _row_median(residual)[:, None]
     residual = residual[good]
     scale = 1.4826 * np.median(np.abs(residual)) if residual.size else 0.0
-    tol = max(significance * scale, _floor(x))
+    tol = max(significance * scale, _floor(x) if floor is None else floor)
     sorted_ids = np.argsort(offsets)
     group = np.zeros(offsets.size, int)
     g = 0
@@ -1248,6 +1318,532 @@ def _level_with_findings(image, mask, order, lines, jump_threshold, terraces, gl
     return out, full_mask, findings
 
 
+# --------------------------------------------------------------------------- lazy (dask) levelling
+#
+# A dask image is levelled without ever being held whole. Every statistic is a per-row one,
+# computed chunk by chunk of whole rows (with one row of each neighbouring chunk where a line
+# is compared with the next), or comes from a strided subsample; the terrace finder works on
+# an overview of block means. What the finders and fits decide is a few per-row vectors,
+# polynomial coefficients and an overview label image: they are applied chunk by chunk.
+# An image no larger than the overview is its own overview, and is then levelled exactly as
+# in memory (up to the order of floating-point sums).
+
+#: Largest number of pixels in one chunk of whole rows while a lazy image is levelled
+#: (each worker thread holds a few float64 copies of a chunk).
+ROW_CHUNK_PIXELS = 2**20
+#: The terrace finder of a lazy image works on an overview of block means of at most this
+#: many pixels; the step-edge band is then masked in blocks of the overview's pixels.
+OVERVIEW_PIXELS = 2**22
+
+
+def _full_rows(x, align=1):
+    """``x`` rechunked, if needed, so that every chunk holds whole rows.
+
+    A chunk keeps its rows unless it would exceed :data:`ROW_CHUNK_PIXELS`, when it is split
+    evenly; with ``align`` > 1 every chunk border falls on a multiple of ``align`` rows.
+    """
+    n, m = x.shape
+    limit = max(1, ROW_CHUNK_PIXELS // max(m, 1))
+    if align > 1:
+        limit = max(align, limit // align * align)
+        rows = [limit] * (n // limit) + ([n % limit] if n % limit else [])
+    else:
+        rows = []
+        for size in x.chunks[0]:
+            pieces = -(-size // limit)
+            rows.extend(size // pieces + (1 if i < size % pieces else 0) for i in range(pieces))
+    rows = tuple(int(r) for r in rows)
+    if x.numblocks[1] == 1 and rows == tuple(x.chunks[0]):
+        return x
+    return x.rechunk((rows, (m,)))
+
+
+def _aligned_mask(mask, like):
+    """A mask (numpy or dask, or None) as a dask array chunked like ``like``."""
+    if mask is None:
+        return None
+    import dask.array as da
+
+    if _is_dask(mask):
+        return mask.astype(bool).rechunk(like.chunks)
+    return da.from_array(np.asarray(mask, dtype=bool), chunks=like.chunks)
+
+
+def _run_chunk(img, mask=None, *, fn, p, block_info=None):
+    (r0, _), (c0, _) = block_info[0]["array-location"]
+    return fn(img, mask, r0, c0, p)
+
+
+def _map_chunks(func, img, mask, p, dtype):
+    """``func(img_chunk, mask_chunk, row0, col0, p)`` on every chunk: a lazy array like ``img``.
+
+    ``p`` holds plain numbers and numpy arrays; dask puts a large one into the graph once.
+    """
+    import dask.array as da
+
+    arrays = [img] if mask is None else [img, mask]
+    dtype = np.dtype(dtype)
+    return da.map_blocks(_run_chunk, *arrays, fn=func, p=p, dtype=dtype, meta=np.empty((0, 0), dtype))
+
+
+def _run_rows(img, mask=None, *, fn, p, halo, starts, nb, block_info=None):
+    i = block_info[0]["chunk-location"][0]
+    top = halo if i > 0 else 0
+    bottom = halo if i < nb - 1 else 0
+    return np.asarray(fn(img, mask, top, bottom, starts[i], p), dtype=float)
+
+
+def _row_pass(func, img, mask, p, ncols, halo=0):
+    """Per-row statistics of a lazy image of whole-row chunks, read chunk by chunk (numpy, shape (rows, ncols)).
+
+    ``func(chunk, mask_chunk, top, bottom, row0, p)`` returns the statistics of the chunk's own
+    rows; with ``halo`` the chunk carries ``top`` rows of the chunk above and ``bottom`` rows of
+    the one below (none at the image's edges), and ``row0`` is the global index of its first own row.
+    """
+    import dask.array as da
+
+    arrays = [img] if mask is None else [img, mask]
+    nb = img.numblocks[0]
+    starts = tuple(int(v) for v in np.cumsum((0,) + tuple(img.chunks[0][:-1])))
+    halo = halo if nb > 1 else 0
+    if halo:
+        arrays = [da.overlap.overlap(a, depth={0: halo, 1: 0}, boundary="none") for a in arrays]
+    out = da.map_blocks(_run_rows, *arrays, fn=func, p=p, halo=halo, starts=starts, nb=nb,
+                        chunks=(img.chunks[0], (ncols,)), dtype=float, meta=np.empty((0, 0)))
+    return out.compute()
+
+
+def _gather(x, batch=8):
+    """A lazy array of whole-row chunks read into one numpy array, a few chunks at a time.
+
+    ``x.compute()`` would hold every chunk and their concatenation at once (twice the result).
+    """
+    import dask
+
+    out = np.empty(x.shape, x.dtype)
+    bounds = np.cumsum((0,) + tuple(x.chunks[0]))
+    for start in range(0, x.numblocks[0], batch):
+        stop = min(start + batch, x.numblocks[0])
+        parts = dask.compute(*[x.blocks[i] for i in range(start, stop)])
+        for i, part in zip(range(start, stop), parts):
+            out[bounds[i] : bounds[i + 1]] = part
+    return out
+
+
+def _filled(img, p):
+    """A chunk as ``nan_to_mask`` fills it: the float dtype, non-finite pixels at the image's finite mean."""
+    vals = np.array(img, dtype=p["dtype"])
+    finite = np.isfinite(vals)
+    if not finite.all():
+        vals[~finite] = p["fill_in"]
+    return vals, finite
+
+
+def _terrace_chunk(p, r0, c0, shape):
+    """Terrace labels of a chunk, read off the overview (each overview pixel covers f x f pixels)."""
+    labels, f = p["terr"][0], p["terr"][1]
+    return labels[np.ix_(np.arange(r0, r0 + shape[0]) // f, np.arange(c0, c0 + shape[1]) // f)]
+
+
+def _labels_chunk(img, mask, r0, c0, p):
+    return _terrace_chunk(p, r0, c0, img.shape).astype(np.int32)
+
+
+def _x_chunk(img, mask, r0, c0, p):
+    """The float64 working image of the finders (NaN where untrusted), as far as ``p`` has got."""
+    vals, finite = _filled(img, p)
+    x = vals.astype(float)
+    x[~finite if mask is None else (~finite | mask)] = np.nan
+    rows = slice(r0, r0 + x.shape[0])
+    if p.get("glitch") is not None:
+        x[p["glitch"][rows]] = np.nan
+    if p.get("shift") is not None:
+        x -= p["shift"][rows, None]
+    if p.get("terr") is not None:
+        lab = _terrace_chunk(p, r0, c0, x.shape)
+        x -= p["terr"][2][np.maximum(lab, 1) - 1]
+        x[lab == 0] = np.nan
+    return x
+
+
+def _out_chunk(img, mask, r0, c0, p):
+    """The levelled chunk, as far as ``p`` has got (``as_x``: float64 with NaN where untrusted)."""
+    vals, finite = _filled(img, p)
+    dtype = p["dtype"]
+    rows = slice(r0, r0 + vals.shape[0])
+    lab = _terrace_chunk(p, r0, c0, vals.shape) if p.get("terr") is not None else None
+    if p.get("shift") is not None or lab is not None:
+        corrected = vals.astype(float)
+        if p.get("shift") is not None:
+            corrected -= p["shift"][rows, None]
+        if lab is not None:
+            corrected -= p["terr"][2][np.maximum(lab, 1) - 1]
+        out = corrected.astype(dtype)
+    else:
+        out = vals
+    if p.get("line") is not None:
+        out = out - p["line"][rows].astype(dtype)[:, None]
+    if p.get("coef") is not None:
+        out -= _evaluate(p["coef"], p["order"], p["shape"], r0, c0, out.shape).astype(dtype)
+    glitch = p["glitch"][rows] if p.get("glitch") is not None else None
+    if p.get("as_x"):
+        x = out.astype(float)
+        untrusted = ~finite if mask is None else (~finite | mask)
+        if glitch is not None:
+            untrusted[glitch] = True
+        if lab is not None:
+            untrusted |= lab == 0
+        x[untrusted | ~np.isfinite(x)] = np.nan
+        return x
+    if p.get("interp") is not None:
+        index, values = p["interp"]
+        inside = (index >= r0) & (index < rows.stop)
+        out[index[inside] - r0] = values[inside]
+    if p.get("fill") is not None:
+        target = ~finite
+        if glitch is not None:
+            target[glitch] = False
+        if lab is not None:
+            target |= lab == 0
+        out[target] = p["fill"]
+    return out
+
+
+def _mask_chunk(img, mask, r0, c0, p):
+    """The mask of the levelled chunk: untrusted input, glitched lines and the step-edge band."""
+    out = ~np.isfinite(np.asarray(img, dtype=p["dtype"]))
+    if mask is not None:
+        out |= mask
+    if p.get("glitch") is not None:
+        out[p["glitch"][r0 : r0 + out.shape[0]]] = True
+    if p.get("terr") is not None:
+        out |= _terrace_chunk(p, r0, c0, out.shape) == 0
+    return out
+
+
+def _first_pass(img, mask, top, bottom, row0, p):
+    """Per-row numbers of one chunk: non-finite count, trusted count, finite sum, min, max and, for the
+    finders, the sticking-out mean and spread, the roughness and the step to the next line."""
+    vals, finite = _filled(img, {"dtype": p["dtype"], "fill_in": 0.0})
+    x = vals.astype(float)
+    x[~finite if mask is None else (~finite | mask)] = np.nan
+    k = x.shape[0] - top - bottom
+    own = slice(top, top + k)
+    out = np.full((k, 9), np.nan)
+    out[:, 0] = (~finite[own]).sum(axis=1)
+    xo = x[own]
+    trusted = np.isfinite(xo)
+    out[:, 1] = trusted.sum(axis=1)
+    out[:, 2] = np.where(finite[own], vals[own], 0).astype(float).sum(axis=1)
+    has = out[:, 1] > 0
+    if has.any():
+        out[has, 3] = np.nanmin(xo[has], axis=1)
+        out[has, 4] = np.nanmax(xo[has], axis=1)
+    if not p["finders"]:
+        return out
+    n = p["n"]
+    g = row0 + np.arange(k)
+    inner = np.flatnonzero((g >= 1) & (g <= n - 2))
+    if inner.size:
+        a, b = top + inner[0], top + inner[-1] + 1  # local rows with a neighbour on each side in x
+        s, spread = _sticking_out(x[a:b], x[a - 1 : b - 1], x[a + 1 : b + 1])
+        out[inner, 5] = _row_mean(s)
+        out[inner, 6] = spread
+    if x.shape[1] >= 2:
+        out[:, 7] = _row_roughness(xo)
+    nxt = np.flatnonzero(top + np.arange(k) + 1 < x.shape[0])
+    if nxt.size:
+        local = top + nxt
+        out[nxt, 8] = _row_statistic(x[local + 1] - x[local], "median")
+    return out
+
+
+def _spike_pass(img, mask, top, bottom, row0, p):
+    """Per-row count of pixels sticking out by more than the spike height (inner lines; 0 at the image's ends)."""
+    x = _x_chunk(img, mask, row0 - top, 0, {"dtype": p["dtype"], "fill_in": 0.0})
+    k = x.shape[0] - top - bottom
+    out = np.zeros((k, 1))
+    g = row0 + np.arange(k)
+    inner = np.flatnonzero((g >= 1) & (g <= p["n"] - 2))
+    if inner.size:
+        a, b = top + inner[0], top + inner[-1] + 1
+        s, _ = _sticking_out(x[a:b], x[a - 1 : b - 1], x[a + 1 : b + 1])
+        s = s.astype(np.float32)
+        out[inner, 0] = np.sum(s > p["spike_at"][g[inner]].astype(np.float32)[:, None], axis=1)
+    return out
+
+
+def _line_pass(img, mask, top, bottom, row0, p):
+    """Per-row statistic of :func:`_line_offsets` for one chunk (``difference``: the step to the next line)."""
+    x = _masked_float(img, mask)
+    k = x.shape[0] - top - bottom
+    own = x[top : top + k]
+    method = p["method"]
+    if method == "difference":
+        out = np.full((k, 1), np.nan)
+        nxt = np.flatnonzero(top + np.arange(k) + 1 < x.shape[0])
+        if nxt.size:
+            local = top + nxt
+            out[nxt, 0] = _row_statistic(x[local + 1] - x[local], "median")
+        return out
+    if method == "hann":
+        weights = np.hanning(x.shape[1] + 2)[1:-1]
+        num = (np.nan_to_num(own) * weights).sum(axis=1)
+        den = (~np.isnan(own) * weights).sum(axis=1)
+        return np.stack([num, den], axis=1)
+    return _row_statistic(own, method)[:, None]
+
+
+def _row_numbers(x, rows, dtype=float):
+    """Rows ``rows`` of a lazy image, read now (numpy)."""
+    rows = np.asarray(rows, dtype=int)
+    if rows.size == 0:
+        return np.zeros((0, x.shape[1]), dtype)
+    return np.asarray(x[rows].compute())
+
+
+def _floor_of(lo, hi):
+    """:func:`_floor` from per-row minima and maxima (NaN for a row with no finite pixel)."""
+    lo, hi = np.asarray(lo, float), np.asarray(hi, float)
+    finite = np.isfinite(lo) & np.isfinite(hi)
+    if not finite.any():
+        return 1e-300
+    span = float(np.max(hi[finite])) - float(np.min(lo[finite]))
+    return max(span * 64 * np.finfo(np.float64).eps, span * 1e-9, 1e-300)
+
+
+def _overview(x, f, glitch):
+    """Block means (f x f) of the lazy working image, with the trusted count of each block and its glitch rows."""
+    n, m = x.shape
+    if f == 1:
+        values = np.asarray(x.compute())
+        counts = np.isfinite(values).astype(float)
+        return np.where(counts > 0, values, np.nan), counts, glitch.copy()
+    import dask
+
+    x = _full_rows(x, align=f)
+    mo = -(-m // f)
+
+    def means(block, which):
+        rows = -(-block.shape[0] // f)
+        padded = np.full((rows * f, mo * f), np.nan)
+        padded[: block.shape[0], :m] = block
+        cells = padded.reshape(rows, f, mo, f)
+        finite = np.isfinite(cells)
+        if which == "count":
+            return finite.sum(axis=(1, 3)).astype(float)
+        return np.where(finite, cells, 0.0).sum(axis=(1, 3))
+
+    chunks = (tuple(-(-c // f) for c in x.chunks[0]), (mo,))
+    sums, counts = dask.compute(
+        x.map_blocks(means, "sum", chunks=chunks, dtype=float, meta=np.empty((0, 0))),
+        x.map_blocks(means, "count", chunks=chunks, dtype=float, meta=np.empty((0, 0))),
+    )
+    rows = -(-n // f)
+    padded = np.zeros(rows * f, bool)
+    padded[:n] = glitch
+    padded[n:] = True
+    glitch_ov = padded.reshape(rows, f).all(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(counts > 0, sums / np.maximum(counts, 1), np.nan), counts, glitch_ov
+
+
+def _cell_areas(shape, f):
+    """Number of image pixels each overview pixel covers."""
+    n, m = shape
+    rows = np.minimum(f, n - f * np.arange(-(-n // f)))
+    cols = np.minimum(f, m - f * np.arange(-(-m // f)))
+    return np.outer(rows, cols).astype(float)
+
+
+class _Overview:
+    """Terrace labels on the overview grid, read as if on the image grid (strided slices only)."""
+
+    def __init__(self, labels, factor, shape):
+        self.labels, self.factor, self.shape = labels, factor, tuple(shape)
+
+    def __getitem__(self, key):
+        rows = np.arange(self.shape[0])[key[0]] // self.factor
+        cols = np.arange(self.shape[1])[key[1]] // self.factor
+        return self.labels[np.ix_(rows, cols)]
+
+    def max(self):
+        return self.labels.max()
+
+
+def _line_offsets_lazy(image, method, mask, jump_threshold):
+    """Row statistics of :func:`_line_offsets` for a lazy image, chunk by chunk of whole rows."""
+    img = _full_rows(image)
+    msk = _aligned_mask(mask, img)
+    if method == "difference":
+        d = _row_pass(_line_pass, img, msk, {"method": method}, 1, halo=1)[:-1, 0]
+        return d, None
+    stat = _row_pass(_line_pass, img, msk, {"method": method}, 2 if method == "hann" else 1)
+    return None, stat
+
+
+def _level_lazy(image, mask, order, lines, jump_threshold, terraces=False, glitches=False, tip_changes=False):
+    """:func:`_level_with_findings` for a dask image: (levelled dask image, mask (numpy or None), findings).
+
+    With nothing found the mask is that of :func:`_level_image` (None when every pixel is
+    trusted); the findings' terrace labels and edge band are lazy.
+    """
+    import dask.array as da
+
+    dtype = _float_dtype(image.dtype)
+    n, m = image.shape
+    img = _full_rows(image)
+    user = _aligned_mask(mask, img)
+    findings = {"glitch_rows": (), "tips": [], "labels": None, "band": None, "offsets": (0.0,)}
+    want_glitches = glitches is True or glitches == "auto"
+    finders = want_glitches or bool(tip_changes)
+
+    # 1. One read: per-row counts, sums, extremes and what the glitch and tip finders need.
+    stats = _row_pass(_first_pass, img, user, {"dtype": dtype, "n": n, "finders": finders}, 9,
+                      halo=1 if finders else 0)
+    nonfinite_count = float(stats[:, 0].sum())
+    if nonfinite_count >= n * m:
+        raise InputError("image has no finite pixel (every pixel is NaN or inf)")
+    fill_in = float(stats[:, 2].sum() / (n * m - nonfinite_count)) if nonfinite_count else 0.0
+    base = {"dtype": dtype, "fill_in": fill_in}
+    has = stats[:, 1] > 0
+    floor = _floor_of(stats[:, 3], stats[:, 4])
+
+    # 2. Glitched lines, from the per-row numbers and a second read counting spikes.
+    glitch = np.zeros(n, bool)
+    if isinstance(glitches, tuple):
+        glitch[list(glitches)] = True
+    elif want_glitches and n >= 3 and m >= 8:
+        x0 = _map_chunks(_x_chunk, img, user, base, float)
+        ends = np.unique(np.r_[0:min(n, _END_ROWS), max(0, n - _END_ROWS):n])
+        end_rows = dict(zip(ends.tolist(), _row_numbers(x0, ends)))
+        mean, spread = stats[:, 5].copy(), stats[:, 6].copy()
+        (mean[0], d0, top), (mean[-1], d1, bottom) = _glitch_ends(end_rows.__getitem__, n)
+        typical, spike_at = _glitch_thresholds(mean, spread, (top, bottom), floor)
+        count = _row_pass(_spike_pass, img, user, {"dtype": dtype, "n": n, "spike_at": spike_at}, 1, halo=1)[:, 0]
+        count[0] = np.sum(np.asarray(d0, np.float32) > np.float32(spike_at[0]))
+        count[-1] = np.sum(np.asarray(d1, np.float32) > np.float32(spike_at[-1]))
+        glitch = _glitch_verdict(mean, typical, count, m, floor)
+    valid_rows = has & ~glitch
+
+    # 3. Tip changes, from the roughness of the lines and the steps between consecutive trusted ones.
+    tip_offsets = np.zeros(n)
+    if tip_changes:
+        rows = np.flatnonzero(valid_rows)
+        if rows.size >= 2 * _MIN_SEGMENT_ROWS and m >= 8:
+            steps = stats[rows[:-1], 8].copy()
+            gaps = np.flatnonzero(rows[1:] != rows[:-1] + 1)  # trusted lines with glitched ones between them
+            if gaps.size:
+                x0 = _map_chunks(_x_chunk, img, user, base, float)
+                upper = _row_numbers(x0, rows[gaps])
+                lower = _row_numbers(x0, rows[gaps + 1])
+                steps[gaps] = _row_statistic(lower - upper, "median")
+            tip_offsets, findings["tips"] = _tip_changes_from(stats[rows, 7], steps, valid_rows, m,
+                                                               jump_threshold, floor)
+    p1 = {**base, "glitch": glitch if glitch.any() else None, "shift": tip_offsets if findings["tips"] else None}
+
+    # 4. Terraces, on an overview of block means (the image itself when it is small enough).
+    labels = offsets = None
+    fit_order = max(order, 1) if order is not None else 1
+    if terraces:
+        f = _subsample_step((n, m), OVERVIEW_PIXELS)
+        x1 = _map_chunks(_x_chunk, img, user, p1, float)
+        means, counts, glitch_ov = _overview(x1, f, glitch)
+        detect = means.astype(np.float32)
+        _interpolate_rows(detect, ~(counts.sum(axis=1) > 0))
+        others = (counts == 0) & ~glitch_ov[:, None]
+        detect[~np.isfinite(detect)] = 0.0
+        labels, _ = _terrace_labels(detect, others if others.any() else None)
+        del detect
+        if labels is not None:
+            trusted = np.bincount(labels.ravel(), weights=counts.ravel(), minlength=int(labels.max()) + 1)
+            labels, _ = _keep_trusted_terraces(labels, trusted)
+        if labels is not None:
+            poly, offsets = _terrace_fit(x1, None, _Overview(labels, f, (n, m)), fit_order)
+            if terraces == "auto":
+                shifted = tip_offsets if findings["tips"] else 0.0
+                lo, hi = stats[:, 3] - shifted, stats[:, 4] - shifted
+                floor1 = _floor_of(np.where(valid_rows, lo, np.nan), np.where(valid_rows, hi, np.nan))
+                group = _merge_terraces(x1, None, _Overview(labels, f, (n, m)), offsets, poly, fit_order,
+                                        STEP_SIGNIFICANCE, floor=floor1)
+                if group.max() < 1:
+                    labels = None
+                elif np.unique(group).size < offsets.size:
+                    # Terraces at one level become one terrace (numbered by total area).
+                    sizes = np.bincount(labels.ravel(), weights=_cell_areas((n, m), f).ravel(),
+                                        minlength=offsets.size + 1)[1:]
+                    totals = np.bincount(group, weights=sizes)
+                    rank = np.empty(totals.size, np.int32)
+                    rank[np.argsort(-totals, kind="stable")] = np.arange(1, totals.size + 1, dtype=np.int32)
+                    remap = np.concatenate([[0], rank[group]]).astype(np.int32)
+                    labels = remap[labels]
+                    poly, offsets = _terrace_fit(x1, None, _Overview(labels, f, (n, m)), fit_order)
+        if labels is not None and lines is not None:
+            # As in memory: the line offsets of the step-free image, then the terraces again.
+            step_free = _map_chunks(_x_chunk, img, user, {**p1, "terr": (labels, f, offsets)}, float)
+            line_fit = _line_offsets(step_free, lines, None, jump_threshold)
+            tip_offsets = tip_offsets + line_fit
+            x2 = _map_chunks(_x_chunk, img, user, {**p1, "shift": tip_offsets}, float)
+            poly, offsets = _terrace_fit(x2, None, _Overview(labels, f, (n, m)), fit_order)
+        if labels is not None:
+            terr = (labels, f, np.asarray(offsets, dtype=float))
+            grid = da.zeros((n, m), dtype=np.int8, chunks=img.chunks)  # no read: only the chunks' places
+            lazy_labels = _map_chunks(_labels_chunk, grid, None, {"terr": terr}, np.int32)
+            findings.update(labels=lazy_labels, band=lazy_labels == 0, offsets=tuple(float(v) for v in offsets))
+    findings["glitch_rows"] = tuple(int(r) for r in np.flatnonzero(glitch))
+    found = labels is not None or glitch.any() or bool(findings["tips"])
+
+    # 5. Line offsets and the polynomial background of the step-free image, chunk by chunk.
+    p = {**base, "glitch": glitch if glitch.any() else None,
+         "shift": tip_offsets if np.any(tip_offsets) else None,
+         "terr": (labels, f, np.asarray(offsets, dtype=float)) if labels is not None else None}
+    if lines is not None:
+        p["line"] = _line_offsets(_map_chunks(_out_chunk, img, user, {**p, "as_x": True}, float), lines, None,
+                                  jump_threshold)
+    if order is not None:
+        p["coef"] = _fit_coefficients(_map_chunks(_out_chunk, img, user, {**p, "as_x": True}, float), None, order)
+        p["order"], p["shape"] = order, (n, m)
+    if glitch.any():
+        # Glitched lines become the linear interpolation of the nearest trusted lines above and below.
+        good = np.flatnonzero(~glitch)
+        bad = np.flatnonzero(glitch)
+        if good.size:
+            pairs = [(good[good < r][-1] if (good < r).any() else None, good[good > r][0] if (good > r).any() else None)
+                     for r in bad]
+            need = np.unique([v for pair in pairs for v in pair if v is not None])
+            got = dict(zip(need.tolist(), _row_numbers(_map_chunks(_out_chunk, img, user, p, dtype), need)))
+            values = np.empty((bad.size, m), dtype)
+            for k, (r, (a, b)) in enumerate(zip(bad, pairs)):
+                if a is not None and b is not None:
+                    w = (r - a) / (b - a)
+                    values[k] = (1 - w) * got[a] + w * got[b]
+                else:
+                    values[k] = got[a] if a is not None else got[b]
+            p["interp"] = (bad, values)
+    if found or nonfinite_count:
+        trusted = _map_chunks(_out_chunk, img, user, {**p, "as_x": True}, float)
+        total, count = da.compute(da.nansum(trusted), da.isfinite(trusted).sum())
+        p["fill"] = float(total) / float(count) if count else 0.0
+    out = _map_chunks(_out_chunk, img, user, p, dtype)
+    if found or nonfinite_count or mask is not None:
+        full_mask = _gather(_map_chunks(_mask_chunk, img, user, p, bool))
+    else:
+        full_mask = None
+    return out, full_mask, findings
+
+
+def _level_grid_lazy(grid, mask, order, lines, jump_threshold):
+    """Each energy slice of a lazy grid levelled on its own, with one mask for all (as in memory)."""
+    import dask.array as da
+
+    bad = np.asarray((~da.isfinite(grid)).any(axis=0).compute()) if grid.dtype.kind == "f" else None
+    combined = mask
+    if bad is not None and bad.any():
+        combined = bad if mask is None else (np.asarray(mask, bool) | bad)
+    planes = [_level_lazy(plane, combined, order, lines, jump_threshold)[0] for plane in grid]
+    return da.stack(planes), combined
+
+
 def _note(findings):
     parts = []
     offsets = findings["offsets"]
@@ -1255,7 +1851,7 @@ def _note(findings):
         heights = ", ".join(f"{v:+.3f}" for v in offsets)
         parts.append(
             f"{len(offsets)} terraces found; their offsets relative to the largest ({heights} nm) were removed "
-            f"and a band along the step edges ({100 * findings['band'].mean():.1f} % of the pixels) was masked."
+            f"and a band along the step edges ({100 * float(findings['band'].mean()):.1f} % of the pixels) was masked."
         )
     rows = findings["glitch_rows"]
     if rows:
@@ -1312,18 +1908,16 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0, terraces=
         nearest trusted lines above and below, the band by the mean trusted level,
         so that neither throws streaks across a spectrum. When anything was found,
         the scan's ``metadata["level"]`` holds :meth:`LevelResult.to_summary`.
-        A lazy scan stays lazy: its background is fitted on a strided subsample
-        (see :func:`polynomial_background`), read now, its NaN pixels stay NaN (later
-        steps treat them as masked) and its mask is carried unchanged; the finders
-        of terraces, glitches and tip changes run on in-memory 2-D images only
-        ("auto" skips them for lazy scans and grids). The input scan is not modified.
+        A lazy (dask) scan stays lazy and is never held whole: see Notes. The
+        finders of terraces, glitches and tip changes run on 2-D images ("auto"
+        skips them for grids). The input scan is not modified.
 
     Raises
     ------
     InputError
         For an invalid ``order``, ``lines``, ``jump_threshold``, ``terraces``,
-        ``glitches`` or ``tip_changes``, a finder forced on (True) for a lazy scan
-        or a grid, or too few trusted pixels for the fit.
+        ``glitches`` or ``tip_changes``, a finder forced on (True) for a grid, or
+        too few trusted pixels for the fit.
 
     Warns
     -----
@@ -1381,6 +1975,21 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0, terraces=
 
     With nothing found the result is exactly that of the plain levelling.
 
+    A lazy (dask) image is read chunk by chunk of whole rows (chunks that split
+    rows are rechunked; at most :data:`ROW_CHUNK_PIXELS` pixels each), a few times
+    over: once for per-row counts, extremes and the finders' per-row numbers (each
+    chunk with one line of its neighbours), once more to count spikes, once per
+    fit (strided subsamples of at most :data:`FIT_MAX_PIXELS` pixels) and once for
+    the fill level. Glitched lines and tip changes are decided on these per-row
+    numbers exactly as in memory. Terraces are found on an overview of block means
+    of at most :data:`OVERVIEW_PIXELS` pixels, whose labels are read off per chunk;
+    an image no larger than that is its own overview and is levelled as in memory
+    (to float32 precision: only the order of floating-point sums differs). On a
+    larger image the masked step-edge band follows the overview's blocks. The
+    levelled data, the terrace labels and the edge band stay lazy; the mask is
+    computed (a boolean image). Under a dask.distributed client the chunks are
+    read and levelled on the workers.
+
     Examples
     --------
     >>> import numpy as np
@@ -1416,30 +2025,26 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0, terraces=
     terraces = _check_mode(terraces, "terraces")
     tip_changes = _check_mode(tip_changes, "tip_changes")
     glitches = _check_glitches(glitches, scan.shape[-2])
-    if scan.is_lazy or scan.is_grid:
+    if scan.is_grid:
         forced = [name for name, value in (("terraces", terraces), ("glitches", glitches),
                                            ("tip_changes", tip_changes)) if value is True or isinstance(value, tuple)]
         if forced:
-            raise InputError(f"{scan.source}: {forced[0]} can only be found in an in-memory 2-D scan; "
-                             f"this one is {'lazy' if scan.is_lazy else 'a grid'} (use {forced[0]}=False or 'auto')")
+            raise InputError(f"{scan.source}: {forced[0]} can only be found in a 2-D scan; "
+                             f"this one is a grid (use {forced[0]}=False or 'auto')")
     if warn and lines in ("median", "mean", "hann"):
         _warn_slow_axis(lines, stacklevel=2)
     where = scan.source
     findings = None
     try:
-        if not scan.is_grid and not scan.is_lazy:
-            data, mask, findings = _level_with_findings(
+        if not scan.is_grid:
+            find = _level_lazy if scan.is_lazy else _level_with_findings
+            data, mask, findings = find(
                 scan.data, scan.mask, order, lines, jump_threshold,
                 terraces=terraces if (scan.channel == "topography" or terraces is True) else False,
                 glitches=glitches, tip_changes=tip_changes,
             )
-        elif not scan.is_grid:
-            data, mask = _level_image(scan.data, scan.mask, order, lines, jump_threshold)
         elif scan.is_lazy:
-            import dask.array as da
-
-            data = da.stack([_level_image(plane, scan.mask, order, lines, jump_threshold)[0] for plane in scan.data])
-            mask = scan.mask
+            data, mask = _level_grid_lazy(scan.data, scan.mask, order, lines, jump_threshold)
         else:
             # One mask for the whole grid: a pixel bad in any slice is bad in all.
             _, mask = nan_to_mask(scan.data, scan.mask)

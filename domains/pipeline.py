@@ -935,7 +935,10 @@ def analyze_files(topo, *, maps=(), grid=None, pixel_size_nm=None, config=None, 
     out : str or Path
         Bundle folder.
     scheduler : str, optional
-        Address of a dask.distributed scheduler for the chunked steps.
+        Where the dask graphs run: the address of a running dask.distributed
+        scheduler (``tcp://HOST:PORT``), or ``local:N`` to start N worker processes
+        on 127.0.0.1 for this run (closed at its end). With a scheduler every input
+        file is opened lazily, whatever its size, so that the workers read it.
     overwrite : bool
         Replace an existing bundle.
     command_line : sequence of str
@@ -948,8 +951,10 @@ def analyze_files(topo, *, maps=(), grid=None, pixel_size_nm=None, config=None, 
     Path
         The bundle folder.
     """
+    import contextlib
+
     from ._checks import config_for_image, scans_for_analysis
-    from .io import _log_notes, check_output_location, load_scan, output_lock
+    from .io import LAZY_THRESHOLD_BYTES, _log_notes, check_output_location, load_scan, output_lock
 
     # Every check that needs no computation comes first: configuration, output location, inputs.
     if isinstance(config, Config):
@@ -958,23 +963,24 @@ def analyze_files(topo, *, maps=(), grid=None, pixel_size_nm=None, config=None, 
         cfg, where = load_config(config), str(config)
     else:
         cfg, where = Config(), "configuration"
+    if scheduler is not None:
+        from ._cluster import parse_scheduler
+
+        parse_scheduler(scheduler)  # a bad value fails before any file is read
     out = check_output_location(out, overwrite=overwrite)
-    topography = load_scan(topo, pixel_size_nm=pixel_size_nm)
-    map_scans = [load_scan(m, pixel_size_nm=pixel_size_nm, channel="conductance") for m in maps]
-    grid_scan = load_scan(grid, pixel_size_nm=pixel_size_nm, channel="conductance") if grid else None
+    # With a scheduler the files are opened lazily whatever their size: the workers read them.
+    lazy = {"lazy_threshold_bytes": 0 if scheduler is not None else LAZY_THRESHOLD_BYTES}
+    topography = load_scan(topo, pixel_size_nm=pixel_size_nm, **lazy)
+    map_scans = [load_scan(m, pixel_size_nm=pixel_size_nm, channel="conductance", **lazy) for m in maps]
+    grid_scan = load_scan(grid, pixel_size_nm=pixel_size_nm, channel="conductance", **lazy) if grid else None
     scans_for_analysis(topography, map_scans, grid_scan)
     config_for_image(cfg, topography.shape, topography.pixel_size_nm, where)
-    client = None
-    if scheduler:
-        try:
-            from dask.distributed import Client
-        except ImportError:
-            raise InputError("--scheduler needs dask.distributed (pip install 'dask[distributed]')") from None
-        try:
-            client = Client(scheduler, timeout="10s")
-        except (OSError, ValueError, TypeError) as err:
-            raise InputError(f"--scheduler {scheduler}: cannot connect ({' '.join(str(err).split())})") from None
-    try:
+    with contextlib.ExitStack() as stack:
+        if scheduler is not None:
+            from ._cluster import scheduler_client
+
+            # The client is the default scheduler of every dask computation until the run ends.
+            stack.enter_context(scheduler_client(scheduler))
         # The lock on --out is held from here to the end: a second run on the same folder fails at once.
         with output_lock(out) as stale:
             _log_notes(stale)
@@ -989,9 +995,6 @@ def analyze_files(topo, *, maps=(), grid=None, pixel_size_nm=None, config=None, 
                 raise InputError(message) from err
             inputs = [topo, *maps] + ([grid] if grid else [])
             return write_analysis(result, out, command_line=list(command_line), inputs=inputs, overwrite=overwrite)
-    finally:
-        if client is not None:
-            client.close()
 
 
 def make_scene(kind, *, seed=7):

@@ -245,3 +245,29 @@ def test_usage_errors_are_one_line(capsys):
     assert main(["analyze", "topo.npy", "--pixel-size", "abc"]) == 2
     lines = capsys.readouterr().err.strip().splitlines()
     assert len(lines) == 1 and "--pixel-size" in lines[0]  # one line naming the option (common practice)
+
+
+@pytest.mark.parametrize("value, says", [
+    ("local:0", "local:N with N a whole number of workers"),
+    ("local:two", "local:N with N a whole number of workers"),
+    ("http://127.0.0.1:8787/status", "is a web address"),
+    ("tcp://", "expected an address such as tcp://HOST:PORT"),
+    ("host:99999", "port 99999 is out of range"),
+    ("", "expected an address"),
+])
+def test_a_bad_scheduler_value_is_one_line_exit_2(value, says, tmp_path, capsys):
+    assert main(["analyze", str(tmp_path / "topo.npy"), "--scheduler", value, "--out", str(tmp_path / "out")]) == 2
+    lines = capsys.readouterr().err.strip().splitlines()
+    # docs/README.md contract: one line naming the option and what is wrong, before any file is read
+    assert len(lines) == 1 and "--scheduler" in lines[0] and says in lines[0]
+    assert not (tmp_path / "out").exists()
+
+
+def test_import_and_help_do_not_load_dask_distributed():
+    code = ("import sys, contextlib, io\n"
+            "import domains, domains.cli\n"
+            "with contextlib.redirect_stdout(io.StringIO()):\n"
+            "    assert domains.cli.main(['analyze', '--help']) == 0\n"
+            "print(sorted(m for m in sys.modules if m == 'distributed' or m.startswith('distributed.')))")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert done.stdout.strip() == "[]"  # the brief: dask.distributed is imported only when --scheduler is used

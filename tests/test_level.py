@@ -280,7 +280,7 @@ def test_level_lazy_matches_in_memory():
 
 def test_level_lazy_subsampled_fit(monkeypatch):
     monkeypatch.setattr(level_module, "FIT_MAX_PIXELS", 200)  # forces a strided subsample
-    monkeypatch.setattr(level_module, "LINES_MAX_PIXELS", 500)
+    monkeypatch.setattr(level_module, "ROW_CHUNK_PIXELS", 500)  # splits the row chunks further
     for lines in ("median", "mean", "difference"):
         # "difference" removes sparse jumps only (documented), so it gets a sparse pattern
         offsets = _offsets() if lines != "difference" else np.where(np.arange(48) >= 20, 0.9, 0.0)
@@ -295,13 +295,18 @@ def test_level_lazy_subsampled_fit(monkeypatch):
     assert_allclose(flat.data.compute(), 0.0, rtol=0, atol=1e-12)
 
 
-def test_level_lazy_nan_stays_nan():
+def test_level_lazy_nan_joins_the_mask():
     image = PLANE.copy()
     image[2, 2] = np.nan
     flat = level(Scan(da.from_array(image, chunks=16), pixel_size_nm=0.1))
+    assert flat.is_lazy
     result = flat.data.compute()
-    assert np.isnan(result[2, 2])  # documented: lazy data keeps NaN, later steps treat it as masked
-    assert_allclose(np.nan_to_num(result, nan=0.0), 0.0, rtol=0, atol=1e-12)
+    # documented (as in memory): a NaN pixel joins the mask and takes the mean trusted level, here the
+    # plane's residual 0 (derived: an exact plane)
+    assert_allclose(result, 0.0, rtol=0, atol=1e-12)
+    expected = np.zeros(PLANE.shape, bool)
+    expected[2, 2] = True
+    assert_array_equal(flat.mask, expected)
 
 
 def test_level_lazy_grid():
@@ -309,6 +314,21 @@ def test_level_lazy_grid():
     flat = level(Scan(da.from_array(grid, chunks=(1, 16, 32)), pixel_size_nm=0.1, energies_V=[0, 1]), order=2)
     assert flat.is_lazy
     assert_allclose(flat.data.compute(), 0.0, rtol=0, atol=1e-12)  # derived: exact quadrics
+
+
+def test_level_lazy_grid_matches_in_memory():
+    rng = np.random.default_rng(4)
+    grid = np.stack([PLANE, 2 * PLANE + 1, QUADRIC]) + _offsets()[None, :, None] + rng.normal(0, 0.05, (3, 48, 64))
+    grid[1, 3, 3] = np.nan
+    grid[2, 40, 7] = np.inf
+    kwargs = dict(pixel_size_nm=0.1, energies_V=[-0.1, 0.0, 0.1])
+    eager = level(Scan(grid, **kwargs), order=2, lines="median", warn=False)
+    lazy = level(Scan(da.from_array(grid, chunks=(2, (5, 30, 13), (40, 24))), **kwargs), order=2, lines="median",
+                 warn=False)
+    assert lazy.is_lazy
+    # derived: the same statistics of the same rows; float64 sums taken in another order differ by rounding
+    assert_allclose(lazy.data.compute(), eager.data, rtol=0, atol=1e-12)
+    assert_array_equal(lazy.mask, eager.mask)  # one mask for all slices: a pixel bad in any slice
 
 
 def test_level_errors():
@@ -566,10 +586,11 @@ def test_defect_finders_errors():
         level(scan, tip_changes=1)
     with pytest.raises(InputError, match="glitches must be"):
         level(scan, glitches=[48])
-    with pytest.raises(InputError, match="in-memory 2-D"):
-        level(Scan(da.from_array(PLANE, chunks=16), pixel_size_nm=0.1), terraces=True)
-    lazy = level(Scan(da.from_array(PLANE, chunks=16), pixel_size_nm=0.1), return_result=True)
-    assert lazy.scan.is_lazy and not lazy.found_anything  # documented: "auto" skips lazy scans
+    grid = Scan(np.stack([PLANE, PLANE]), pixel_size_nm=0.1, energies_V=[0, 1], source="grid.npy")
+    with pytest.raises(InputError, match="grid.npy: terraces can only be found in a 2-D scan"):
+        level(grid, terraces=True)
+    lazy = level(Scan(da.from_array(PLANE, chunks=16), pixel_size_nm=0.1), terraces=True, return_result=True)
+    assert lazy.scan.is_lazy and not lazy.found_anything  # derived: a plane has no step
 
 
 def test_terraces_through_masked_and_missing_pixels():
@@ -637,3 +658,143 @@ def test_an_island_joins_the_terrace_at_its_level():
     assert labels[128, 110] == labels[128, 230] != labels[20, 20]  # derived: same level, same label
     forced = level(Scan(image, pixel_size_nm=PIXEL_NM), terraces=True, return_result=True)
     assert forced.terrace_count == 3  # derived: True keeps every enclosed region apart
+
+
+# --------------------------------------------------------------------------- lazy (dask) levelling
+#
+# A dask image is levelled chunk by chunk: per-row statistics, strided fits, an overview for the
+# terraces. Up to OVERVIEW_PIXELS the overview is the image itself, so every finding must be the
+# in-memory one and every pixel equal to float32 precision. The chunks are irregular and split the
+# rows across column chunks (the levelling rechunks to whole rows), so chunk borders cut through
+# glitched lines, tip changes and step edges.
+
+IRREGULAR = ((7, 33, 1, 60, 99, 56), (100, 3, 153))
+
+
+def _assert_lazy_equals_eager(image, mask=None, chunks=IRREGULAR, dtype=None, **kwargs):
+    image = image.astype(dtype) if dtype is not None else image
+    eager = level(Scan(image, pixel_size_nm=PIXEL_NM, mask=mask), return_result=True, **kwargs)
+    lazy = level(Scan(da.from_array(image, chunks=chunks), pixel_size_nm=PIXEL_NM, mask=mask), return_result=True,
+                 **kwargs)
+    assert lazy.scan.is_lazy
+    data = lazy.scan.data.compute()
+    assert data.dtype == eager.scan.data.dtype  # float in, float out (common practice, no source)
+    # derived: float32 precision of the levelled values (the fits sum in another order, in float64)
+    tol = 4 * np.finfo(np.float32).eps * float(np.nanmax(np.abs(image[np.isfinite(image)])))
+    assert_allclose(data, eager.scan.data, rtol=0, atol=tol)
+    # derived: the same per-row statistics decide the same rows, terraces and masks
+    assert lazy.glitch_rows == eager.glitch_rows
+    assert lazy.tip_change_rows == eager.tip_change_rows
+    assert lazy.terrace_count == eager.terrace_count
+    assert_allclose(lazy.terrace_offsets_nm, eager.terrace_offsets_nm, rtol=0, atol=tol)
+    assert_allclose(lazy.tip_change_offsets_nm, eager.tip_change_offsets_nm, rtol=0, atol=tol)
+    assert_allclose(lazy.tip_change_contrast, eager.tip_change_contrast, rtol=1e-9, atol=0)
+    if eager.scan.mask is None:
+        assert lazy.scan.mask is None
+    else:
+        assert_array_equal(lazy.scan.mask, eager.scan.mask)
+    if eager.terrace_labels is None:
+        assert lazy.terrace_labels is None
+    else:
+        assert_array_equal(lazy.terrace_labels.compute(), eager.terrace_labels)
+        assert_array_equal(lazy.edge_mask.compute(), eager.edge_mask)
+    assert lazy.note == eager.note
+    return eager, lazy
+
+
+@pytest.mark.parametrize("dtype", [None, np.float32])
+def test_lazy_glitched_lines_as_in_memory(dtype):
+    image, _ = _glitched(2)
+    eager, _ = _assert_lazy_equals_eager(image, dtype=dtype)
+    assert eager.glitch_rows == GLITCH_ROWS  # the scene is a real test (derived: lines built glitched)
+
+
+def test_lazy_terraces_and_glitches_as_in_memory():
+    image, _ = _glitched(4)
+    height, _, _ = _staircase()
+    eager, _ = _assert_lazy_equals_eager(image + height)
+    assert eager.terrace_count == 3 and eager.glitch_rows == GLITCH_ROWS  # derived: as built
+
+
+def test_lazy_terraces_through_masked_and_missing_pixels_as_in_memory():
+    truth, _ = _clean(8)
+    height, _, _ = _staircase()
+    image = truth + height + TILT
+    image[:, 200] = np.nan
+    image[50:60, 100:180] = np.nan
+    image[3, 17] = np.inf
+    user = np.zeros(image.shape, bool)
+    user[150:190, 20:120] = True
+    image[user] = 5.0
+    eager, _ = _assert_lazy_equals_eager(image, mask=user)
+    assert eager.terrace_count == 3  # derived: as in test_terraces_through_masked_and_missing_pixels
+
+
+@pytest.mark.parametrize("lines", ["hann", "difference"])
+def test_lazy_tip_change_as_in_memory(lines):
+    image, _ = _tip_changed(6, glitch=True)
+    eager, _ = _assert_lazy_equals_eager(image, lines=lines, warn=False)
+    assert len(eager.tip_change_rows) == 1 and eager.glitch_rows == (TIP_ROW - 1,)  # derived: as built
+
+
+@pytest.mark.parametrize("lines", ["median", "mean"])
+def test_lazy_terraces_under_line_noise_as_in_memory(lines):
+    rng = np.random.default_rng(10)
+    height, _, _ = _staircase()
+    noise_lines = 0.2 * np.sin(3 * np.pi * np.arange(N_REAL) / N_REAL) + np.cumsum(rng.normal(0.0, 0.01, N_REAL))
+    image = _lattice() + rng.normal(0.0, NOISE_NM, (N_REAL, N_REAL)) + height + noise_lines[:, None]
+    eager, _ = _assert_lazy_equals_eager(image, lines=lines, warn=False)
+    assert eager.terrace_count == 3  # derived: two edges across the frame
+
+
+def test_lazy_nothing_found_as_in_memory():
+    truth, _ = _clean(12)
+    eager, lazy = _assert_lazy_equals_eager(truth + TILT + _offsets(N_REAL)[:, None] * 0.1, lines="difference",
+                                            order=2)
+    assert not eager.found_anything and lazy.scan.mask is None  # derived: a clean scene
+
+
+def test_lazy_terraces_on_an_overview(monkeypatch):
+    # An image larger than the overview: the terraces are found on 4 x 4 block means.
+    monkeypatch.setattr(level_module, "OVERVIEW_PIXELS", N_REAL * N_REAL // 16)
+    truth, _ = _clean(0)
+    height, levels, distance = _staircase()
+    result = level(Scan(da.from_array(truth + height + TILT, chunks=IRREGULAR), pixel_size_nm=PIXEL_NM),
+                   return_result=True)
+    assert result.terrace_count == 3  # derived: two edges crossing the frame make three terraces
+    reference = np.argmax(np.bincount(levels.ravel()))
+    # derived: as in test_terraces_found_with_their_heights_and_edges (a wider band only drops pixels near edges)
+    assert_allclose(sorted(result.terrace_offsets_nm), sorted(STEP_NM * (k - reference) for k in range(3)),
+                    rtol=0, atol=0.012)
+    edges = result.edge_mask.compute()
+    assert edges[distance < 1.0].all()  # derived: the band covers every pixel where the step is under way
+    labels = result.terrace_labels.compute()
+    for k in range(3):
+        inside = labels[(levels == k) & (distance > 40)]  # derived: 9 px of support per overview pixel of 4 px
+        assert np.unique(inside).size == 1 and inside[0] > 0
+
+
+def test_lazy_levelling_never_holds_the_image(monkeypatch):
+    # With every budget below the image size, no task of the levelling returns a float array
+    # as large as the image: statistics are per row, fits strided, terraces on an overview.
+    from dask.callbacks import Callback
+
+    monkeypatch.setattr(level_module, "OVERVIEW_PIXELS", N_REAL * N_REAL // 16)
+    monkeypatch.setattr(level_module, "FIT_MAX_PIXELS", N_REAL * N_REAL // 16)
+    for budget in ("_TERRACE_FIT_PIXELS", "_MERGE_SAMPLE_PIXELS", "ROW_CHUNK_PIXELS"):
+        monkeypatch.setattr(level_module, budget, N_REAL * N_REAL // 16)
+    image, _ = _glitched(4)
+    height, _, _ = _staircase()
+    largest = []
+
+    class Largest(Callback):
+        def _posttask(self, key, result, dsk, state, worker_id):
+            if isinstance(result, np.ndarray) and result.dtype.kind == "f":
+                largest.append(result.size)
+
+    # inline_array: the source array is no task of its own (a file read would be chunk by chunk)
+    source = da.from_array(image + height, chunks=IRREGULAR, inline_array=True)
+    with Largest():
+        result = level(Scan(source, pixel_size_nm=PIXEL_NM), return_result=True)
+    assert result.terrace_count == 3 and result.glitch_rows == GLITCH_ROWS  # derived: as built
+    assert largest and max(largest) < image.size // 4  # the brief: never the full array
