@@ -322,8 +322,11 @@ def domain_label_positions(labels, *, pixel_size_nm=1.0) -> dict[int, tuple[floa
         ri, ci = int(round(r)), int(round(c))
         if not (0 <= ri < labels.shape[0] and 0 <= ci < labels.shape[1] and labels[ri, ci] == label):
             if inside is None:
-                # Distance to the nearest pixel of another label: its maximum is the most interior pixel.
+                # Distance to the nearest pixel of another label or to the frame: its maximum is the most
+                # interior pixel (a text on the frame's edge would be cut).
                 border = np.zeros(labels.shape, bool)
+                border[[0, -1], :] = True
+                border[:, [0, -1]] = True
                 border[:, :-1] |= labels[:, :-1] != labels[:, 1:]
                 border[:, 1:] |= labels[:, :-1] != labels[:, 1:]
                 border[:-1, :] |= labels[:-1, :] != labels[1:, :]
@@ -335,7 +338,7 @@ def domain_label_positions(labels, *, pixel_size_nm=1.0) -> dict[int, tuple[floa
 
 
 def domain_figure(topography, labels, walls, *, pixel_size_nm, defects=(), title="Domains over the topograph",
-                  states=None, colours=None, as_figure=False):
+                  states=None, colours=None, ids=None, id_labels=None, legend_title="domain", as_figure=False):
     """Domains in colour over the grey topograph with their ids, walls in black, defects as markers.
 
     Each domain's id (the ``domain`` column of ``domains.csv``, equal to its
@@ -362,6 +365,14 @@ def domain_figure(topography, labels, walls, *, pixel_size_nm, defects=(), title
         ``domain id -> state name`` (the ``state`` column of ``domains.csv``), shown in the legend.
     colours : dict, optional
         ``label -> hex colour``; default :func:`domains._palette.label_colours` of ``labels``.
+    ids : dict, optional
+        ``label -> text`` written instead of the label's number.
+    id_labels : (row, col) int array, optional
+        Where the texts go: one per label of this image (default ``labels``). A map of
+        electronic types writes each domain's type at each domain with the domain
+        labels here and ``ids = {domain: "3: A"}``.
+    legend_title : str
+        Title of the legend of colours.
     as_figure : bool
         Return the matplotlib Figure instead of PNG bytes (the caller closes it).
 
@@ -407,11 +418,17 @@ def domain_figure(topography, labels, walls, *, pixel_size_nm, defects=(), title
     shown = ndimage.binary_dilation(thin, iterations=max(1, min(thin.shape) // 400))
     ax.imshow(np.ma.masked_where(~shown, np.ones(shown.shape)), cmap=ListedColormap([WALL_COLOUR]),
               vmin=0, vmax=1, extent=_extent(shown.shape, pixel_size_nm, factor), interpolation="nearest")
-    big = max(6.0, min(11.0, 140.0 / max(1.0, math.sqrt(len(colours)))))
-    for label, (x, y) in domain_label_positions(labels, pixel_size_nm=pixel_size_nm).items():
-        ax.text(x, y, str(label), ha="center", va="center", fontsize=big, fontweight="bold", color="black",
-                bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": colours.get(label, WALL_COLOUR), "lw": 1.5, "alpha": 0.85},
-                gid=f"domain-id-{label}")
+    where = labels if id_labels is None else np.asarray(id_labels)
+    positions = domain_label_positions(where, pixel_size_nm=pixel_size_nm)
+    big = max(6.0, min(11.0, 140.0 / max(1.0, math.sqrt(len(positions)))))
+    dy, dx = pixel_size_pair(pixel_size_nm)
+    for label, (x, y) in positions.items():
+        # The box's edge has the colour drawn under the text.
+        under = int(labels[min(int(round(y / dy)), labels.shape[0] - 1), min(int(round(x / dx)), labels.shape[1] - 1)])
+        ax.text(x, y, (ids or {}).get(label, str(label)), ha="center", va="center", fontsize=big, fontweight="bold",
+                color="black", gid=f"domain-id-{label}",
+                bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": colours.get(under, WALL_COLOUR), "lw": 1.5,
+                      "alpha": 0.85})
     handles = []
     if 0 < len(colours) <= 24:
         for label, colour in colours.items():
@@ -428,7 +445,7 @@ def domain_figure(topography, labels, walls, *, pixel_size_nm, defects=(), title
                                   color=DEFECT_COLOURS[sign], label=f"{DEFECT_LABELS[sign]} ({len(mine)})"))
     if handles:
         ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=7,
-                  title="domain" if colours else None, title_fontsize=8, frameon=False)
+                  title=legend_title if colours else None, title_fontsize=8, frameon=False)
     ax.set_xlim(extent[0], extent[1])
     ax.set_ylim(extent[2], extent[3])
     ax.set_xlabel("x (nm)")
@@ -582,6 +599,190 @@ def curves_figure(curves, *, xlabel, ylabel, title, lines=True, reference=(), un
     if note_if_same and len(curves) > 1 and not differs_within_errors(curves):
         ax.text(0.5, 0.02, "all curves agree within 2 standard errors", transform=ax.transAxes, ha="center",
                 va="bottom", fontsize=8, color="#8a4b00", gid="same-within-errors")
+    return fig if as_figure else _png(fig)
+
+
+def _signed(value, digits):
+    return f"{value:.{digits}f}".replace("-", "\u2212")
+
+
+def _pm_text(value, se):
+    """'0.80 ± 0.10': the error to one or two significant digits, the value to the same decimals."""
+    if not (math.isfinite(se) and se > 0):
+        return _signed(value, 3)
+    exp = math.floor(math.log10(se))
+    digits = max(0, -exp + (1 if se / 10**exp < 3 else 0))
+    return f"{_signed(value, digits)} ± {se:.{digits}f}"
+
+
+def _bias_text(bias_V):
+    return f"{bias_V:+.2f} V".replace("-", "\u2212")
+
+
+def domain_contrast_tests(contrast, *, alpha=0.01, gain_tolerance=0.0):
+    """Which domains differ from the frame in conductance, bias by bias, with a Šidák-corrected threshold.
+
+    Parameters
+    ----------
+    contrast : domains.compare.ElectronicContrast
+        Per-domain contrasts (``conductance.contrast`` and ``contrast_se``, shape
+        (n_biases, n_domains)), ``domains``, ``biases_V``, ``units``.
+    alpha : float
+        Family-wise significance level over all domains and biases.
+    gain_tolerance : float
+        Relative allowance for a change of the tip's gain, added in quadrature to
+        each error as ``gain_tolerance * |contrast|`` (as in
+        :func:`domains.compare.electronic_types`).
+
+    Returns
+    -------
+    dict
+        ``z_threshold`` (two-sided Šidák threshold for n = domains x biases tests:
+        Phi^-1(1 - a/2), a = 1 - (1 - alpha)^(1/n)), ``n_tests`` and ``differ``: a
+        list of dicts (``domain``, ``bias_V``, ``value``, ``se``, ``z``), one per
+        significant contrast.
+
+    References
+    ----------
+    Z. Šidák, "Rectangular confidence regions for the means of multivariate normal
+    distributions", J. Am. Stat. Assoc. 62, 626 (1967). doi:10.1080/01621459.1967.10482935
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace as NS
+    >>> c = NS(domains=(1, 2), biases_V=(-0.3, 0.3), units="nS", conductance=NS(
+    ...     contrast=np.array([[0.5, -0.5], [0.01, -0.01]]), contrast_se=np.full((2, 2), 0.05)))
+    >>> found = domain_contrast_tests(c, alpha=0.01)
+    >>> round(found["z_threshold"], 2), [(d["domain"], d["bias_V"]) for d in found["differ"]]
+    (3.02, [(1, -0.3), (2, -0.3)])
+    """
+    from scipy import stats
+
+    value = np.asarray(contrast.conductance.contrast, float)
+    se = np.asarray(contrast.conductance.contrast_se, float)
+    total = np.hypot(se, gain_tolerance * np.abs(value))
+    n = int(np.sum(np.isfinite(value) & np.isfinite(total) & (total > 0)))
+    a = 1 - (1 - alpha) ** (1 / max(n, 1))
+    z_star = float(stats.norm.isf(a / 2))
+    differ = []
+    for i, d in enumerate(contrast.domains):
+        for k, b in enumerate(contrast.biases_V):
+            if np.isfinite(value[k, i]) and np.isfinite(total[k, i]) and total[k, i] > 0:
+                z = value[k, i] / total[k, i]
+                if abs(z) > z_star:
+                    differ.append({"domain": int(d), "bias_V": float(b), "value": float(value[k, i]),
+                                   "se": float(se[k, i]), "z": float(z)})
+    return {"z_threshold": z_star, "n_tests": n, "differ": differ}
+
+
+def conductance_caption(contrast, types=None, *, alpha=None, gain_tolerance=None):
+    """The conductance figure's caption: what is plotted, which domains differ from the frame, and the types.
+
+    Parameters
+    ----------
+    contrast : domains.compare.ElectronicContrast
+    types : domains.compare.ElectronicTypes, optional
+        Its sentences close the caption; its ``alpha`` and ``gain_tolerance`` are
+        used for the per-domain tests unless given.
+    alpha, gain_tolerance : float, optional
+        As :func:`domain_contrast_tests` (default 0.01 and 0 without types).
+
+    Returns
+    -------
+    str
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace as NS
+    >>> c = NS(domains=(1, 2), biases_V=(-0.3, 0.3), units="nS", conductance=NS(
+    ...     contrast=np.array([[0.5, -0.5], [0.01, -0.01]]), contrast_se=np.full((2, 2), 0.05)))
+    >>> print(conductance_caption(c).split(". ")[1])
+    Differing from the frame (|z| > 3.02, Šidák-corrected over 4 tests at α = 0.01): domain 1 brighter at −0.30 V by 0.50 ± 0.05 nS; domain 2 darker at −0.30 V by 0.50 ± 0.05 nS.
+    """
+    alpha = alpha if alpha is not None else getattr(types, "alpha", 0.01)
+    gain_tolerance = gain_tolerance if gain_tolerance is not None else getattr(types, "gain_tolerance", 0.0)
+    tests = domain_contrast_tests(contrast, alpha=alpha, gain_tolerance=gain_tolerance)
+    unit = contrast.units
+    words = [f"Conductance contrast of each domain to the frame at each bias ({unit}), free of scan-line "
+             "offsets, with 1σ standard errors; 0 is the frame's area-weighted mean."]
+    rule = (f"|z| > {tests['z_threshold']:.2f}, Šidák-corrected over {tests['n_tests']} tests at α = {alpha:g}"
+            + (f", tip-gain allowance {gain_tolerance:.0%}" if gain_tolerance else ""))
+    if tests["differ"]:
+        parts = [f"domain {t['domain']} {'brighter' if t['value'] > 0 else 'darker'} at {_bias_text(t['bias_V'])} "
+                 f"by {_pm_text(abs(t['value']), t['se'])} {unit}" for t in tests["differ"]]
+        words.append(f"Differing from the frame ({rule}): " + "; ".join(parts) + ".")
+        same = sorted(set(int(d) for d in contrast.domains) - {t["domain"] for t in tests["differ"]})
+        if same:
+            words.append(f"Domain{'s' if len(same) > 1 else ''} {', '.join(map(str, same))} "
+                         "agree with the frame at every bias.")
+    else:
+        words.append(f"No domain differs from the frame at any bias ({rule}): the domains are equal within "
+                     "their errors.")
+    if types is not None:
+        words += list(types.sentences())
+    return " ".join(words)
+
+
+def conductance_figure(contrast, *, colours=None, types=None, as_figure=False):
+    """Each domain's conductance contrast to the frame against bias, with error bars, in the maps' units.
+
+    The contrasts are the scan-line-offset-free ones of
+    :func:`domains.compare.domain_electronic_contrast` (``conductance.contrast``, 1σ
+    ``contrast_se``); a dotted line marks the frame (0). Domains are spread a little
+    along the bias axis so their error bars do not hide each other.
+
+    Parameters
+    ----------
+    contrast : domains.compare.ElectronicContrast
+        ``units`` (the sidecar's, after normalisation) label the axis.
+    colours : dict, optional
+        ``domain -> hex colour``; the pipeline gives each domain its type's colour in
+        the type map (domains of one type share a colour; each domain has its own marker).
+    types : domains.compare.ElectronicTypes, optional
+        Each legend entry names the domain's type; its ``alpha`` and
+        ``gain_tolerance`` decide the note "no domain differs" (:func:`domain_contrast_tests`).
+    as_figure : bool
+        Return the matplotlib Figure instead of PNG bytes.
+
+    Returns
+    -------
+    bytes or matplotlib.figure.Figure
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace as NS
+    >>> c = NS(domains=(1, 2), biases_V=(-0.3, 0.3), units="nS", conductance=NS(
+    ...     contrast=np.array([[0.5, -0.5], [0.01, -0.01]]), contrast_se=np.full((2, 2), 0.05)))
+    >>> conductance_figure(c)[:4] == b"\\x89PNG"
+    True
+    """
+    plt = _pyplot()
+    value = np.asarray(contrast.conductance.contrast, float)
+    se = np.asarray(contrast.conductance.contrast_se, float)
+    biases = np.asarray(contrast.biases_V, float)
+    kind = types.type_of() if types is not None else {}
+    n = len(contrast.domains)
+    gaps = np.diff(np.sort(biases))
+    spread = 0.25 * (gaps.min() if gaps.size else 0.1)
+    fig, ax = plt.subplots(figsize=(5.8, 3.9))
+    ax.axhline(0.0, color="0.55", lw=0.8, ls=":")
+    markers = "os^vDPX*h<>p"
+    for i, d in enumerate(contrast.domains):
+        shift = spread * ((i - (n - 1) / 2) / max(n - 1, 1)) if n > 1 else 0.0
+        label = f"domain {int(d)}" + (f" (type {kind[d]})" if d in kind else "")
+        ax.errorbar(biases + shift, value[:, i], yerr=se[:, i], fmt=markers[i % len(markers)], ms=4.5,
+                    capsize=2.5, lw=1.2, color=(colours or {}).get(int(d)), label=label)
+    tests = domain_contrast_tests(contrast, alpha=getattr(types, "alpha", 0.01),
+                                  gain_tolerance=getattr(types, "gain_tolerance", 0.0))
+    if not tests["differ"]:
+        ax.text(0.5, 0.02, "no domain differs from the frame beyond its errors", transform=ax.transAxes,
+                ha="center", va="bottom", fontsize=8, color="#8a4b00", gid="no-difference")
+    ax.set_xticks(biases)
+    ax.set_xticklabels([f"{b:+.2f}" for b in biases])
+    ax.set_xlabel("bias (V)")
+    ax.set_ylabel(f"contrast to the frame ({contrast.units})")
+    ax.set_title("Per-domain conductance contrast")
+    ax.legend(fontsize=7, ncol=2 if n > 6 else 1, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     return fig if as_figure else _png(fig)
 
 

@@ -252,3 +252,37 @@ def test_split_column_names_keep_the_unit_last():
     assert split[0]["q2_y_rad_per_nm"] == -4.0 and split[0]["member_3"] == 6  # derived: the rows above
     assert split[1]["member_1"] == 2 and split[1]["member_2"] is None  # derived: one member, then empty cells
     assert all(split[1][c] is None for c in columns[4:])  # derived: no wavevector, no shift in row 2
+
+
+def test_conductance_figure_units_error_bars_and_caption_name_the_domains_that_differ():
+    import matplotlib.pyplot as plt
+    from matplotlib.container import ErrorbarContainer
+
+    from domains import compare
+
+    # Two equal halves; at -0.30 V domain 1 is 0.2 pA/V brighter than domain 2, at +0.30 V they are equal.
+    labels = np.ones((128, 128), np.int32)
+    labels[:, 64:] = 2
+    rng = np.random.default_rng(5)
+    maps = {-0.3: 1.0 + 0.2 * (labels == 1) + rng.normal(0, 0.02, labels.shape),
+            0.3: 1.5 + rng.normal(0, 0.02, labels.shape)}
+    contrast = compare.domain_electronic_contrast(maps, labels, pixel_size_nm=0.1, sigma_nm=0.4, units="pA/V",
+                                                  normalisation="none")
+    caption = report.conductance_caption(contrast)
+    # derived: equal areas, so the contrasts to the frame are +0.1 and -0.1 pA/V at -0.30 V, 0 at +0.30 V
+    assert "domain 1 brighter at −0.30 V by 0.1" in caption
+    assert "domain 2 darker at −0.30 V by 0.1" in caption
+    assert "+0.30 V" not in caption  # derived: the map at +0.30 V is the same in both domains
+    fig = report.conductance_figure(contrast, as_figure=True)
+    try:
+        ax = fig.axes[0]
+        assert ax.get_ylabel() == "contrast to the frame (pA/V)"  # derived: the maps' units given
+        bars = [c for c in ax.containers if isinstance(c, ErrorbarContainer)]
+        assert len(bars) == 2 and all(c.has_yerr for c in bars)  # derived: one series with error bars per domain
+        assert not any(t.get_gid() == "no-difference" for t in ax.texts)  # derived: the domains differ
+    finally:
+        plt.close(fig)
+    same = compare.domain_electronic_contrast({-0.3: 1.0 + rng.normal(0, 0.02, labels.shape)}, labels,
+                                              pixel_size_nm=0.1, sigma_nm=0.4, units="nS", normalisation="none")
+    # synthetic truth: no contrast; at alpha = 0.01 over 2 tests a false call has probability <= 0.01
+    assert "No domain differs from the frame" in report.conductance_caption(same)
