@@ -1165,26 +1165,27 @@ def _electronic_types_step(summary, tables, figures, map_scans, corrected_maps, 
                                             pixel_size_nm=pixel, id_labels=labels, ids=ids, legend_title="electronic type",
                                             title=f"{types.n_types} electronic type{'s' if types.n_types > 1 else ''}",
                                             states={i + 1: f"type {n}" for i, n in enumerate(types.names)})
-    curves = []
-    biases = [b for q_, b in types.features if q_ == "conductance"]
-    cols = [f for f, (q_, _) in enumerate(types.features) if q_ == "conductance"]
-    for i, name in enumerate(types.names):
-        curves.append((f"type {name}", biases, [float(types.value[i, f]) for f in cols],
-                       [float(types.se[i, f]) for f in cols]))
-    unit = ec.to_summary().get("units", units) if hasattr(ec, "to_summary") else units
-    figures["type_contrast"] = report.curves_figure(curves, xlabel="bias (V)", ylabel="contrast to the frame",
-                                                    units=unit, title="Conductance contrast of each electronic type")
     from ._palette import label_colours
 
-    # Each domain in its type's colour of the type map (the figure and the viewer colour types alike).
+    # Each domain and each type in its type's colour of the type map (the viewer colours types alike).
     type_colours = label_colours(type_map)
     figures["conductance"] = report.conductance_figure(ec, types=types, colours={
         d: type_colours.get(i + 1) for i, members in enumerate(types.types) for d in members})
-    words = " ".join(types.sentences())
-    return [(None, "<h3>Electronic types</h3><p>" + words + "</p>"),
-            ("conductance", report.conductance_caption(ec, types)),
-            ("types", "Domains coloured by electronic type (walls in black)."),
-            ("type_contrast", "Contrast of each type to the frame at each bias, with standard errors.")]
+    items = [(None, "<h3>Electronic types</h3><p>" + " ".join(types.sentences()) + "</p>"),
+             ("conductance", report.conductance_caption(ec, types)),
+             ("types", "Domains coloured by electronic type, each written with its id and type (walls in black).")]
+    if types.n_types > 1:
+        # With one type its contrast to the frame is zero by construction: no figure to show.
+        biases = [b for q_, b in types.features if q_ == "conductance"]
+        cols = [f for f, (q_, _) in enumerate(types.features) if q_ == "conductance"]
+        curves = [(f"type {name}", biases, [float(types.value[i, f]) for f in cols],
+                   [float(types.se[i, f]) for f in cols]) for i, name in enumerate(types.names)]
+        figures["type_contrast"] = report.curves_figure(
+            curves, xlabel="bias (V)", ylabel="contrast to the frame", units=ec.units,
+            colours=[type_colours.get(i + 1) for i in range(types.n_types)],
+            title="Conductance contrast of each electronic type")
+        items.append(("type_contrast", "Contrast of each type to the frame at each bias, with standard errors."))
+    return items
 
 
 def _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_nm, pixel, mask):

@@ -550,7 +550,7 @@ SAME_WITHIN_ERRORS = "All curves agree within two standard errors: nothing diffe
 
 
 def curves_figure(curves, *, xlabel, ylabel, title, lines=True, reference=(), units=None, note_if_same=True,
-                  as_figure=False):
+                  colours=None, as_figure=False):
     """Several labelled curves with optional error bars: ``curves`` is a list of (label, x, y, yerr or None).
 
     Parameters
@@ -568,6 +568,8 @@ def curves_figure(curves, *, xlabel, ylabel, title, lines=True, reference=(), un
     note_if_same : bool
         When :func:`differs_within_errors` is False for two or more curves, write
         :data:`SAME_WITHIN_ERRORS` in the figure (the curves are drawn anyway).
+    colours : sequence of str or None, optional
+        One colour per curve (None: matplotlib's cycle).
     as_figure : bool
         Return the matplotlib Figure instead of PNG bytes.
 
@@ -585,12 +587,13 @@ def curves_figure(curves, *, xlabel, ylabel, title, lines=True, reference=(), un
     style = "o-" if lines else "o"
     for value in reference:
         ax.axhline(value, color="0.6", lw=0.8, ls=":")
-    for label, x, y, yerr in curves:
+    for n, (label, x, y, yerr) in enumerate(curves):
         x, y = _numbers(x), _numbers(y)
+        colour = colours[n] if colours is not None and n < len(colours) else None
         if yerr is None:
-            ax.plot(x, y, style, ms=3, label=label)
+            ax.plot(x, y, style, ms=3, label=label, color=colour)
         else:
-            ax.errorbar(x, y, yerr=_numbers(yerr), fmt=style, ms=3, capsize=2, label=label)
+            ax.errorbar(x, y, yerr=_numbers(yerr), fmt=style, ms=3, capsize=2, label=label, color=colour)
     ax.set_xlabel(xlabel)
     ax.set_ylabel(f"{ylabel} ({units})" if units else ylabel)
     ax.set_title(title)
