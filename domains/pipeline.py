@@ -772,30 +772,11 @@ def write_analysis(analysis: Analysis, out, *, command_line, inputs, overwrite=F
     # One value per CSV cell: list columns become one column per component, the unit last in the name.
     tables = {name: report.split_list_columns(*table) for name, table in analysis.tables.items()}
     maps = dict(analysis.maps)
-    type_map = _electronic_type_map(analysis.summary, maps.get("labels"))
+    type_map = report.electronic_type_map(analysis.summary, maps.get("labels"))
     if type_map is not None:
         maps["electronic_types"] = type_map
     return write_bundle(out, summary=analysis.summary, provenance=prov, tables=tables, maps=maps,
                         figures=analysis.figures, report_html=html, overwrite=overwrite)
-
-
-def _electronic_type_map(summary, labels_entry):
-    """``(type map, attrs)`` for maps.zarr: 1 for type A, 2 for B, ... at each domain's pixels, 0 elsewhere.
-
-    Built from the domain labels and ``summary["electronic_types"]["types"]`` (the member
-    domains of each type), the way the report's type figure is; None without types.
-    """
-    types = ((summary or {}).get("electronic_types") or {}).get("types")
-    if not types or labels_entry is None:
-        return None
-    labels, attrs = labels_entry
-    labels = np.asarray(labels)
-    lut = np.zeros(max(int(labels.max()) if labels.size else 0, 0) + 1, np.int32)
-    for number, entry in enumerate(types, start=1):
-        members = [int(d) for d in entry.get("domains", []) if 0 < int(d) < lut.size]
-        lut[members] = number
-    names = {str(number): str(entry.get("type")) for number, entry in enumerate(types, start=1)}
-    return lut[np.clip(labels, 0, lut.size - 1)], {**attrs, "units": "label", "type_names": names}
 
 
 def _pm(value, error, unit="", digits=4):

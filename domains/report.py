@@ -605,6 +605,50 @@ def curves_figure(curves, *, xlabel, ylabel, title, lines=True, reference=(), un
     return fig if as_figure else _png(fig)
 
 
+def electronic_type_map(summary, labels_entry):
+    """The map of electronic types for ``maps.zarr``: 1 for type A, 2 for B, ... over each member domain.
+
+    Built from the domain labels and ``summary["electronic_types"]["types"]`` (the
+    member domains of each type), as the report's type figure is, so that the viewer
+    (which colours it with :func:`domains._palette.label_colours`, as the figure
+    does) shows each type in the report's colour.
+
+    Parameters
+    ----------
+    summary : dict
+        The analysis summary.
+    labels_entry : (array, dict) or None
+        ``maps["labels"]``: the domain labels (0 = wall or unassigned) and their attributes.
+
+    Returns
+    -------
+    (ndarray, dict) or None
+        int32 type map (0 on walls, unassigned pixels and domains of no type) and its
+        attributes (those of the labels, ``units`` "label", ``type_names`` {"1": "A", ...});
+        None when the summary has no types.
+
+    Examples
+    --------
+    >>> lab = np.array([[1, 1, 0, 2], [3, 3, 0, 2]])
+    >>> s = {"electronic_types": {"types": [{"type": "A", "domains": [1, 3]}, {"type": "B", "domains": [2]}]}}
+    >>> types, attrs = electronic_type_map(s, (lab, {"pixel_size_nm": [0.1, 0.1], "units": "label"}))
+    >>> types.tolist(), attrs["type_names"]
+    ([[1, 1, 0, 2], [1, 1, 0, 2]], {'1': 'A', '2': 'B'})
+    """
+    block = (summary or {}).get("electronic_types")
+    types = block.get("types") if isinstance(block, dict) else None
+    if not types or labels_entry is None:
+        return None
+    labels, attrs = labels_entry
+    labels = np.asarray(labels)
+    lut = np.zeros(max(int(labels.max()) if labels.size else 0, 0) + 1, np.int32)
+    for number, entry in enumerate(types, start=1):
+        members = [int(d) for d in entry.get("domains", []) if 0 < int(d) < lut.size]
+        lut[members] = number
+    names = {str(number): str(entry.get("type")) for number, entry in enumerate(types, start=1)}
+    return lut[np.clip(labels, 0, lut.size - 1)], {**attrs, "units": "label", "type_names": names}
+
+
 def _signed(value, digits):
     return f"{value:.{digits}f}".replace("-", "\u2212")
 
