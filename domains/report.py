@@ -104,8 +104,13 @@ def downsample(array, *, how="mean", max_px=FIGURE_MAX_PX):
     pad = ((0, rows * f - array.shape[0]), (0, cols * f - array.shape[1]))
     if how in ("mean", "phase"):
         values = np.asarray(array, np.float64 if array.dtype == np.float64 else np.float32)
-        if how == "mean" and not pad[0][1] and not pad[1][1] and np.isfinite(values).all():
-            return values.reshape(rows, f, cols, f).mean(axis=(1, 3), dtype=np.float64).astype(values.dtype), f
+        if not pad[0][1] and not pad[1][1] and np.isfinite(values).all():
+            # Whole blocks, no NaN (the usual case): plain block sums, no masks.
+            if how == "mean":
+                return values.reshape(rows, f, cols, f).mean(axis=(1, 3), dtype=np.float64).astype(values.dtype), f
+            c = np.cos(values).reshape(rows, f, cols, f).sum(axis=(1, 3))
+            s = np.sin(values).reshape(rows, f, cols, f).sum(axis=(1, 3))
+            return np.arctan2(s, c).astype(values.dtype), f
         if how == "phase":
             values = np.exp(1j * values)
         finite = np.pad(np.isfinite(values), pad).reshape(rows, f, cols, f)
@@ -307,8 +312,9 @@ def domain_label_positions(labels, *, pixel_size_nm=1.0) -> dict[int, tuple[floa
     if not ids:
         return {}
     # Centroids from per-row and per-column label counts (two small tables instead of index images).
-    code = np.searchsorted(ids, np.where(labels > 0, labels, ids[0])) + 1
-    code[labels <= 0] = 0
+    lut = np.zeros(ids[-1] + 1, np.int64)
+    lut[ids] = np.arange(1, len(ids) + 1)
+    code = lut[np.clip(labels, 0, ids[-1])]
     n = len(ids) + 1
     by_row = np.bincount((code + n * np.arange(labels.shape[0])[:, None]).ravel(),
                          minlength=n * labels.shape[0]).reshape(labels.shape[0], n)
