@@ -20,14 +20,15 @@ $(STAMP): pyproject.toml $(CONSTRAINTS)
 	$(PY) -m pip install --quiet -c $(CONSTRAINTS) -e ".[test,napari]"
 	touch $(STAMP)
 
-# System packages for a virtual display (Debian); installed only when missing and when we are root.
+# System packages for a virtual display (napari tests) and a headless browser (the report test), Debian;
+# installed only when missing and when we are root.
 sysdeps:
-	@if ! command -v xvfb-run >/dev/null 2>&1; then \
+	@if ! command -v xvfb-run >/dev/null 2>&1 || ! command -v chromium >/dev/null 2>&1; then \
 		if [ "$$(id -u)" = "0" ] && command -v apt-get >/dev/null 2>&1; then \
 			apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq \
-				xvfb xauth libxcb-icccm4 libxcb-keysyms1 >/dev/null; \
+				xvfb xauth libxcb-icccm4 libxcb-keysyms1 chromium >/dev/null; \
 		else \
-			echo "note: xvfb-run is missing and we are not root: GUI tests will be skipped (CI fails on that)"; \
+			echo "note: xvfb-run or chromium is missing and we are not root: GUI tests will be skipped and the report's browser test fails (CI installs both)"; \
 		fi; \
 	fi
 

@@ -851,7 +851,13 @@ def write_analysis(analysis: Analysis, out, *, command_line, inputs, overwrite=F
                                                                       "automatic choices": analysis.choices},
                               notes=analysis.notes, headline=_headline(analysis.summary))
     prov = provenance(command_line=command_line, parameters=json_safe(asdict(analysis.config)), inputs=inputs)
-    return write_bundle(out, summary=analysis.summary, provenance=prov, tables=analysis.tables, maps=analysis.maps,
+    # One value per CSV cell: list columns become one column per component, the unit last in the name.
+    tables = {name: report.split_list_columns(*table) for name, table in analysis.tables.items()}
+    maps = dict(analysis.maps)
+    type_map = report.electronic_type_map(analysis.summary, maps.get("labels"))
+    if type_map is not None:
+        maps["electronic_types"] = type_map
+    return write_bundle(out, summary=analysis.summary, provenance=prov, tables=tables, maps=maps,
                         figures=analysis.figures, report_html=html, overwrite=overwrite)
 
 
@@ -1162,19 +1168,23 @@ def _bias_step(summary, tables, figures, sections, topo, corrected_maps, map_sca
     figures["contrast"] = report.curves_figure(
         shifts, xlabel="domain", ylabel="Δφ (deg)", lines=False, reference=(0, 180),
         title=f"Phase shift of each order component, {first['bias_1_V']:+.2f} V vs {first['bias_2_V']:+.2f} V")
-    curves = []
-    for d in sorted({r["domain"] for r in rows}):
-        mine = sorted((r for r in rows if r["domain"] == d), key=lambda r: r["bias_V"])
-        curves.append((f"domain {d}", [r["bias_V"] for r in mine], [r["map_mean"] for r in mine],
-                       [r["map_mean_se"] for r in mine]))
-    figures["conductance"] = report.curves_figure(curves, xlabel="bias (V)", ylabel="mean map value",
-                                                  title="Per-domain mean conductance at each bias")
     types_items = _electronic_types_step(summary, tables, figures, map_scans, corrected_maps, labels, order_q,
                                          sigma_nm, pixel, mask)
+    if "conductance" not in figures:
+        # No offset-free contrast (the types step said why): the plain means, in the sidecar's units.
+        curves = []
+        for d in sorted({r["domain"] for r in rows}):
+            mine = sorted((r for r in rows if r["domain"] == d), key=lambda r: r["bias_V"])
+            curves.append((f"domain {d}", [r["bias_V"] for r in mine], [r["map_mean"] for r in mine],
+                           [r["map_mean_se"] for r in mine]))
+        figures["conductance"] = report.curves_figure(
+            curves, xlabel="bias (V)", ylabel="mean map value", units=(map_scans[0].metadata or {}).get("units"),
+            title="Per-domain mean conductance at each bias")
+        types_items = types_items + [("conductance", "Mean map value of each domain at each bias, with standard "
+                                                     "errors (pixels taken as independent).")]
     sections.append(("Bias comparison", types_items + [
         ("contrast", "Δφ_j = arg(A_j(V1) A_j(V2)*) of each order component in each domain, with standard errors: "
                      "±180° is an inverted contrast, 0° an unchanged one."),
-        ("conductance", "Mean conductance of each domain at each bias, with standard errors."),
         (None, "<h3>Contrast between biases</h3><p>Δφ_j = arg(A_j(V1) A_j(V2)*) per component; "
                "'inverted' needs every component compatible with π.</p>"
          + report.html_table(["bias_1_V", "bias_2_V", "domain", "delta_phi_deg", "verdict", "confidence"], verdict_rows)),
@@ -1216,22 +1226,32 @@ def _electronic_types_step(summary, tables, figures, map_scans, corrected_maps, 
     for i, members in enumerate(types.types):
         lut[list(members)] = i + 1
     type_map = lut[labels]
+    ids = {d: f"{d}: {name}" for d, name in types.type_of().items()}
     figures["types"] = report.domain_figure(np.asarray(corrected_maps[0]), type_map, labels == 0,
-                                            pixel_size_nm=pixel, title=f"{types.n_types} electronic type(s)",
+                                            pixel_size_nm=pixel, id_labels=labels, ids=ids, legend_title="electronic type",
+                                            title=f"{types.n_types} electronic type{'s' if types.n_types > 1 else ''}",
                                             states={i + 1: f"type {n}" for i, n in enumerate(types.names)})
-    curves = []
-    biases = [b for q_, b in types.features if q_ == "conductance"]
-    cols = [f for f, (q_, _) in enumerate(types.features) if q_ == "conductance"]
-    for i, name in enumerate(types.names):
-        curves.append((f"type {name}", biases, [float(types.value[i, f]) for f in cols],
-                       [float(types.se[i, f]) for f in cols]))
-    unit = ec.to_summary().get("units", units) if hasattr(ec, "to_summary") else units
-    figures["type_contrast"] = report.curves_figure(curves, xlabel="bias (V)", ylabel="contrast to the frame",
-                                                    units=unit, title="Conductance contrast of each electronic type")
-    words = " ".join(types.sentences())
-    return [(None, "<h3>Electronic types</h3><p>" + words + "</p>"),
-            ("types", "Domains coloured by electronic type (walls in black)."),
-            ("type_contrast", "Contrast of each type to the frame at each bias, with standard errors.")]
+    from ._palette import label_colours
+
+    # Each domain and each type in its type's colour of the type map (the viewer colours types alike).
+    type_colours = label_colours(type_map)
+    figures["conductance"] = report.conductance_figure(ec, types=types, colours={
+        d: type_colours.get(i + 1) for i, members in enumerate(types.types) for d in members})
+    items = [(None, "<h3>Electronic types</h3><p>" + " ".join(types.sentences()) + "</p>"),
+             ("conductance", report.conductance_caption(ec, types)),
+             ("types", "Domains coloured by electronic type, each written with its id and type (walls in black).")]
+    if types.n_types > 1:
+        # With one type its contrast to the frame is zero by construction: no figure to show.
+        biases = [b for q_, b in types.features if q_ == "conductance"]
+        cols = [f for f, (q_, _) in enumerate(types.features) if q_ == "conductance"]
+        curves = [(f"type {name}", biases, [float(types.value[i, f]) for f in cols],
+                   [float(types.se[i, f]) for f in cols]) for i, name in enumerate(types.names)]
+        figures["type_contrast"] = report.curves_figure(
+            curves, xlabel="bias (V)", ylabel="contrast to the frame", units=ec.units,
+            colours=[type_colours.get(i + 1) for i in range(types.n_types)],
+            title="Conductance contrast of each electronic type")
+        items.append(("type_contrast", "Contrast of each type to the frame at each bias, with standard errors."))
+    return items
 
 
 def _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_nm, pixel, mask):

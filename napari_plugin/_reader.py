@@ -235,6 +235,8 @@ def _map_title(path: str) -> tuple[str, str]:
         return "domains", "labels"
     if path == "walls":
         return "walls", "walls"
+    if path == "electronic_types":
+        return "electronic types", "types"
     if path == "topography":
         return "topography", "topography"
     if parts[0] in ("amplitude", "phase") and len(parts) == 2:
@@ -268,9 +270,10 @@ def maps_layer_data(
     Returns
     -------
     list of tuple
-        Amplitude and phase images first (hidden but the first amplitude), then
-        the drift magnitude and twist angle, the domain labels and the walls on
-        top. Phase maps use the cyclic colour map ``twilight`` on [-pi, pi].
+        Bottom first: the topograph, the amplitude, phase, drift and other maps
+        (hidden), then the domain labels, the electronic types (labels, hidden;
+        each type's name is a feature shown on hover) and the walls on top. Phase
+        maps use the cyclic colour map ``twilight`` on [-pi, pi].
     """
     bottom, images, overlays = [], [], []
     for path in sorted(maps):
@@ -281,9 +284,18 @@ def maps_layer_data(
         meta = {META_KEY: {"kind": "map", "path": path, "units": attrs.get("units"),
                            "pixel_size_nm": list(_pixel_pair(attrs["pixel_size_nm"]))}}
         kwargs = {"name": title + suffix, "metadata": meta, **_spatial_kwargs(attrs["pixel_size_nm"], translate)}
-        if role == "labels":
+        if role in ("labels", "types"):
             kwargs["opacity"] = LABELS_OPACITY
+            # The report colours the type map with the same function: type A has one colour in both.
             kwargs["colormap"] = domain_colormap(array)
+            if role == "types":
+                kwargs["visible"] = False
+                names = attrs.get("type_names") or {}
+                if isinstance(names, Mapping) and names:
+                    numbers = sorted(int(k) for k in names)
+                    # Hovering a domain shows its type in the status bar ("type: A").
+                    kwargs["features"] = {"index": np.array(numbers),
+                                          "type": np.array([str(names[str(k)]) for k in numbers])}
             overlays.append((array, kwargs, "labels"))
         elif role == "walls":
             walls = array.astype(np.uint8) if _is_dask(array) else np.asarray(array).astype(np.uint8)
@@ -326,7 +338,10 @@ def maps_layer_data(
         if limits is not None:
             kwargs["contrast_limits"] = limits
         images.insert(0, (magnitude, kwargs, "image"))
-    # The topograph at the bottom; labels sort before walls in the path order, so walls are drawn on top.
+    # The topograph at the bottom, then the hidden images; over them the domains, the electronic types
+    # (hidden) and the walls on top.
+    rank = {"labels": 0, "electronic_types": 1, "walls": 2}
+    overlays.sort(key=lambda layer: rank.get(layer[1]["metadata"][META_KEY]["path"], 1))
     return bottom + images + overlays
 
 
@@ -336,9 +351,11 @@ def domain_colormap(labels) -> dict:
     Parameters
     ----------
     labels : (row, col) int array or dask array
-        Domain labels; a dask array is coloured from a strided sample (a few
-        million pixels at most), which keeps the adjacency of domains larger
-        than the stride.
+        Domain labels (or the electronic-type map). An array in memory is coloured
+        whole by :func:`domains._palette.label_colours`, exactly as the report
+        colours it; a dask array (a map too large to read whole) is coloured from
+        a strided sample (a few million pixels at most), which keeps the adjacency
+        of domains larger than the stride.
 
     Returns
     -------
@@ -352,7 +369,8 @@ def domain_colormap(labels) -> dict:
     ('transparent', 3)
     """
     shape = tuple(labels.shape)
-    step = max(1, int(math.ceil(math.sqrt(int(np.prod(shape)) / 4e6)))) if shape else 1
+    # In memory: coloured whole, as the report colours it. Lazy (larger than BUNDLE_LAZY_BYTES): a sample.
+    step = max(1, int(math.ceil(math.sqrt(int(np.prod(shape)) / 4e6)))) if shape and _is_dask(labels) else 1
     sample = labels[::step, ::step] if len(shape) == 2 else labels
     if _is_dask(sample):
         sample = sample.compute()
@@ -557,7 +575,9 @@ def read_bundle_layers(path, *, lazy_threshold_bytes: int = BUNDLE_LAZY_BYTES) -
         Layer data tuples, bottom first: ``topography`` (visible, grey; see
         :func:`bundle_topography`), the amplitude (``amp <component>``), phase
         (``phase <component>``), drift and other maps (hidden), ``domains``
-        (labels in the shared palette, translucent), ``walls`` (black),
+        (labels in the shared palette, translucent), ``electronic types`` (when
+        the bundle has types: the type map, hidden, coloured as the report's
+        type figure), ``walls`` (black),
         ``defects`` and ``domain ids``. Every layer's metadata holds the bundle
         folder and the lock-in width the analysis used
         (``metadata["domains"]["analysis_sigma_nm"]``); the domains layer holds

@@ -429,8 +429,16 @@ def analysis_layer_data(analysis, *, source: str = "", translate: Sequence[float
     -------
     list of tuple
     """
+    from domains.report import electronic_type_map, split_list_columns
+
     suffix = f" ({source})" if source else ""
-    layers = maps_layer_data(analysis.maps, suffix=suffix, translate=translate)
+
+    maps = dict(analysis.maps)
+    # The bundle's type map (domains.pipeline.write_analysis), made here for an analysis run in the viewer.
+    types = electronic_type_map(analysis.summary, maps.get("labels"))
+    if types is not None and "electronic_types" not in maps:
+        maps["electronic_types"] = types
+    layers = maps_layer_data(maps, suffix=suffix, translate=translate)
     pixel = None
     if analysis.maps:
         pixel = next(iter(analysis.maps.values()))[1]["pixel_size_nm"]
@@ -449,7 +457,8 @@ def analysis_layer_data(analysis, *, source: str = "", translate: Sequence[float
         if isinstance(sigma, (int, float)) and math.isfinite(sigma):
             meta["analysis_sigma_nm"] = float(sigma)
         if meta.get("path") == "labels" and table:
-            columns, rows = table
+            # The columns of domains.csv: one value per cell, as the bundle writes them.
+            columns, rows = split_list_columns(*table)
             meta["table"] = {"columns": list(columns), "rows": list(rows)}
     return layers
 

@@ -111,8 +111,15 @@ def _named(text: str) -> set[str]:
 
 
 def _generic(column: str) -> str:
-    """amplitude_q3_se -> amplitude_q1_se: numbered per-component columns are described once."""
-    return re.sub(r"_q\d+", "_q1", column)
+    """The name under which a column is described: numbered columns once, per-bias columns once.
+
+    amplitude_q3_se -> amplitude_q1_se; member_4 -> member_1; contrast_nS_at_-0.25V_se ->
+    contrast_UNIT_at_BIASV_se (UNIT: the maps' unit, BIAS: the signed bias of a map).
+    """
+    column = re.sub(r"_q\d+", "_q1", column)
+    column = re.sub(r"^member_\d+$", "member_1", column)
+    return re.sub(r"^((?:amplitude_)?(?:mean|contrast|frame_contrast))_.+_at_[+-]\d+\.\d+V(_se)?$",
+                  r"\1_UNIT_at_BIASV\2", column)
 
 
 @pytest.fixture(scope="module")
@@ -158,12 +165,21 @@ def test_every_summary_key_is_described(small_bundle):
 
 def test_every_table_column_and_map_is_described(small_bundle):
     text = (DOCS / "bundle.md").read_text(encoding="utf-8")
-    for table in ("domains", "walls", "contrast"):
+    written = sorted(p.stem for p in small_bundle.glob("*.csv"))
+    # derived: the scene has order, domains, walls and two maps, hence contrasts and electronic types
+    assert written == ["contrast", "domain_contrast", "domains", "types", "walls"]
+    for table in written:
         file = small_bundle / f"{table}.csv"
         with open(file, newline="", encoding="utf-8") as handle:
-            columns = next(csv.reader(handle))
+            columns, *rows = list(csv.reader(handle))
         described = _named(_section(text, f"{table}.csv"))
         assert {_generic(c) for c in columns} - described == set(), table  # common practice, no source
+        # issue 14: one value per cell (no "1.8;-1.6;-0.4")
+        assert not [cell for row in rows for cell in row if ";" in cell], table
+    with open(small_bundle / "domains.csv", newline="", encoding="utf-8") as handle:
+        header = next(csv.reader(handle))
+    # derived: a 3x3 CDW has three order components, hence three phase columns
+    assert [c for c in header if c.startswith("mean_phase")] == [f"mean_phase_q{j}_deg" for j in (1, 2, 3)]
     maps = _section(text, "maps.zarr")
     arrays = {p.parent.relative_to(small_bundle / "maps.zarr").as_posix()
               for p in (small_bundle / "maps.zarr").rglob("zarr.json")

@@ -200,6 +200,30 @@ def test_bundle_reader_makes_maps_labels_walls_and_defects(tmp_path):
     assert all(type(data).__module__.startswith("dask") for data, _, kind in lazy if kind != "points")
 
 
+def test_bundle_with_electronic_types_gets_a_types_layer_in_the_report_colours(tmp_path):
+    from domains import report
+
+    path, maps, _ = _write_small_bundle(tmp_path / "plain")
+    labels = maps["labels"][0]
+    summary = {"electronic_types": {"types": [{"type": "A", "domains": [2]}, {"type": "B", "domains": [1]}]}}
+    types = report.electronic_type_map(summary, maps["labels"])
+    folder = write_bundle(tmp_path / "typed", summary=summary, provenance={"command_line": "test"},
+                          maps={**maps, "electronic_types": types})
+    layers = _reader.read_bundle_layers(folder)
+    names = [kw["name"] for _, kw, _ in layers]
+    # Order, bottom first: domains, then the types, then the walls (common practice, no source).
+    assert names.index("domains") < names.index("electronic types") < names.index("walls")
+    data, kwargs, kind = layers[names.index("electronic types")]
+    assert kind == "labels" and kwargs["visible"] is False  # derived: present, hidden on open
+    # derived: domain 2 is type A (1), domain 1 type B (2), walls and unassigned pixels 0
+    np.testing.assert_array_equal(data, np.select([labels == 2, labels == 1], [1, 2], 0))
+    assert list(kwargs["features"]["type"]) == ["A", "B"] and list(kwargs["features"]["index"]) == [1, 2]
+    # The report's type figure colours the same map with the same function (domains.report.domain_figure).
+    expected = label_colours(np.asarray(data))
+    assert {k: kwargs["colormap"][k] for k in expected} == expected  # derived: one palette, one colouring
+    assert len(set(expected.values())) == 2  # derived: the two types touch, so they differ
+
+
 def test_sample_data_are_the_packages_synthetic_scenes(cdw):
     layers = _sample_data.cdw_scene()
     assert [kw["name"] for _, kw, _ in layers] == ["CDW topography", "CDW topography (levelled)", "CDW dI/dV -0.25 V",
@@ -481,6 +505,18 @@ def test_bundle_opens_ready_to_read_and_the_table_selects_domains(make_napari_vi
         np.testing.assert_allclose(domains_layer.colormap.map(label), rgba(colour), atol=1e-6)  # derived: palette
     assert set(expected.values()) <= set(DOMAIN_PALETTE)
     np.testing.assert_allclose(viewer.layers["walls"].colormap.map(1), rgba(WALL_COLOUR), atol=1e-6)
+    # The electronic types: between the domains and the walls, hidden, each domain's pixels of its type
+    # in domain_contrast.csv (1 for A, ...), in the colours the report's type figure uses.
+    assert names.index("domains") < names.index("electronic types") < names.index("walls")
+    types_layer = viewer.layers["electronic types"]
+    assert not types_layer.visible
+    type_number = {row["type"]: n for n, row in enumerate(bundle.tables["types"], start=1)}
+    type_map = np.asarray(types_layer.data)
+    for row in bundle.tables["domain_contrast"]:
+        assert np.all(type_map[labels == row["domain"]] == type_number[row["type"]])  # derived: the CSV
+    assert np.all(type_map[labels == 0] == 0)  # derived: walls belong to no type
+    for number, colour in label_colours(type_map).items():
+        np.testing.assert_allclose(types_layer.colormap.map(number), rgba(colour), atol=1e-6)  # derived: palette
 
     # The lock-in widget shows the sigma of the analysis, not an automatic one.
     lockin = LockinWidget(viewer)

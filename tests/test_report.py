@@ -166,3 +166,123 @@ def test_curves_agreement_and_units():
         assert any(t.get_gid() == "same-within-errors" for t in ax.texts)  # derived: the curves agree
     finally:
         plt.close(fig)
+
+
+# --------------------------------------------------------------------------- figures from reduced arrays
+
+
+def test_downsample_block_mean_matches_scikit_image_block_reduce():
+    from skimage.measure import block_reduce
+
+    rng = np.random.default_rng(1)
+    image = rng.normal(size=(2048, 1536)).astype(np.float32)
+    small, f = report.downsample(image, how="mean", max_px=1024)
+    assert f == 2 and small.shape == (1024, 768)  # derived: ceil(2048 / 1024) = 2 on both axes
+    assert small.dtype == np.float32  # common practice, no source: float32 kept
+    # reference library: scikit-image block_reduce with the mean; float32 rounding of a 4-pixel sum
+    np.testing.assert_allclose(small, block_reduce(image, (2, 2), np.mean), rtol=0, atol=1e-6)
+
+
+def test_downsample_partial_blocks_and_nan():
+    image = np.arange(25.0).reshape(5, 5)
+    image[0, 0] = np.nan
+    small, f = report.downsample(image, how="mean", max_px=2)
+    assert f == 3 and small.shape == (2, 2)  # derived: ceil(5 / 2) = 3, two blocks per side
+    # derived: block (0, 0) holds rows 0-2, cols 0-2 without the NaN; block (1, 1) holds rows 3-4, cols 3-4
+    assert small[0, 0] == pytest.approx(np.mean([1, 2, 5, 6, 7, 10, 11, 12]))
+    assert small[1, 1] == pytest.approx(np.mean([18, 19, 23, 24]))
+
+
+def test_downsample_labels_take_the_block_mode():
+    from scipy import stats
+
+    rng = np.random.default_rng(2)
+    labels = rng.integers(0, 4, size=(96, 96)).astype(np.int32)
+    small, f = report.downsample(labels, how="mode", max_px=24)
+    assert f == 4  # derived: 96 / 24
+    blocks = labels.reshape(24, 4, 24, 4).transpose(0, 2, 1, 3).reshape(24, 24, 16)
+    # reference library: scipy.stats.mode (ties go to the smallest value, as documented for ours)
+    np.testing.assert_array_equal(small, stats.mode(blocks, axis=-1, keepdims=False).mode)
+
+
+def test_downsample_keeps_one_pixel_walls_and_wraps_phases():
+    walls = np.zeros((3000, 3000), bool)
+    walls[np.arange(3000), np.arange(3000)] = True  # a one-pixel diagonal wall
+    walls[:, 1777] = True  # a one-pixel vertical wall
+    small, f = report.downsample(walls, how="max")
+    assert f == 3 and small.shape == (1000, 1000)  # derived: ceil(3000 / 1024) = 3
+    assert small[np.arange(1000), np.arange(1000)].all()  # derived: every block on the diagonal holds a wall pixel
+    assert small[:, 1777 // 3].all()  # derived: the column of blocks holding column 1777
+    # Phases near ±pi: a plain mean would give 0 (the opposite side of the circle), the circular mean ±pi.
+    phase = np.where(np.indices((8, 8)).sum(axis=0) % 2 == 0, np.pi - 0.01, -np.pi + 0.01)
+    small, _ = report.downsample(phase, how="phase", max_px=4)
+    assert np.all(np.abs(np.abs(small) - np.pi) < 1e-6)  # derived: mean of exp(i(pi - e)) and exp(i(-pi + e))
+
+
+def test_image_figures_draw_at_most_1024_pixels_on_the_physical_frame():
+    import matplotlib.pyplot as plt
+
+    shape, pixel = (2100, 1500), (0.02, 0.03)
+    image = np.random.default_rng(3).normal(size=shape)
+    labels = np.ones(shape, np.int32)
+    labels[:, 700:] = 2
+    walls = np.zeros(shape, bool)
+    walls[:, 700] = True
+    for fig in (report.image_figure(image, pixel_size_nm=pixel, title="t", as_figure=True),
+                report.image_figure(image, pixel_size_nm=pixel, title="t", cmap="twilight", as_figure=True),
+                report.domain_figure(image, labels, walls, pixel_size_nm=pixel, as_figure=True)):
+        try:
+            ax = fig.axes[0]
+            for im in ax.get_images():
+                assert max(im.get_array().shape[:2]) <= report.FIGURE_MAX_PX  # issue 10: reduced arrays
+            # derived: x spans cols x 0.03 nm, y spans rows x 0.02 nm (y downwards)
+            assert ax.get_xlim() == pytest.approx((0, 1500 * 0.03))
+            assert ax.get_ylim() == pytest.approx((2100 * 0.02, 0))
+        finally:
+            plt.close(fig)
+
+
+def test_split_column_names_keep_the_unit_last():
+    rows = [{"type": "A", "domains": "1;4;6", "q_rad_per_nm": [[1.0, 2.0], [3.0, -4.0]], "shift_nm": [0.5, None]},
+            {"type": "B", "domains": "2", "q_rad_per_nm": None, "shift_nm": None}]
+    columns, split = report.split_list_columns(["type", "domains", "q_rad_per_nm", "shift_nm"], rows)
+    # derived: three members at most, two wavevectors of two components, two shifts
+    assert columns == ["type", "member_1", "member_2", "member_3", "q1_x_rad_per_nm", "q1_y_rad_per_nm",
+                       "q2_x_rad_per_nm", "q2_y_rad_per_nm", "shift_1_nm", "shift_2_nm"]
+    assert split[0]["q2_y_rad_per_nm"] == -4.0 and split[0]["member_3"] == 6  # derived: the rows above
+    assert split[1]["member_1"] == 2 and split[1]["member_2"] is None  # derived: one member, then empty cells
+    assert all(split[1][c] is None for c in columns[4:])  # derived: no wavevector, no shift in row 2
+
+
+def test_conductance_figure_units_error_bars_and_caption_name_the_domains_that_differ():
+    import matplotlib.pyplot as plt
+    from matplotlib.container import ErrorbarContainer
+
+    from domains import compare
+
+    # Two equal halves; at -0.30 V domain 1 is 0.2 pA/V brighter than domain 2, at +0.30 V they are equal.
+    labels = np.ones((128, 128), np.int32)
+    labels[:, 64:] = 2
+    rng = np.random.default_rng(5)
+    maps = {-0.3: 1.0 + 0.2 * (labels == 1) + rng.normal(0, 0.02, labels.shape),
+            0.3: 1.5 + rng.normal(0, 0.02, labels.shape)}
+    contrast = compare.domain_electronic_contrast(maps, labels, pixel_size_nm=0.1, sigma_nm=0.4, units="pA/V",
+                                                  normalisation="none")
+    caption = report.conductance_caption(contrast)
+    # derived: equal areas, so the contrasts to the frame are +0.1 and -0.1 pA/V at -0.30 V, 0 at +0.30 V
+    assert "domain 1 brighter at −0.30 V by 0.1" in caption
+    assert "domain 2 darker at −0.30 V by 0.1" in caption
+    assert "+0.30 V" not in caption  # derived: the map at +0.30 V is the same in both domains
+    fig = report.conductance_figure(contrast, as_figure=True)
+    try:
+        ax = fig.axes[0]
+        assert ax.get_ylabel() == "contrast to the frame (pA/V)"  # derived: the maps' units given
+        bars = [c for c in ax.containers if isinstance(c, ErrorbarContainer)]
+        assert len(bars) == 2 and all(c.has_yerr for c in bars)  # derived: one series with error bars per domain
+        assert not any(t.get_gid() == "no-difference" for t in ax.texts)  # derived: the domains differ
+    finally:
+        plt.close(fig)
+    same = compare.domain_electronic_contrast({-0.3: 1.0 + rng.normal(0, 0.02, labels.shape)}, labels,
+                                              pixel_size_nm=0.1, sigma_nm=0.4, units="nS", normalisation="none")
+    # synthetic truth: no contrast; at alpha = 0.01 over 2 tests a false call has probability <= 0.01
+    assert "No domain differs from the frame" in report.conductance_caption(same)
