@@ -255,7 +255,8 @@ def analyze(topography: Scan, *, maps=(), grid: Scan | None = None, config: Conf
     config = (config or Config()).validate()
     # The same checks the command line makes before any work (one home for them).
     scans_for_analysis(topography, maps, grid)
-    return _run(_materialise(topography), [_materialise(m) for m in maps], grid, config, progress)
+    # The topograph stays lazy into levelling (run chunk by chunk, on a cluster when one is in use).
+    return _run(topography, [_materialise(m) for m in maps], grid, config, progress)
 
 
 def _component_names(prefix, k):
