@@ -9,8 +9,8 @@ the whole image in memory. It is cached under bench-output/cache.
 The analysis is the command a user runs, ``domains analyze STORE --pixel-size 0.1``, in a
 child process watched every 0.2 s: its resident memory (summed over its own children) is
 sampled, and it is stopped when it passes ``--memory-limit`` or ``--timeout`` (the row then
-says where it was: the last step its progress bar named). The peak is also read from
-``ru_maxrss`` of the finished child.
+says where it was: the last step its progress bar named). A child that finishes also writes
+its own high-water mark (``VmHWM``) at exit, which catches a peak shorter than the sampling.
 
 Used by ``benchmarks/run.py --only store``; alone: ``python benchmarks/large_store.py --size 16384``.
 """
@@ -21,10 +21,9 @@ import argparse
 import json
 import os
 import re
-import resource
+import shutil
 import subprocess
 import sys
-import tempfile
 import time
 from pathlib import Path
 
@@ -111,10 +110,24 @@ def _tree_rss(pid):
     return total
 
 
-def analyse_store(path, size, memory_limit, timeout, extra=()):
-    """Run ``domains analyze`` on the store in a watched child; return the measurements."""
-    out = Path(tempfile.mkdtemp(prefix="bench-store-"))
-    command = [sys.executable, "-c", "import sys; from domains.cli import main; sys.exit(main())",
+def analyse_store(path, size, memory_limit, timeout, work, extra=()):
+    """Run ``domains analyze`` on the store in a watched child; return the measurements.
+
+    The bundle goes to ``work``/bundle and is removed afterwards; the child's stderr stays in
+    ``work``/stderr.txt.
+    """
+    out = Path(work)
+    shutil.rmtree(out, ignore_errors=True)
+    out.mkdir(parents=True)
+    hwm = out / "hwm.txt"
+    # The command a user runs, plus an exit hook that writes this process's VmHWM line.
+    code = ("import atexit, sys\n"
+            f"def _hwm(path={str(hwm)!r}):\n"
+            "    with open('/proc/self/status') as s, open(path, 'w') as f:\n"
+            "        f.write(''.join(line for line in s if line.startswith('VmHWM:')))\n"
+            "atexit.register(_hwm)\n"
+            "from domains.cli import main\nsys.exit(main())")
+    command = [sys.executable, "-c", code,
                "analyze", str(path), "--pixel-size", str(PIXEL_NM), "--out", str(out / "bundle"), *extra]
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     log = out / "stderr.txt"
@@ -132,7 +145,9 @@ def analyse_store(path, size, memory_limit, timeout, extra=()):
                 break
             time.sleep(0.2)
     wall = time.perf_counter() - start
-    peak = max(peak, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024)
+    shutil.rmtree(out / "bundle", ignore_errors=True)
+    if hwm.exists() and hwm.read_text().split():
+        peak = max(peak, int(hwm.read_text().split()[1]) * 1024)
     text = log.read_text(errors="replace")
     steps = re.findall(r"domains: ([^:\r\n]+):", text)
     if status == "finished" and child.returncode != 0:
@@ -149,7 +164,8 @@ def main():
     parser.add_argument("--timeout", type=float, default=1800)
     args = parser.parse_args()
     path = make_store(args.size, args.cache)
-    print(json.dumps(analyse_store(path, args.size, args.memory_limit_gib * 2**30, args.timeout)))
+    work = Path(args.cache).parent / f"store-run-{args.size}"
+    print(json.dumps(analyse_store(path, args.size, args.memory_limit_gib * 2**30, args.timeout, work)))
 
 
 if __name__ == "__main__":

@@ -269,6 +269,10 @@ def markdown(data):
             lines += ["", f"CPU time ~ pixels^p with p = {fit[0]:.2f} over N = "
                           f"{', '.join(str(n) for n, r in scaling if 'error' not in r)} "
                           f"(N log N would give p = {fit[1]:.2f}).{_mark(fit[0], fit[1] + 0.05)}"]
+            top = data.get("exponent_top")
+            if top and len(scaling) > 2:
+                lines[-1] += (f" Between the two largest, {top[0]} and {top[1]}, where fixed costs weigh least: "
+                              f"p = {top[2]:.2f} (N log N: {top[3]:.2f}).{_mark(top[2], top[3] + 0.05)}")
     stores = data.get("store") or {}
     if stores:
         lines += ["", "Larger than memory: `domains analyze STORE.zarr` (float32 3×3 CDW scene), watched:", "",
@@ -378,12 +382,17 @@ def main(argv=None):
                 data["rows"].append((f"whole `analyze`, {n}² topograph + {r['n_maps']} maps, CPU time vs the "
                                      f"textbook 3-q lock-in (σ {r['reference_sigma_px']:g} px) of the same image",
                                      r["cpu_s"], r["reference_cpu_s"], 10.0))
+                if "reference_own_sigma_cpu_s" in r:
+                    data["rows"].append((f"the same, vs the textbook 3-q lock-in at the run's own σ "
+                                         f"({r['reference_own_sigma_sigma_px']:.3g} px; its cost grows with σ)",
+                                         r["cpu_s"], r["reference_own_sigma_cpu_s"], None))
                 data["notes"].append(f"whole run {n}²: wall {r['wall_s']:.1f} s for {r['cpu_s']:.1f} s CPU; found "
                                      f"{r['order']}, {r['domains']} domains; the run's own σ was "
                                      f"{_s(r['sigma_px'])} px")
         done = [n for n in sizes if n in runs and "error" not in runs[n]]
         if "scaling" in args.only and len(done) >= 2:
             data["exponent"] = fit_exponent(done, [runs[n]["cpu_s"] for n in done])
+            data["exponent_top"] = (done[-2], done[-1], *fit_exponent(done[-2:], [runs[n]["cpu_s"] for n in done[-2:]]))
     if "store" in args.only:
         data["store"] = store(args.store_sizes, cache, args.store_memory_limit_gib, args.timeout)
 
