@@ -140,32 +140,53 @@ def startup(repeat=5):
 # ------------------------------------------------------------------------------------------ whole runs
 
 
-def _worker(args, timeout):
-    """Run benchmarks/whole_run.py in a fresh interpreter; its JSON, or {"error": ...}."""
+def _worker(args, timeout, memory_limit):
+    """Run benchmarks/whole_run.py in a fresh interpreter, watched; its JSON, or {"error": ...}.
+
+    The worker is stopped (its own process group) past ``timeout`` seconds or ``memory_limit``
+    resident bytes, so that a size too large for today's code does not take the machine down.
+    """
+    import tempfile
+
+    from large_store import _tree_rss
+
     command = [sys.executable, str(HERE / "whole_run.py"), *args]
-    try:
-        done = subprocess.run(command, capture_output=True, text=True, env=_env(), timeout=timeout)
-    except subprocess.TimeoutExpired:
-        return {"error": f"did not finish in {timeout:.0f} s"}
-    if done.returncode != 0:
-        last = (done.stderr.strip().splitlines() or ["?"])[-1]
-        return {"error": f"exit {done.returncode}: {last}"}
-    return json.loads(done.stdout.strip().splitlines()[-1])
+    with tempfile.TemporaryFile("w+") as out, tempfile.TemporaryFile("w+") as err:
+        child = subprocess.Popen(command, stdout=out, stderr=err, text=True, env=_env(), start_new_session=True)
+        start, peak, stopped = time.perf_counter(), 0, None
+        while child.poll() is None:
+            peak = max(peak, _tree_rss(child.pid))
+            if peak > memory_limit:
+                stopped = f"stopped at {peak / 2**30:.2f} GiB resident (limit {memory_limit / 2**30:.2f} GiB)"
+            elif time.perf_counter() - start > timeout:
+                stopped = f"did not finish in {timeout:.0f} s"
+            if stopped:
+                os.killpg(child.pid, 9)
+                child.wait()
+                return {"error": stopped}
+            time.sleep(0.25)
+        out.seek(0)
+        err.seek(0)
+        stdout, stderr = out.read(), err.read()
+    if child.returncode != 0:
+        last = (stderr.strip().splitlines() or ["?"])[-1]
+        return {"error": f"exit {child.returncode}: {last}"}
+    return json.loads(stdout.strip().splitlines()[-1])
 
 
-def whole_runs(sizes, reference_sizes, cache, timeout):
+def whole_runs(sizes, reference_sizes, cache, timeout, memory_limit):
     """One fresh process per size (smallest first); stops at the first size that fails or times out."""
     results = {}
     for size in sorted(sizes):
         _say(f"whole run {size}^2: generating the scene (cached)")
-        made = _worker(["--size", str(size), "--cache", str(cache), "--make-scene"], timeout)
+        made = _worker(["--size", str(size), "--cache", str(cache), "--make-scene"], timeout, memory_limit)
         if "error" in made:
             results[size] = made
             break
         _say(f"whole run {size}^2: analyze in a fresh process")
         start = time.perf_counter()
         extra = ["--reference"] if size in reference_sizes else []
-        results[size] = _worker(["--size", str(size), "--cache", str(cache), *extra], timeout)
+        results[size] = _worker(["--size", str(size), "--cache", str(cache), *extra], timeout, memory_limit)
         _say(f"whole run {size}^2: {time.perf_counter() - start:.0f} s")
         if "error" in results[size]:
             break
@@ -334,7 +355,7 @@ def main(argv=None):
                         help=f"comma-separated cases among {', '.join(CASES)} (default: {','.join(DEFAULT_CASES)})")
     parser.add_argument("--sizes", type=_sizes, default=[512, 1024, 2048], metavar="N,N,...",
                         help="image sizes of the scaling case (default 512,1024,2048)")
-    parser.add_argument("--large", action="store_true", help="add 4096 to the scaling sizes (slow today)")
+    parser.add_argument("--large", action="store_true", help="add 4096 to the scaling sizes (today: about 4x the 2048 run in time and memory)")
     parser.add_argument("--run-size", type=int, default=2048, help="size of the whole-run case (default 2048)")
     parser.add_argument("--kernel-size", type=int, default=4096, help="size of the kernel case (default 4096)")
     parser.add_argument("--store-sizes", type=_sizes, default=[16384], metavar="N,N,...",
@@ -343,6 +364,8 @@ def main(argv=None):
                         help="stop the store run above this resident memory (default 6)")
     parser.add_argument("--repeat", type=int, default=3, help="best of this many runs for the kernel (default 3)")
     parser.add_argument("--timeout", type=float, default=1500, help="seconds allowed to one whole run (default 1500)")
+    parser.add_argument("--memory-limit-gib", type=float, default=None,
+                        help="stop a whole run above this resident memory (default 60%% of the machine's)")
     parser.add_argument("--out", type=Path, default=ROOT / "bench-output", help="output folder (default bench-output)")
     parser.add_argument("--update-readme", action="store_true", help="write the table into README.md too")
     args = parser.parse_args(argv)
@@ -371,7 +394,8 @@ def main(argv=None):
         wanted.update(sizes)
         data["scaling_sizes"] = sizes
     if wanted:
-        runs = whole_runs(wanted, wanted, cache, args.timeout)
+        limit = args.memory_limit_gib * 2**30 if args.memory_limit_gib else 0.6 * (data["machine"]["memory_gib"] or 8) * 2**30
+        runs = whole_runs(wanted, wanted, cache, args.timeout, limit)
         data["runs"] = runs
         r = runs.get(args.run_size)
         if "run" in args.only and r:
