@@ -239,6 +239,10 @@ def _mark(value, target):
     return " ✓" if value <= target else " ✗"
 
 
+def _cell(text):
+    return str(text).replace("|", "\\|")  # a pipe inside a cell would end it
+
+
 def markdown(data):
     m = data["machine"]
     memory = "?" if m["memory_gib"] is None else f"{m['memory_gib']:.1f} GiB"
@@ -253,12 +257,12 @@ def markdown(data):
         lines += ["", "| case | ours (s) | reference (s) | ratio | target |", "|---|---:|---:|---:|---:|"]
     for name, ours, ref, target in data["rows"]:
         ratio = _ratio(ours, ref)
-        lines.append(f"| {name} | {_s(ours)} | {_s(ref)} | {_s(ratio)}{_mark(ratio, target)} | "
+        lines.append(f"| {_cell(name)} | {_s(ours)} | {_s(ref)} | {_s(ratio)}{_mark(ratio, target)} | "
                      f"{'' if target is None else f'≤ {target:g}'} |")
     if data["checks"]:
         lines += ["", "| check | value | target |", "|---|---:|---:|"]
         for name, value, target in data["checks"]:
-            lines.append(f"| {name} | {value:.2g}{_mark(value, target)} | ≤ {target:g} |")
+            lines.append(f"| {_cell(name)} | {value:.2g}{_mark(value, target)} | ≤ {target:g} |")
     runs = data.get("runs") or {}
     run_size = data.get("run_size")
     if run_size in runs and "timings" in runs[run_size]:
@@ -368,7 +372,18 @@ def main(argv=None):
                         help="stop a whole run above this resident memory (default 60%% of the machine's)")
     parser.add_argument("--out", type=Path, default=ROOT / "bench-output", help="output folder (default bench-output)")
     parser.add_argument("--update-readme", action="store_true", help="write the table into README.md too")
+    parser.add_argument("--render", type=Path, metavar="BENCH.json",
+                        help="only rewrite the table from a bench.json of an earlier run (no measuring)")
     args = parser.parse_args(argv)
+    if args.render:
+        data = json.loads(args.render.read_text())
+        for key in ("runs", "store"):  # JSON turned the sizes into strings
+            data[key] = {int(n): r for n, r in (data.get(key) or {}).items()}
+        table = markdown(data)
+        print(table)
+        if args.update_readme:
+            update_readme(table)
+        return
     cache = args.out / "cache"
     sizes = sorted(set(args.sizes + ([4096] if args.large else [])))
 
