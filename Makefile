@@ -9,7 +9,8 @@ STAMP := $(VENV)/.installed
 help:
 	@echo "make demo   - set up .venv, analyse the built-in synthetic scene, write demo-output/report.html"
 	@echo "make test   - set up .venv (and, as root, the system packages for headless napari), run all tests"
-	@echo "make bench  - run the benchmarks (ratios against a reference run in the same process)"
+	@echo "make bench  - run the benchmarks (ratios against a reference run in the same process);"
+	@echo "              BENCH_ARGS='--only kernel', '--sizes 512,1024', '--large', '--update-readme' ..."
 	@echo "make wheel-check - build the wheel, install it in a clean venv away from the sources, run it"
 
 CONSTRAINTS := constraints.txt
@@ -41,8 +42,10 @@ test: $(STAMP) sysdeps
 _pytest:
 	$(if $(shell command -v xvfb-run 2>/dev/null),xvfb-run -a -s "-screen 0 1280x1024x24",) $(PY) -m pytest
 
+# Writes bench-output/bench.md and prints it; see `$(PY) benchmarks/run.py --help` for BENCH_ARGS.
+BENCH_ARGS ?=
 bench: $(STAMP)
-	$(PY) benchmarks/run.py
+	$(PY) benchmarks/run.py $(BENCH_ARGS)
 
 # The wheel a user gets: built from the sources, installed into a fresh venv in a folder outside the
 # source tree (so nothing is imported from here), then `domains --version` and `domains demo` run there.

@@ -1,89 +1,448 @@
-"""Benchmarks: each case is timed against a reference computation run in the same process.
+"""Benchmarks of cdw-domains (``make bench``): each case is a ratio against a reference measured alongside.
 
-Printed numbers are ratios (ours / reference), so that a shared, noisy machine still gives
-comparable results from run to run. Run with `make bench`.
+Ratios (ours / reference), not seconds, are what carry from one machine or one load to the
+next; the seconds are printed too. Nothing here is a test: no case fails the build, the
+targets (issue 10 and 11) are printed beside the values.
+
+Cases (``--only`` picks some, comma separated):
+
+startup  ``domains --help`` and ``import domains`` vs ``python -c "import numpy"``: best of 5
+         fresh interpreters each, interleaved; target <= 3.
+kernel   ``domains.lockin``, 3 q, 4096^2 float32, sigma 8 px, vs the textbook real-space
+         lock-in, the full-resolution FFT floor, one rfft2 and the decimated floor; amplitude
+         agreement with the textbook away from the edges (benchmarks/lockin_kernel.py).
+run      ``domains.pipeline.analyze`` of a 2048^2 topograph with two maps (the package's
+         √13×√13 scene, float32) in a fresh process: CPU time as a multiple of the textbook
+         3-q lock-in of the same image in the same process (target <= 10), peak memory
+         above the imports as a multiple of the float32 input (target <= 8x + 400 MiB), and
+         the wall time of each step (``Analysis.timings``) (benchmarks/whole_run.py).
+scaling  the same whole run for each of ``--sizes`` (default 512,1024,2048; ``--large`` adds
+         4096), each in a fresh process: time and peak memory versus N, and the exponent p of
+         CPU time ~ pixels^p (N log N gives p just above 1).
+store    (not in the default set) a 16384^2 float32 zarr store through ``domains analyze``,
+         watched: peak resident memory (target <= 1.5 GiB) and time per pixel against the
+         in-memory run at 4096^2 (target <= 2x) (benchmarks/large_store.py).
+
+Writes bench-output/bench.md (and bench.json) and prints the table; ``--update-readme``
+also puts it in the "Benchmarks" section of README.md. Examples::
+
+    python benchmarks/run.py                        # everything but the store, ~15 min on 2 cores
+    python benchmarks/run.py --only kernel --kernel-size 1024
+    python benchmarks/run.py --only run,scaling --sizes 512,1024 --run-size 1024
+    python benchmarks/run.py --only scaling,store --sizes 4096 --store-sizes 16384
 """
 
 from __future__ import annotations
 
 import argparse
+import datetime
+import json
+import math
+import os
+import platform
+import subprocess
+import sys
 import time
+from pathlib import Path
 
-import numpy as np
-from scipy import ndimage
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parent
+sys.path.insert(0, str(ROOT))  # measure this checkout (benchmarks/ itself is sys.path[0])
 
-import domains
-from domains.synth import cdw_scene
+CASES = ("startup", "kernel", "run", "scaling", "store")
+DEFAULT_CASES = ("startup", "kernel", "run", "scaling")
+README_BEGIN = "<!-- bench:begin (written by `python benchmarks/run.py --update-readme`) -->"
+README_END = "<!-- bench:end -->"
+MIB = 2**20
 
 
-def best_of(fn, repeat):
-    times = []
+def _env():
+    return {**os.environ, "PYTHONPATH": str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", "")}
+
+
+def _say(text):
+    print(f"[bench {time.strftime('%H:%M:%S')}] {text}", file=sys.stderr, flush=True)
+
+
+# ------------------------------------------------------------------------------------------ machine
+
+
+def machine():
+    """What the numbers were measured on."""
+    import numpy as np
+    import scipy
+
+    cpu = platform.processor() or platform.machine()
+    try:
+        with open("/proc/cpuinfo") as handle:
+            names = [line.split(":", 1)[1].strip() for line in handle if line.startswith("model name")]
+        cpu = names[0] if names else cpu
+    except OSError:
+        pass
+    memory = None
+    try:
+        with open("/proc/meminfo") as handle:
+            for line in handle:
+                if line.startswith("MemTotal:"):
+                    memory = int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:
+        cores = os.cpu_count()
+    try:
+        commit = subprocess.run(["git", "-C", str(ROOT), "rev-parse", "--short", "HEAD"], capture_output=True,
+                                text=True, timeout=10).stdout.strip()
+    except (OSError, subprocess.SubprocessError):
+        commit = ""
+    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else None
+    return {"nproc": cores, "load_1min": load, "memory_gib": None if memory is None else memory / 2**30, "cpu": cpu,
+            "python": platform.python_version(), "numpy": np.__version__, "scipy": scipy.__version__,
+            "commit": commit, "date": datetime.date.today().isoformat()}
+
+
+# ------------------------------------------------------------------------------------------ startup
+
+
+def startup(repeat=5):
+    """Best-of-``repeat`` wall time of fresh interpreters: numpy, ``import domains``, ``domains --help``."""
+    commands = {
+        "numpy": [sys.executable, "-c", "import numpy"],
+        "import domains": [sys.executable, "-c", "import domains"],
+        # What the installed `domains` script runs.
+        "domains --help": [sys.executable, "-c", "import sys; from domains.cli import main; sys.exit(main())",
+                           "--help"],
+    }
+    best = {name: math.inf for name in commands}
+    env = _env()
+    for name, command in commands.items():  # warm the file cache once
+        subprocess.run(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env, check=True)
     for _ in range(repeat):
+        for name, command in commands.items():
+            start = time.perf_counter()
+            subprocess.run(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env, check=True)
+            best[name] = min(best[name], time.perf_counter() - start)
+    heavy = ("numpy", "scipy", "matplotlib", "napari", "distributed", "skimage", "dask", "zarr")
+    probe = ("import contextlib, io, sys\nfrom domains.cli import main\n"
+             "with contextlib.redirect_stdout(io.StringIO()):\n    main(['--help'])\n"
+             f"print(' '.join(m for m in {heavy!r} if m in sys.modules))")
+    loaded = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, env=env).stdout.strip()
+    rows = [
+        ("`domains --help` vs `python -c \"import numpy\"` (best of 5 fresh interpreters)",
+         best["domains --help"], best["numpy"], 3.0),
+        ("`import domains` vs `python -c \"import numpy\"`", best["import domains"], best["numpy"], None),
+    ]
+    notes = [f"packages loaded by `domains --help` among {', '.join(heavy)}: {loaded or 'none'}"]
+    return rows, notes
+
+
+# ------------------------------------------------------------------------------------------ whole runs
+
+
+def _worker(args, timeout, memory_limit):
+    """Run benchmarks/whole_run.py in a fresh interpreter, watched; its JSON, or {"error": ...}.
+
+    The worker is stopped (its own process group) past ``timeout`` seconds or ``memory_limit``
+    resident bytes, so that a size too large for today's code does not take the machine down.
+    """
+    import tempfile
+
+    from large_store import _tree_rss
+
+    command = [sys.executable, str(HERE / "whole_run.py"), *args]
+    with tempfile.TemporaryFile("w+") as out, tempfile.TemporaryFile("w+") as err:
+        child = subprocess.Popen(command, stdout=out, stderr=err, text=True, env=_env(), start_new_session=True)
+        start, peak, stopped = time.perf_counter(), 0, None
+        while child.poll() is None:
+            peak = max(peak, _tree_rss(child.pid))
+            if peak > memory_limit:
+                stopped = f"stopped at {peak / 2**30:.2f} GiB resident (limit {memory_limit / 2**30:.2f} GiB)"
+            elif time.perf_counter() - start > timeout:
+                stopped = f"did not finish in {timeout:.0f} s"
+            if stopped:
+                os.killpg(child.pid, 9)
+                child.wait()
+                return {"error": stopped}
+            time.sleep(0.25)
+        out.seek(0)
+        err.seek(0)
+        stdout, stderr = out.read(), err.read()
+    if child.returncode != 0:
+        last = (stderr.strip().splitlines() or ["?"])[-1]
+        return {"error": f"exit {child.returncode}: {last}"}
+    return json.loads(stdout.strip().splitlines()[-1])
+
+
+def whole_runs(sizes, reference_sizes, cache, timeout, memory_limit):
+    """One fresh process per size (smallest first); stops at the first size that fails or times out."""
+    results = {}
+    for size in sorted(sizes):
+        _say(f"whole run {size}^2: generating the scene (cached)")
+        made = _worker(["--size", str(size), "--cache", str(cache), "--make-scene"], timeout, memory_limit)
+        if "error" in made:
+            results[size] = made
+            break
+        _say(f"whole run {size}^2: analyze in a fresh process")
         start = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - start)
-    return min(times)
+        extra = ["--reference"] if size in reference_sizes else []
+        results[size] = _worker(["--size", str(size), "--cache", str(cache), *extra], timeout, memory_limit)
+        _say(f"whole run {size}^2: {time.perf_counter() - start:.0f} s")
+        if "error" in results[size]:
+            break
+    return results
 
 
-def reference_lockin(image, q, sigma_px, pixel):
-    """The plain real-space lock-in: Gaussian-filter I cos and I sin separately for each q."""
-    y, x = np.mgrid[: image.shape[0], : image.shape[1]] * pixel
-    out = []
-    for qx, qy in q:
-        arg = qx * x + qy * y
-        re = ndimage.gaussian_filter(image * np.cos(arg), sigma_px, truncate=6, mode="constant")
-        im = ndimage.gaussian_filter(image * np.sin(arg), sigma_px, truncate=6, mode="constant")
-        out.append(re - 1j * im)
-    return np.array(out)
+def fit_exponent(sizes, seconds):
+    """p of seconds ~ pixels^p (least squares in log-log), and the p that N log N would give."""
+    import numpy as np
+
+    pixels = np.asarray(sizes, float) ** 2
+    p = float(np.polyfit(np.log(pixels), np.log(seconds), 1)[0])
+    p_nlogn = float(np.polyfit(np.log(pixels), np.log(pixels * np.log(pixels)), 1)[0])
+    return p, p_nlogn
 
 
-def main():
-    parser = argparse.ArgumentParser(description=__doc__)
-    parser.add_argument("--size", type=int, default=1024, help="image size in pixels (default 1024)")
-    parser.add_argument("--repeat", type=int, default=3)
-    parser.add_argument("--kernel-size", type=int, default=4096,
-                        help="image size of the lock-in kernel benchmark (default 4096; 0 skips it)")
-    args = parser.parse_args()
-    scene = cdw_scene(shape=(args.size, args.size), rng=0)
-    image, pixel = scene.topography.data, scene.topography.pixel_size_nm[0]
-    q = np.vstack([scene.truth["q_cdw_rad_per_nm"], scene.truth["lattice"]["q_bragg_rad_per_nm"]])
-    sigma_nm = 0.8
-    rows = []
+# ------------------------------------------------------------------------------------------ store
 
-    ours = best_of(lambda: domains.lockin(image, q, sigma_nm=sigma_nm, pixel_size_nm=pixel), args.repeat)
-    ref = best_of(lambda: reference_lockin(image, q, sigma_nm / pixel, pixel), args.repeat)
-    rows.append(("lock-in, 6 q, in memory vs scipy real-space filters", ours, ref))
 
-    import dask
-    import dask.array as da
+def store(sizes, cache, memory_limit_gib, timeout):
+    results = {}
+    for size in sizes:
+        _say(f"store {size}^2: writing the zarr store (cached) and running `domains analyze` on it")
+        command = [sys.executable, str(HERE / "large_store.py"), "--size", str(size), "--cache", str(cache),
+                   "--memory-limit-gib", str(memory_limit_gib), "--timeout", str(timeout)]
+        done = subprocess.run(command, capture_output=True, text=True, env=_env())
+        if done.returncode != 0:
+            results[size] = {"status": "error: " + (done.stderr.strip().splitlines() or ["?"])[-1]}
+        else:
+            results[size] = json.loads(done.stdout.strip().splitlines()[-1])
+    return results
 
-    lazy = da.from_array(image, chunks=args.size // 4)
-    with dask.config.set(scheduler="threads"):
-        chunked = best_of(lambda: domains.lockin(lazy, q, sigma_nm=sigma_nm, pixel_size_nm=pixel).compute(),
-                          args.repeat)
-    rows.append(("lock-in, 6 q, dask 4x4 chunks vs in memory", chunked, ours))
 
-    from domains.pipeline import analyze
+# ------------------------------------------------------------------------------------------ report
 
-    small = cdw_scene(rng=0)
-    full = best_of(lambda: analyze(small.topography, maps=small.maps, progress=False), 1)
-    one = best_of(lambda: domains.lockin(small.topography.data, q[:3], sigma_nm=sigma_nm,
-                                         pixel_size_nm=small.topography.pixel_size_nm), args.repeat)
-    rows.append(("whole analysis of the 512^2 demo scene vs one 3-q lock-in of it", full, one))
 
-    notes = []
-    if args.kernel_size:
-        import lockin_kernel  # benchmarks/ is on sys.path when this file runs as a script
+def _s(x):
+    if x is None or (isinstance(x, float) and not math.isfinite(x)):
+        return "–"
+    return f"{x:.3g}" if x < 100 else f"{x:.0f}"
 
-        kernel_rows, notes = lockin_kernel.run(size=args.kernel_size, repeat=args.repeat)
-        rows.extend(kernel_rows)
 
-    width = max(len(r[0]) for r in rows)
-    print(f"{'case':<{width}}  {'ours (s)':>9}  {'ref (s)':>9}  {'ratio':>7}")
-    for name, a, b in rows:
-        print(f"{name:<{width}}  {a:9.3f}  {b:9.3f}  {a / b:7.2f}")
-    for note in notes:
-        print(note)
+def _ratio(a, b):
+    return a / b if a is not None and b else None
+
+
+def _mark(value, target):
+    if value is None or target is None:
+        return ""
+    return " ✓" if value <= target else " ✗"
+
+
+def _cell(text):
+    return str(text).replace("|", "\\|")  # a pipe inside a cell would end it
+
+
+def markdown(data):
+    m = data["machine"]
+    memory = "?" if m["memory_gib"] is None else f"{m['memory_gib']:.1f} GiB"
+    lines = [
+        f"Measured {m['date']} at commit `{m['commit']}` on {m['nproc']} cores, {memory}, {m['cpu']}; "
+        f"Python {m['python']}, numpy {m['numpy']}, scipy {m['scipy']}."
+        + ("" if m.get("load_1min") is None else
+           f" Load average when it started: {m['load_1min']:.1f} (other work on the machine lengthens wall "
+           "times; CPU times and ratios suffer less)."),
+    ]
+    if data["rows"]:
+        lines += ["", "| case | ours (s) | reference (s) | ratio | target |", "|---|---:|---:|---:|---:|"]
+    for name, ours, ref, target in data["rows"]:
+        ratio = _ratio(ours, ref)
+        lines.append(f"| {_cell(name)} | {_s(ours)} | {_s(ref)} | {_s(ratio)}{_mark(ratio, target)} | "
+                     f"{'' if target is None else f'≤ {target:g}'} |")
+    if data["checks"]:
+        lines += ["", "| check | value | target |", "|---|---:|---:|"]
+        for name, value, target in data["checks"]:
+            lines.append(f"| {_cell(name)} | {value:.2g}{_mark(value, target)} | ≤ {target:g} |")
+    runs = data.get("runs") or {}
+    run_size = data.get("run_size")
+    if run_size in runs and "timings" in runs[run_size]:
+        r = runs[run_size]
+        total = sum(r["timings"].values())
+        lines += ["", f"Steps of the whole run at {run_size}² (wall seconds, `Analysis.timings`; "
+                      f"{r['n_maps']} maps, σ = {_s(r['sigma_px'])} px):", "",
+                  "| step | wall (s) | share |", "|---|---:|---:|"]
+        for step, seconds in sorted(r["timings"].items(), key=lambda kv: -kv[1]):
+            lines.append(f"| {step} | {_s(seconds)} | {100 * seconds / total:.0f} % |")
+    scaling = [(n, r) for n, r in sorted(runs.items()) if n in data.get("scaling_sizes", ())]
+    if scaling:
+        lines += ["", "Whole run versus size (each in a fresh process; memory is the peak resident set above "
+                      "the imports, inputs included: the topograph and 2 maps, float32):", "",
+                  "| N | wall (s) | CPU (s) | CPU × textbook 3-q lock-in | peak above imports (MiB) | "
+                  "× float32 topograph | target (MiB) |",
+                  "|---:|---:|---:|---:|---:|---:|---:|"]
+        for n, r in scaling:
+            if "error" in r:
+                lines.append(f"| {n} | {r['error']} | | | | | |")
+                continue
+            peak = r["peak_above_baseline_bytes"]
+            target = 8 * r["input_bytes"] + 400 * MIB
+            lines.append(f"| {n} | {_s(r['wall_s'])} | {_s(r['cpu_s'])} | "
+                         f"{_s(_ratio(r['cpu_s'], r.get('reference_cpu_s')))} | {peak / MIB:.0f}{_mark(peak, target)} | "
+                         f"{_s(peak / r['input_bytes'])} | ≤ {target / MIB:.0f} |")
+        fit = data.get("exponent")
+        if fit:
+            lines += ["", f"CPU time ~ pixels^p with p = {fit[0]:.2f} over N = "
+                          f"{', '.join(str(n) for n, r in scaling if 'error' not in r)} "
+                          f"(N log N would give p = {fit[1]:.2f}).{_mark(fit[0], fit[1] + 0.05)}"]
+            top = data.get("exponent_top")
+            if top and len(scaling) > 2:
+                lines[-1] += (f" Between the two largest, {top[0]} and {top[1]}, where fixed costs weigh least: "
+                              f"p = {top[2]:.2f} (N log N: {top[3]:.2f}).{_mark(top[2], top[3] + 0.05)}")
+    stores = data.get("store") or {}
+    if stores:
+        lines += ["", "Larger than memory: `domains analyze STORE.zarr` (float32 3×3 CDW scene), watched:", "",
+                  "| N | status | wall (s) | peak resident (GiB) | target (GiB) | time per pixel × in-memory 4096² |",
+                  "|---:|---|---:|---:|---:|---:|"]
+        in_memory = runs.get(4096)
+        per_pixel = (in_memory["wall_s"] / 4096**2) if in_memory and "wall_s" in in_memory else None
+        for n, r in sorted(stores.items()):
+            target = 1.5 if n <= 16384 else 2.0
+            peak = r.get("peak_bytes", 0) / 2**30
+            status = r.get("status", "?") + (f" (last step: {r['last_step']})" if r.get("last_step") else "")
+            ratio = None
+            if per_pixel and r.get("status") == "finished":
+                ratio = r["wall_s"] / n**2 / per_pixel
+            finished = r.get("status") == "finished"
+            # A run stopped early reached at least this peak: a lower bound, failed only if above the target.
+            shown = f"{peak:.2f}{_mark(peak, target)}" if finished else f"≥ {peak:.2f}{' ✗' if peak > target else ''}"
+            lines.append(f"| {n} | {status} | {_s(r.get('wall_s'))} | {shown} | ≤ {target:g} | "
+                         f"{_s(ratio)}{_mark(ratio, 2.0)} |")
+    if data["notes"]:
+        lines += [""] + [f"- {note}" for note in data["notes"]]
+    return "\n".join(lines) + "\n"
+
+
+def update_readme(table):
+    readme = ROOT / "README.md"
+    text = readme.read_text()
+    if README_BEGIN not in text or README_END not in text:
+        raise SystemExit(f"{readme}: no benchmark markers ({README_BEGIN} ... {README_END}) to write between")
+    head, rest = text.split(README_BEGIN, 1)
+    _, tail = rest.split(README_END, 1)
+    readme.write_text(head + README_BEGIN + "\n" + table + README_END + tail)
+
+
+# ------------------------------------------------------------------------------------------ main
+
+
+def _sizes(text):
+    try:
+        sizes = [int(s) for s in text.split(",") if s.strip()]
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected sizes like 512,1024, got {text!r}") from None
+    if not sizes or min(sizes) < 64:
+        raise argparse.ArgumentTypeError(f"expected sizes of at least 64 pixels, got {text!r}")
+    return sizes
+
+
+def _cases(text):
+    cases = [c.strip() for c in text.split(",") if c.strip()]
+    unknown = [c for c in cases if c not in CASES]
+    if unknown or not cases:
+        raise argparse.ArgumentTypeError(f"unknown case(s) {', '.join(unknown) or text!r}; known: {', '.join(CASES)}")
+    return cases
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--only", type=_cases, default=list(DEFAULT_CASES), metavar="CASES",
+                        help=f"comma-separated cases among {', '.join(CASES)} (default: {','.join(DEFAULT_CASES)})")
+    parser.add_argument("--sizes", type=_sizes, default=[512, 1024, 2048], metavar="N,N,...",
+                        help="image sizes of the scaling case (default 512,1024,2048)")
+    parser.add_argument("--large", action="store_true", help="add 4096 to the scaling sizes (today: about 4x the 2048 run in time and memory)")
+    parser.add_argument("--run-size", type=int, default=2048, help="size of the whole-run case (default 2048)")
+    parser.add_argument("--kernel-size", type=int, default=4096, help="size of the kernel case (default 4096)")
+    parser.add_argument("--store-sizes", type=_sizes, default=[16384], metavar="N,N,...",
+                        help="sizes of the zarr store case (default 16384; the issue also asks for 32768)")
+    parser.add_argument("--store-memory-limit-gib", type=float, default=6.0,
+                        help="stop the store run above this resident memory (default 6)")
+    parser.add_argument("--repeat", type=int, default=3, help="best of this many runs for the kernel (default 3)")
+    parser.add_argument("--timeout", type=float, default=1500, help="seconds allowed to one whole run (default 1500)")
+    parser.add_argument("--memory-limit-gib", type=float, default=None,
+                        help="stop a whole run above this resident memory (default 60%% of the machine's)")
+    parser.add_argument("--out", type=Path, default=ROOT / "bench-output", help="output folder (default bench-output)")
+    parser.add_argument("--update-readme", action="store_true", help="write the table into README.md too")
+    parser.add_argument("--render", type=Path, metavar="BENCH.json",
+                        help="only rewrite the table from a bench.json of an earlier run (no measuring)")
+    args = parser.parse_args(argv)
+    if args.render:
+        data = json.loads(args.render.read_text())
+        for key in ("runs", "store"):  # JSON turned the sizes into strings
+            data[key] = {int(n): r for n, r in (data.get(key) or {}).items()}
+        table = markdown(data)
+        print(table)
+        if args.update_readme:
+            update_readme(table)
+        return
+    cache = args.out / "cache"
+    sizes = sorted(set(args.sizes + ([4096] if args.large else [])))
+
+    data = {"machine": machine(), "rows": [], "checks": [], "notes": [], "cases": args.only}
+    if "startup" in args.only:
+        _say("startup: fresh interpreters")
+        rows, notes = startup()
+        data["rows"] += rows
+        data["notes"] += notes
+    if "kernel" in args.only:
+        _say(f"kernel: {args.kernel_size}^2 (the textbook reference takes a while)")
+        import lockin_kernel  # benchmarks/ is sys.path[1]
+
+        rows, checks, notes = lockin_kernel.run(size=args.kernel_size, repeat=args.repeat)
+        data["rows"] += rows
+        data["checks"] += checks
+        data["notes"] += notes
+    wanted = set()
+    if "run" in args.only:
+        wanted.add(args.run_size)
+        data["run_size"] = args.run_size
+    if "scaling" in args.only or "store" in args.only and 4096 in sizes:
+        wanted.update(sizes)
+        data["scaling_sizes"] = sizes
+    if wanted:
+        limit = args.memory_limit_gib * 2**30 if args.memory_limit_gib else 0.6 * (data["machine"]["memory_gib"] or 8) * 2**30
+        runs = whole_runs(wanted, wanted, cache, args.timeout, limit)
+        data["runs"] = runs
+        r = runs.get(args.run_size)
+        if "run" in args.only and r:
+            if "error" in r:
+                data["notes"].append(f"whole run {args.run_size}²: {r['error']}")
+            else:
+                n = args.run_size
+                data["rows"].append((f"whole `analyze`, {n}² topograph + {r['n_maps']} maps, CPU time vs the "
+                                     f"textbook 3-q lock-in (σ {r['reference_sigma_px']:g} px) of the same image",
+                                     r["cpu_s"], r["reference_cpu_s"], 10.0))
+                if "reference_own_sigma_cpu_s" in r:
+                    data["rows"].append((f"the same, vs the textbook 3-q lock-in at the run's own σ "
+                                         f"({r['reference_own_sigma_sigma_px']:.3g} px; its cost grows with σ)",
+                                         r["cpu_s"], r["reference_own_sigma_cpu_s"], None))
+                data["notes"].append(f"whole run {n}²: wall {r['wall_s']:.1f} s for {r['cpu_s']:.1f} s CPU; found "
+                                     f"{r['order']}, {r['domains']} domains; the run's own σ was "
+                                     f"{_s(r['sigma_px'])} px")
+        done = [n for n in sizes if n in runs and "error" not in runs[n]]
+        if "scaling" in args.only and len(done) >= 2:
+            data["exponent"] = fit_exponent(done, [runs[n]["cpu_s"] for n in done])
+            data["exponent_top"] = (done[-2], done[-1], *fit_exponent(done[-2:], [runs[n]["cpu_s"] for n in done[-2:]]))
+    if "store" in args.only:
+        data["store"] = store(args.store_sizes, cache, args.store_memory_limit_gib, args.timeout)
+
+    table = markdown(data)
+    args.out.mkdir(parents=True, exist_ok=True)
+    (args.out / "bench.md").write_text(table)
+    (args.out / "bench.json").write_text(json.dumps(data, indent=1, default=str))
+    print(table)
+    if args.update_readme:
+        update_readme(table)
+        _say("README.md: Benchmarks section updated")
 
 
 if __name__ == "__main__":

@@ -2,17 +2,12 @@
 
 Public names are listed here once; the modules of the analysis steps (``domains.io``,
 ``domains.level``, ``domains.fourier``, ``domains.order``, ... see docs/README.md) hold the steps.
-Names are imported on first use (PEP 562), so ``import domains`` and ``domains --help`` do not
-load numpy, scipy or matplotlib before they are needed.
+Names (and ``__version__``, read from the installed metadata) are imported on first use
+(PEP 562), so ``import domains`` and ``domains --help`` do not load numpy, scipy, matplotlib,
+napari or dask before they are needed (tests/test_imports.py checks it).
 """
 
 from importlib import import_module
-from importlib.metadata import PackageNotFoundError, version
-
-try:
-    __version__ = version("cdw-domains")
-except PackageNotFoundError:  # running from a source tree that is not installed
-    __version__ = "0.0.0+unknown"
 
 _WHERE = {
     "InputError": "._errors",
@@ -31,7 +26,20 @@ _WHERE = {
 __all__ = sorted(_WHERE) + ["__version__"]
 
 
+def _version():
+    # importlib.metadata costs more than the rest of ``import domains``: read it on first use.
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("cdw-domains")
+    except PackageNotFoundError:  # running from a source tree that is not installed
+        return "0.0.0+unknown"
+
+
 def __getattr__(name):
+    if name == "__version__":
+        globals()[name] = value = _version()
+        return value
     if name in _WHERE:
         value = getattr(import_module(_WHERE[name], __name__), name)
         globals()[name] = value
@@ -40,4 +48,4 @@ def __getattr__(name):
 
 
 def __dir__():
-    return sorted(set(globals()) | set(_WHERE))
+    return sorted(set(globals()) | set(_WHERE) | {"__version__"})

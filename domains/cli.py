@@ -22,6 +22,19 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"{self.prog}: error: {' '.join(message.split())} (see {self.prog} --help)\n")
 
 
+class _Version(argparse.Action):
+    """``--version``: the installed version, read only when asked (importlib.metadata is slow to load)."""
+
+    def __init__(self, option_strings, dest=argparse.SUPPRESS, default=argparse.SUPPRESS, help=None):
+        super().__init__(option_strings, dest=dest, default=default, nargs=0, help=help)
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        from . import __version__
+
+        print(f"{parser.prog} {__version__}")  # on stdout, as argparse's own version action
+        parser.exit()
+
+
 def _pixel_size(text):
     from ._checks import number
 
@@ -46,14 +59,12 @@ def _scheduler(text):
 
 
 def _parser() -> argparse.ArgumentParser:
-    from . import __version__
-
     parser = _Parser(
         prog="domains",
         description="Domains, walls, drift, twist angle and bias contrast of periodic electronic order "
         "in STM topographs, dI/dV maps and spectroscopic grids.",
     )
-    parser.add_argument("--version", action="version", version=f"%(prog)s {__version__}")
+    parser.add_argument("--version", action=_Version, help="show the version and exit")
     parser.add_argument("--debug", action="store_true",
                         help="show the full traceback of any error (accepted anywhere on the line)")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND", parser_class=_Parser)
