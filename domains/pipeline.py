@@ -1130,9 +1130,20 @@ def _electronic_types_step(summary, tables, figures, map_scans, corrected_maps, 
     lut = np.zeros(int(labels.max()) + 1, np.int32)
     for i, members in enumerate(types.types):
         lut[list(members)] = i + 1
-    type_map = lut[labels]
-    figures["types"] = report.domain_figure(np.asarray(corrected_maps[0]), type_map, labels == 0,
-                                            pixel_size_nm=pixel, title=f"{types.n_types} electronic type(s)",
+    # The figure is drawn from arrays of at most ~1024 pixels a side (every stride-th pixel; walls kept by
+    # taking them over each block), which is all a page shows.
+    stride = max(1, -(-max(labels.shape) // 1024))
+    walls = labels == 0
+    if stride > 1:
+        from scipy import ndimage
+
+        size = 2 * (stride // 2) + 1
+        walls = ndimage.maximum_filter1d(walls.view(np.uint8), size, axis=0)[::stride]
+        walls = ndimage.maximum_filter1d(walls, size, axis=1)[:, ::stride].astype(bool)
+    type_map = lut[labels[::stride, ::stride]]
+    figures["types"] = report.domain_figure(np.asarray(corrected_maps[0])[::stride, ::stride], type_map, walls,
+                                            pixel_size_nm=(pixel[0] * stride, pixel[1] * stride),
+                                            title=f"{types.n_types} electronic type(s)",
                                             states={i + 1: f"type {n}" for i, n in enumerate(types.names)})
     curves = []
     biases = [b for q_, b in types.features if q_ == "conductance"]
