@@ -1581,7 +1581,11 @@ class ContrastSet:
         Mean minus the area-weighted mean of all domains (contrast relative to the frame).
     contrast, contrast_se : ndarray (n_biases, n_domains)
         Contrast relative to the frame from the model F = a(row) + mu_domain (robust to
-        offsets that change from scan line to scan line); area-weighted mean zero.
+        offsets that change from scan line to scan line); area-weighted mean zero. The
+        reference moves with the area weights: labels that differ by a pixel along the
+        walls (another pixel size, another segmentation) shift every domain's contrast by
+        one common amount, which the errors do not include; differences between domains
+        (use ``cov``) do not move.
     cov : ndarray (n_biases, n_domains, n_domains)
         Covariance of ``contrast``.
     noise : ndarray (n_biases,)
