@@ -30,6 +30,7 @@ __all__ = [
     "domain_electronic_contrast",
     "electronic_types",
     "fingerprint_peaks",
+    "grid_electronic_contrast",
     "grid_fingerprints",
     "phase_difference",
     "phase_shifts",
@@ -1620,6 +1621,8 @@ class ElectronicContrast:
     Built by :func:`domain_electronic_contrast`. ``units`` are the maps' units after the
     normalisation (``unit_token`` is the form used in column headers). ``working_step``:
     the statistics were taken at every s-th input pixel (:func:`domain_electronic_contrast`).
+    ``source``: "maps" (one map per bias) or "grid" (slices of a spectroscopic grid,
+    :func:`grid_electronic_contrast`; ``biases_V`` are then its energies).
     """
 
     biases_V: tuple
@@ -1634,6 +1637,7 @@ class ElectronicContrast:
     conductance: ContrastSet
     amplitude: ContrastSet | None = None
     working_step: int = 1
+    source: str = "maps"
 
     def sets(self):
         """The quantities present: conductance, then the order amplitude if computed."""
@@ -1679,7 +1683,7 @@ class ElectronicContrast:
             "biases_V": [float(b) for b in self.biases_V], "domains": [int(d) for d in self.domains],
             "units": self.units, "normalisation": self.normalisation, "normalisation_note": self.normalisation_note,
             "scale": [float(s) for s in self.scale], "sigma_nm": float(self.sigma_nm),
-            "working_step_px": int(self.working_step),
+            "working_step_px": int(self.working_step), "source": self.source,
             "quantities": {s.quantity: {"noise": [_json_float(v) for v in s.noise],
                                         "n_walls": len(s.pairs)} for s in self.sets()},
         }
@@ -2071,11 +2075,21 @@ def _contrast_set(quantity, fields, geo):
         mu = _model_contrasts(model, values)
         cv = noise[k] ** 2 * model["S"]
         if model["ncomp"] > 1:
-            # Line offsets seen inside the groups: a wall between groups may straddle such a change.
+            # Line offsets seen inside the groups: a wall between groups may straddle such a change. Each
+            # scan line holds domains of one group only; the groups' offsets relative to each other are
+            # what the walls measure, so the range is taken within each group.
             n_r = np.bincount(rows, minlength=f.shape[0])
-            a_r = np.bincount(rows, values - mu[dom], f.shape[0])[n_r > 0] / n_r[n_r > 0]
-            a_r = ndimage.median_filter(a_r, size=max(3, int(2 * math.sqrt(math.pi) * geo.sigma_px[0]) | 1))
-            step = float(a_r.max() - a_r.min()) if a_r.size else 0.0
+            used = np.flatnonzero(n_r)
+            a_r = np.bincount(rows, values - mu[dom], f.shape[0])[used] / n_r[used]
+            group_of_row = np.zeros(f.shape[0], np.int64)
+            group_of_row[rows] = model["comp"][dom]
+            size = max(3, int(2 * math.sqrt(math.pi) * geo.sigma_px[0]) | 1)
+            step = 0.0
+            for g in range(model["ncomp"]):
+                mine = a_r[group_of_row[used] == g]
+                if mine.size:
+                    mine = ndimage.median_filter(mine, size=size)
+                    step = max(step, float(mine.max() - mine.min()))
             mu, cv = _link_groups(mu, cv, model["comp"], model["ncomp"], frac, fr, fr_var, pairs, delta,
                                   np.hypot(dse, step))
         out["mean"][k], out["mean_se"][k] = mean, mean_se
@@ -2261,25 +2275,126 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
         shown_units, token = units, units
     token = "".join(ch if ch.isalnum() else "_" for ch in token).strip("_") or "value"
 
+    return _electronic_contrast(((b, maps[b]) for b in biases), scale, labels, bad, sigma_nm=sigma_nm, pixel=pixel,
+                                q=q, margin_sigma=margin_sigma, band_sigma=band_sigma, units=shown_units, token=token,
+                                normalisation=normalisation, note=note, source="maps")
+
+
+def _electronic_contrast(images, scale, labels, bad, *, sigma_nm, pixel, q, margin_sigma, band_sigma, units, token,
+                         normalisation, note, source):
+    """The contrasts of images given as (bias, image) pairs, one at a time (scaled by ``scale`` in that order)."""
+    dy, dx = pixel
     geo = _contrast_geometry(labels, bad, sigma_nm=sigma_nm, pixel=pixel, margin_sigma=margin_sigma,
                              band_sigma=band_sigma)
     if q is not None and not _resolved(q, pixel):
         note += (f"; order amplitude not measured: q reaches beyond the Nyquist limit of the "
                  f"{dy:g} x {dx:g} nm pixels")
         q = None
-
     # Fields: the smoothed normalised map, and the order amplitude, on the working grid.
-    cond_fields, amp_fields = [], []
-    for b, s in zip(biases, scale):
-        smooth, amp = _electronic_fields(maps[b], s, bad, sigma_nm=sigma_nm, pixel=pixel, step=geo.step, q=q)
+    biases, cond_fields, amp_fields = [], [], []
+    for (b, image), s in zip(images, scale):
+        smooth, amp = _electronic_fields(image, s, bad, sigma_nm=sigma_nm, pixel=pixel, step=geo.step, q=q)
+        biases.append(float(b))
         cond_fields.append(smooth)
         if amp is not None:
             amp_fields.append(amp)
-    conductance = _contrast_set("conductance", cond_fields, geo)
-    amplitude = _contrast_set("amplitude", amp_fields, geo) if q is not None else None
-    return ElectronicContrast(tuple(float(b) for b in biases), tuple(int(d) for d in geo.ids), geo.area, shown_units,
-                              token, normalisation, note, tuple(float(s) for s in scale), sigma_nm, conductance,
-                              amplitude, geo.step)
+    order = np.argsort(biases, kind="stable")
+    biases, scale = [biases[i] for i in order], [float(scale[i]) for i in order]
+    conductance = _contrast_set("conductance", [cond_fields[i] for i in order], geo)
+    amplitude = _contrast_set("amplitude", [amp_fields[i] for i in order], geo) if q is not None else None
+    return ElectronicContrast(tuple(biases), tuple(int(d) for d in geo.ids), geo.area, units, token, normalisation,
+                              note, tuple(scale), sigma_nm, conductance, amplitude, geo.step, source)
+
+
+def grid_electronic_contrast(grid, energies_V, labels, *, pixel_size_nm, sigma_nm, units="nS", mask=None, q=None,
+                             margin_sigma=3.5, band_sigma=3.0, progress=False):
+    """Per-domain conductance (and order amplitude) at every energy of a spectroscopic grid, with errors.
+
+    The slices of the grid are treated like maps at their energies
+    (:func:`domain_electronic_contrast`: interior means, row-matched differences across
+    the walls, contrasts free of scan-line offsets, errors from the independent
+    sigma-patches), without normalisation: every spectrum of a grid is taken at one
+    setpoint. A dask grid is read one chunk of energies at a time and never held whole;
+    only the smoothed slices on the working grid (every s-th pixel, about 0.6 sigma) are
+    kept. Pass the result to :func:`electronic_types` for the types, their mean spectra
+    (:meth:`ElectronicTypes.spectra`) and the energies where they differ.
+
+    Parameters
+    ----------
+    grid : (energy, row, col) array or dask array
+        Spectroscopic grid, e.g. dI/dV, on the labels' pixel grid.
+    energies_V : (energy,) array_like
+        Bias of each slice, V (distinct).
+    labels : (row, col) int array
+        0 = wall or unassigned, 1..N domains.
+    pixel_size_nm : float or (float, float)
+        Pixel size, nm.
+    sigma_nm : float
+        Smoothing (and lock-in) width, nm.
+    units : str
+        Units of the grid's values (e.g. "nS").
+    mask : (row, col) bool array, optional
+        True where pixels are untrusted.
+    q : (k, 2) array_like, optional
+        Order wavevectors (qx, qy), rad/nm: adds the order amplitude at every energy.
+    margin_sigma, band_sigma : float
+        Interior margin and width of the band beside each wall, in units of sigma.
+    progress : bool
+        Show a progress bar over the energies.
+
+    Returns
+    -------
+    ElectronicContrast
+        ``biases_V`` are the energies, ascending; ``source`` is "grid".
+
+    Raises
+    ------
+    InputError
+        If the grid is not 3-D and real, the energies do not match its first axis or
+        repeat, or the labels' shape differs from a slice.
+
+    References
+    ----------
+    .. [1] J. A. Slezak et al., PNAS 105, 3203 (2008). doi:10.1073/pnas.0706795105
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> labels = np.ones((96, 96), np.int32); labels[:, 48:] = 2
+    >>> e = np.array([-0.2, 0.0, 0.2])
+    >>> noise = np.random.default_rng(0).normal(0, 0.05, (3, 96, 96))
+    >>> grid = 1.0 + np.where(labels == 1, 1, -1) * e[:, None, None] + noise   # domain 1 brighter above 0 V
+    >>> c = grid_electronic_contrast(grid, e, labels, pixel_size_nm=0.1, sigma_nm=0.4)
+    >>> np.round(c.conductance.wall_delta[:, 0], 1).tolist()
+    [-0.4, 0.0, 0.4]
+    """
+    pixel = pixel_size_pair(pixel_size_nm)
+    sigma_nm = positive(sigma_nm, "sigma_nm")
+    margin_sigma = positive(margin_sigma, "margin_sigma")
+    band_sigma = positive(band_sigma, "band_sigma")
+    if not isinstance(units, str) or not units.strip():
+        raise InputError(f"units must be a non-empty string (the grid's units, e.g. 'nS'), got {units!r}")
+    if not _is_dask(grid):
+        grid = np.asarray(grid)
+    if grid.ndim != 3:
+        raise InputError(f"grid must be 3-D (energy, row, col), got shape {tuple(grid.shape)}")
+    if grid.dtype.kind not in "biuf":
+        raise InputError(f"grid must hold real numbers, got dtype {grid.dtype}")
+    energies = np.asarray(energies_V, dtype=float).reshape(-1)
+    if energies.size != grid.shape[0] or not np.all(np.isfinite(energies)):
+        raise InputError(f"energies_V must hold {grid.shape[0]} finite values (one per slice), got {energies.size}")
+    if np.unique(energies).size != energies.size:
+        raise InputError(f"energies_V must be distinct, got {energies.tolist()}")
+    labels = _labels(labels, grid.shape[1:])
+    bad = _mask(mask, grid.shape[1:])
+    if q is not None:
+        q = _q(q)
+    token = "".join(ch if ch.isalnum() else "_" for ch in units).strip("_") or "value"
+    slices = ((energies[e], image) for e, image in _grid_slices(grid, energies.size, progress))
+    return _electronic_contrast(slices, [1.0] * energies.size, labels, bad, sigma_nm=sigma_nm, pixel=pixel, q=q,
+                                margin_sigma=margin_sigma, band_sigma=band_sigma, units=units, token=token,
+                                normalisation="none",
+                                note="a grid: every spectrum taken at one setpoint, used as recorded", source="grid")
 
 
 def _resolved(q, pixel):
@@ -2377,14 +2492,14 @@ class ElectronicTypes:
         p = "" if quantity == "conductance" else "amplitude_"
         return f"{p}{what}_{self.contrast.unit_token}_at_{bias:+.2f}V"
 
-    def rows(self) -> list[dict]:
-        """One row per type for ``types.csv``: members, area and contrast with error at each bias."""
+    def rows(self, per_bias=True) -> list[dict]:
+        """One row per type for ``types.csv``: members, area and (``per_bias``) contrast with error at each bias."""
         area = dict(zip(self.contrast.domains, self.contrast.area_nm2))
         out = []
         for i, members in enumerate(self.types):
             row = {"type": self.names[i], "domains": ";".join(str(d) for d in members), "n_domains": len(members),
                    "area_nm2": float(sum(area[d] for d in members))}
-            for f, (quantity, bias) in enumerate(self.features):
+            for f, (quantity, bias) in enumerate(self.features if per_bias else ()):
                 h = self._header(quantity, bias)
                 row[h] = _json_float(self.value[i, f])
                 row[h + "_se"] = _json_float(self.se[i, f])
@@ -2416,17 +2531,141 @@ class ElectronicTypes:
                  "significant": self.significant(i, j, f)}
                 for f, (q, b) in enumerate(self.features)]
 
+    def spectra(self) -> dict:
+        """Each type's mean at every bias (a mean spectrum for a grid), with errors.
+
+        The mean of a type is the area-weighted mean of its domains' interior means; its
+        error adds the domains' errors in quadrature (their interiors lie 2 ``margin_sigma``
+        sigma apart, where the smoothed noise is uncorrelated; derived). Unlike the
+        contrasts, the means keep every offset of the map (a tip change biases them).
+
+        Returns
+        -------
+        dict
+            ``biases_V`` (n_biases,) and, per quantity present ("conductance",
+            "amplitude"), ``(mean, se)``, each (n_types, n_biases).
+        """
+        c = self.contrast
+        area = np.asarray(c.area_nm2, float)
+        index = {d: i for i, d in enumerate(c.domains)}
+        out = {"biases_V": np.asarray(c.biases_V, float)}
+        for s in c.sets():
+            mean = np.zeros((self.n_types, len(c.biases_V)))
+            se = np.zeros_like(mean)
+            for i, members in enumerate(self.types):
+                idx = [index[d] for d in members]
+                u = area[idx] / area[idx].sum()
+                mean[i] = s.mean[:, idx] @ u
+                se[i] = np.sqrt(s.mean_se[:, idx] ** 2 @ u**2)
+            out[s.quantity] = (mean, se)
+        return out
+
+    def significant_biases(self, i, j, quantity="conductance") -> list:
+        """Biases (energies) at which types i and j differ significantly in ``quantity``, ascending."""
+        return sorted(float(b) for f, (q, b) in enumerate(self.features) if q == quantity and self.significant(i, j, f))
+
+    def spectrum_rows(self) -> list[dict]:
+        """One row per type and bias (energy) for ``type_spectra.csv``: mean and contrast with errors."""
+        c = self.contrast
+        u = c.unit_token
+        spectra = self.spectra()
+        feature = {key: f for f, key in enumerate(self.features)}
+        out = []
+        for i, name in enumerate(self.names):
+            for k, bias in enumerate(c.biases_V):
+                row = {"type": name, "bias_V": float(bias)}
+                for s in c.sets():
+                    p = "" if s.quantity == "conductance" else "amplitude_"
+                    mean, se = spectra[s.quantity]
+                    row[f"{p}mean_{u}"] = _json_float(mean[i, k])
+                    row[f"{p}mean_{u}_se"] = _json_float(se[i, k])
+                    f = feature.get((s.quantity, float(bias)))
+                    row[f"{p}contrast_{u}"] = _json_float(self.value[i, f]) if f is not None else None
+                    row[f"{p}contrast_{u}_se"] = _json_float(self.se[i, f]) if f is not None else None
+                out.append(row)
+        return out
+
+    def difference_rows(self) -> list[dict]:
+        """One row per pair of types, quantity and bias (energy): the difference, its error, z, p, significance."""
+        u = self.contrast.unit_token
+        out = []
+        for i in range(self.n_types):
+            for j in range(i + 1, self.n_types):
+                for d in self.differences(i, j):
+                    out.append({"type_a": self.names[i], "type_b": self.names[j], "quantity": d["quantity"],
+                                "bias_V": d["bias_V"], f"difference_{u}": d["difference"],
+                                f"difference_{u}_se": d["difference_se"], "z": d["z"], "p": d["p"],
+                                "significant": d["significant"]})
+        return out
+
+    def _one_type_words(self, where):
+        """Why there is one type: the domains agree, or they differ by less than the gain allowance."""
+        n = len(self.contrast.domains)
+        test = (f"χ² = {self.homogeneity_chi2:.1f} for {self.homogeneity_dof} degrees of freedom, "
+                f"p = {self.homogeneity_p:.2g}")
+        if self.homogeneity_p >= self.alpha:
+            return f"all {n} domains agree within errors at every {where} ({test})"
+        return (f"the {n} domains are not all alike ({test}), but no two groups of them differ by more than "
+                f"their errors and the allowance of {self.gain_tolerance:.0%} for a change of the tip's gain")
+
+    def _spectral_sentences(self, unit):
+        """The grid's result in words: per pair of types, the energy ranges where they differ."""
+        c = self.contrast
+        n = self.n_types
+        if n == 1:
+            return [f"1 electronic type in the grid: {self._one_type_words('energy')}."]
+        energies = sorted(float(b) for b in c.biases_V)
+
+        def ranges(chosen):
+            runs, start, prev = [], None, None
+            for e in energies:
+                if e in chosen:
+                    start = e if start is None else start
+                    prev = e
+                elif start is not None:
+                    runs.append((start, prev))
+                    start = None
+            if start is not None:
+                runs.append((start, prev))
+            return ", ".join(_fmt_bias(a) if a == b else f"{_fmt_bias(a)[:-2]} to {_fmt_bias(b)}" for a, b in runs)
+
+        head = (f"{n} electronic types in the grid: "
+                + "; ".join(f"type {self.names[t]} (domain{'s' if len(m) > 1 else ''} "
+                            f"{', '.join(str(d) for d in m)})" for t, m in enumerate(self.types)) + ".")
+        out = [head]
+        for i in range(n):
+            for j in range(i + 1, n):
+                parts = []
+                for quantity, words in (("conductance", ("brighter", "darker")), ("amplitude", ("larger", "smaller"))):
+                    feats = [f for f, (q, _) in enumerate(self.features) if q == quantity]
+                    if not feats:
+                        continue
+                    sig = self.significant_biases(i, j, quantity)
+                    what = "in conductance" if quantity == "conductance" else "in order amplitude"
+                    if not sig:
+                        parts.append(f"do not differ {what} at any energy")
+                        continue
+                    f = max((f for f in feats if self.significant(i, j, f)),
+                            key=lambda f: abs(self.pair_diff[i, j, f]))
+                    d, se = self.pair_diff[i, j, f], self.pair_se[i, j, f]
+                    same = [e for e in energies if e not in sig and (quantity, e) in self.features]
+                    parts.append(f"differ {what} at {ranges(set(sig))} (largest at {_fmt_bias(self.features[f][1])}: "
+                                 f"{self.names[i]} {words[0] if d > 0 else words[1]} by {_pm(abs(d), se)} {unit})"
+                                 + (f", not at {ranges(set(same))}" if same else ""))
+                out.append(f"Types {self.names[i]} and {self.names[j]} " + "; ".join(parts) + ".")
+        return [" ".join(out)] if n == 2 else out
+
     def sentences(self) -> list[str]:
         """The result in words, one sentence per pair of types (and one for the grouping)."""
         c = self.contrast
         unit = "% of the frame mean" if c.normalisation == "frame" else c.units
+        if c.source == "grid":
+            return self._spectral_sentences(unit)
         n = self.n_types
         if n == 1 and len(c.domains) == 1:
             return [f"1 electronic type: a single domain ({c.normalisation_note})."]
         if n == 1:
-            return [f"1 electronic type: all {len(c.domains)} domains agree within errors at every bias "
-                    f"(χ² = {self.homogeneity_chi2:.1f} for {self.homogeneity_dof} degrees of freedom, "
-                    f"p = {self.homogeneity_p:.2g}; {c.normalisation_note})."]
+            return [f"1 electronic type: {self._one_type_words('bias')} ({c.normalisation_note})."]
 
         def members(i):
             m = self.types[i]
@@ -2497,6 +2736,10 @@ class ElectronicTypes:
             "differences": [{"types": [self.names[i], self.names[j]], "features": self.differences(i, j)}
                             for i in range(self.n_types) for j in range(i + 1, self.n_types)],
             "sentences": self.sentences(),
+            "spectra": [{"type": self.names[i], "quantity": q, "bias_V": [float(b) for b in c.biases_V],
+                         "mean": [_json_float(v) for v in mean[i]], "se": [_json_float(v) for v in se[i]]}
+                        for q, (mean, se) in ((q, v) for q, v in self.spectra().items() if q != "biases_V")
+                        for i in range(self.n_types)],
             "contrast": c.to_summary(),
         }
 

@@ -304,3 +304,91 @@ def test_decimated_grid_gives_the_same_contrasts(seed, monkeypatch):
                 assert x.verdict.verdict == y.verdict.verdict  # derived: the same data, the same decision
                 gap = np.abs(np.angle(np.exp(1j * (x.delta_phi_rad - y.delta_phi_rad))))
                 assert np.all(gap < 2 * np.hypot(x.se_rad, y.se_rad))  # derived, as above
+
+
+# ----------------------------------------------------------------------------- spectroscopic grids
+
+GRID_E = (-0.3, -0.2, -0.1, -0.05, 0.05, 0.1, 0.2, 0.3)
+# Two types that differ in conductance only at negative energies (invented offsets, nS); their CDW
+# amplitudes differ at every energy (the scene's default 0.06 and 0.09 nS).
+GRID_OFFSETS = ((-0.2, -0.15, -0.1, 0.0, 0.0, 0.0, 0.0, 0.0), (0.2, 0.15, 0.1, 0.0, 0.0, 0.0, 0.0, 0.0))
+
+
+def _grid_scene(shape=(384, 384), rng=11):
+    # A grid: every spectrum at one setpoint, no tip change (the scene's maps at its energies, noise-free).
+    return electronic_types_scene(shape=shape, n_types=2, n_domains=6, biases_V=GRID_E, offsets_nS=GRID_OFFSETS,
+                                  tip_change=False, setpoint_ratio=1.0, noise_nS=0.0, rng=rng)
+
+
+def test_grid_types_mean_spectra_and_the_energies_where_they_differ():
+    from domains.compare import grid_electronic_contrast
+
+    clean = _grid_scene()
+    truth = clean.truth["electronic"]
+    labels = clean.truth_maps["labels"]
+    q = np.array(clean.truth["q_cdw_rad_per_nm"])
+    true_groups = sorted(tuple(sorted(d for d, t in truth["type_of_domain"].items() if t == k)) for k in (0, 1))
+    # synthetic truth: the types differ in conductance where the offsets differ
+    differ = {e for e, a, b in zip(GRID_E, *GRID_OFFSETS) if a != b}
+    true_mean = np.array(truth["base_nS"])[None, :] + np.array(GRID_OFFSETS)  # (type, energy), nS
+    noise_nS = 0.05
+    z_all, false_alarms, misses, n_real = [], 0, 0, 6
+    for k in range(n_real):
+        gen = np.random.default_rng((11, k))
+        grid = np.stack([m.data for m in clean.maps]) + gen.normal(0, noise_nS, (len(GRID_E),) + labels.shape)
+        contrast = grid_electronic_contrast(grid, GRID_E, labels, pixel_size_nm=PIXEL_NM, sigma_nm=SIGMA_NM, q=q)
+        types = electronic_types(contrast)
+        assert sorted(types.types) == true_groups  # synthetic truth: the two types, exactly
+        t_of = [truth["type_of_domain"][m[0]] for m in types.types]
+        said = set(types.significant_biases(0, 1, "conductance"))
+        false_alarms += len(said - differ)
+        misses += len(differ - said)
+        # issue 15: the amplitudes of the two types differ at every energy (0.03-0.045 nS, > 30 errors)
+        assert types.significant_biases(0, 1, "amplitude") == sorted(GRID_E)
+        mean, se = types.spectra()["conductance"]
+        z_all.append((mean - true_mean[t_of]) / se)
+    # derived: differences of >= 0.1 nS are > 100 errors (~1e-3 nS): never missed. Where the types do not
+    # differ, a significant call happens with family-wise probability <= alpha = 0.01 per grid: over 6 grids,
+    # P(2 or more) = 0.0015 (binomial).
+    assert misses == 0
+    assert false_alarms <= stats.binom.isf(0.002, n_real, TYPES_ALPHA)  # binomial bound (scipy.stats)
+    # issue 15: each type's mean spectrum matches the truth within its errors. docs/methods.md §10 (normal law):
+    # 95.45 % within 2 se and 68.27 % within 1 se; 96 independent values (energies, types, noise): 4-sigma
+    # binomial bounds.
+    z = np.concatenate([v.ravel() for v in z_all])
+    for width, p in ((2, math.erf(2 / math.sqrt(2))), (1, math.erf(1 / math.sqrt(2)))):
+        inside = np.mean(np.abs(z) < width)
+        assert abs(inside - p) < 4 * math.sqrt(p * (1 - p) / z.size) + 1 / z.size  # binomial bound (derived)
+    # The sentence names the energy ranges (issue 15: "the energies where types differ significantly").
+    words = " ".join(types.sentences())
+    assert words.startswith("2 electronic types in the grid: type A (domains ")  # the wording of the report
+    assert "differ in conductance at −0.30 to −0.10 V" in words and "not at −0.05 to +0.30 V" in words  # truth
+    rows = types.spectrum_rows()
+    assert len(rows) == 2 * len(GRID_E) and {"mean_nS", "mean_nS_se", "contrast_nS_se"} <= set(rows[0])
+    diffs = types.difference_rows()
+    assert {r["bias_V"] for r in diffs if r["quantity"] == "conductance" and r["significant"]} <= set(GRID_E)
+
+
+def test_grid_step_writes_type_spectra_and_the_sentence():
+    import dask.array as da
+
+    from domains import pipeline
+    from domains._scan import Scan
+
+    clean = _grid_scene(shape=(256, 256), rng=12)
+    labels = clean.truth_maps["labels"]
+    gen = np.random.default_rng(5)
+    data = np.stack([m.data for m in clean.maps]) + gen.normal(0, 0.05, (len(GRID_E),) + labels.shape)
+    grid = Scan(da.from_array(data, chunks=(3, 256, 256)), pixel_size_nm=PIXEL_NM, energies_V=GRID_E,
+                source="<synthetic grid>", metadata={"units": "nS"})
+    summary, tables, figures, sections = {}, {}, {}, []
+    pipeline._grid_step(summary, tables, figures, sections, grid, labels, np.array(clean.truth["q_cdw_rad_per_nm"]),
+                        SIGMA_NM, (PIXEL_NM, PIXEL_NM), None)
+    block = summary["grid"]["electronic_types"]
+    assert block["n_types"] == 2 and block["contrast"]["source"] == "grid"  # synthetic truth: two types
+    assert {"grid_types", "type_spectra", "type_differences", "fingerprint"} <= set(tables)  # the bundle's tables
+    columns, rows = tables["type_spectra"]
+    assert "mean_nS" in columns and len(rows) == 2 * len(GRID_E)  # one row per type and energy
+    assert figures["type_spectra"][:4] == b"\x89PNG"  # the report's figure
+    text = " ".join(t for _, t in sections[0][1] if t)
+    assert block["sentences"][0] in text  # the report says what summary.json says
