@@ -2598,6 +2598,29 @@ class ElectronicTypes:
                                 "significant": d["significant"]})
         return out
 
+    def limitations(self) -> list[str]:
+        """What the contrasts are and are not protected against, in words (the report quotes it)."""
+        grid = self.contrast.source == "grid"
+        one = "one grid (between its spectra)" if grid else "one map"
+        tol = self.gain_tolerance
+        out = [
+            "Offsets that depend only on the scan line (a tip change that shifts the conductance from one line on, "
+            "a slow drift of the tip between lines) cancel exactly in the contrasts: the model "
+            "F = a(row) + mu_domain gives every scan line its own free offset, and walls are compared line by line.",
+            f"A change of the tip's gain within {one} (a tip change that scales the conductance from one line on) "
+            "does not cancel: it scales the contrast of every domain scanned after it, so a domain's contrast "
+            "differs above and below that line and the model returns a mixture of the two. The grouping into "
+            f"types allows for a gain change of up to {tol:.0%} by adding {tol:.0%} of the larger contrast to the "
+            "error of every difference between types; a larger change can split one type in two or make a weak "
+            "difference look significant.",
+            "The frame contrasts and the types' mean values are plain means: a tip change between lines biases "
+            "them.",
+        ]
+        if not grid:
+            out.append("A change of gain between maps is removed by the normalisation "
+                       f"({self.contrast.normalisation}) only where it scales a whole map.")
+        return out
+
     def _one_type_words(self, where):
         """Why there is one type: the domains agree, or they differ by less than the gain allowance."""
         n = len(self.contrast.domains)
@@ -2736,6 +2759,7 @@ class ElectronicTypes:
             "differences": [{"types": [self.names[i], self.names[j]], "features": self.differences(i, j)}
                             for i in range(self.n_types) for j in range(i + 1, self.n_types)],
             "sentences": self.sentences(),
+            "limitations": self.limitations(),
             "spectra": [{"type": self.names[i], "quantity": q, "bias_V": [float(b) for b in c.biases_V],
                          "mean": [_json_float(v) for v in mean[i]], "se": [_json_float(v) for v in se[i]]}
                         for q, (mean, se) in ((q, v) for q, v in self.spectra().items() if q != "biases_V")

@@ -1155,7 +1155,8 @@ def _electronic_types_step(summary, tables, figures, map_scans, corrected_maps, 
     figures["type_contrast"] = report.curves_figure(curves, xlabel="bias (V)", ylabel="contrast to the frame",
                                                     units=unit, title="Conductance contrast of each electronic type")
     words = " ".join(types.sentences())
-    return [(None, "<h3>Electronic types</h3><p>" + words + "</p>"),
+    limits = " ".join(summary["electronic_types"]["limitations"])
+    return [(None, "<h3>Electronic types</h3><p>" + words + "</p><p><b>Limits.</b> " + limits + "</p>"),
             ("types", "Domains coloured by electronic type (walls in black)."),
             ("type_contrast", "Contrast of each type to the frame at each bias, with standard errors.")]
 
@@ -1195,7 +1196,9 @@ def _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_
         figures["type_spectra"] = report.curves_figure(
             [(f"type {n}", energies, mean[i], se[i]) for i, n in enumerate(types.names)], xlabel="bias (V)",
             ylabel="mean conductance", units=units, title="Mean spectrum of each electronic type (grid)")
-        items = [(None, "<h3>Electronic types in the grid</h3><p>" + " ".join(types.sentences()) + "</p>"),
+        limits = " ".join(summary["grid"]["electronic_types"]["limitations"])
+        items = [(None, "<h3>Electronic types in the grid</h3><p>" + " ".join(types.sentences()) + "</p>"
+                  "<p><b>Limits.</b> " + limits + "</p>"),
                  ("type_spectra", "Mean spectrum of each type (area-weighted mean of its domains' interiors), with "
                                   "standard errors; type_differences.csv says at which energies the types differ "
                                   "(tests on contrasts free of scan-line offsets).")] + items
