@@ -1835,6 +1835,9 @@ def _row_offset_model(interior, ids, area, kernels):
     for c in range(ncomp):
         members = comp == c
         C[c, members] = area[members] / area[members].sum()
+    # The constraint rows are scaled like M (which leaves G unchanged: G = Z (Z^T M Z)^-1 Z^T, Z spanning
+    # the null space of C), so the KKT matrix stays well conditioned whatever the pixel count.
+    C = C * max(float(np.abs(M).max()), 1.0)
     K = np.block([[M, C.T], [C, np.zeros((ncomp, ncomp))]])
     G = np.linalg.pinv(K, rcond=1e-12)[:nd, :nd]
     hy = len(kernels[0]) // 2
@@ -1913,11 +1916,14 @@ def _link_groups(mu, cv, comp, ncomp, frac, fr, fr_var, pairs, delta, dse):
     A = np.array(rows_)
     w = 1 / np.array(var)
     H = A.T @ (w[:, None] * A)
-    K = np.block([[H, W[:, None]], [W[None, :], np.zeros((1, 1))]])
-    Kinv = np.linalg.pinv(K, rcond=1e-12)
-    G = Kinv[:ncomp, :ncomp]
-    shift = G @ (A.T @ (w * np.array(rhs)))
-    scov = G @ H @ G.T
+    # Solved in the subspace W.s = 0 (s = N t, N orthonormal): a Lagrange (KKT) matrix would mix the
+    # weights 1 / var (up to 1e8 and more) with the constraint row (~1), and its pseudo-inverse would lose
+    # the constraint (a spurious common error on every contrast).
+    basis, _ = np.linalg.qr(np.column_stack([W, np.eye(ncomp)]))
+    N = basis[:, 1:ncomp]
+    Hinv = np.linalg.pinv(N.T @ H @ N, hermitian=True)
+    shift = N @ (Hinv @ (N.T @ (A.T @ (w * np.array(rhs)))))
+    scov = N @ Hinv @ N.T
     mu = mu + shift[comp]
     cv = cv + scov[np.ix_(comp, comp)]
     return mu, cv
@@ -2688,7 +2694,7 @@ class ElectronicTypes:
         if n == 1 and len(c.domains) == 1:
             return [f"1 electronic type: a single domain ({c.normalisation_note})."]
         if n == 1:
-            return [f"1 electronic type: {self._one_type_words('bias')} ({c.normalisation_note})."]
+            return [f"1 electronic type: {self._one_type_words('bias')}; {c.normalisation_note}."]
 
         def members(i):
             m = self.types[i]

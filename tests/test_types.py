@@ -444,3 +444,29 @@ def test_types_end_to_end_at_1024_with_a_tip_change_and_two_setpoints():
     # The report states what the line-offset model does and does not remove (issue 15, tip changes).
     limits = " ".join(block["limitations"])
     assert "gain" in limits and "scan line" in limits  # the stated limitation
+
+
+def test_domains_that_share_no_scan_line_keep_exact_errors():
+    """Strips of domains that share no scan line (linked only by walls along the rows): contrasts and errors
+    scale with the maps, and the area-weighted sum of the contrasts, zero by construction, carries no variance."""
+    n = 192
+    labels = np.zeros((n, n), np.int32)
+    labels[:60], labels[62:124], labels[126:] = 1, 2, 3
+    labels[62:124, 100:] = 4  # domains 2 and 4 share rows; 1 and 3 share none with any other
+    offsets = np.array([0.0, 0.3, -0.2, 0.1, 0.0])  # invented, nS
+    white = np.random.default_rng(0).normal(0, 0.05, size=(2, n, n))
+    sets = {}
+    for scale in (1.0, 0.01):
+        maps = {-0.1: 1 + scale * (offsets[labels] + white[0]), 0.1: 1 + scale * (offsets[labels] + white[1])}
+        c = domain_electronic_contrast(maps, labels, pixel_size_nm=0.1, sigma_nm=0.4, normalisation="none")
+        sets[scale] = c.conductance
+    assert not all(sets[1.0].wall_row_matched)  # derived: walls along the rows are compared band against band
+    # derived: without normalisation every step is linear in the map once its constant part is set aside (means,
+    # wall differences, the robust noise scale, the line-offset allowance); float32 rounding of the smoothed map
+    # (6e-8 of ~1 nS) is 0.2 % of its noise at the scale 0.01: within 1 %
+    assert np.allclose(sets[0.01].contrast, 0.01 * sets[1.0].contrast, rtol=0, atol=0.01 * sets[0.01].contrast_se.max())
+    assert np.allclose(sets[0.01].contrast_se / sets[1.0].contrast_se, 0.01, rtol=0.01)
+    frac = c.area_nm2 / c.area_nm2.sum()
+    for k in range(2):
+        cov = sets[0.01].cov[k]
+        assert abs(frac @ cov @ frac) < 1e-9 * np.diag(cov).max()  # derived: sum_d frac_d mu_d = 0 exactly
