@@ -1186,10 +1186,14 @@ def _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_
         summary["grid"]["electronic_types"] = {"note": f"not measured: {err}"}
     else:
         summary["grid"]["electronic_types"] = types.to_summary()
-        for name, table in (("grid_types", types.rows(per_bias=False)), ("type_spectra", types.spectrum_rows()),
-                            ("type_differences", types.difference_rows())):
-            if table:
-                tables[name] = (list(table[0]), table)
+        u = ec.unit_token
+        empty = ["type_a", "type_b", "quantity", "bias_V", f"difference_{u}", f"difference_{u}_se", "z", "p",
+                 "significant"]  # one type: a header row and no rows
+        for name, table, columns in (("grid_types", types.rows(per_bias=False), None),
+                                     ("type_spectra", types.spectrum_rows(), None),
+                                     ("type_differences", types.difference_rows(), empty)):
+            if table or columns:
+                tables[name] = (list(table[0]) if table else columns, table)
         spectra = types.spectra()
         mean, se = spectra["conductance"]
         energies = spectra["biases_V"]
