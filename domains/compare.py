@@ -10,7 +10,7 @@ from scipy import ndimage, stats
 
 from ._checks import positive
 from ._errors import InputError
-from ._lockin import choose_sigma, lockin, trusted_mask
+from ._lockin import choose_sigma, lockin, lossless_step, trusted_mask
 from ._scan import Scan, _is_dask, pixel_size_pair
 
 __all__ = [
@@ -30,6 +30,7 @@ __all__ = [
     "domain_electronic_contrast",
     "electronic_types",
     "fingerprint_peaks",
+    "grid_electronic_contrast",
     "grid_fingerprints",
     "phase_difference",
     "phase_shifts",
@@ -54,7 +55,10 @@ def _wrap(angle):
 
 
 def _image(array, name, *, ndim=2):
-    """A real numpy float array of the expected number of dimensions, or InputError."""
+    """A real numpy float array of the expected number of dimensions, or InputError.
+
+    float32 and float64 are kept (no copy); other real types become float64.
+    """
     if isinstance(array, Scan):
         array = array.data
     if _is_dask(array):
@@ -67,7 +71,7 @@ def _image(array, name, *, ndim=2):
         raise InputError(f"{name} must be a {ndim}-D array, got shape {tuple(array.shape)}")
     if array.dtype.kind not in "biuf":
         raise InputError(f"{name} must hold real numbers, got dtype {array.dtype}")
-    return array.astype(float)
+    return array if array.dtype in (np.float32, np.float64) else array.astype(float)
 
 
 def _labels(labels, shape):
@@ -79,6 +83,12 @@ def _labels(labels, shape):
     if labels.size and labels.min() < 0:
         raise InputError(f"labels must be >= 0 (0 = wall or unassigned), got a minimum of {labels.min()}")
     return labels.astype(np.int64)
+
+
+def _label_ids(labels):
+    """The domain labels present (> 0), ascending (a count per label, not a sort of every pixel)."""
+    counts = np.bincount(labels.ravel()) if labels.size else np.zeros(1, np.int64)
+    return np.flatnonzero(counts[1:]) + 1
 
 
 def _mask(mask, shape):
@@ -113,29 +123,115 @@ def _fill_invalid(image, invalid):
 def _interior_labels(labels, *, sigma_nm, pixel_size, mask, margin_sigma):
     """Domain labels kept only where the lock-in sees one domain alone.
 
-    A pixel is kept when it lies at least ``margin_sigma`` sigma from any pixel of
-    another label (walls included), from the frame edge and from masked pixels:
-    the lock-in's Gaussian then draws less than 0.5 erfc(margin/sqrt 2) of its
-    weight from beyond a straight wall (0.6 % at 2.5 sigma; derived).
+    A pixel is kept when the boundary of its label (the crack between it and a pixel of
+    another label, walls included, a masked pixel or the frame edge) is at least
+    ``margin_sigma`` sigma away: the lock-in's Gaussian then draws less than
+    0.5 erfc(margin/sqrt 2) of its weight from beyond a straight wall (0.6 % at
+    2.5 sigma; derived). One distance transform serves every label: the distance d to
+    the nearest pixel that touches another label (4-neighbours) plus half a pixel is the
+    distance to the crack, exact along the axes and within 0.3 pixel otherwise (derived).
     """
     dy, dx = pixel_size
-    out = np.zeros_like(labels)
-    limit = margin_sigma * sigma_nm + 0.5 * min(dy, dx)
-    extra = int(math.ceil(limit / min(dy, dx))) + 2
-    for d, sl in enumerate(ndimage.find_objects(labels), start=1):
-        if sl is None:
-            continue
-        r0, r1 = max(sl[0].start - extra, 0), min(sl[0].stop + extra, labels.shape[0])
-        c0, c1 = max(sl[1].start - extra, 0), min(sl[1].stop + extra, labels.shape[1])
-        inside = labels[r0:r1, c0:c1] == d
-        # Padding with False puts the frame edge (or a point beyond the crop margin) outside.
-        dist = ndimage.distance_transform_edt(np.pad(inside, 1), sampling=(dy, dx))[1:-1, 1:-1]
-        keep = inside & (dist >= limit)
-        out[r0:r1, c0:c1][keep] = d
-    trusted = trusted_mask(labels.shape, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=mask,
-                           margin_sigma=margin_sigma)
-    out[~trusted] = 0
-    return out
+    lab = np.where(mask, -1, labels) if mask.any() else labels
+    lab = np.pad(lab, 1, constant_values=-1)  # the frame edge and masked pixels count as another label
+    edge = np.zeros(lab.shape, dtype=bool)
+    d = lab[1:] != lab[:-1]
+    edge[1:] |= d
+    edge[:-1] |= d
+    d = lab[:, 1:] != lab[:, :-1]
+    edge[:, 1:] |= d
+    edge[:, :-1] |= d
+    dist = ndimage.distance_transform_edt(~edge, sampling=(dy, dx))[1:-1, 1:-1]
+    keep = (labels > 0) & (dist + 0.5 * min(dy, dx) >= margin_sigma * sigma_nm)
+    if mask.any():
+        keep &= ~mask
+    return np.where(keep, labels, 0)
+
+
+def _working_step(sigma_nm, pixel_size):
+    """Step s of the working grid: every s-th pixel along rows and columns.
+
+    Every statistic here is a weighted mean of a field smoothed by a Gaussian of width
+    sigma (a lock-in field, a smoothed map), whose spectrum is below 1e-6 beyond about
+    5.3 / sigma, so samples every s <= pi sigma / 5.3 (about 0.6 sigma) hold all of it
+    (sampling theorem; :func:`domains.lossless_step`), and the lock-in gives exactly the
+    full-resolution values there (``lockin(..., step=s)``). A grid already that coarse
+    gives s = 1: the statistics then use the pixels as given.
+    """
+    return lossless_step(sigma_nm, pixel_size)
+
+
+def _decimate(labels, bad, step):
+    """Labels at the working grid's pixels (s m, s n), and the mask there: True when any input
+    pixel nearer to that sample than to any other is untrusted."""
+    if step == 1:
+        return labels, bad
+    labels_c = np.ascontiguousarray(labels[::step, ::step])
+    if not bad.any():
+        return labels_c, np.zeros(labels_c.shape, dtype=bool)
+    size = 2 * (step // 2) + 1  # the samples' cells, ties on both sides
+    rows = ndimage.maximum_filter1d(bad.view(np.uint8), size, axis=0, mode="constant")[::step]
+    both = ndimage.maximum_filter1d(rows, size, axis=1, mode="constant")[:, ::step]
+    return labels_c, both.astype(bool)
+
+
+#: The correlation kernel below is cut where it falls below this (its tail changes a variance by less).
+_RHO_CUT = 1e-8
+
+
+def _rho_kernels(sigma_nm, pixel_size):
+    """Per axis, rho(m) = exp(-(m d)^2 / (4 sigma^2)) for the pixel offsets m where it exceeds 1e-8.
+
+    A field smoothed by a unit-sum Gaussian of width sigma from white noise has the
+    correlation exp(-r^2 / 4 sigma^2) between points r apart (derived: the autocorrelation
+    of a Gaussian is a Gaussian of width sigma sqrt 2); it is separable in rows and columns.
+    Evaluated at the actual pixel offsets, it holds on any grid: the input pixels, the
+    working grid, or input maps already averaged over blocks of about sigma / 2.
+    """
+    out = []
+    for d in pixel_size:
+        half = int(math.ceil(2 * sigma_nm * math.sqrt(math.log(1 / _RHO_CUT)) / d))
+        m = np.arange(-half, half + 1)
+        out.append(np.exp(-((m * d) ** 2) / (4 * sigma_nm**2)))
+    return tuple(out)
+
+
+def _rho_filter(w, kernels):
+    """rho * w (correlation with the separable kernel, zero outside the array)."""
+    out = ndimage.correlate1d(w, kernels[0], axis=0, mode="constant")
+    return ndimage.correlate1d(out, kernels[1], axis=1, mode="constant")
+
+
+def _quad_form(rows, cols, weights, kernels, tile=128):
+    """sum_{p, p'} w_p w_p' rho(p - p') over distinct pixels p: the variance of sum_p w_p F(p)
+    in units of the field's pixel variance s_F^2 (F with correlation rho; derived).
+
+    rho * w is needed only where w is nonzero: on the bounding box when the pixels fill it,
+    else tile by tile, each tile with a margin of the kernel's reach (a long diagonal band).
+    """
+    if rows.size == 0:
+        return 0.0
+    hy, hx = len(kernels[0]) // 2, len(kernels[1]) // 2
+    r0, c0 = int(rows.min()), int(cols.min())
+    height, width = int(rows.max()) - r0 + 1, int(cols.max()) - c0 + 1
+    if height * width <= 4 * (rows.size + (tile + 2 * hy) * (tile + 2 * hx)):
+        w = np.zeros((height, width))
+        w[rows - r0, cols - c0] = weights
+        return float(np.sum(w * _rho_filter(w, kernels)))
+    tr, tc = (rows - r0) // tile, (cols - c0) // tile
+    key = tr * (width // tile + 1) + tc
+    total = 0.0
+    for k in np.unique(key):
+        own = key == k
+        a0 = r0 + int(tr[own][0]) * tile - hy
+        b0 = c0 + int(tc[own][0]) * tile - hx
+        a1, b1 = a0 + tile + 2 * hy, b0 + tile + 2 * hx
+        near = (rows >= a0) & (rows < a1) & (cols >= b0) & (cols < b1)
+        w = np.zeros((a1 - a0, b1 - b0))
+        w[rows[near] - a0, cols[near] - b0] = weights[near]
+        f = _rho_filter(w, kernels)
+        total += float(np.sum(weights[own] * f[rows[own] - a0, cols[own] - b0]))
+    return total
 
 
 def _independent_areas(weight_sum, weight_sq_sum, sigma_nm, pixel_size):
@@ -711,7 +807,9 @@ class DomainPhaseShift:
         }
 
 
-def _phase_shift_stats(a1, a2, interior, ids, sigma_nm, pixel_size, tolerance_rad, alpha):
+def _phase_shift_stats(a1, a2, interior, ids, sigma_nm, pixel_size, tolerance_rad, alpha, step=1):
+    """Per-domain circular statistics of A1 conj A2 over the interior; ``a1``, ``a2``, ``interior`` and
+    ``pixel_size`` on the working grid (every ``step``-th input pixel; counts are given in input pixels)."""
     flat = interior.ravel()
     n = int(max(ids.max() if ids.size else 0, flat.max() if flat.size else 0)) + 1
     k = a1.shape[0]
@@ -748,7 +846,8 @@ def _phase_shift_stats(a1, a2, interior, ids, sigma_nm, pixel_size, tolerance_ra
     out = []
     for d in ids:
         verdict = classify_contrast(mean[:, d], se[:, d], tolerance_rad=tolerance_rad, alpha=alpha)
-        out.append(DomainPhaseShift(int(d), int(counts[d]) if d < counts.size else 0, float(np.min(neff[:, d])),
+        out.append(DomainPhaseShift(int(d), int(counts[d]) * step * step if d < counts.size else 0,
+                                    float(np.min(neff[:, d])),
                                     mean[:, d].copy(), se[:, d].copy(), spread[:, d].copy(), verdict))
     return out
 
@@ -763,7 +862,10 @@ def phase_shifts(a1, a2, labels, *, sigma_nm, pixel_size_nm, mask=None, margin_s
     of independent areas area / (4 pi sigma^2) (the correlation area of a
     Gaussian lock-in; derived) in place of the pixel count. For a pure wave
     of amplitude A0 with white noise sigma_n per pixel this gives
-    2 sigma_n / (A0 sqrt(N)) over N pixels, whatever sigma (derived).
+    2 sigma_n / (A0 sqrt(N)) over N pixels, whatever sigma (derived). The fields
+    are smooth on the scale sigma, so the means are taken at every s-th pixel,
+    s = :func:`domains.lossless_step` (about 0.6 sigma), which holds their whole
+    band; pixel counts are given in input pixels.
 
     Parameters
     ----------
@@ -816,18 +918,28 @@ def phase_shifts(a1, a2, labels, *, sigma_nm, pixel_size_nm, mask=None, margin_s
     sigma_nm = positive(sigma_nm, "sigma_nm")
     labels = _labels(labels, a1.shape[1:])
     mask = _mask(mask, a1.shape[1:])
-    interior = _interior_labels(labels, sigma_nm=sigma_nm, pixel_size=pixel_size, mask=mask,
-                                margin_sigma=margin_sigma)
-    ids = np.unique(labels[labels > 0])
-    return _phase_shift_stats(a1, a2, interior, ids, sigma_nm, pixel_size, tolerance_rad, alpha)
+    # The fields are smooth on the scale sigma: every step-th pixel holds all of them (_working_step).
+    step = _working_step(sigma_nm, pixel_size)
+    labels_c, mask_c = _decimate(labels, mask, step)
+    pc = (pixel_size[0] * step, pixel_size[1] * step)
+    interior = _interior_labels(labels_c, sigma_nm=sigma_nm, pixel_size=pc, mask=mask_c, margin_sigma=margin_sigma)
+    ids = _label_ids(labels)
+    return _phase_shift_stats(a1[:, ::step, ::step], a2[:, ::step, ::step], interior, ids, sigma_nm, pc,
+                              tolerance_rad, alpha, step)
 
 
 # --------------------------------------------------------------------------- per-domain contrast
 
 
-def _contrast_rows(image, a, labels, interior, ids, bias_V, sigma_nm, pixel_size):
-    """Rows of per-domain mean amplitude (per component, total) and mean map value."""
+def _contrast_rows(image, a, labels, interior, ids, bias_V, sigma_nm, pixel_size, step=1):
+    """Rows of per-domain mean amplitude (per component, total) and mean map value.
+
+    ``image`` (NaN where untrusted) and ``labels`` are on the input grid of ``pixel_size``;
+    the lock-in fields ``a`` and the ``interior`` labels on the working grid (every
+    ``step``-th pixel); interior counts are given in input pixels.
+    """
     dy, dx = pixel_size
+    wy, wx = dy * step, dx * step
     k = a.shape[0]
     n = int(labels.max()) + 1
     amp = 2 * np.abs(a)
@@ -835,7 +947,7 @@ def _contrast_rows(image, a, labels, interior, ids, bias_V, sigma_nm, pixel_size
     flat_int = interior.ravel()
     sel_int = flat_int > 0
     ii = flat_int[sel_int]
-    n_int = np.bincount(ii, minlength=n)
+    n_int = np.bincount(ii, minlength=n) * step * step
 
     def mean_se(values, index, sel, neff_fn):
         v = values.ravel()[sel]
@@ -851,7 +963,7 @@ def _contrast_rows(image, a, labels, interior, ids, bias_V, sigma_nm, pixel_size
 
     def lockin_neff(c):
         # Independent areas of a lock-in field: area / (4 pi sigma^2), derived.
-        return np.clip(c * dy * dx / (4 * math.pi * sigma_nm**2), 1, np.maximum(c, 1))
+        return np.clip(c * wy * wx / (4 * math.pi * sigma_nm**2), 1, np.maximum(c, 1))
 
     amp_stats = [mean_se(amp[j], ii, sel_int, lockin_neff) for j in range(k)]
     tot_mu, tot_se = mean_se(total, ii, sel_int, lockin_neff)
@@ -913,7 +1025,10 @@ def domain_contrast(maps, labels, q, *, sigma_nm, pixel_size_nm, mask=None, marg
     standard error is the pixel standard deviation over sqrt(area / (4 pi
     sigma^2)) (the independent areas of a Gaussian lock-in; derived). The mean
     map value (e.g. conductance) is averaged over all the domain's pixels,
-    with error std / sqrt(n).
+    with error std / sqrt(n). The lock-in fields are demodulated (float32) and
+    averaged at every s-th pixel only, s = :func:`domains.lossless_step` (about
+    0.6 sigma), where the lock-in gives them exactly and which holds their whole
+    band; ``n_pixels_interior`` counts input pixels.
 
     Parameters
     ----------
@@ -968,14 +1083,17 @@ def domain_contrast(maps, labels, q, *, sigma_nm, pixel_size_nm, mask=None, marg
     bad = _mask(mask, labels.shape)
     for image in maps.values():
         bad |= ~np.isfinite(image)
-    interior = _interior_labels(labels, sigma_nm=sigma_nm, pixel_size=pixel_size, mask=bad,
-                                margin_sigma=margin_sigma)
-    ids = np.unique(labels[labels > 0])
+    step = _working_step(sigma_nm, pixel_size)
+    labels_c, bad_c = _decimate(labels, bad, step)
+    pc = (pixel_size[0] * step, pixel_size[1] * step)
+    interior = _interior_labels(labels_c, sigma_nm=sigma_nm, pixel_size=pc, mask=bad_c, margin_sigma=margin_sigma)
+    ids = _label_ids(labels)
     rows = []
     for bias in sorted(maps):
-        a = lockin(maps[bias], q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad)
+        a = lockin(np.asarray(maps[bias], np.float32), q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size,
+                   mask=bad if bad.any() else None, step=step)
         rows.extend(_contrast_rows(np.where(bad, np.nan, maps[bias]), a, labels, interior, ids, bias,
-                                   sigma_nm, pixel_size))
+                                   sigma_nm, pixel_size, step))
     return rows
 
 
@@ -996,7 +1114,8 @@ class Fingerprints:
     phase_rad : ndarray (N, E, k)
         Amplitude-weighted circular mean of arg A_j, referenced to pixel (0, 0).
     n_pixels : ndarray (N,)
-        Interior pixels used per domain.
+        Interior pixels used per domain, counted in input pixels (the means are taken at
+        every s-th pixel, s = :func:`domains.lossless_step`).
     """
 
     energies_V: np.ndarray
@@ -1030,9 +1149,11 @@ def grid_fingerprints(grid, energies_V, labels, q, *, sigma_nm, pixel_size_nm, m
                       progress=False):
     """Per-domain order amplitude and phase at every energy of a grid (energy, row, col).
 
-    Each energy slice is demodulated on its own (spatial lock-in [1]_) and
-    averaged over each domain's interior; a dask grid is read one chunk of
-    energies at a time and never held whole in memory.
+    Each energy slice is demodulated on its own (spatial lock-in [1]_, float
+    precision kept) and averaged over each domain's interior at every s-th pixel,
+    s = :func:`domains.lossless_step` (about 0.6 sigma: the lock-in field is smooth
+    on the scale sigma and exact there); a dask grid is read one chunk of energies
+    at a time and never held whole in memory.
 
     Parameters
     ----------
@@ -1080,8 +1201,6 @@ def grid_fingerprints(grid, energies_V, labels, q, *, sigma_nm, pixel_size_nm, m
     >>> np.round(fp.amplitude[0, :, 0], 3).tolist()
     [0.1, 0.5, 0.2]
     """
-    from tqdm import tqdm
-
     pixel_size = pixel_size_pair(pixel_size_nm)
     sigma_nm = positive(sigma_nm, "sigma_nm")
     q = _q(q)
@@ -1097,9 +1216,11 @@ def grid_fingerprints(grid, energies_V, labels, q, *, sigma_nm, pixel_size_nm, m
         raise InputError(f"energies_V must hold {grid.shape[0]} finite values (one per slice), got {energies.size}")
     labels = _labels(labels, grid.shape[1:])
     bad = _mask(mask, grid.shape[1:])
-    interior = _interior_labels(labels, sigma_nm=sigma_nm, pixel_size=pixel_size, mask=bad,
-                                margin_sigma=margin_sigma)
-    ids = np.unique(labels[labels > 0])
+    step = _working_step(sigma_nm, pixel_size)
+    labels_c, bad_c = _decimate(labels, bad, step)
+    pc = (pixel_size[0] * step, pixel_size[1] * step)
+    interior = _interior_labels(labels_c, sigma_nm=sigma_nm, pixel_size=pc, mask=bad_c, margin_sigma=margin_sigma)
+    ids = _label_ids(labels)
     n = int(labels.max()) + 1
     flat = interior.ravel()
     sel = flat > 0
@@ -1107,24 +1228,8 @@ def grid_fingerprints(grid, energies_V, labels, q, *, sigma_nm, pixel_size_nm, m
     k = q.shape[0]
     amp = np.full((ids.size, energies.size, k), np.nan)
     ph = np.full((ids.size, energies.size, k), np.nan)
-    # A dask grid is read one chunk of energies at a time (a chunk holds a few slices),
-    # so each stored chunk is read once and the whole grid never sits in memory.
-    bounds = np.cumsum((0,) + tuple(grid.chunks[0])) if lazy else np.arange(energies.size + 1)
-    block, block_start = None, None
-
-    def energy_slice(e):
-        nonlocal block, block_start
-        if not lazy:
-            return np.asarray(grid[e], dtype=float)
-        c = int(np.searchsorted(bounds, e, side="right")) - 1
-        if block_start != bounds[c]:
-            block, block_start = np.asarray(grid[bounds[c]:bounds[c + 1]].compute(), dtype=float), bounds[c]
-        return block[e - block_start]
-
-    for e in tqdm(range(energies.size), disable=(not progress) if progress is not None else None,
-                  desc="energies", unit="slice"):
-        image = energy_slice(e)
-        a = lockin(image, q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad)
+    for e, image in _grid_slices(grid, energies.size, progress):
+        a = lockin(image, q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad, step=step)
         for j in range(k):
             z = a[j].ravel()[sel]
             ok = np.isfinite(z)
@@ -1133,8 +1238,28 @@ def grid_fingerprints(grid, energies_V, labels, q, *, sigma_nm, pixel_size_nm, m
                 amp[:, e, j] = (2 * _sums(idx[ok], np.abs(z[ok]), n) / c)[ids]
             s = _sums(idx[ok], z[ok].real, n) + 1j * _sums(idx[ok], z[ok].imag, n)
             ph[:, e, j] = np.where(c[ids] > 0, np.angle(s[ids]), np.nan)
-    counts = np.bincount(idx, minlength=n)[ids]
+    counts = np.bincount(idx, minlength=n)[ids] * step * step
     return Fingerprints(energies, ids, amp, ph, counts)
+
+
+def _grid_slices(grid, n_energies, progress):
+    """(index, slice) of a grid, in order; a dask grid is read one chunk of energies at a time
+    (a chunk holds a few slices), so each stored chunk is read once and the whole grid never
+    sits in memory."""
+    from tqdm import tqdm
+
+    lazy = _is_dask(grid)
+    bounds = np.cumsum((0,) + tuple(grid.chunks[0])) if lazy else None
+    block, block_start = None, None
+    for e in tqdm(range(n_energies), disable=(not progress) if progress is not None else None,
+                  desc="energies", unit="slice"):
+        if not lazy:
+            yield e, np.asarray(grid[e])
+            continue
+        c = int(np.searchsorted(bounds, e, side="right")) - 1
+        if block_start != bounds[c]:
+            block, block_start = np.asarray(grid[bounds[c]:bounds[c + 1]].compute()), bounds[c]
+        yield e, block[e - block_start]
 
 
 def fingerprint_peaks(fingerprints, *, component=None):
@@ -1401,20 +1526,26 @@ def compare_biases(topograph, maps, labels, q, *, sigma_nm, pixel_size_nm, bragg
     # One region for every bias, so each pair compares the same pixels.
     for image in maps.values():
         bad |= ~np.isfinite(image)
-    interior = _interior_labels(labels, sigma_nm=sigma_nm, pixel_size=pixel_size, mask=bad,
-                                margin_sigma=margin_sigma)
-    ids = np.unique(labels[labels > 0])
-    fields_a = {b: lockin(maps[b], q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad) for b in biases}
+    # Every statistic is a mean of lock-in fields, smooth on the scale sigma: they are taken at every
+    # step-th pixel, where the lock-in computes them exactly (_working_step).
+    step = _working_step(sigma_nm, pixel_size)
+    labels_c, bad_c = _decimate(labels, bad, step)
+    pc = (pixel_size[0] * step, pixel_size[1] * step)
+    interior = _interior_labels(labels_c, sigma_nm=sigma_nm, pixel_size=pc, mask=bad_c, margin_sigma=margin_sigma)
+    ids = _label_ids(labels)
+    valid = bad if bad.any() else None
+    fields_a = {b: lockin(np.asarray(maps[b], np.float32), q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size,
+                          mask=valid, step=step) for b in biases}
     rows = []
     for b in biases:
         rows.extend(_contrast_rows(np.where(bad, np.nan, maps[b]), fields_a[b], labels, interior, ids, b,
-                                   sigma_nm, pixel_size))
+                                   sigma_nm, pixel_size, step))
     pairs = {}
     for b in biases:
         if b == reference:
             continue
         pairs[(reference, b)] = _phase_shift_stats(fields_a[reference], fields_a[b], interior, ids, sigma_nm,
-                                                   pixel_size, tolerance_rad, alpha)
+                                                   pc, tolerance_rad, alpha, step)
     return BiasComparison(biases, reference, q, sigma_nm, registrations, pairs, tolerance_rad, alpha, rows)
 
 
@@ -1440,40 +1571,6 @@ TYPES_ALPHA = 0.01
 GAIN_TOLERANCE = 0.2
 
 
-def _sparse_norm2(rows, cols, weights, shape, sigma_px, pad):
-    """sum over pixels of (K * w)^2, w given by pixel indices and weights, K a unit-sum Gaussian of ``sigma_px``."""
-    r0, r1 = max(int(rows.min()) - pad, 0), min(int(rows.max()) + pad + 1, shape[0])
-    c0, c1 = max(int(cols.min()) - pad, 0), min(int(cols.max()) + pad + 1, shape[1])
-    w = np.zeros((r1 - r0, c1 - c0))
-    np.add.at(w, (rows - r0, cols - c0), weights)
-    f = ndimage.gaussian_filter(w, sigma_px, mode="constant", truncate=4.0)
-    return float(np.sum(f * f))
-
-
-def _kernel_norm2(sigma_px):
-    """sum K^2 of the discrete unit-sum Gaussian (about 1 / (4 pi sigma_y sigma_x) in pixels; derived)."""
-    half = int(math.ceil(4 * max(sigma_px))) + 1
-    delta = np.zeros((2 * half + 1, 2 * half + 1))
-    delta[half, half] = 1.0
-    return float(np.sum(ndimage.gaussian_filter(delta, sigma_px, mode="constant", truncate=4.0) ** 2))
-
-
-def _neighbour_pairs(labels, gap_px, min_contact):
-    """Pairs (a, b), a < b, of domains that touch or face each other across a wall of at most ``gap_px`` pixels."""
-    counts = {}
-    for s in range(1, gap_px + 2):
-        for a, b in ((labels[:, :-s], labels[:, s:]), (labels[:-s], labels[s:])):
-            edge = (a != b) & (a > 0) & (b > 0)
-            if not edge.any():
-                continue
-            lo, hi = np.minimum(a[edge], b[edge]), np.maximum(a[edge], b[edge])
-            keys, n = np.unique(lo * (labels.max() + 1) + hi, return_counts=True)
-            for key, c in zip(keys.tolist(), n.tolist()):
-                counts[key] = counts.get(key, 0) + c
-    base = int(labels.max()) + 1
-    return sorted((k // base, k % base) for k, c in counts.items() if c / (gap_px + 1) >= min_contact)
-
-
 @dataclass(frozen=True, eq=False)
 class ContrastSet:
     """Per-domain values of one quantity (mean conductance or order amplitude) at every bias, with errors.
@@ -1488,7 +1585,11 @@ class ContrastSet:
         Mean minus the area-weighted mean of all domains (contrast relative to the frame).
     contrast, contrast_se : ndarray (n_biases, n_domains)
         Contrast relative to the frame from the model F = a(row) + mu_domain (robust to
-        offsets that change from scan line to scan line); area-weighted mean zero.
+        offsets that change from scan line to scan line); area-weighted mean zero. The
+        reference moves with the area weights: labels that differ by a pixel along the
+        walls (another pixel size, another segmentation) shift every domain's contrast by
+        one common amount, which the errors do not include; differences between domains
+        (use ``cov``) do not move.
     cov : ndarray (n_biases, n_domains, n_domains)
         Covariance of ``contrast``.
     noise : ndarray (n_biases,)
@@ -1521,7 +1622,10 @@ class ElectronicContrast:
     """Per-domain contrast of conductance maps (and order amplitude) at several biases, with errors.
 
     Built by :func:`domain_electronic_contrast`. ``units`` are the maps' units after the
-    normalisation (``unit_token`` is the form used in column headers).
+    normalisation (``unit_token`` is the form used in column headers). ``working_step``:
+    the statistics were taken at every s-th input pixel (:func:`domain_electronic_contrast`).
+    ``source``: "maps" (one map per bias) or "grid" (slices of a spectroscopic grid,
+    :func:`grid_electronic_contrast`; ``biases_V`` are then its energies).
     """
 
     biases_V: tuple
@@ -1535,6 +1639,8 @@ class ElectronicContrast:
     sigma_nm: float
     conductance: ContrastSet
     amplitude: ContrastSet | None = None
+    working_step: int = 1
+    source: str = "maps"
 
     def sets(self):
         """The quantities present: conductance, then the order amplitude if computed."""
@@ -1580,6 +1686,7 @@ class ElectronicContrast:
             "biases_V": [float(b) for b in self.biases_V], "domains": [int(d) for d in self.domains],
             "units": self.units, "normalisation": self.normalisation, "normalisation_note": self.normalisation_note,
             "scale": [float(s) for s in self.scale], "sigma_nm": float(self.sigma_nm),
+            "working_step_px": int(self.working_step), "source": self.source,
             "quantities": {s.quantity: {"noise": [_json_float(v) for v in s.noise],
                                         "n_walls": len(s.pairs)} for s in self.sets()},
         }
@@ -1613,60 +1720,151 @@ def _setpoint_list(setpoints_A, maps_in_order, biases):
     return out
 
 
-def _region_stats(field, weights_of, norm2, kernel_norm2, noise):
-    """Weighted sums of ``field`` and their errors: var = noise^2 sum (K*w)^2 / sum K^2 (derived)."""
-    values = np.array([float(np.sum(field[r, c] * w)) for r, c, w in weights_of])
-    se = noise * np.sqrt(np.asarray(norm2) / kernel_norm2)
-    return values, se
+def _grown_labels(labels, pixel_size):
+    """Every wall or unassigned pixel (0) given the label of the nearest domain pixel, and its distance to it, nm."""
+    zero = labels == 0
+    if not zero.any() or zero.all():
+        return labels, np.zeros(labels.shape)
+    d0, (ri, ci) = ndimage.distance_transform_edt(zero, sampling=pixel_size, return_indices=True)
+    return labels[ri, ci], d0
 
 
-def _row_offset_model(interior, ids, area, sigma_px, kernel_norm2):
-    """Pixel weights of the per-domain contrasts in the model F = a(row) + mu_domain + noise.
+def _neighbour_pairs(grown, d0, pixel_size, gap_nm, min_contact_nm):
+    """Pairs (a, b), a < b, of domains that touch or face each other across a wall at most ``gap_nm`` wide.
+
+    Two domains face each other where their grown labels (:func:`_grown_labels`) meet; the
+    wall there is d0 + d0' wide (d0 of the two pixels that meet, exact for a wall along an
+    axis). The contact is the length of boundary between them (one pixel side per meeting
+    pair of pixels) and must be at least ``min_contact_nm``.
+    """
+    dy, dx = pixel_size
+    base = int(grown.max()) + 1
+    contact = {}
+    for a, b, da, db, side in ((grown[1:], grown[:-1], d0[1:], d0[:-1], dx),
+                               (grown[:, 1:], grown[:, :-1], d0[:, 1:], d0[:, :-1], dy)):
+        edge = (a != b) & (a > 0) & (b > 0) & (da + db <= gap_nm * (1 + 1e-9))
+        if not edge.any():
+            continue
+        lo = np.minimum(a[edge], b[edge]).astype(np.int64)
+        hi = np.maximum(a[edge], b[edge]).astype(np.int64)
+        keys, n = np.unique(lo * base + hi, return_counts=True)
+        for key, c in zip(keys.tolist(), n.tolist()):
+            contact[key] = contact.get(key, 0.0) + c * side
+    return sorted((k // base, k % base) for k, c in contact.items() if c >= min_contact_nm * (1 - 1e-9))
+
+
+def _facing(interior, grown, d0, pixel_size, reach_nm):
+    """For each interior pixel, the domain across its nearest boundary when that domain lies within ``reach_nm``, else 0.
+
+    One distance transform to the pixels of the grown labels that touch another label: the
+    nearest such pixel f lies on the pixel's own side, and the domain across it is the grown
+    label of f's neighbour g; the distance to that domain's own pixels is |p - f| + |f - g|
+    plus g's distance to a domain pixel (half the wall). A pixel near a junction counts for the
+    wall it is nearest to.
+    """
+    dy, dx = pixel_size
+    across = np.zeros(grown.shape, dtype=np.int64)
+    beyond = np.zeros(grown.shape)
+    shifts = (((slice(1, None), slice(None)), (slice(None, -1), slice(None)), dy),
+              ((slice(None, -1), slice(None)), (slice(1, None), slice(None)), dy),
+              ((slice(None), slice(1, None)), (slice(None), slice(None, -1)), dx),
+              ((slice(None), slice(None, -1)), (slice(None), slice(1, None)), dx))
+    for here, there, side in shifts:
+        g_here, g_there = grown[here], grown[there]
+        new = (g_there != g_here) & (g_there > 0) & (across[here] == 0)
+        across[here][new] = g_there[new]
+        beyond[here][new] = side + d0[there][new]
+    boundary = across > 0
+    if not boundary.any():
+        return np.zeros(grown.shape, dtype=np.int64)
+    dist, (fr, fc) = ndimage.distance_transform_edt(~boundary, sampling=pixel_size, return_indices=True)
+    near = (interior > 0) & (dist + beyond[fr, fc] <= reach_nm)
+    return np.where(near, across[fr, fc], 0)
+
+
+def _groups(values):
+    """Pixels grouped by a nonzero integer image: {value: (rows, cols)}, rows in increasing order."""
+    flat = values.ravel()
+    idx = np.flatnonzero(flat)
+    if idx.size == 0:
+        return {}
+    keys = flat[idx]
+    order = np.argsort(keys, kind="stable")
+    idx, keys = idx[order], keys[order]
+    cuts = np.flatnonzero(np.diff(keys)) + 1
+    out = {}
+    for part in np.split(np.arange(idx.size), cuts):
+        r, c = np.divmod(idx[part], values.shape[1])
+        out[int(keys[part[0]])] = (r, c)
+    return out
+
+
+def _row_offset_model(interior, ids, area, kernels):
+    """The per-domain contrasts in the model F = a(row) + mu_domain + noise, as a linear map of F, and their covariance.
 
     Least squares over every interior pixel with one free offset per scan line: within
     a row the offset is eliminated by subtracting the row's mean, leaving the normal
     matrix M = sum_rows [diag(n_r) - n_r n_r^T / N_r] (n_r the pixel count of each domain
     in row r, N_r their sum). The contrasts are fixed by one constraint per connected
     group of domains (domains linked by shared rows): area-weighted mean zero over the
-    frame. mu = sum_p W(p) F(p) with W(p) = G (x_p - n_r / N_r), G the top-left block of the
-    inverse KKT matrix (derived; Lawson & Hanson, Solving Least Squares Problems, 1974;
-    from memory). Any offset that depends only on the scan line (a tip change, a slow
-    change of the tip between lines) cancels exactly. Returns (rows, cols, W (nd, npix),
-    covariance factor S (nd, nd) with cov = s_F^2 S, number of groups).
+    frame. mu = G b with b_e = sum_p phi_e(p) F(p), phi_e(p) = [p in e] - n_r(e) / N_r over
+    interior pixels, G the top-left block of the inverse KKT matrix (derived; Lawson &
+    Hanson, Solving Least Squares Problems, 1974; from memory). Any offset that depends
+    only on the scan line (a tip change, a slow change of the tip between lines) cancels
+    exactly. The covariance is s_F^2 S with S = G P G^T, P_ef = sum_pp' phi_e(p) rho(p - p')
+    phi_f(p') (derived); phi_e vanishes outside the rows where e is present, so each row of
+    P costs one filter over that band of rows. A change of the tip's gain within a map
+    (the contrast of the lines after it scaled) is not a line offset and does not cancel.
+    Returns a dict: rows, cols, dom (interior pixels and their domain index), frac, G, S,
+    ncomp, comp.
     """
+    from scipy.sparse.csgraph import connected_components
+
     nd = len(ids)
-    index = np.zeros(int(interior.max()) + 1, int)
+    index = np.zeros(int(interior.max()) + 1, np.int64)
     index[ids] = np.arange(nd)
-    rows, cols = np.nonzero(interior > 0)
+    rows, cols = np.nonzero(interior > 0)  # row-major: rows ascending
     dom = index[interior[rows, cols]]
-    nrow = interior.shape[0]
-    cnt = np.zeros((nrow, nd))
-    np.add.at(cnt, (rows, dom), 1.0)
+    nrow, ncol = interior.shape
+    cnt = np.bincount(rows * nd + dom, minlength=nrow * nd).reshape(nrow, nd).astype(float)
     n_r = cnt.sum(1)
     used = n_r > 0
     frac = np.zeros_like(cnt)
     frac[used] = cnt[used] / n_r[used, None]
     M = np.diag(cnt.sum(0)) - cnt[used].T @ frac[used]
     link = (np.abs(M) > 1e-9 * max(np.abs(M).max(), 1.0)).astype(float)
-    from scipy.sparse.csgraph import connected_components
-
     ncomp, comp = connected_components(link, directed=False)
     C = np.zeros((ncomp, nd))
     for c in range(ncomp):
         members = comp == c
         C[c, members] = area[members] / area[members].sum()
+    # The constraint rows are scaled like M (which leaves G unchanged: G = Z (Z^T M Z)^-1 Z^T, Z spanning
+    # the null space of C), so the KKT matrix stays well conditioned whatever the pixel count.
+    C = C * max(float(np.abs(M).max()), 1.0)
     K = np.block([[M, C.T], [C, np.zeros((ncomp, ncomp))]])
     G = np.linalg.pinv(K, rcond=1e-12)[:nd, :nd]
-    W = G[:, dom] - G @ frac[rows].T  # (nd, npix)
-    # Covariance factor: sum_p (K * W_d)(K * W_e) / sum K^2, one Gaussian filter per domain (derived).
-    filtered = []
-    for d in range(nd):
-        w = np.zeros(interior.shape)
-        w[rows, cols] = W[d]
-        filtered.append(ndimage.gaussian_filter(w, sigma_px, mode="constant", truncate=4.0).ravel())
-    filtered = np.array(filtered)
-    S = filtered @ filtered.T / kernel_norm2
-    return rows, cols, W, S, ncomp, comp
+    hy = len(kernels[0]) // 2
+    P = np.zeros((nd, nd))
+    for e in range(nd):
+        present = np.flatnonzero(cnt[:, e] > 0)
+        r0, r1 = max(int(present[0]) - hy, 0), min(int(present[-1]) + hy + 1, nrow)
+        i0, i1 = np.searchsorted(rows, (r0, r1))
+        rr, cc, dd = rows[i0:i1] - r0, cols[i0:i1], dom[i0:i1]
+        phi = (dd == e) - frac[rr + r0, e]
+        band = np.zeros((r1 - r0, ncol))
+        band[rr, cc] = phi
+        psi = _rho_filter(band, kernels)[rr, cc]
+        P[e] = np.bincount(dd, psi, nd) - frac[r0:r1].T @ np.bincount(rr, psi, r1 - r0)
+    S = G @ (0.5 * (P + P.T)) @ G.T
+    return {"rows": rows, "cols": cols, "dom": dom, "frac": frac, "G": G, "S": S, "ncomp": ncomp, "comp": comp}
+
+
+def _model_contrasts(model, values):
+    """mu = G b, b_e = sum_{p in e} F(p) - sum_r frac_re sum_{p in row r} F(p), from F at the model's pixels."""
+    nd = model["G"].shape[0]
+    b = np.bincount(model["dom"], values, nd) - model["frac"].T @ np.bincount(model["rows"], values,
+                                                                               model["frac"].shape[0])
+    return model["G"] @ b
 
 
 def _field_noise(field, interior, lag_px):
@@ -1721,45 +1919,188 @@ def _link_groups(mu, cv, comp, ncomp, frac, fr, fr_var, pairs, delta, dse):
     A = np.array(rows_)
     w = 1 / np.array(var)
     H = A.T @ (w[:, None] * A)
-    K = np.block([[H, W[:, None]], [W[None, :], np.zeros((1, 1))]])
-    Kinv = np.linalg.pinv(K, rcond=1e-12)
-    G = Kinv[:ncomp, :ncomp]
-    shift = G @ (A.T @ (w * np.array(rhs)))
-    scov = G @ H @ G.T
+    # Solved in the subspace W.s = 0 (s = N t, N orthonormal): a Lagrange (KKT) matrix would mix the
+    # weights 1 / var (up to 1e8 and more) with the constraint row (~1), and its pseudo-inverse would lose
+    # the constraint (a spurious common error on every contrast).
+    basis, _ = np.linalg.qr(np.column_stack([W, np.eye(ncomp)]))
+    N = basis[:, 1:ncomp]
+    Hinv = np.linalg.pinv(N.T @ H @ N, hermitian=True)
+    shift = N @ (Hinv @ (N.T @ (A.T @ (w * np.array(rhs)))))
+    scov = N @ Hinv @ N.T
     mu = mu + shift[comp]
     cv = cv + scov[np.ix_(comp, comp)]
     return mu, cv
 
 
-def _contrast_set(quantity, fields, interior, ids, area, domain_w, wall_w, pairs, row_matched, kernel_norm2,
-                  dom_norm2, wall_norm2, lag_px, model, sigma_px):
+@dataclass(frozen=True, eq=False)
+class _Geometry:
+    """Where each estimator of :func:`domain_electronic_contrast` takes its pixels, on the working grid."""
+
+    step: int
+    pixel: tuple
+    interior: np.ndarray
+    ids: np.ndarray
+    area: np.ndarray
+    kernels: tuple
+    domain_w: list
+    dom_norm2: np.ndarray
+    pairs: list
+    wall_w: list
+    wall_norm2: np.ndarray
+    row_matched: list
+    lag_px: tuple
+    model: dict
+    sigma_px: tuple
+
+
+def _contrast_geometry(labels, bad, *, sigma_nm, pixel, margin_sigma, band_sigma):
+    """Interiors, wall bands, the line-offset model and the variance factors, on the working grid."""
+    dy, dx = pixel
+    counts = np.bincount(labels.ravel())
+    all_ids = np.flatnonzero(counts[1:]) + 1
+    if all_ids.size < 1:
+        raise InputError("labels hold no domain (every pixel is 0)")
+    step = _working_step(sigma_nm, pixel)
+    labels_c, bad_c = _decimate(labels, bad, step)
+    pc = (dy * step, dx * step)
+    interior = _interior_labels(labels_c, sigma_nm=sigma_nm, pixel_size=pc, mask=bad_c, margin_sigma=margin_sigma)
+    inside = _groups(interior)
+    ids = np.array([d for d in all_ids if int(d) in inside], dtype=np.int64)
+    if ids.size < 1:
+        raise InputError(f"no domain has an interior {margin_sigma:g} sigma from its walls "
+                         f"(sigma_nm = {sigma_nm:g}); use a smaller sigma_nm")
+    area = counts[ids] * dy * dx
+    kernels = _rho_kernels(sigma_nm, pc)
+
+    # Domain estimators: the mean over the interior.
+    domain_w, dom_norm2 = [], []
+    for d in ids:
+        r, c = inside[int(d)]
+        w = np.full(r.size, 1.0 / r.size)
+        domain_w.append((r, c, w))
+        dom_norm2.append(_quad_form(r, c, w, kernels))
+
+    # Wall estimators: row-matched band differences.
+    index = {int(d): i for i, d in enumerate(ids)}
+    grown, d0 = _grown_labels(labels_c, pc)
+    gap_nm = max(3 * sigma_nm, 2 * min(pc))  # walls labelled 0 up to 3 sigma wide
+    candidates = [(a, b) for a, b in _neighbour_pairs(grown, d0, pc, gap_nm, sigma_nm) if a in index and b in index]
+    facing = _facing(interior, grown, d0, pc, (margin_sigma + band_sigma) * sigma_nm)
+    base = int(max(interior.max(), facing.max())) + 1
+    bands = _groups(np.where(facing > 0, interior.astype(np.int64) * base + facing, 0))
+    min_rows = 3  # any shared rows give an unbiased row-matched difference; few give a large (exact) error
+    pairs, wall_w, wall_norm2, row_matched = [], [], [], []
+    for a, b in candidates:
+        if a * base + b not in bands or b * base + a not in bands:
+            continue
+        ra, ca = bands[a * base + b]
+        rb, cb = bands[b * base + a]
+        shared = np.intersect1d(ra, rb)
+        if shared.size >= min_rows:
+            keep_a, keep_b = np.isin(ra, shared), np.isin(rb, shared)
+            ra, ca, rb, cb = ra[keep_a], ca[keep_a], rb[keep_b], cb[keep_b]
+            na = np.bincount(ra, minlength=interior.shape[0])
+            nb = np.bincount(rb, minlength=interior.shape[0])
+            wa = 1.0 / (shared.size * na[ra])
+            wb = -1.0 / (shared.size * nb[rb])
+            matched = True
+        else:
+            wa, wb = np.full(ra.size, 1.0 / ra.size), np.full(rb.size, -1.0 / rb.size)
+            matched = False
+        r, c, w = np.concatenate([ra, rb]), np.concatenate([ca, cb]), np.concatenate([wa, wb])
+        pairs.append((index[a], index[b]))
+        wall_w.append((r, c, w))
+        wall_norm2.append(_quad_form(r, c, w, kernels))
+        row_matched.append(matched)
+    lag = max(1, int(round(4 * sigma_nm / pc[1])))
+    lag_px = (lag, 1 - math.exp(-((lag * pc[1] / sigma_nm) ** 2) / 4))
+    model = _row_offset_model(interior, ids, area, kernels)
+    return _Geometry(step, pc, interior, ids, area, kernels, domain_w, np.array(dom_norm2), pairs, wall_w,
+                     np.array(wall_norm2), row_matched, lag_px, model, (sigma_nm / pc[0], sigma_nm / pc[1]))
+
+
+def _upsample(coarse, shape, step):
+    """Linear interpolation from the samples at (s m, s n) to every pixel (constant beyond the last sample)."""
+    if step == 1:
+        return coarse
+
+    def matrix(n, m):
+        x = np.arange(n) / step
+        i0 = np.minimum(np.floor(x).astype(np.int64), m - 1)
+        i1 = np.minimum(i0 + 1, m - 1)
+        t = np.clip(x - i0, 0.0, 1.0).astype(coarse.dtype)
+        R = np.zeros((n, m), dtype=coarse.dtype)
+        np.add.at(R, (np.arange(n), i0), 1 - t)
+        np.add.at(R, (np.arange(n), i1), t)
+        return R
+
+    return matrix(shape[0], coarse.shape[0]) @ (coarse @ matrix(shape[1], coarse.shape[1]).T)
+
+
+def _electronic_fields(image, scale, bad, *, sigma_nm, pixel, step, q):
+    """The sigma-smoothed map and, with q, the order amplitude of what is left, at the working grid's pixels.
+
+    The smoothed map is the normalised Gaussian average of the valid pixels (the lock-in at
+    q = 0), taken at every ``step``-th pixel. Before the lock-in at q the slowly varying part
+    is removed (interpolated back from those samples, which hold its whole band): its leak
+    exp(-sigma^2 q^2 / 2) into the lock-in at q would add a ripple to the amplitude
+    (docs/methods.md §1; derived).
+    """
+    img = np.multiply(image, scale, dtype=np.float32)
+    mask = bad if bad.any() else None
+    smooth = np.asarray(lockin(img, (0.0, 0.0), sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask,
+                               step=step).real, dtype=float)
+    if q is None:
+        return smooth, None
+    finite = np.isfinite(smooth)
+    filled = np.where(finite, smooth, smooth[finite].mean() if finite.any() else 0.0).astype(np.float32)
+    img -= _upsample(filled, img.shape, step)
+    a = lockin(img, q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask, step=step)
+    amp = 2 * np.abs(a).astype(float)
+    return smooth, np.sqrt(np.sum(amp**2, axis=0))
+
+
+def _contrast_set(quantity, fields, geo):
+    interior, ids, area, pairs = geo.interior, geo.ids, geo.area, geo.pairs
     nb, nd, nw = len(fields), len(ids), len(pairs)
     out = {k: np.full((nb, nd), np.nan) for k in ("mean", "mean_se", "frame", "frame_se", "contrast", "contrast_se")}
     cov = np.full((nb, nd, nd), np.nan)
     noise = np.full(nb, np.nan)
     wd, ws = np.full((nb, nw), np.nan), np.full((nb, nw), np.nan)
     frac = area / area.sum()
+    model = geo.model
+    rows, cols, dom = model["rows"], model["cols"], model["dom"]
     for k, f in enumerate(fields):
-        noise[k] = _field_noise(f, interior, lag_px)
-        mean, mean_se = _region_stats(f, domain_w, dom_norm2, kernel_norm2, noise[k])
+        noise[k] = _field_noise(f, interior, geo.lag_px)
+        mean = np.array([float(np.sum(f[r, c] * w)) for r, c, w in geo.domain_w])
+        mean_se = noise[k] * np.sqrt(geo.dom_norm2)
         frame_mean = float(np.sum(frac * mean))
         fr = mean - frame_mean
         var = mean_se**2
         fr_var = var * (1 - frac) ** 2 + (np.sum(frac**2 * var) - frac**2 * var)
-        delta, dse = _region_stats(f, wall_w, wall_norm2, kernel_norm2, noise[k]) if nw else (np.zeros(0), np.zeros(0))
-        rows, cols, W, S, ncomp, comp = model
-        mu = W @ f[rows, cols]
-        cv = noise[k] ** 2 * S
-        if ncomp > 1:
-            # Line offsets seen inside the groups: a wall between groups may straddle such a change.
-            index = np.zeros(int(interior.max()) + 1, int)
-            index[ids] = np.arange(nd)
-            dom = index[interior[rows, cols]]
+        delta = np.array([float(np.sum(f[r, c] * w)) for r, c, w in geo.wall_w])
+        dse = noise[k] * np.sqrt(geo.wall_norm2)
+        values = f[rows, cols]
+        mu = _model_contrasts(model, values)
+        cv = noise[k] ** 2 * model["S"]
+        if model["ncomp"] > 1:
+            # Line offsets seen inside the groups: a wall between groups may straddle such a change. Each
+            # scan line holds domains of one group only; the groups' offsets relative to each other are
+            # what the walls measure, so the range is taken within each group.
             n_r = np.bincount(rows, minlength=f.shape[0])
-            a_r = np.bincount(rows, f[rows, cols] - mu[dom], f.shape[0])[n_r > 0] / n_r[n_r > 0]
-            a_r = ndimage.median_filter(a_r, size=max(3, int(2 * math.sqrt(math.pi) * sigma_px[0]) | 1))
-            step = float(a_r.max() - a_r.min()) if a_r.size else 0.0
-            mu, cv = _link_groups(mu, cv, comp, ncomp, frac, fr, fr_var, pairs, delta, np.hypot(dse, step))
+            used = np.flatnonzero(n_r)
+            a_r = np.bincount(rows, values - mu[dom], f.shape[0])[used] / n_r[used]
+            group_of_row = np.zeros(f.shape[0], np.int64)
+            group_of_row[rows] = model["comp"][dom]
+            size = max(3, int(2 * math.sqrt(math.pi) * geo.sigma_px[0]) | 1)
+            step = 0.0
+            for g in range(model["ncomp"]):
+                mine = a_r[group_of_row[used] == g]
+                if mine.size:
+                    mine = ndimage.median_filter(mine, size=size)
+                    step = max(step, float(mine.max() - mine.min()))
+            mu, cv = _link_groups(mu, cv, model["comp"], model["ncomp"], frac, fr, fr_var, pairs, delta,
+                                  np.hypot(dse, step))
         out["mean"][k], out["mean_se"][k] = mean, mean_se
         out["frame"][k], out["frame_se"][k] = fr, np.sqrt(fr_var)
         out["contrast"][k], out["contrast_se"][k] = mu, np.sqrt(np.clip(np.diag(cv), 0, None))
@@ -1767,7 +2108,7 @@ def _contrast_set(quantity, fields, interior, ids, area, domain_w, wall_w, pairs
         wd[k], ws[k] = delta, dse
     return ContrastSet(quantity, out["mean"], out["mean_se"], out["frame"], out["frame_se"], out["contrast"],
                        out["contrast_se"], cov, noise,
-                       tuple((int(ids[a]), int(ids[b])) for a, b in pairs), wd, ws, np.asarray(row_matched, bool))
+                       tuple((int(ids[a]), int(ids[b])) for a, b in pairs), wd, ws, np.asarray(geo.row_matched, bool))
 
 
 def default_normalisation(setpoints_A):
@@ -1815,13 +2156,21 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
     that every map refers to the setpoint current of the lowest-bias map (a
     constant-current dI/dV map scales with the setpoint current; common practice, no
     source), "none" leaves it. It is then smoothed by the unit-sum Gaussian of
-    ``sigma_nm`` (which removes the CDW and atomic modulation when sigma |Q| >~ 3,
-    docs/methods.md §1).
+    ``sigma_nm`` (normalised over the valid pixels; this removes the CDW and atomic
+    modulation when sigma |Q| >~ 3, docs/methods.md §1).
+
+    Every field is smooth on the scale sigma, so the statistics are taken at every s-th
+    pixel along rows and columns, s = :func:`domains.lossless_step` (about 0.6 sigma;
+    ``working_step`` of the result), where the lock-in gives the smoothed fields exactly
+    and which holds their whole band. Maps and labels already on such a coarse grid
+    (s = 1) are used as given; nothing assumes the pixel to be much smaller than sigma.
 
     - **Domain mean**: over the domain's interior (``margin_sigma`` sigma from other
       labels, walls, masks and the edge).
-    - **Wall difference** between neighbours a and b: pixels of a's interior within
-      (``margin_sigma`` + ``band_sigma``) sigma of b, against those of b near a, taken row by
+    - **Wall difference** between neighbours a and b (domains that meet across a wall at
+      most 3 sigma wide along at least sigma): pixels of a's interior whose nearest
+      boundary faces b and lie within (``margin_sigma`` + ``band_sigma``) sigma of b, against
+      those of b facing a, taken row by
       row (scan line by scan line), so any offset that depends only on the scan line (a
       tip change, a slow drift of the tip between lines) cancels; walls along the rows,
       whose bands share fewer than 3 rows, use band means instead (``row_matched`` False).
@@ -1832,12 +2181,14 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
       ``frame`` is the plain mean minus the area-weighted frame mean, which a tip change
       between lines biases. A change of the tip's gain is not removed (see
       :func:`electronic_types`).
-    - **Errors**: a weighted sum sum w F of the smoothed field F = K * g has
-      variance s_w^2 sum (K * w)^2 for white noise of pixel variance s_w^2, and the scatter
-      of F is s_F^2 = s_w^2 sum K^2, so var = s_F^2 sum (K * w)^2 / sum K^2 (derived). For a
-      region of area S much larger than sigma^2 this is s_F^2 4 pi sigma^2 / S: one
-      independent sigma-patch per 4 pi sigma^2 (derived: the autocorrelation of
-      Gaussian-smoothed white noise is exp(-r^2 / 4 sigma^2)). s_F is measured from
+    - **Errors**: the smoothed field F = K * g of white noise g has the correlation
+      rho(r) = exp(-r^2 / 4 sigma^2) between points r apart (derived: the autocorrelation
+      of a Gaussian), so a weighted sum sum_p w_p F(p) has variance
+      s_F^2 sum_pp' w_p w_p' rho(p - p'), s_F^2 the pixel variance of F, with rho taken at
+      the actual distances between the pixels used: the count of independent
+      sigma-patches follows from the pixel size. For a region of area S much larger than
+      sigma^2 this is s_F^2 4 pi sigma^2 / S: one independent sigma-patch per
+      4 pi sigma^2 (derived). s_F is measured from
       differences of F along the scan lines within domains (robust to line offsets). The
       contrasts' full covariance follows from the same formula with the model's pixel
       weights.
@@ -1910,9 +2261,6 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
         bad |= ~np.isfinite(image)
     if q is not None:
         q = _q(q)
-    ids = np.unique(labels[labels > 0])
-    if ids.size < 1:
-        raise InputError("labels hold no domain (every pixel is 0)")
 
     # Normalisation.
     if normalisation == "setpoint":
@@ -1924,7 +2272,7 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
     elif normalisation == "frame":
         scale = []
         for b in biases:
-            m = float(np.mean(maps[b][~bad])) if (~bad).any() else float("nan")
+            m = float(np.mean(maps[b], where=~bad)) if (~bad).any() else float("nan")
             if not (math.isfinite(m) and m != 0):
                 raise InputError(f"normalisation = 'frame' needs a nonzero frame mean; the map at {b:g} V has {m!r}")
             scale.append(100.0 / m)
@@ -1936,89 +2284,132 @@ def domain_electronic_contrast(maps, labels, *, pixel_size_nm, sigma_nm, units="
         shown_units, token = units, units
     token = "".join(ch if ch.isalnum() else "_" for ch in token).strip("_") or "value"
 
-    interior = _interior_labels(labels, sigma_nm=sigma_nm, pixel_size=pixel, mask=bad, margin_sigma=margin_sigma)
-    missing = [int(d) for d in ids if not np.any(interior == d)]
-    if missing:
-        ids = np.array([d for d in ids if d not in missing])
-        if ids.size < 1:
-            raise InputError(f"no domain has an interior {margin_sigma:g} sigma from its walls "
-                             f"(sigma_nm = {sigma_nm:g}); use a smaller sigma_nm")
-    area = np.bincount(labels.ravel(), minlength=int(labels.max()) + 1)[ids] * dy * dx
-    sigma_px = (sigma_nm / dy, sigma_nm / dx)
-    pad = int(math.ceil(4 * max(sigma_px))) + 1
-    kn2 = _kernel_norm2(sigma_px)
+    return _electronic_contrast(((b, maps[b]) for b in biases), scale, labels, bad, sigma_nm=sigma_nm, pixel=pixel,
+                                q=q, margin_sigma=margin_sigma, band_sigma=band_sigma, units=shown_units, token=token,
+                                normalisation=normalisation, note=note, source="maps")
 
-    # Domain estimators: the mean over the interior.
-    domain_w, dom_norm2 = [], []
-    for d in ids:
-        r, c = np.nonzero(interior == d)
-        w = np.full(r.size, 1.0 / r.size)
-        domain_w.append((r, c, w))
-        dom_norm2.append(_sparse_norm2(r, c, w, labels.shape, sigma_px, pad))
 
-    # Wall estimators: row-matched band differences.
-    index = {int(d): i for i, d in enumerate(ids)}
-    gap = max(2, int(math.ceil(3 * sigma_nm / min(dy, dx))))  # walls labelled 0 up to 3 sigma wide
-    candidates = [(a, b) for a, b in _neighbour_pairs(labels, gap, min_contact=sigma_nm / min(dy, dx))
-                  if a in index and b in index]
-    reach = (margin_sigma + band_sigma) * sigma_nm
-    min_rows = 3  # any shared rows give an unbiased row-matched difference; few give a large (exact) error
-    pairs, wall_w, wall_norm2, row_matched = [], [], [], []
-    for a, b in candidates:
-        both = (labels == a) | (labels == b)
-        rr, cc = np.nonzero(both)
-        extra = int(math.ceil(reach / min(dy, dx))) + 2
-        r0, r1 = max(rr.min() - extra, 0), min(rr.max() + extra + 1, labels.shape[0])
-        c0, c1 = max(cc.min() - extra, 0), min(cc.max() + extra + 1, labels.shape[1])
-        lab = labels[r0:r1, c0:c1]
-        inner = interior[r0:r1, c0:c1]
-        near_b = ndimage.distance_transform_edt(lab != b, sampling=pixel) <= reach
-        near_a = ndimage.distance_transform_edt(lab != a, sampling=pixel) <= reach
-        band_a, band_b = (inner == a) & near_b, (inner == b) & near_a
-        if not band_a.any() or not band_b.any():
-            continue
-        ra, ca = np.nonzero(band_a)
-        rb, cb = np.nonzero(band_b)
-        shared = np.intersect1d(ra, rb)
-        if shared.size >= min_rows:
-            keep_a, keep_b = np.isin(ra, shared), np.isin(rb, shared)
-            ra, ca, rb, cb = ra[keep_a], ca[keep_a], rb[keep_b], cb[keep_b]
-            na = np.bincount(ra, minlength=lab.shape[0])
-            nbb = np.bincount(rb, minlength=lab.shape[0])
-            wa = 1.0 / (shared.size * na[ra])
-            wb = -1.0 / (shared.size * nbb[rb])
-            matched = True
-        else:
-            wa, wb = np.full(ra.size, 1.0 / ra.size), np.full(rb.size, -1.0 / rb.size)
-            matched = False
-        r = np.concatenate([ra, rb]) + r0
-        c = np.concatenate([ca, cb]) + c0
-        w = np.concatenate([wa, wb])
-        pairs.append((index[a], index[b]))
-        wall_w.append((r, c, w))
-        wall_norm2.append(_sparse_norm2(r, c, w, labels.shape, sigma_px, pad))
-        row_matched.append(matched)
-
-    # Fields: the smoothed normalised map, and the order amplitude.
-    cond_fields, amp_fields = [], []
-    for b, s in zip(biases, scale):
-        image = _fill_invalid(maps[b] * s, bad)
-        smooth = ndimage.gaussian_filter(image, sigma_px, mode="reflect", truncate=4.0)
+def _electronic_contrast(images, scale, labels, bad, *, sigma_nm, pixel, q, margin_sigma, band_sigma, units, token,
+                         normalisation, note, source):
+    """The contrasts of images given as (bias, image) pairs, one at a time (scaled by ``scale`` in that order)."""
+    dy, dx = pixel
+    geo = _contrast_geometry(labels, bad, sigma_nm=sigma_nm, pixel=pixel, margin_sigma=margin_sigma,
+                             band_sigma=band_sigma)
+    if q is not None and not _resolved(q, pixel):
+        note += (f"; order amplitude not measured: q reaches beyond the Nyquist limit of the "
+                 f"{dy:g} x {dx:g} nm pixels")
+        q = None
+    # Fields: the smoothed normalised map, and the order amplitude, on the working grid.
+    biases, cond_fields, amp_fields = [], [], []
+    for (b, image), s in zip(images, scale):
+        smooth, amp = _electronic_fields(image, s, bad, sigma_nm=sigma_nm, pixel=pixel, step=geo.step, q=q)
+        biases.append(float(b))
         cond_fields.append(smooth)
-        if q is not None:
-            # The slowly varying part is removed first: its leak exp(-sigma^2 q^2 / 2) into the lock-in
-            # at q would add a ripple to the amplitude (docs/methods.md §1; derived).
-            a = lockin(image - smooth, q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=bad)
-            amp_fields.append(np.sqrt(np.sum((2 * np.abs(a)) ** 2, axis=0)))
-    lag = max(1, int(round(4 * sigma_px[1])))
-    lag_px = (lag, 1 - math.exp(-((lag / sigma_px[1]) ** 2) / 4))
-    model = _row_offset_model(interior, ids, area, sigma_px, kn2)
-    args = (interior, ids, area, domain_w, wall_w, pairs, row_matched, kn2, dom_norm2, wall_norm2, lag_px, model,
-            sigma_px)
-    conductance = _contrast_set("conductance", cond_fields, *args)
-    amplitude = _contrast_set("amplitude", amp_fields, *args) if q is not None else None
-    return ElectronicContrast(tuple(float(b) for b in biases), tuple(int(d) for d in ids), area, shown_units, token,
-                              normalisation, note, tuple(float(s) for s in scale), sigma_nm, conductance, amplitude)
+        if amp is not None:
+            amp_fields.append(amp)
+    order = np.argsort(biases, kind="stable")
+    biases, scale = [biases[i] for i in order], [float(scale[i]) for i in order]
+    conductance = _contrast_set("conductance", [cond_fields[i] for i in order], geo)
+    amplitude = _contrast_set("amplitude", [amp_fields[i] for i in order], geo) if q is not None else None
+    return ElectronicContrast(tuple(biases), tuple(int(d) for d in geo.ids), geo.area, units, token, normalisation,
+                              note, tuple(scale), sigma_nm, conductance, amplitude, geo.step, source)
+
+
+def grid_electronic_contrast(grid, energies_V, labels, *, pixel_size_nm, sigma_nm, units="nS", mask=None, q=None,
+                             margin_sigma=3.5, band_sigma=3.0, progress=False):
+    """Per-domain conductance (and order amplitude) at every energy of a spectroscopic grid, with errors.
+
+    The slices of the grid are treated like maps at their energies
+    (:func:`domain_electronic_contrast`: interior means, row-matched differences across
+    the walls, contrasts free of scan-line offsets, errors from the independent
+    sigma-patches), without normalisation: every spectrum of a grid is taken at one
+    setpoint. A dask grid is read one chunk of energies at a time and never held whole;
+    only the smoothed slices on the working grid (every s-th pixel, about 0.6 sigma) are
+    kept. Pass the result to :func:`electronic_types` for the types, their mean spectra
+    (:meth:`ElectronicTypes.spectra`) and the energies where they differ.
+
+    Parameters
+    ----------
+    grid : (energy, row, col) array or dask array
+        Spectroscopic grid, e.g. dI/dV, on the labels' pixel grid.
+    energies_V : (energy,) array_like
+        Bias of each slice, V (distinct).
+    labels : (row, col) int array
+        0 = wall or unassigned, 1..N domains.
+    pixel_size_nm : float or (float, float)
+        Pixel size, nm.
+    sigma_nm : float
+        Smoothing (and lock-in) width, nm.
+    units : str
+        Units of the grid's values (e.g. "nS").
+    mask : (row, col) bool array, optional
+        True where pixels are untrusted.
+    q : (k, 2) array_like, optional
+        Order wavevectors (qx, qy), rad/nm: adds the order amplitude at every energy.
+    margin_sigma, band_sigma : float
+        Interior margin and width of the band beside each wall, in units of sigma.
+    progress : bool
+        Show a progress bar over the energies.
+
+    Returns
+    -------
+    ElectronicContrast
+        ``biases_V`` are the energies, ascending; ``source`` is "grid".
+
+    Raises
+    ------
+    InputError
+        If the grid is not 3-D and real, the energies do not match its first axis or
+        repeat, or the labels' shape differs from a slice.
+
+    References
+    ----------
+    .. [1] J. A. Slezak et al., PNAS 105, 3203 (2008). doi:10.1073/pnas.0706795105
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> labels = np.ones((96, 96), np.int32); labels[:, 48:] = 2
+    >>> e = np.array([-0.2, 0.0, 0.2])
+    >>> noise = np.random.default_rng(0).normal(0, 0.05, (3, 96, 96))
+    >>> grid = 1.0 + np.where(labels == 1, 1, -1) * e[:, None, None] + noise   # domain 1 brighter above 0 V
+    >>> c = grid_electronic_contrast(grid, e, labels, pixel_size_nm=0.1, sigma_nm=0.4)
+    >>> np.round(c.conductance.wall_delta[:, 0], 1).tolist()
+    [-0.4, 0.0, 0.4]
+    """
+    pixel = pixel_size_pair(pixel_size_nm)
+    sigma_nm = positive(sigma_nm, "sigma_nm")
+    margin_sigma = positive(margin_sigma, "margin_sigma")
+    band_sigma = positive(band_sigma, "band_sigma")
+    if not isinstance(units, str) or not units.strip():
+        raise InputError(f"units must be a non-empty string (the grid's units, e.g. 'nS'), got {units!r}")
+    if not _is_dask(grid):
+        grid = np.asarray(grid)
+    if grid.ndim != 3:
+        raise InputError(f"grid must be 3-D (energy, row, col), got shape {tuple(grid.shape)}")
+    if grid.dtype.kind not in "biuf":
+        raise InputError(f"grid must hold real numbers, got dtype {grid.dtype}")
+    energies = np.asarray(energies_V, dtype=float).reshape(-1)
+    if energies.size != grid.shape[0] or not np.all(np.isfinite(energies)):
+        raise InputError(f"energies_V must hold {grid.shape[0]} finite values (one per slice), got {energies.size}")
+    if np.unique(energies).size != energies.size:
+        raise InputError(f"energies_V must be distinct, got {energies.tolist()}")
+    labels = _labels(labels, grid.shape[1:])
+    bad = _mask(mask, grid.shape[1:])
+    if q is not None:
+        q = _q(q)
+    token = "".join(ch if ch.isalnum() else "_" for ch in units).strip("_") or "value"
+    slices = ((energies[e], image) for e, image in _grid_slices(grid, energies.size, progress))
+    return _electronic_contrast(slices, [1.0] * energies.size, labels, bad, sigma_nm=sigma_nm, pixel=pixel, q=q,
+                                margin_sigma=margin_sigma, band_sigma=band_sigma, units=units, token=token,
+                                normalisation="none",
+                                note="a grid: every spectrum taken at one setpoint, used as recorded", source="grid")
+
+
+def _resolved(q, pixel):
+    """Whether every wavevector lies inside the Nyquist limit pi / d of the pixels along both axes."""
+    dy, dx = pixel
+    return bool(np.all(np.abs(q[:, 0]) * dx < math.pi) and np.all(np.abs(q[:, 1]) * dy < math.pi))
 
 
 def _letters(i):
@@ -2110,14 +2501,14 @@ class ElectronicTypes:
         p = "" if quantity == "conductance" else "amplitude_"
         return f"{p}{what}_{self.contrast.unit_token}_at_{bias:+.2f}V"
 
-    def rows(self) -> list[dict]:
-        """One row per type for ``types.csv``: members, area and contrast with error at each bias."""
+    def rows(self, per_bias=True) -> list[dict]:
+        """One row per type for ``types.csv``: members, area and (``per_bias``) contrast with error at each bias."""
         area = dict(zip(self.contrast.domains, self.contrast.area_nm2))
         out = []
         for i, members in enumerate(self.types):
             row = {"type": self.names[i], "domains": ";".join(str(d) for d in members), "n_domains": len(members),
                    "area_nm2": float(sum(area[d] for d in members))}
-            for f, (quantity, bias) in enumerate(self.features):
+            for f, (quantity, bias) in enumerate(self.features if per_bias else ()):
                 h = self._header(quantity, bias)
                 row[h] = _json_float(self.value[i, f])
                 row[h + "_se"] = _json_float(self.se[i, f])
@@ -2149,17 +2540,164 @@ class ElectronicTypes:
                  "significant": self.significant(i, j, f)}
                 for f, (q, b) in enumerate(self.features)]
 
+    def spectra(self) -> dict:
+        """Each type's mean at every bias (a mean spectrum for a grid), with errors.
+
+        The mean of a type is the area-weighted mean of its domains' interior means; its
+        error adds the domains' errors in quadrature (their interiors lie 2 ``margin_sigma``
+        sigma apart, where the smoothed noise is uncorrelated; derived). Unlike the
+        contrasts, the means keep every offset of the map (a tip change biases them).
+
+        Returns
+        -------
+        dict
+            ``biases_V`` (n_biases,) and, per quantity present ("conductance",
+            "amplitude"), ``(mean, se)``, each (n_types, n_biases).
+        """
+        c = self.contrast
+        area = np.asarray(c.area_nm2, float)
+        index = {d: i for i, d in enumerate(c.domains)}
+        out = {"biases_V": np.asarray(c.biases_V, float)}
+        for s in c.sets():
+            mean = np.zeros((self.n_types, len(c.biases_V)))
+            se = np.zeros_like(mean)
+            for i, members in enumerate(self.types):
+                idx = [index[d] for d in members]
+                u = area[idx] / area[idx].sum()
+                mean[i] = s.mean[:, idx] @ u
+                se[i] = np.sqrt(s.mean_se[:, idx] ** 2 @ u**2)
+            out[s.quantity] = (mean, se)
+        return out
+
+    def significant_biases(self, i, j, quantity="conductance") -> list:
+        """Biases (energies) at which types i and j differ significantly in ``quantity``, ascending."""
+        return sorted(float(b) for f, (q, b) in enumerate(self.features) if q == quantity and self.significant(i, j, f))
+
+    def spectrum_rows(self) -> list[dict]:
+        """One row per type and bias (energy) for ``type_spectra.csv``: mean and contrast with errors."""
+        c = self.contrast
+        u = c.unit_token
+        spectra = self.spectra()
+        feature = {key: f for f, key in enumerate(self.features)}
+        out = []
+        for i, name in enumerate(self.names):
+            for k, bias in enumerate(c.biases_V):
+                row = {"type": name, "bias_V": float(bias)}
+                for s in c.sets():
+                    p = "" if s.quantity == "conductance" else "amplitude_"
+                    mean, se = spectra[s.quantity]
+                    row[f"{p}mean_{u}"] = _json_float(mean[i, k])
+                    row[f"{p}mean_{u}_se"] = _json_float(se[i, k])
+                    f = feature.get((s.quantity, float(bias)))
+                    row[f"{p}contrast_{u}"] = _json_float(self.value[i, f]) if f is not None else None
+                    row[f"{p}contrast_{u}_se"] = _json_float(self.se[i, f]) if f is not None else None
+                out.append(row)
+        return out
+
+    def difference_rows(self) -> list[dict]:
+        """One row per pair of types, quantity and bias (energy): the difference, its error, z, p, significance."""
+        u = self.contrast.unit_token
+        out = []
+        for i in range(self.n_types):
+            for j in range(i + 1, self.n_types):
+                for d in self.differences(i, j):
+                    out.append({"type_a": self.names[i], "type_b": self.names[j], "quantity": d["quantity"],
+                                "bias_V": d["bias_V"], f"difference_{u}": d["difference"],
+                                f"difference_{u}_se": d["difference_se"], "z": d["z"], "p": d["p"],
+                                "significant": d["significant"]})
+        return out
+
+    def limitations(self) -> list[str]:
+        """What the contrasts are and are not protected against, in words (the report quotes it)."""
+        grid = self.contrast.source == "grid"
+        one = "one grid (between its spectra)" if grid else "one map"
+        tol = self.gain_tolerance
+        out = [
+            "Offsets that depend only on the scan line (a tip change that shifts the conductance from one line on, "
+            "a slow drift of the tip between lines) cancel exactly in the contrasts: the model "
+            "F = a(row) + mu_domain gives every scan line its own free offset, and walls are compared line by line.",
+            f"A change of the tip's gain within {one} (a tip change that scales the conductance from one line on) "
+            "does not cancel: it scales the contrast of every domain scanned after it, so a domain's contrast "
+            "differs above and below that line and the model returns a mixture of the two. The grouping into "
+            f"types allows for a gain change of up to {tol:.0%} by adding {tol:.0%} of the larger contrast to the "
+            "error of every difference between types; a larger change can split one type in two or make a weak "
+            "difference look significant.",
+            "The frame contrasts and the types' mean values are plain means: a tip change between lines biases "
+            "them.",
+        ]
+        if not grid:
+            out.append("A change of gain between maps is removed by the normalisation "
+                       f"({self.contrast.normalisation}) only where it scales a whole map.")
+        return out
+
+    def _one_type_words(self, where):
+        """Why there is one type: the domains agree, or they differ by less than the gain allowance."""
+        n = len(self.contrast.domains)
+        test = (f"χ² = {self.homogeneity_chi2:.1f} for {self.homogeneity_dof} degrees of freedom, "
+                f"p = {self.homogeneity_p:.2g}")
+        if self.homogeneity_p >= self.alpha:
+            return f"all {n} domains agree within errors at every {where} ({test})"
+        return (f"the {n} domains are not all alike ({test}), but no two groups of them differ by more than "
+                f"their errors and the allowance of {self.gain_tolerance:.0%} for a change of the tip's gain")
+
+    def _spectral_sentences(self, unit):
+        """The grid's result in words: per pair of types, the energy ranges where they differ."""
+        c = self.contrast
+        n = self.n_types
+        if n == 1:
+            return [f"1 electronic type in the grid: {self._one_type_words('energy')}."]
+        energies = sorted(float(b) for b in c.biases_V)
+
+        def ranges(chosen):
+            runs, start, prev = [], None, None
+            for e in energies:
+                if e in chosen:
+                    start = e if start is None else start
+                    prev = e
+                elif start is not None:
+                    runs.append((start, prev))
+                    start = None
+            if start is not None:
+                runs.append((start, prev))
+            return ", ".join(_fmt_bias(a) if a == b else f"{_fmt_bias(a)[:-2]} to {_fmt_bias(b)}" for a, b in runs)
+
+        head = (f"{n} electronic types in the grid: "
+                + "; ".join(f"type {self.names[t]} (domain{'s' if len(m) > 1 else ''} "
+                            f"{', '.join(str(d) for d in m)})" for t, m in enumerate(self.types)) + ".")
+        out = [head]
+        for i in range(n):
+            for j in range(i + 1, n):
+                parts = []
+                for quantity, words in (("conductance", ("brighter", "darker")), ("amplitude", ("larger", "smaller"))):
+                    feats = [f for f, (q, _) in enumerate(self.features) if q == quantity]
+                    if not feats:
+                        continue
+                    sig = self.significant_biases(i, j, quantity)
+                    what = "in conductance" if quantity == "conductance" else "in order amplitude"
+                    if not sig:
+                        parts.append(f"do not differ {what} at any energy")
+                        continue
+                    f = max((f for f in feats if self.significant(i, j, f)),
+                            key=lambda f: abs(self.pair_diff[i, j, f]))
+                    d, se = self.pair_diff[i, j, f], self.pair_se[i, j, f]
+                    same = [e for e in energies if e not in sig and (quantity, e) in self.features]
+                    parts.append(f"differ {what} at {ranges(set(sig))} (largest at {_fmt_bias(self.features[f][1])}: "
+                                 f"{self.names[i]} {words[0] if d > 0 else words[1]} by {_pm(abs(d), se)} {unit})"
+                                 + (f", not at {ranges(set(same))}" if same else ""))
+                out.append(f"Types {self.names[i]} and {self.names[j]} " + "; ".join(parts) + ".")
+        return [" ".join(out)] if n == 2 else out
+
     def sentences(self) -> list[str]:
         """The result in words, one sentence per pair of types (and one for the grouping)."""
         c = self.contrast
         unit = "% of the frame mean" if c.normalisation == "frame" else c.units
+        if c.source == "grid":
+            return self._spectral_sentences(unit)
         n = self.n_types
         if n == 1 and len(c.domains) == 1:
             return [f"1 electronic type: a single domain ({c.normalisation_note})."]
         if n == 1:
-            return [f"1 electronic type: all {len(c.domains)} domains agree within errors at every bias "
-                    f"(χ² = {self.homogeneity_chi2:.1f} for {self.homogeneity_dof} degrees of freedom, "
-                    f"p = {self.homogeneity_p:.2g}; {c.normalisation_note})."]
+            return [f"1 electronic type: {self._one_type_words('bias')}; {c.normalisation_note}."]
 
         def members(i):
             m = self.types[i]
@@ -2230,6 +2768,11 @@ class ElectronicTypes:
             "differences": [{"types": [self.names[i], self.names[j]], "features": self.differences(i, j)}
                             for i in range(self.n_types) for j in range(i + 1, self.n_types)],
             "sentences": self.sentences(),
+            "limitations": self.limitations(),
+            "spectra": [{"type": self.names[i], "quantity": q, "bias_V": [float(b) for b in c.biases_V],
+                         "mean": [_json_float(v) for v in mean[i]], "se": [_json_float(v) for v in se[i]]}
+                        for q, (mean, se) in ((q, v) for q, v in self.spectra().items() if q != "biases_V")
+                        for i in range(self.n_types)],
             "contrast": c.to_summary(),
         }
 
@@ -2293,7 +2836,7 @@ def electronic_types(contrast, *, alpha=TYPES_ALPHA, gain_tolerance=GAIN_TOLERAN
     ((1, 4), (2, 3))
     >>> print(t.sentences()[0])  # doctest: +NORMALIZE_WHITESPACE
     2 electronic types: type A (domains 1, 4) is brighter than type B (domains 2, 3) at −0.30 V
-    by 0.4006 ± 0.0010 nS and darker at +0.30 V by 0.4001 ± 0.0010 nS.
+    by 0.4007 ± 0.0010 nS and darker at +0.30 V by 0.4000 ± 0.0010 nS.
     """
     if not isinstance(contrast, ElectronicContrast):
         raise InputError(f"contrast must be an ElectronicContrast from domain_electronic_contrast, "

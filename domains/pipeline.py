@@ -1238,7 +1238,9 @@ def _electronic_types_step(summary, tables, figures, map_scans, corrected_maps, 
     type_colours = label_colours(type_map)
     figures["conductance"] = report.conductance_figure(ec, types=types, colours={
         d: type_colours.get(i + 1) for i, members in enumerate(types.types) for d in members})
-    items = [(None, "<h3>Electronic types</h3><p>" + " ".join(types.sentences()) + "</p>"),
+    limits = " ".join(summary["electronic_types"].get("limitations", []))
+    items = [(None, "<h3>Electronic types</h3><p>" + " ".join(types.sentences()) + "</p>"
+              + (f"<p><b>Limits.</b> {limits}</p>" if limits else "")),
              ("conductance", report.conductance_caption(ec, types)),
              ("types", "Domains coloured by electronic type, each written with its id and type (walls in black).")]
     if types.n_types > 1:
@@ -1256,6 +1258,8 @@ def _electronic_types_step(summary, tables, figures, map_scans, corrected_maps, 
 
 
 def _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_nm, pixel, mask):
+    """Per-domain order amplitude across the grid's energies, and the domains' electronic types with their mean
+    spectra and the energies where the types differ (domains.compare.grid_electronic_contrast, electronic_types)."""
     from . import compare
 
     fp = compare.grid_fingerprints(grid.data, grid.energies_V, labels, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel,
@@ -1268,7 +1272,37 @@ def _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_
     curves = [(f"domain {int(d)}", fp.energies_V, fp.amplitude_total[i], None) for i, d in enumerate(fp.domains)]
     figures["fingerprint"] = report.curves_figure(curves, xlabel="bias (V)", ylabel="order amplitude",
                                                   title="Per-domain order amplitude across the grid")
-    sections.append(("Spectroscopic grid", [("fingerprint", "Order amplitude versus energy in each domain.")]))
+    items = [("fingerprint", "Order amplitude versus energy in each domain.")]
+    units = (grid.metadata or {}).get("units", "arb. units")
+    try:
+        ec = compare.grid_electronic_contrast(grid.data, grid.energies_V, labels, pixel_size_nm=pixel,
+                                              sigma_nm=sigma_nm, units=units, mask=mask, q=order_q)
+        types = compare.electronic_types(ec)
+    except InputError as err:
+        summary["grid"]["electronic_types"] = {"note": f"not measured: {err}"}
+    else:
+        summary["grid"]["electronic_types"] = types.to_summary()
+        u = ec.unit_token
+        empty = ["type_a", "type_b", "quantity", "bias_V", f"difference_{u}", f"difference_{u}_se", "z", "p",
+                 "significant"]  # one type: a header row and no rows
+        for name, table, columns in (("grid_types", types.rows(per_bias=False), None),
+                                     ("type_spectra", types.spectrum_rows(), None),
+                                     ("type_differences", types.difference_rows(), empty)):
+            if table or columns:
+                tables[name] = (list(table[0]) if table else columns, table)
+        spectra = types.spectra()
+        mean, se = spectra["conductance"]
+        energies = spectra["biases_V"]
+        figures["type_spectra"] = report.curves_figure(
+            [(f"type {n}", energies, mean[i], se[i]) for i, n in enumerate(types.names)], xlabel="bias (V)",
+            ylabel="mean conductance", units=units, title="Mean spectrum of each electronic type (grid)")
+        limits = " ".join(summary["grid"]["electronic_types"]["limitations"])
+        items = [(None, "<h3>Electronic types in the grid</h3><p>" + " ".join(types.sentences()) + "</p>"
+                  "<p><b>Limits.</b> " + limits + "</p>"),
+                 ("type_spectra", "Mean spectrum of each type (area-weighted mean of its domains' interiors), with "
+                                  "standard errors; type_differences.csv says at which energies the types differ "
+                                  "(tests on contrasts free of scan-line offsets).")] + items
+    sections.append(("Spectroscopic grid", items))
 
 
 def _refine_lattice(image, pixel, mask, reading, peaks):
