@@ -556,6 +556,8 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
             found_j = segment.phase_defects(fields_used[j:j + 1], pixel_size_nm=pc,
                                             ordered=(amp[j] > floor.threshold) & trusted_c, sigma_nm=sigma_nm,
                                             amplitude_threshold=floor.threshold / 2)
+            if step_ > 1:
+                found_j = [d for d in found_j if _loop_confirms(fields_used[j], d, pc, floor.threshold / 2)]
             # Rows and columns on the input grid (positions in nm are the same on both grids).
             defects += [{**d, "component": j, "row": d["row"] * step_, "col": d["col"] * step_} for d in found_j]
         wall_rows = measure.wall_table(seg.grown, walls_c, pixel_size_nm=pc, fields=fields_used, sigma_nm=sigma_nm)
@@ -633,6 +635,29 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     summary["choices"] = choices
     summary["notes"] = notes
     return Analysis(config, summary, out_maps, tables, figures, sections, notes, choices, timings=dict(bar.times))
+
+
+def _loop_confirms(field, defect, pixel, threshold):
+    """Whether a winding found on the decimated grid holds on a densely sampled loop.
+
+    On samples sigma/2 apart a loop of radius 2 sigma has few points, and the phase step across a wall
+    between two of them can exceed pi and count a false winding. The field is band-limited, so it is
+    interpolated (cubic spline) at 16 points per sample of the loop's radius (at least 64); the winding
+    must be the same and |field| above ``threshold`` all along, as the rule on the grid asks.
+    """
+    from scipy import ndimage
+
+    dy, dx = pixel
+    radius = defect["loop_radius_nm"]
+    n = max(64, int(16 * math.ceil(radius / min(dy, dx))))
+    t = np.linspace(0, 2 * math.pi, n, endpoint=False)
+    rows = (defect["y_nm"] + radius * np.sin(t)) / dy
+    cols = (defect["x_nm"] + radius * np.cos(t)) / dx
+    values = (ndimage.map_coordinates(field.real, [rows, cols], order=3, mode="nearest")
+              + 1j * ndimage.map_coordinates(field.imag, [rows, cols], order=3, mode="nearest"))
+    steps = np.angle(np.roll(values, -1) * np.conj(values))
+    winding = int(np.rint(steps.sum() / (2 * math.pi)))
+    return winding == defect["winding"] and bool(np.abs(values).min() >= threshold)
 
 
 def _to_input_grid(grid_, seg, score_at, confidence):
