@@ -14,6 +14,7 @@ from dataclasses import dataclass, replace
 from fractions import Fraction
 
 import numpy as np
+from scipy import fft as sfft
 from scipy import ndimage
 
 from ._checks import positive, within_nyquist
@@ -461,15 +462,29 @@ def _q_axes(shape, pixel):
     return qx, qy
 
 
-def _spectrum(level, window):
+def _spectrum(level, window, dtype=np.float64):
+    """Power of the windowed image with the zero wavevector at the centre (``fftshift`` layout).
+
+    One real FFT in float64 (scipy.fft, all cores); the other half of the plane
+    follows from the Hermitian symmetry of a real image's transform, P(-k) = P(k),
+    so it costs no second transform. Stored as ``dtype`` (float32 is plenty for
+    peak finding, where only ratios of powers matter).
+    """
     ny, nx = level.shape
     if window == "hann":
         wy, wx = _hann(ny), _hann(nx)
     else:
         wy, wx = np.ones(ny), np.ones(nx)
-    f = np.fft.fftshift(np.fft.fft2(level * wy[:, None] * wx[None, :]))
+    f = sfft.rfft2(level * wy[:, None] * wx[None, :], workers=-1)
     # (A0/2)^2 for a cosine of amplitude A0 centred on a bin.
-    return (f.real**2 + f.imag**2) / (wy.sum() * wx.sum()) ** 2
+    half = ((f.real**2 + f.imag**2) / (wy.sum() * wx.sum()) ** 2).astype(dtype, copy=False)
+    del f
+    ki = np.arange(ny) - ny // 2
+    m = nx // 2
+    out = np.empty((ny, nx), dtype)
+    out[:, m:] = np.take(half, ki % ny, axis=0)[:, : nx - m]  # qx >= 0
+    out[:, :m] = np.take(half, (-ki) % ny, axis=0)[:, m:0:-1]  # qx < 0: P(ky, kx) = P(-ky, -kx)
+    return out
 
 
 def power_spectrum(image, *, pixel_size_nm, mask=None, window="hann"):
@@ -543,86 +558,156 @@ def _bin_offsets(shape):
     return i, j
 
 
-def _group_median(values, labels, n_labels):
-    """Median of ``values`` per label 1..n_labels (label 0 ignored), by one integer sort."""
-    keep = labels > 0
-    v, lab = values[keep], labels[keep].astype(np.int64)
-    order = np.argsort(v)
-    rank = np.empty(len(v), dtype=np.int64)
-    rank[order] = np.arange(len(v))
-    # Sorting label * n + rank groups by label with values ascending inside each group.
-    key = np.sort(lab * len(v) + rank)
-    v_sorted = v[order][key % len(v)]
-    counts = np.bincount(lab, minlength=n_labels + 1)
-    starts = np.cumsum(np.concatenate([[0], counts[:-1]]))
-    med = np.zeros(n_labels + 1)
-    has = counts > 0
-    lo = starts[has] + (counts[has] - 1) // 2
-    hi = starts[has] + counts[has] // 2
-    med[has] = 0.5 * (v_sorted[lo] + v_sorted[hi])
-    return med
+class _FloorCells:
+    """The polar cells of the noise floor for one spectrum shape (built once per shape and cached).
 
-
-def _noise_floor(power, exclude=None):
-    """Local mean noise power at every bin.
-
-    Away from the axes: the median over a polar cell (thin rings near the origin,
-    where the background falls steeply; sectors of ~192 bins further out). Along
-    the qx = 0 and qy = 0 bands: a running median along the band itself, so that
-    the streak of scan-line offsets is its own background. The power of pure
-    noise in one bin is exponentially distributed, whose mean is median / ln 2.
-    Bins in ``exclude`` (peaks found in a first pass) are left out of the cell
-    medians, so that peaks crowding a thin ring do not raise its floor.
+    ``labels`` numbers every bin's cell (1 ... n_cells: thin rings near the origin, sectors of
+    about ``_CELL_BINS`` bins further out); ``in_band`` marks the bands along the qx = 0 and
+    qy = 0 axes, which belong to no cell. ``index`` lists the flat bin numbers of each cell,
+    one row per cell, padded with the number of bins (an extra slot that holds +inf), so that
+    all cell medians come from one row-wise sort.
     """
-    ny, nx = power.shape
-    i, j = _bin_offsets(power.shape)
-    r = np.hypot(i, j)
-    theta = np.arctan2(i, j) + np.pi  # [0, 2 pi]
-    edges = [0.0, 1.0]
-    while edges[-1] <= r.max():
-        edges.append(edges[-1] + max(1.0, 0.08 * edges[-1]))
-    edges = np.asarray(edges)
-    ring = np.searchsorted(edges, r, side="right") - 1
-    mids = 0.5 * (edges[:-1] + edges[1:])
-    widths = np.diff(edges)
-    n_sec = np.maximum(1, np.round(2 * np.pi * mids * widths / _CELL_BINS)).astype(int)
-    offset = np.concatenate([[1], 1 + np.cumsum(n_sec)[:-1]])
-    ns = n_sec[ring]
-    sector = np.minimum((theta / (2 * np.pi) * ns).astype(int), ns - 1)
-    labels = offset[ring] + sector
-    in_band = (np.abs(i) <= _AXIS_BAND) | (np.abs(j) <= _AXIS_BAND)
-    n_labels = int(offset[-1] + n_sec[-1])
-    cell_labels = np.where(in_band, 0, labels)
-    counts = np.bincount(cell_labels.ravel(), minlength=n_labels + 1)
-    if exclude is None:
-        med = _group_median(power, cell_labels, n_labels)
-    else:
-        med2 = _group_median(power, np.where(exclude, 0, cell_labels), n_labels)
-        counts2 = np.bincount(np.where(exclude, 0, cell_labels).ravel(), minlength=n_labels + 1)
-        # Where peaks crowd a cell (thin rings near q = 0), widen it radially until 16
-        # bins that are not excluded remain.
-        keep = ~exclude & ~in_band
-        r_keep, p_keep = r[keep], power[keep]
-        for lab in np.nonzero((counts2 < 16) & (counts > 0))[0]:
-            if lab == 0:
-                continue
-            k = int(np.searchsorted(offset, lab, side="right") - 1)
+
+    def __init__(self, shape):
+        ny, nx = shape
+        i, j = _bin_offsets(shape)
+        r = np.hypot(i, j)
+        theta = np.arctan2(i, j) + np.pi  # [0, 2 pi]
+        edges = [0.0, 1.0]
+        r_max = float(r.max())
+        while edges[-1] <= r_max:
+            edges.append(edges[-1] + max(1.0, 0.08 * edges[-1]))
+        edges = np.asarray(edges)
+        ring = np.searchsorted(edges, r, side="right") - 1
+        mids = 0.5 * (edges[:-1] + edges[1:])
+        widths = np.diff(edges)
+        n_sec = np.maximum(1, np.round(2 * np.pi * mids * widths / _CELL_BINS)).astype(int)
+        offset = np.concatenate([[1], 1 + np.cumsum(n_sec)[:-1]])
+        ns = n_sec[ring]
+        sector = np.minimum((theta / (2 * np.pi) * ns).astype(int), ns - 1)
+        del theta, ns
+        self.labels = (offset[ring] + sector).astype(np.int32)
+        del ring, sector
+        self.in_band = np.broadcast_to((np.abs(i) <= _AXIS_BAND) | (np.abs(j) <= _AXIS_BAND), shape).copy()
+        self.n_labels = n = int(offset[-1] + n_sec[-1])
+        self.edges, self.offset, self.n_sec = edges, offset, n_sec
+        self.ring_of_label = np.searchsorted(offset, np.arange(n + 1), side="right") - 1
+        cell = np.where(self.in_band, 0, self.labels).ravel()
+        self.counts = np.bincount(cell, minlength=n + 1)
+        order = np.argsort(cell, kind="stable")[self.counts[0]:]  # band bins (label 0) sort first
+        lab = cell[order]
+        starts = np.concatenate([[0], np.cumsum(self.counts[1:])[:-1]])
+        width = max(int(self.counts[1:].max()), 1)
+        self.index = np.full((n, width), ny * nx, dtype=np.int32 if ny * nx < 2**31 - 1 else np.int64)
+        self.index[lab - 1, np.arange(order.size) - starts[lab - 1]] = order
+        # Peak search region without options: beyond the 3-bin disc, off the unpaired first row/column.
+        search = r >= 3.0
+        search[0, :] = search[-1, :] = search[:, 0] = search[:, -1] = False
+        self.n_search = int(search.sum())
+
+
+_CELLS_CACHE: dict = {}
+
+
+def _floor_cells(shape):
+    shape = tuple(int(s) for s in shape)
+    cells = _CELLS_CACHE.get(shape)
+    if cells is None:
+        cells = _FloorCells(shape)
+        while len(_CELLS_CACHE) >= 2:  # a couple of shapes at a time: bounded memory
+            _CELLS_CACHE.pop(next(iter(_CELLS_CACHE)))
+        _CELLS_CACHE[shape] = cells
+    return cells
+
+
+def _row_medians(rows, counts):
+    """Median of the first ``counts[m]`` entries of each sorted row (0 for an empty row)."""
+    counts = np.asarray(counts)
+    idx = np.arange(len(rows))
+    lo = np.maximum((counts - 1) // 2, 0)
+    hi = np.maximum(counts // 2, 0)
+    med = 0.5 * (rows[idx, lo].astype(float) + rows[idx, hi].astype(float))
+    return np.where(counts > 0, med, 0.0)
+
+
+def _cell_medians(power, cells):
+    """Median power of every cell (index = label, 0 unused) and the flat power with its +inf slot."""
+    ext = np.empty(power.size + 1, np.float32)
+    ext[:-1] = power.ravel()
+    ext[-1] = np.inf
+    rows = ext[cells.index]
+    rows.sort(axis=1)
+    med = np.zeros(cells.n_labels + 1)
+    med[1:] = _row_medians(rows, cells.counts[1:])
+    return med, ext
+
+
+def _excluded_medians(power, ext, cells, med, exclude):
+    """Cell medians and sample counts without the bins in ``exclude`` (flat indices).
+
+    Only the cells that hold an excluded bin change. Where peaks crowd a cell (thin rings
+    near q = 0) so that fewer than 16 bins remain, it is widened radially until 16 bins
+    that are not excluded remain; failing that, it keeps the median of all its bins.
+    """
+    counts = cells.counts
+    band = cells.in_band.ravel()
+    ex = exclude[~band[exclude]]
+    n_ex = np.bincount(cells.labels.ravel()[ex], minlength=cells.n_labels + 1)
+    n_ex[0] = 0
+    counts2 = counts - n_ex
+    med2 = med.copy()
+    touched = np.flatnonzero(n_ex)
+    if touched.size:
+        marked = np.zeros(ext.size, bool)
+        marked[ex] = True
+        idx = cells.index[touched - 1]
+        rows = ext[idx]
+        rows[marked[idx]] = np.inf
+        rows.sort(axis=1)
+        med2[touched] = _row_medians(rows, counts2[touched])
+    crowded = np.flatnonzero((counts2 < 16) & (counts > 0))
+    crowded = crowded[crowded > 0]
+    if crowded.size:
+        ny, nx = power.shape
+        edges = cells.edges
+        flat = power.ravel()
+        marked = np.zeros(flat.size, bool)
+        marked[ex] = True
+        rings = cells.ring_of_label[crowded]
+        # The result depends on the ring only (its radial range, widened): once per ring. That
+        # covers the corner fragments of the outer rings, cut by the frame into cells of few bins.
+        for k in np.unique(rings):
             lo, hi = edges[k], edges[k + 1]
             for grow in (1, 2, 4, 8, 16, 32):
-                sel = (r_keep >= lo - grow) & (r_keep < hi + grow)
-                if sel.sum() >= 16:
-                    med2[lab] = np.median(p_keep[sel])
-                    counts2[lab] = int(sel.sum())
+                a, b = lo - grow, hi + grow
+                first = max(int(np.searchsorted(edges, a, side="right")) - 1, 0)
+                last = min(int(np.searchsorted(edges, b, side="left")) - 1, len(cells.n_sec) - 1)
+                labs = np.arange(cells.offset[first], cells.offset[last] + cells.n_sec[last])
+                idx = cells.index[labs - 1].ravel()  # non-band bins of the rings that meet [a, b)
+                idx = idx[idx < flat.size]
+                idx = idx[~marked[idx]]
+                rr, cc = np.divmod(idx, nx)
+                r = np.hypot(rr - ny // 2, cc - nx // 2)
+                sel = idx[(r >= a) & (r < b)]
+                if sel.size >= 16:
+                    med2[crowded[rings == k]] = float(np.median(flat[sel].astype(float)))
+                    counts2[crowded[rings == k]] = sel.size
                     break
-        use2 = counts2 >= 16
-        if not np.all(use2 | (counts == 0)):
-            med = np.where(use2, med2, _group_median(power, cell_labels, n_labels))
-        else:
-            med = med2
-        counts = np.where(use2, counts2, counts)
-    floor = med[labels]
-    samples = counts[labels]
-    # Bands: running median along each band line (the spectrum is periodic in q: wrap).
+    use2 = counts2 >= 16
+    return np.where(use2, med2, med), np.where(use2, counts2, counts)
+
+
+def _floor_map(power, cells, med, counts):
+    """The floor (mean noise power, float32) and its sample count at every bin from the cell medians.
+
+    Along the qx = 0 and qy = 0 bands: a running median along each band line (the
+    spectrum is periodic in q: wrap), so that the streak of scan-line offsets is its own
+    background. The power of pure noise in one bin is exponentially distributed, whose
+    mean is median / ln 2.
+    """
+    ny, nx = power.shape
+    floor = med.astype(np.float32)[cells.labels]
+    samples = counts.astype(np.int32)[cells.labels]
     half_r = max(16, ny // 16)
     half_c = max(16, nx // 16)
     cc, rc = nx // 2, ny // 2
@@ -636,19 +721,54 @@ def _noise_floor(power, exclude=None):
         if 0 <= row < ny:
             floor[row, :] = ndimage.median_filter(power[row, :], size=2 * half_c + 1, mode="wrap")
             samples[row, :] = 2 * half_c + 1
-    floor = floor / math.log(2)
-    tiny = 1e-14 * float(power.max()) + 1e-300
-    return np.maximum(floor, tiny), samples
+    floor *= np.float32(1 / math.log(2))
+    tiny = max(1e-14 * float(power.max()), float(np.finfo(np.float32).tiny))
+    np.maximum(floor, np.float32(tiny), out=floor)
+    return floor, samples
+
+
+def _noise_floor(power, exclude=None):
+    """Local mean noise power at every bin, float32, and the number of bins it was estimated from.
+
+    Away from the axes: the median over a polar cell (thin rings near the origin,
+    where the background falls steeply; sectors of ~192 bins further out). Along
+    the qx = 0 and qy = 0 bands: a running median along the band itself, so that
+    the streak of scan-line offsets is its own background. The power of pure
+    noise in one bin is exponentially distributed, whose mean is median / ln 2.
+    Bins in ``exclude`` (a boolean map, peaks found in a first pass) are left out
+    of the cell medians, so that peaks crowding a thin ring do not raise its floor.
+    All cell medians come from one row-wise sort of the cells (geometry cached
+    per shape), so the cost is a few passes over the spectrum.
+    """
+    cells = _floor_cells(power.shape)
+    med, ext = _cell_medians(power, cells)
+    counts = cells.counts
+    if exclude is not None:
+        med, counts = _excluded_medians(power, ext, cells, med, np.flatnonzero(exclude))
+    return _floor_map(power, cells, med, counts)
 
 
 def _two_pass_floor(power):
     """Noise floor, re-estimated without the bins around clear first-pass excesses; and its sample counts."""
-    floor, _ = _noise_floor(power)
+    cells = _floor_cells(power.shape)
+    med, ext = _cell_medians(power, cells)
+    floor, _ = _floor_map(power, cells, med, cells.counts)
     # A bin 10 times above the mean noise has probability exp(-10) = 5e-5 under pure
     # noise; masking those (and the window's main lobe around them) barely thins the
     # noise sample but keeps crowded peaks out of thin rings.
-    strong = ndimage.binary_dilation(power / floor > 10.0, structure=np.ones((3, 3), bool))
-    return _noise_floor(power, exclude=strong)
+    strong = np.flatnonzero(power > 10.0 * floor)
+    del floor
+    ny, nx = power.shape
+    rows, cols = np.divmod(strong, nx)
+    parts = [strong]
+    for di in (-1, 0, 1):  # the 3 x 3 neighbourhood, inside the frame (a binary dilation)
+        for dj in (-1, 0, 1):
+            rr, cc = rows + di, cols + dj
+            ok = (rr >= 0) & (rr < ny) & (cc >= 0) & (cc < nx)
+            parts.append(rr[ok] * nx + cc[ok])
+    exclude = np.unique(np.concatenate(parts))
+    med2, counts2 = _excluded_medians(power, ext, cells, med, exclude)
+    return _floor_map(power, cells, med2, counts2)
 
 
 def _threshold(samples, n_bins, false_alarm):
@@ -660,10 +780,18 @@ def _threshold(samples, n_bins, false_alarm):
     statistics M = sum_{i<=k} E_i / (m - i + 1), k = ceil(m / 2), so
     P = prod_{i<=k} (m - i + 1) / (m - i + 1 + s) (derived). t solves
     n_bins * P = false_alarm; for large m it tends to ln(n_bins / false_alarm).
+    Computed once per distinct sample count and looked up.
     """
-    target = math.log(false_alarm / n_bins)
     # Beyond ~1000 samples the floor's scatter no longer matters (t -> ln(n_bins / false_alarm)).
-    unique, inverse = np.unique(np.clip(np.asarray(samples, dtype=int), 1, 1001), return_inverse=True)
+    clipped = np.clip(np.asarray(samples), 1, 1001)
+    present = np.flatnonzero(np.bincount(clipped.ravel(), minlength=1002))
+    table = np.zeros(1002)
+    table[present] = _threshold_values(present, n_bins, false_alarm)
+    return table[clipped]
+
+
+def _threshold_values(unique, n_bins, false_alarm):
+    target = math.log(false_alarm / n_bins)
     kmax = int((unique.max() + 1) // 2)
     i = np.arange(kmax)[None, :]
     j = unique[:, None] - i + 0.0  # m, m-1, ..., m-k+1 for each m (padded)
@@ -683,7 +811,7 @@ def _threshold(samples, n_bins, false_alarm):
         above = log_p(mid) > target
         lo = np.where(above, mid, lo)
         hi = np.where(above, hi, mid)
-    return hi[inverse].reshape(np.shape(samples))
+    return hi
 
 
 def _hann_leak(d):
@@ -700,13 +828,17 @@ def _hann_leak(d):
     return np.where(d < 2, 1.0, np.minimum(1.0, bound))
 
 
-def _grandke(mag, r, c):
+def _grandke(power, r, c):
     """Sub-bin offsets (d_row, d_col) by the Hann three-bin formula, the scalloping factor and a model misfit (bins).
 
     delta = (2 alpha - 1) / (1 + alpha), alpha the ratio of the larger neighbour to
     the peak bin (Grandke, IEEE Trans. Instrum. Meas. 32, 350 (1983)).
     """
-    ny, nx = mag.shape
+    ny, nx = power.shape
+
+    def mag(rr, cc):
+        return math.sqrt(max(float(power[rr, cc]), 0.0))
+
     out = []
     misfit = []
     for axis in (0, 1):
@@ -715,9 +847,9 @@ def _grandke(mag, r, c):
         if idx <= 0 or idx >= n - 1:
             out.append(0.0)
             continue
-        left = mag[r - 1, c] if axis == 0 else mag[r, c - 1]
-        right = mag[r + 1, c] if axis == 0 else mag[r, c + 1]
-        peak = mag[r, c]
+        left = mag(r - 1, c) if axis == 0 else mag(r, c - 1)
+        right = mag(r + 1, c) if axis == 0 else mag(r, c + 1)
+        peak = mag(r, c)
         if peak <= 0:
             out.append(0.0)
             continue
@@ -829,38 +961,63 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
     if not 0 < false_alarm < 1:
         raise InputError(f"false_alarm must lie between 0 and 1, got {false_alarm}")
     level = _subtract_plane(image, valid, pixel)
-    power = _spectrum(level, "hann")
+    power = _spectrum(level, "hann", np.float32)
     peaks = _detect(power, image.shape, pixel, max_peaks, min_q_rad_per_nm, snr, false_alarm, refine is not None)
     if refine == "lockin" and peaks:
         peaks = _refine_peaks(level, valid, pixel, peaks, sigma_nm=sigma_nm)
     return peaks
 
 
+def _candidates(power, ratio, samples, shape, pixel, min_q, snr, false_alarm):
+    """Bins (rows, cols) that may hold a peak: in the search region, above the threshold, 5 x 5 local maxima.
+
+    The search region is beyond a 3-bin disc around q = 0 and off the first row and column
+    (the Nyquist bin of an even axis has no mirror partner), and |q| >= ``min_q``. The
+    tests run on the few bins above the lowest threshold only, never on the whole plane.
+    """
+    ny, nx = shape
+    cells = _floor_cells(shape)
+    n_search = cells.n_search
+    if min_q is not None:
+        min_q = _finite_float(min_q, "min_q_rad_per_nm")
+        qx_axis, qy_axis = _q_axes(shape, pixel)
+        i, j = _bin_offsets(shape)
+        search = (np.hypot(i, j) >= 3.0) & (np.hypot(qy_axis[:, None], qx_axis[None, :]) >= min_q)
+        search[0, :] = search[-1, :] = search[:, 0] = search[:, -1] = False
+        n_search = int(search.sum())
+    n_search = max(n_search // 2, 1)
+    flat_ratio = ratio.ravel()
+    if snr is None:
+        clipped = np.clip(samples.ravel(), 1, 1001)
+        present = np.flatnonzero(np.bincount(clipped, minlength=1002))
+        table = np.zeros(1002)
+        table[present] = _threshold_values(present, n_search, false_alarm)
+        pre = np.flatnonzero(flat_ratio > table[present].min())
+        pre = pre[flat_ratio[pre] > table[clipped[pre]]]
+    else:
+        pre = np.flatnonzero(flat_ratio > positive(snr, "snr"))
+    rows, cols = np.divmod(pre, nx)
+    ki, kj = rows - ny // 2, cols - nx // 2
+    ok = (ki * ki + kj * kj >= 9) & (rows > 0) & (rows < ny - 1) & (cols > 0) & (cols < nx - 1)
+    ok &= power[rows, cols] > 0
+    if min_q is not None:
+        ok &= np.hypot(qx_axis[cols], qy_axis[rows]) >= min_q
+    rows, cols = rows[ok], cols[ok]
+    # Local maxima over 5 x 5 bins, the frame edge replicated (as ndimage.maximum_filter, mode "nearest").
+    off = np.arange(-2, 3)
+    rr = np.clip(rows[:, None, None] + off[None, :, None], 0, ny - 1)
+    cc = np.clip(cols[:, None, None] + off[None, None, :], 0, nx - 1)
+    neighbours = power[rr, cc].reshape(len(rows), -1).max(axis=1) if len(rows) else np.zeros(0)
+    top = power[rows, cols] >= neighbours
+    return rows[top], cols[top]
+
+
 def _detect(power, shape, pixel, max_peaks, min_q, snr, false_alarm, interpolate):
     ny, nx = shape
     dy, dx = pixel
-    qx_axis, qy_axis = _q_axes(shape, pixel)
     floor, samples = _two_pass_floor(power)
     ratio = power / floor
-    i, j = _bin_offsets(shape)
-    r_bins = np.hypot(i, j)
-    search = r_bins >= 3.0
-    if min_q is not None:
-        min_q = _finite_float(min_q, "min_q_rad_per_nm")
-        qabs = np.hypot(qy_axis[:, None], qx_axis[None, :])
-        search &= qabs >= min_q
-    # The first row/column (the Nyquist bin of an even axis) has no mirror partner.
-    search[0, :] = False
-    search[:, 0] = False
-    search[-1, :] = False
-    search[:, -1] = False
-    n_search = max(int(search.sum()) // 2, 1)
-    if snr is None:
-        threshold = _threshold(samples, n_search, false_alarm)
-    else:
-        threshold = positive(snr, "snr")
-    local_max = power >= ndimage.maximum_filter(power, size=5, mode="nearest")
-    cand = np.nonzero(search & local_max & (ratio > threshold) & (power > 0))
+    cand = _candidates(power, ratio, samples, shape, pixel, min_q, snr, false_alarm)
     # Both members of every pair are kept at this stage (side lobes of a peak's mirror
     # matter too); enough candidates for max_peaks canonical peaks and their mirrors.
     order = np.argsort(power[cand])[::-1][: 40 * max_peaks]
@@ -884,15 +1041,14 @@ def _detect(power, shape, pixel, max_peaks, min_q, snr, false_alarm, interpolate
                 continue
         acc_r[n_acc], acc_c[n_acc], acc_p[n_acc] = r, c, p
         n_acc += 1
-        accepted.append((r, c, p))
-    mag = np.sqrt(power)
+        accepted.append((r, c, float(p)))
     peaks = []
     for r, c, p in accepted:
         ki, kj = r - ny // 2, c - nx // 2
         if not (ki > 0 or (ki == 0 and kj > 0)):
             continue  # keep the canonical member of each +q/-q pair
         if interpolate:
-            d_row, d_col, scallop, misfit = _grandke(mag, r, c)
+            d_row, d_col, scallop, misfit = _grandke(power, r, c)
             err_bins = math.hypot(_interp_err_bins(ratio[r, c]), misfit)
             how = "interpolated"
         else:
@@ -1136,8 +1292,7 @@ def refine_q(image, q, *, pixel_size_nm, sigma_nm=None, mask=None, iterations=3,
         sigma_nm = positive(sigma_nm, "sigma_nm")
     other = None if other_q is None else _check_q_override(other_q, pixel)
     level = _subtract_plane(image, valid, pixel)
-    power = _spectrum(level, "hann")
-    mag = np.sqrt(power)
+    power = _spectrum(level, "hann", np.float32)
     ny, nx = image.shape
     dy, dx = pixel
     start = []
@@ -1147,11 +1302,11 @@ def refine_q(image, q, *, pixel_size_nm, sigma_nm=None, mask=None, iterations=3,
         r = int(round(qj[1] * ny * dy / (2 * np.pi))) + ny // 2
         r0, r1 = max(r - 1, 1), min(r + 2, ny - 1)
         c0, c1 = max(c - 1, 1), min(c + 2, nx - 1)
-        sub = mag[r0:r1, c0:c1]
+        sub = power[r0:r1, c0:c1]
         if sub.size:
             rr, cc = np.unravel_index(np.argmax(sub), sub.shape)
             r, c = r0 + rr, c0 + cc
-        d_row, d_col, _, _ = _grandke(mag, r, c)
+        d_row, d_col, _, _ = _grandke(power, r, c)
         start.append([2 * np.pi * (c - nx // 2 + d_col) / (nx * dx), 2 * np.pi * (r - ny // 2 + d_row) / (ny * dy)])
     start = np.asarray(start)
     peaks = [Peak(q=s, q_err=np.nan) for s in start]
@@ -2008,7 +2163,7 @@ def analyze_spectrum(image, *, pixel_size_nm, mask=None, lattice=None, q=None, s
         raise InputError(f"superlattice must be a string such as '3x3', got {superlattice!r}")
     given_lattice = None if lattice is None else _lattice_from_dict(lattice)
     level = _subtract_plane(image, valid, pixel)
-    power = _spectrum(level, "hann")
+    power = _spectrum(level, "hann", np.float32)
     if q is not None:
         q_arr = _check_q_override(q, pixel)
         floor, _ = _two_pass_floor(power)
