@@ -47,9 +47,6 @@ _AXIS_BAND = 1
 #: scatters by about 1/sqrt(m); a floor off by a fraction e multiplies the false-alarm
 #: rate at threshold t by about exp(t^2 e^2 / 2), so cells must be large (derived).
 _CELL_BINS = 192
-#: Interpolated peaks get at least this uncertainty (bins): the three-bin Hann formula is
-#: exact for one complex tone only; the mirror peak and neighbours bias it at this level.
-_INTERP_FLOOR_BINS = 0.02
 
 
 # --------------------------------------------------------------------------------------
@@ -66,7 +63,22 @@ class Peak:
     q : ndarray, shape (2,)
         Wavevector (qx, qy) in rad/nm.
     q_err : float
-        One-sigma uncertainty of each component of ``q``, rad/nm.
+        One-sigma statistical uncertainty of each component of ``q``, rad/nm
+        (the root mean square of the two when they differ; ``q_cov`` has both).
+        It is the scatter that the estimate would show over repeated images of
+        the same sample with new noise, from the noise measured in this image:
+        for an interpolated peak, the noise propagated through the three-bin
+        formula (Cramér–Rao-type, from the local noise floor) plus the bias
+        that the window leakage of every other detected peak may cause, plus
+        the peak's misfit to the single-tone shape where that is significant
+        (a peak broadened by domains or drift); for a lock-in refined peak, the
+        scatter of the lock-in phase about a plane over the independent
+        sigma-patches of the trusted region (which includes a spatially varying
+        wavevector, e.g. drift), never below the Cramér–Rao bound over that
+        region. It does not include the pixel-size calibration or the
+        difference between the image's mean lattice and the sample's (drift).
+    q_cov : ndarray, shape (2, 2), or None
+        Covariance of (qx, qy), rad^2/nm^2, when known (detected or refined peaks).
     power : float
         Peak power in image units squared: (A0/2)^2 for a cosine of amplitude A0
         centred on a frequency bin (Hann-windowed spectrum).
@@ -93,10 +105,31 @@ class Peak:
     hk: tuple[float, float] | None = None
     fraction: tuple[Fraction, Fraction] | None = None
     refined: str = "interpolated"
+    q_cov: np.ndarray | None = None
 
     def __post_init__(self):
         self.q = np.asarray(self.q, dtype=float).reshape(2)
         self.q_err = float(self.q_err)
+        if self.q_cov is not None:
+            self.q_cov = np.asarray(self.q_cov, dtype=float).reshape(2, 2)
+
+    def _cov(self):
+        if self.q_cov is not None and np.all(np.isfinite(self.q_cov)):
+            return self.q_cov
+        return np.eye(2) * self.q_err**2
+
+    @property
+    def q_abs_err_rad_per_nm(self) -> float:
+        """One-sigma uncertainty of |q| in rad/nm (the radial part of ``q_cov``)."""
+        u = self.q / max(np.hypot(*self.q), 1e-300)
+        return float(math.sqrt(max(u @ self._cov() @ u, 0.0)))
+
+    @property
+    def angle_err_deg(self) -> float:
+        """One-sigma uncertainty of the direction of q in degrees (the tangential part of ``q_cov`` over |q|)."""
+        qa = max(float(np.hypot(*self.q)), 1e-300)
+        t = np.array([-self.q[1], self.q[0]]) / qa
+        return float(math.degrees(math.sqrt(max(t @ self._cov() @ t, 0.0)) / qa))
 
     @property
     def q_abs_rad_per_nm(self) -> float:
@@ -252,7 +285,9 @@ class Superlattice:
         One wavevector per independent direction, rad/nm. For an n x n order,
         G_j / n for the lattice's Bragg vectors G_j.
     q_err : ndarray, shape (k,)
-        One-sigma uncertainty per component, rad/nm (0 for ideal commensurate q).
+        One-sigma uncertainty per component, rad/nm. For commensurate order the q
+        are fractions of the lattice's reciprocal basis and inherit its errors
+        (scale and rotation; 0 for a lattice given by the user).
     coefficients : list of tuple
         (h, k) of each q in the reciprocal basis; Fractions when commensurate.
     supercell : ndarray of int, shape (2, 2), or None
@@ -314,7 +349,7 @@ class SpectrumResult:
     shape: tuple
 
     def rows(self) -> list[dict]:
-        """One dict per peak: qx, qy, |q|, period_nm, angle_deg, h, k, role, q_err and more."""
+        """One dict per peak: qx, qy, |q|, period_nm, angle_deg, h, k, role, q_err (and of |q|, angle) and more."""
         out = []
         for p in self.peaks:
             h, k = p.hk if p.hk is not None else (None, None)
@@ -329,6 +364,8 @@ class SpectrumResult:
                 "hk_fraction": None if p.fraction is None else f"{p.fraction[0]}, {p.fraction[1]}",
                 "role": p.role,
                 "q_err_rad_per_nm": p.q_err,
+                "q_abs_err_rad_per_nm": p.q_abs_err_rad_per_nm,
+                "angle_err_deg": p.angle_err_deg,
                 "power": p.power,
                 "snr": p.snr,
                 "amplitude": p.amplitude,
@@ -828,58 +865,84 @@ def _hann_leak(d):
     return np.where(d < 2, 1.0, np.minimum(1.0, bound))
 
 
-def _grandke(power, r, c):
-    """Sub-bin offsets (d_row, d_col) by the Hann three-bin formula, the scalloping factor and a model misfit (bins).
+def _grandke(power, r, c, floor=None, others=()):
+    """Sub-bin offsets (d_row, d_col) by the Hann three-bin formula, the scalloping factor and their one-sigma errors (bins).
 
     delta = (2 alpha - 1) / (1 + alpha), alpha the ratio of the larger neighbour to
-    the peak bin (Grandke, IEEE Trans. Instrum. Meas. 32, 350 (1983)).
+    the peak bin (Grandke, IEEE Trans. Instrum. Meas. 32, 350 (1983)); exact for one
+    complex tone (to 1e-8 bins at N >= 64, checked numerically).
+
+    The errors (per axis, bins; NaN without ``floor``) add in quadrature:
+
+    - noise (derived): a bin's magnitude moves by Re(n e^{-i phi}), variance F / 2
+      (F = ``floor``, the mean noise power of a bin). The periodic Hann window
+      correlates the noise of adjacent bins by -2/3 (sum w^2 e^{2 pi i n / N} over
+      sum w^2) and a tone's phase turns by pi from one bin to the next, so the two
+      magnitudes correlate by +2/3: var(alpha) = (1 + alpha^2 - 4 alpha / 3) / (2 SNR),
+      SNR = P / F with P the tone's power in the peak bin, and d delta / d alpha =
+      3 / (1 + alpha)^2. That is 0.72 / sqrt(SNR) bins on a bin centre and
+      0.43 / sqrt(SNR) half-way, 1.7 to 2.8 times the Cramér–Rao bound of the tone,
+      0.26 / sqrt(SNR) (Rife & Boorstyn 1974 in 2-D with the Hann SNR);
+    - discretisation: the leakage of every other peak in ``others`` ((row, col, power)
+      of the detected bins, the mirror included) into the three bins, bounded by the
+      Hann kernel (:func:`_hann_leak`), with a random relative phase;
+    - model misfit: the other neighbour should be (1 - delta) / (2 + delta) of the peak
+      (same kernel). Where it differs by more than 3 times its noise, the peak is not
+      one tone (domains, drift, a close neighbour) and the difference, times
+      d delta / d alpha (about 1.5), is added.
     """
     ny, nx = power.shape
 
     def mag(rr, cc):
         return math.sqrt(max(float(power[rr, cc]), 0.0))
 
-    out = []
-    misfit = []
+    out, errs = [], []
+    noise = float(floor) if floor is not None else float("nan")
     for axis in (0, 1):
         n = ny if axis == 0 else nx
         idx = r if axis == 0 else c
-        if idx <= 0 or idx >= n - 1:
+        peak = mag(r, c)
+        if idx <= 0 or idx >= n - 1 or peak <= 0:
             out.append(0.0)
+            errs.append(1 / math.sqrt(12))  # uniform within the bin
             continue
         left = mag(r - 1, c) if axis == 0 else mag(r, c - 1)
         right = mag(r + 1, c) if axis == 0 else mag(r, c + 1)
-        peak = mag(r, c)
-        if peak <= 0:
-            out.append(0.0)
-            continue
         sign = 1.0 if right >= left else -1.0
         alpha = max(left, right) / peak
         delta = float(np.clip((2 * alpha - 1) / (1 + alpha), 0.0, 0.5))
-        # Derived from the same Hann kernel: the other neighbour should be
-        # (1 - delta) / (2 + delta) of the peak. A peak broadened by domains, drift
-        # or a close neighbour breaks this; the misfit (times d delta / d alpha,
-        # about 1.5) measures how far the formula can be trusted.
         beta = min(left, right) / peak
-        misfit.append(1.5 * abs(beta - (1 - delta) / (2 + delta)))
         out.append(sign * delta)
+        if not math.isfinite(noise):
+            errs.append(float("nan"))
+            continue
+        snr = max(peak**2 - noise, 1e-12 * noise, 1e-300) / max(noise, 1e-300)
+        slope = 3 / (1 + alpha) ** 2
+        var_noise = slope**2 * max(1 + alpha**2 - 4 * alpha / 3, 0.0) / (2 * snr)
+        var_leak = 0.0
+        for rj, cj, pj in others:
+            if rj == r and cj == c:
+                continue
+            rel = math.sqrt(max(pj, 0.0) / peak**2)
+            d_r = abs(r - rj) % ny
+            d_c = abs(c - cj) % nx
+            d_r, d_c = min(d_r, ny - d_r), min(d_c, nx - d_c)
+            e0 = rel * float(_hann_leak(d_r) * _hann_leak(d_c))
+            step_r = sign if axis == 0 else 0
+            step_c = sign if axis == 1 else 0
+            d_r1 = abs(r + step_r - rj) % ny
+            d_c1 = abs(c + step_c - cj) % nx
+            e1 = rel * float(_hann_leak(min(d_r1, ny - d_r1)) * _hann_leak(min(d_c1, nx - d_c1)))
+            var_leak += slope**2 * (e1**2 + alpha**2 * e0**2) / 2
+        model = (1 - delta) / (2 + delta)
+        var_beta = max(1 + beta**2 - 4 * beta / 3, 0.0) / (2 * snr) + (3 / (2 + delta) ** 2) ** 2 * var_noise
+        misfit = abs(beta - model)
+        var_misfit = (1.5 * misfit) ** 2 if misfit > 3 * math.sqrt(var_beta + var_leak) else 0.0
+        errs.append(math.sqrt(var_noise + var_leak + var_misfit))
     d_row, d_col = out
     # Hann kernel at the offset, normalised: sinc(d) / (1 - d^2) (Harris 1978).
     scallop = float(np.sinc(d_row) / (1 - d_row**2) * np.sinc(d_col) / (1 - d_col**2))
-    return d_row, d_col, scallop, float(max(misfit) if misfit else 0.0)
-
-
-def _interp_err_bins(snr):
-    """One-sigma uncertainty (bins, per axis) of an interpolated Hann peak.
-
-    Derived: the Cramér–Rao bound for a 2-D tone on N x N pixels,
-    var(q) >= 12 / (eta N^2 (N^2 - 1)) (Rife & Boorstyn 1974, extended to 2-D),
-    with eta = A^2 / (2 sigma_n^2) and the Hann spectral SNR = 2 eta N^2 / 9,
-    gives sigma = sqrt(24 / (9 SNR)) / (2 pi) = 0.26 / sqrt(SNR) bins. The three-bin
-    formula is about 1.5 times less efficient; a floor covers its model error.
-    """
-    snr = max(float(snr), 1e-12)
-    return math.hypot(1.5 * 0.26 / math.sqrt(snr), _INTERP_FLOOR_BINS)
+    return d_row, d_col, scallop, (errs[0], errs[1])
 
 
 def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_nm=None, snr=None,
@@ -926,7 +989,10 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
     Returns
     -------
     list of Peak
-        Strongest first, each in the half-plane qy > 0 (or qy = 0, qx > 0).
+        Strongest first, each in the half-plane qy > 0 (or qy = 0, qx > 0),
+        with ``q_err`` and ``q_cov``: one-sigma statistical errors from the
+        noise measured in this image (see :class:`Peak`), calibrated by
+        coverage over noise realisations (tests/test_fourier_errors.py).
 
     Raises
     ------
@@ -1048,18 +1114,17 @@ def _detect(power, shape, pixel, max_peaks, min_q, snr, false_alarm, interpolate
         if not (ki > 0 or (ki == 0 and kj > 0)):
             continue  # keep the canonical member of each +q/-q pair
         if interpolate:
-            d_row, d_col, scallop, misfit = _grandke(power, r, c)
-            err_bins = math.hypot(_interp_err_bins(ratio[r, c]), misfit)
+            d_row, d_col, scallop, (e_row, e_col) = _grandke(power, r, c, floor[r, c], accepted)
             how = "interpolated"
         else:
             d_row = d_col = 0.0
             scallop = 1.0
-            err_bins = 1 / math.sqrt(12)  # uniform within the bin
+            e_row = e_col = 1 / math.sqrt(12)  # uniform within the bin
             how = "bin"
         q = np.array([2 * np.pi * (kj + d_col) / (nx * dx), 2 * np.pi * (ki + d_row) / (ny * dy)])
-        q_err = err_bins * 2 * np.pi * math.sqrt(0.5 / (nx * dx) ** 2 + 0.5 / (ny * dy) ** 2)
-        peaks.append(Peak(q=q, q_err=q_err, power=float(p), snr=float(ratio[r, c]),
-                          amplitude=2 * math.sqrt(p) / max(scallop, 1e-6), refined=how))
+        cov = np.diag([(e_col * 2 * np.pi / (nx * dx)) ** 2, (e_row * 2 * np.pi / (ny * dy)) ** 2])
+        peaks.append(Peak(q=q, q_err=math.sqrt(0.5 * np.trace(cov)), power=float(p), snr=float(ratio[r, c]),
+                          amplitude=2 * math.sqrt(p) / max(scallop, 1e-6), refined=how, q_cov=cov))
         if len(peaks) >= max_peaks:
             break
     return peaks
@@ -1135,7 +1200,7 @@ def _refine_step(shape, pixel, sigma_nm, distance=None):
     return int(max(1, min(step, math.floor(math.sqrt(inner / 64))))), inner
 
 
-def _lockin_refine(level, valid, pixel, q0, sigma_nm, iterations, distance=None):
+def _lockin_refine(level, valid, pixel, q0, sigma_nm, iterations, distance=None, noise_var=None):
     """Iterated phase-gradient update and a final phase-plane fit for wavevectors sharing one sigma.
 
     One call of the lock-in for all of them (one shared forward FFT), sampled every
@@ -1143,6 +1208,15 @@ def _lockin_refine(level, valid, pixel, q0, sigma_nm, iterations, distance=None)
     lock-in: for a tone at q_t, the lock-in at q + dq is exp(-i dq.r) times the one at q,
     up to the constant factor exp(-sigma^2 (|q_t - q - dq|^2 - |q_t - q|^2) / 2)
     (the Gaussian transfer; derived), so the field is re-referenced in place.
+
+    The covariance of each q is that of the phase-plane slope, cov = s^2 n_eff (X^T W X)^-1,
+    from the measured phase scatter s^2 about the plane and n_eff samples per independent
+    sigma-patch (the larger of the lock-in's own 4 pi sigma^2 and the residual's
+    correlation area), never below the Cramér–Rao bound of a tone over the trusted
+    region, var(q_x) >= 2 sigma_n^2 / (A0^2 sum (x - <x>)^2) (Rife & Boorstyn 1974,
+    Fisher information summed over the pixels; derived), with sigma_n^2 the white-noise
+    variance per pixel: the smaller of the one that gives the measured local floor
+    (``noise_var``) and the one that the lock-in phase scatter implies.
 
     Returns q (k, 2), q_err (k,), amplitude (k,), q_cov (k, 2, 2) and the number of
     independent sigma-patches in the trusted region (k,).
@@ -1170,6 +1244,7 @@ def _lockin_refine(level, valid, pixel, q0, sigma_nm, iterations, distance=None)
     q_err = np.full(k, np.nan)
     q_cov = np.full((k, 2, 2), np.nan)
     amp = np.full(k, np.nan)
+    phase_noise_var = np.full(k, np.nan)
     # Samples per independent sample of the lock-in phase: the noise in A is white noise
     # filtered by the Gaussian, correlation exp(-r^2 / 4 sigma^2), whose integral is
     # 4 pi sigma^2 (derived), here in units of the sampled grid.
@@ -1229,6 +1304,10 @@ def _lockin_refine(level, valid, pixel, q0, sigma_nm, iterations, distance=None)
         beta = np.linalg.solve(normal, design.T @ (wm * psi))
         resid = psi - design @ beta
         s2 = np.sum(wm * resid**2) / max(len(x) - 3, 1)
+        # The white noise per pixel that this phase scatter means: var(phi) = sigma_n^2 /
+        # (2 pi sigma_px^2 A0^2) for a Gaussian-filtered tone (derived); s2 is weighted by |A|^2.
+        phase_noise_var[m] = s2 / np.mean(wm) * 2 * np.pi * sigma_nm**2 / (dx * dy) * amp[m] ** 2 \
+            if np.mean(wm) > 0 else np.nan
         # A residual correlated over more than the lock-in's own noise area (phase
         # texture, domains of different phase) leaves fewer independent samples.
         n_eff = max(n_corr, _correlation_area_px(resid * np.sqrt(wm), trusted, sigma_nm / max(coarse)))
@@ -1243,6 +1322,22 @@ def _lockin_refine(level, valid, pixel, q0, sigma_nm, iterations, distance=None)
             # The phase is not one plane (domains of different phase): keep the median.
             q[m] += med_g
             q_cov[m] = cov_med
+    if noise_var is not None:
+        # The bound over every valid pixel (the lock-in reaches beyond the trusted region).
+        wc, wr = valid.sum(axis=0), valid.sum(axis=1)
+        xs, ys = np.arange(nx) * dx, np.arange(ny) * dy
+        n_valid = max(float(wc.sum()), 1.0)
+        sxx = float(wc @ xs**2 - (wc @ xs) ** 2 / n_valid)
+        syy = float(wr @ ys**2 - (wr @ ys) ** 2 / n_valid)
+        for m in range(k):
+            # The spectral floor can hold more than noise (the leakage of a tone through a
+            # mask): the smaller of it and the noise the lock-in phase itself shows.
+            nv = np.nanmin([noise_var[m], phase_noise_var[m]])
+            if math.isfinite(nv) and math.isfinite(amp[m]) and amp[m] > 0:
+                crb = 2 * nv / amp[m] ** 2 * np.array([1 / max(sxx, 1e-300), 1 / max(syy, 1e-300)])
+                d = np.diag(q_cov[m]).copy()
+                scale = np.sqrt(np.maximum(crb, d) / np.where(d > 0, d, 1.0))
+                q_cov[m] = np.where(d > 0, q_cov[m] * np.outer(scale, scale), np.diag(crb))
     for m in range(k):
         q_err[m] = math.sqrt(max(0.5 * (q_cov[m, 0, 0] + q_cov[m, 1, 1]), 0.0))
     return q, q_err, amp, q_cov, np.full(k, n_patches)
@@ -1370,7 +1465,7 @@ def refine_q(image, q, *, pixel_size_nm, sigma_nm=None, mask=None, iterations=3,
     power = _spectrum(level, "hann", np.float32)
     ny, nx = image.shape
     dy, dx = pixel
-    start = []
+    start, bins = [], []
     for qj in q_arr:
         # Nearest bin, then the strongest bin within one bin of it.
         c = int(round(qj[0] * nx * dx / (2 * np.pi))) + nx // 2
@@ -1382,9 +1477,15 @@ def refine_q(image, q, *, pixel_size_nm, sigma_nm=None, mask=None, iterations=3,
             rr, cc = np.unravel_index(np.argmax(sub), sub.shape)
             r, c = r0 + rr, c0 + cc
         d_row, d_col, _, _ = _grandke(power, r, c)
+        bins.append((r, c))
         start.append([2 * np.pi * (c - nx // 2 + d_col) / (nx * dx), 2 * np.pi * (r - ny // 2 + d_row) / (ny * dy)])
     start = np.asarray(start)
-    peaks = [Peak(q=s, q_err=np.nan) for s in start]
+    # The local noise floor at each start bin sets the Cramér–Rao bound of the refined q.
+    floor, _ = _two_pass_floor(power)
+    peaks = []
+    for qs, (r, c) in zip(start, bins):
+        p_bin = float(power[r, c])
+        peaks.append(Peak(q=qs, q_err=np.nan, power=p_bin, snr=p_bin / float(floor[r, c])))
     refined = _refine_peaks(level, valid, pixel, peaks, sigma_nm=sigma_nm, other_q=other,
                             iterations=iterations, guard=False)
     q_out = np.array([p.q for p in refined])
@@ -1438,18 +1539,23 @@ def _refine_peaks(level, valid, pixel, peaks, *, sigma_nm=None, other_q=None, it
         for start in range(0, len(idx), group):
             sel = idx[start:start + group]
             q0 = np.array([peaks[m].q for m in sel])
+            # White-noise variance per pixel that gives each peak's local floor F = power / snr
+            # (Hann: F = 2.25 sigma_n^2 / (Nx Ny); derived).
+            noise_var = np.array([peaks[m].power / peaks[m].snr * nx * ny / 2.25
+                                  if math.isfinite(peaks[m].snr) and peaks[m].snr > 0 else np.nan for m in sel])
             try:
-                q, err, amp, cov, _ = _lockin_refine(level, valid, pixel, q0, float(s), iterations, distance)
+                q, err, amp, cov, _ = _lockin_refine(level, valid, pixel, q0, float(s), iterations, distance,
+                                                     noise_var)
             except InputError:
                 if not guard:
                     raise
                 continue  # sigma chosen here leaves no trusted region (a large mask): keep the peaks
-            for m, qm, em, am in zip(sel, q, err, amp):
+            for m, qm, em, am, cm in zip(sel, q, err, amp, cov):
                 moved = float(np.hypot(*(qm - peaks[m].q)))
                 limit = max(5 * peaks[m].q_err if math.isfinite(peaks[m].q_err) else 0.0, 0.3 * float(bin_q.min()))
                 if not np.all(np.isfinite(qm)) or not math.isfinite(em) or (guard and moved > limit):
                     continue
-                out[m] = replace(peaks[m], q=qm, q_err=float(em),
+                out[m] = replace(peaks[m], q=qm, q_err=float(em), q_cov=cm,
                                  amplitude=float(am) if math.isfinite(am) else peaks[m].amplitude,
                                  refined="lockin")
     return out
@@ -2048,6 +2154,19 @@ def _directions(vectors, errs, coefs):
     return chosen
 
 
+def _ideal_q_err(q, lattice):
+    """One-sigma error per component of wavevectors fixed to the lattice (commensurate q = f b).
+
+    They inherit the lattice's errors: radially |q| a_err / a (a scale), tangentially
+    |q| angle_err (a rotation), per component the root mean square of the two (derived).
+    """
+    q = np.asarray(q, dtype=float).reshape(-1, 2)
+    qa = np.hypot(q[:, 0], q[:, 1])
+    rel = lattice.a_err_nm / lattice.a_nm if lattice.a_nm > 0 else 0.0
+    rot = math.radians(lattice.angle_err_deg)
+    return qa * math.sqrt(0.5 * (rel**2 + rot**2))
+
+
 def _summarize_superlattice(peaks, lattice):
     if lattice is None:
         return None
@@ -2074,7 +2193,7 @@ def _summarize_superlattice(peaks, lattice):
             for v in q:
                 f = v @ np.linalg.inv(b)
                 coefs.append(tuple(Fraction(v_).limit_denominator(64) for v_ in f))
-        return Superlattice(order, True, np.asarray(q), np.zeros(len(q)), coefs, m, n_sites, None, note)
+        return Superlattice(order, True, np.asarray(q), _ideal_q_err(q, lattice), coefs, m, n_sites, None, note)
     if inc:
         vecs = [p.q for p in inc]
         chosen = _directions(vecs, [p.q_err for p in inc], [p.hk for p in inc])
@@ -2161,7 +2280,7 @@ def _superlattice_override(order, lattice):
         name = f"sqrt{n}xsqrt{n}R{mt.group(3)}"
     inv = np.linalg.inv(b)
     coefs = [tuple(Fraction(v).limit_denominator(64) for v in (qq @ inv)) for qq in q]
-    return Superlattice(name, True, q, np.zeros(len(q)), coefs, None, None, None, "set by the user")
+    return Superlattice(name, True, q, _ideal_q_err(q, lattice), coefs, None, None, None, "set by the user")
 
 
 # --------------------------------------------------------------------------------------
