@@ -15,7 +15,7 @@ from fractions import Fraction
 
 import numpy as np
 from scipy import fft as sfft
-from scipy import ndimage
+from scipy import ndimage, special
 
 from ._checks import positive, within_nyquist
 from ._errors import InputError
@@ -24,6 +24,8 @@ from ._lockin import lockin, phase_gradient
 from ._scan import Scan, _is_dask, pixel_size_pair
 
 __all__ = [
+    "WELCH_TILE_PX",
+    "WHOLE_FRAME_MAX_PIXELS",
     "Lattice",
     "Peak",
     "SpectrumResult",
@@ -409,8 +411,8 @@ def _json_clean(obj):
     return obj
 
 
-def _unpack(image, pixel_size_nm, mask, caller):
-    """Image as a float ndarray, the (dy, dx) pixel size and the validity map."""
+def _open(image, pixel_size_nm, mask, caller):
+    """The image (ndarray or dask array, not read), the (dy, dx) pixel size and the mask, checked."""
     if isinstance(image, Scan):
         if image.is_grid:
             raise InputError(f"{caller} needs a 2-D image, got a 3-D grid; pass one energy slice")
@@ -419,10 +421,8 @@ def _unpack(image, pixel_size_nm, mask, caller):
         if mask is None:
             mask = image.mask
         image = image.data
-    if _is_dask(image):
-        # The FFT needs the whole frame at once (one chunk per FFT axis).
-        image = image.compute()
-    image = np.asarray(image)
+    if not _is_dask(image):
+        image = np.asarray(image)
     if image.ndim != 2:
         raise InputError(f"{caller} needs a 2-D image (row, col), got shape {tuple(image.shape)}")
     if image.size == 0 or min(image.shape) < 8:
@@ -430,6 +430,19 @@ def _unpack(image, pixel_size_nm, mask, caller):
     if image.dtype.kind not in "biuf":
         raise InputError(f"{caller} needs a real-valued image, got dtype {image.dtype}")
     pixel = pixel_size_pair(pixel_size_nm)
+    if mask is not None and tuple(mask.shape if _is_dask(mask) else np.shape(mask)) != tuple(image.shape):
+        raise InputError(f"mask shape {tuple(np.shape(mask))} differs from the image shape {tuple(image.shape)}")
+    return image, pixel, mask
+
+
+def _unpack(image, pixel_size_nm, mask, caller):
+    """Image as a float ndarray, the (dy, dx) pixel size and the validity map."""
+    image, pixel, mask = _open(image, pixel_size_nm, mask, caller)
+    if _is_dask(image):
+        # The whole-frame FFT needs the whole frame at once (one chunk per FFT axis).
+        image = image.compute()
+    if _is_dask(mask):
+        mask = mask.compute()
     valid = np.isfinite(image)
     if mask is not None:
         mask = np.asarray(mask)
@@ -499,23 +512,20 @@ def _q_axes(shape, pixel):
     return qx, qy
 
 
-def _spectrum(level, window, dtype=np.float64):
-    """Power of the windowed image with the zero wavevector at the centre (``fftshift`` layout).
-
-    One real FFT in float64 (scipy.fft, all cores); the other half of the plane
-    follows from the Hermitian symmetry of a real image's transform, P(-k) = P(k),
-    so it costs no second transform. Stored as ``dtype`` (float32 is plenty for
-    peak finding, where only ratios of powers matter).
-    """
-    ny, nx = level.shape
-    if window == "hann":
-        wy, wx = _hann(ny), _hann(nx)
-    else:
-        wy, wx = np.ones(ny), np.ones(nx)
+def _half_power(level, wy, wx):
+    """|rfft2(level w)|^2, float64, normalised so that a cosine of amplitude A0 centred on a bin gives (A0/2)^2."""
     f = sfft.rfft2(level * wy[:, None] * wx[None, :], workers=-1)
-    # (A0/2)^2 for a cosine of amplitude A0 centred on a bin.
-    half = ((f.real**2 + f.imag**2) / (wy.sum() * wx.sum()) ** 2).astype(dtype, copy=False)
-    del f
+    return (f.real**2 + f.imag**2) / (wy.sum() * wx.sum()) ** 2
+
+
+def _full_plane(half, shape, dtype):
+    """The whole (row, col) power plane, zero wavevector at the centre (``fftshift`` layout), from its real-FFT half.
+
+    The other half follows from the Hermitian symmetry of a real image's transform,
+    P(-k) = P(k), so it costs no second transform.
+    """
+    ny, nx = shape
+    half = half.astype(dtype, copy=False)
     ki = np.arange(ny) - ny // 2
     m = nx // 2
     out = np.empty((ny, nx), dtype)
@@ -524,13 +534,37 @@ def _spectrum(level, window, dtype=np.float64):
     return out
 
 
-def power_spectrum(image, *, pixel_size_nm, mask=None, window="hann"):
+def _windows(shape, window):
+    ny, nx = shape
+    if window == "hann":
+        return _hann(ny), _hann(nx)
+    return np.ones(ny), np.ones(nx)
+
+
+def _spectrum(level, window, dtype=np.float64):
+    """Power of the windowed image with the zero wavevector at the centre (``fftshift`` layout).
+
+    One real FFT in float64 (scipy.fft, all cores) and the Hermitian mirror
+    (:func:`_full_plane`). Stored as ``dtype`` (float32 is plenty for peak
+    finding, where only ratios of powers matter).
+    """
+    wy, wx = _windows(level.shape, window)
+    return _full_plane(_half_power(level, wy, wx), level.shape, dtype)
+
+
+def power_spectrum(image, *, pixel_size_nm, mask=None, window="hann", tile_px=None):
     """Plane-levelled, Hann-windowed power spectrum with physical wavevector axes.
 
     A least-squares plane over the valid pixels is subtracted, masked and NaN
     pixels are set to the mean, a periodic Hann window is applied along both
     axes (docs/methods.md §7), and the squared modulus of the FFT is returned with the
     zero wavevector at the centre (``numpy.fft.fftshift`` layout).
+
+    With tiles (``tile_px``, or a dask array of more than ``WHOLE_FRAME_MAX_PIXELS``
+    pixels) it is instead the average of the periodograms of overlapping tiles
+    (50 %), each with the same plane removed and its own window (Welch 1967):
+    computed tile by tile, so the image is never held whole, on the tile's
+    frequency grid (coarser by frame / tile), with the same normalisation.
 
     Parameters
     ----------
@@ -542,10 +576,15 @@ def power_spectrum(image, *, pixel_size_nm, mask=None, window="hann"):
         True where pixels are untrusted.
     window : {"hann", None}
         "hann" (default) or None for no window.
+    tile_px : int, optional
+        Side of the tiles in pixels. Default: the whole frame for an ndarray or
+        a dask array up to ``WHOLE_FRAME_MAX_PIXELS`` pixels, else
+        ``WELCH_TILE_PX``. A tile at least as large as the frame means the
+        whole frame.
 
     Returns
     -------
-    power : ndarray, shape (row, col)
+    power : ndarray, shape (row, col) (of a tile with tiles)
         Normalised so that a cosine of amplitude A0 centred on a frequency bin
         gives a peak of (A0/2)^2 (image units squared).
     qx_rad_per_nm : ndarray, shape (col,)
@@ -564,6 +603,10 @@ def power_spectrum(image, *, pixel_size_nm, mask=None, window="hann"):
     .. [1] F. J. Harris, "On the use of windows for harmonic analysis with the
        discrete Fourier transform", Proc. IEEE 66, 51 (1978).
        doi:10.1109/PROC.1978.10837
+    .. [2] P. D. Welch, "The use of fast Fourier transform for the estimation of
+       power spectra: a method based on time averaging over short, modified
+       periodograms", IEEE Trans. Audio Electroacoust. 15, 70 (1967).
+       doi:10.1109/TAU.1967.1161901
 
     Examples
     --------
@@ -577,7 +620,13 @@ def power_spectrum(image, *, pixel_size_nm, mask=None, window="hann"):
     """
     if window not in ("hann", None):
         raise InputError(f"window must be 'hann' or None, got {window!r}")
-    image, pixel, valid = _unpack(image, pixel_size_nm, mask, "power_spectrum")
+    image, pixel, mask = _open(image, pixel_size_nm, mask, "power_spectrum")
+    tile = _tile_size(image, tile_px)
+    if tile is not None:
+        power, shape, _, _, _ = _welch_spectrum(image, mask, pixel, tile, window, np.float64)
+        qx, qy = _q_axes(shape, pixel)
+        return power, qx, qy
+    image, pixel, valid = _unpack(image, pixel, mask, "power_spectrum")
     power = _spectrum(_subtract_plane(image, valid, pixel), window)
     qx, qy = _q_axes(image.shape, pixel)
     return power, qx, qy
@@ -734,13 +783,22 @@ def _excluded_medians(power, ext, cells, med, exclude):
     return np.where(use2, med2, med), np.where(use2, counts2, counts)
 
 
-def _floor_map(power, cells, med, counts):
+def _median_to_mean(dof):
+    """Median over mean of the noise power of a bin: ln 2 for one periodogram (exponential),
+    that of a Gamma(dof) variate for an average of dof independent ones (Welch)."""
+    if dof == 1:
+        return math.log(2)
+    return float(special.gammaincinv(dof, 0.5) / dof)
+
+
+def _floor_map(power, cells, med, counts, dof=1):
     """The floor (mean noise power, float32) and its sample count at every bin from the cell medians.
 
     Along the qx = 0 and qy = 0 bands: a running median along each band line (the
     spectrum is periodic in q: wrap), so that the streak of scan-line offsets is its own
     background. The power of pure noise in one bin is exponentially distributed, whose
-    mean is median / ln 2.
+    mean is median / ln 2 (median / :func:`_median_to_mean` for ``dof`` averaged
+    periodograms).
     """
     ny, nx = power.shape
     floor = med.astype(np.float32)[cells.labels]
@@ -758,13 +816,13 @@ def _floor_map(power, cells, med, counts):
         if 0 <= row < ny:
             floor[row, :] = ndimage.median_filter(power[row, :], size=2 * half_c + 1, mode="wrap")
             samples[row, :] = 2 * half_c + 1
-    floor *= np.float32(1 / math.log(2))
+    floor *= np.float32(1 / _median_to_mean(dof))
     tiny = max(1e-14 * float(power.max()), float(np.finfo(np.float32).tiny))
     np.maximum(floor, np.float32(tiny), out=floor)
     return floor, samples
 
 
-def _noise_floor(power, exclude=None):
+def _noise_floor(power, exclude=None, dof=1):
     """Local mean noise power at every bin, float32, and the number of bins it was estimated from.
 
     Away from the axes: the median over a polar cell (thin rings near the origin,
@@ -782,18 +840,20 @@ def _noise_floor(power, exclude=None):
     counts = cells.counts
     if exclude is not None:
         med, counts = _excluded_medians(power, ext, cells, med, np.flatnonzero(exclude))
-    return _floor_map(power, cells, med, counts)
+    return _floor_map(power, cells, med, counts, dof)
 
 
-def _two_pass_floor(power):
+def _two_pass_floor(power, dof=1):
     """Noise floor, re-estimated without the bins around clear first-pass excesses; and its sample counts."""
     cells = _floor_cells(power.shape)
     med, ext = _cell_medians(power, cells)
-    floor, _ = _floor_map(power, cells, med, cells.counts)
+    floor, _ = _floor_map(power, cells, med, cells.counts, dof)
     # A bin 10 times above the mean noise has probability exp(-10) = 5e-5 under pure
     # noise; masking those (and the window's main lobe around them) barely thins the
-    # noise sample but keeps crowded peaks out of thin rings.
-    strong = np.flatnonzero(power > 10.0 * floor)
+    # noise sample but keeps crowded peaks out of thin rings. For an average of dof
+    # periodograms, the level with the same probability under Gamma(dof) noise.
+    level = 10.0 if dof == 1 else float(special.gammainccinv(dof, math.exp(-10.0)) / dof)
+    strong = np.flatnonzero(power > level * floor)
     del floor
     ny, nx = power.shape
     rows, cols = np.divmod(strong, nx)
@@ -805,10 +865,10 @@ def _two_pass_floor(power):
             parts.append(rr[ok] * nx + cc[ok])
     exclude = np.unique(np.concatenate(parts))
     med2, counts2 = _excluded_medians(power, ext, cells, med, exclude)
-    return _floor_map(power, cells, med2, counts2)
+    return _floor_map(power, cells, med2, counts2, dof)
 
 
-def _threshold(samples, n_bins, false_alarm):
+def _threshold(samples, n_bins, false_alarm, dof=1):
     """Per-bin detection threshold for a power / floor ratio, given the floor's sample count.
 
     Under pure noise the bin power X is exponential (mean 1) and the floor is the
@@ -823,11 +883,13 @@ def _threshold(samples, n_bins, false_alarm):
     clipped = np.clip(np.asarray(samples), 1, 1001)
     present = np.flatnonzero(np.bincount(clipped.ravel(), minlength=1002))
     table = np.zeros(1002)
-    table[present] = _threshold_values(present, n_bins, false_alarm)
+    table[present] = _threshold_values(present, n_bins, false_alarm, dof)
     return table[clipped]
 
 
-def _threshold_values(unique, n_bins, false_alarm):
+def _threshold_values(unique, n_bins, false_alarm, dof=1):
+    if dof != 1:
+        return _threshold_values_averaged(unique, n_bins, false_alarm, dof)
     target = math.log(false_alarm / n_bins)
     kmax = int((unique.max() + 1) // 2)
     i = np.arange(kmax)[None, :]
@@ -838,6 +900,41 @@ def _threshold_values(unique, n_bins, false_alarm):
 
     def log_p(t):
         return np.sum(log_j - np.where(used, np.log(j + t[:, None] / math.log(2)), 0.0), axis=1)
+
+    lo = np.zeros(len(unique))
+    hi = np.ones(len(unique))
+    while np.any((log_p(hi) > target) & (hi < 1e12)):
+        hi = np.where(log_p(hi) > target, hi * 2, hi)
+    for _ in range(60):
+        mid = 0.5 * (lo + hi)
+        above = log_p(mid) > target
+        lo = np.where(above, mid, lo)
+        hi = np.where(above, hi, mid)
+    return hi
+
+
+def _threshold_values_averaged(unique, n_bins, false_alarm, dof):
+    """Thresholds for a power / floor ratio when every bin is an average of ``dof`` independent periodograms.
+
+    Under pure noise a bin's power over its mean is Gamma(dof, 1/dof) distributed (an
+    average of dof exponentials), P(X > x) = Q(dof, dof x) with Q the regularised upper
+    incomplete gamma function. The floor is a median of m such bins over the Gamma
+    median mu, which scatters by 1 / (2 f(mu) mu sqrt(m)) relative (f the Gamma density;
+    the large-sample variance of a median). The chance that noise passes t times the floor
+    is averaged over that scatter (Gauss–Hermite, 24 nodes) and t solves
+    n_bins * P = false_alarm (derived; dof = 1 is :func:`_threshold`'s exact formula).
+    """
+    k = float(dof)
+    mu = float(special.gammaincinv(k, 0.5) / k)
+    log_f = (k - 1) * math.log(mu) + k * math.log(k) - k * mu - float(special.gammaln(k))
+    rel = 1.0 / (2 * math.exp(log_f) * mu * np.sqrt(np.asarray(unique, dtype=float)))
+    nodes, weights = np.polynomial.hermite.hermgauss(24)
+    scale = np.maximum(1 + math.sqrt(2) * rel[:, None] * nodes[None, :], 0.05)
+    target = math.log(false_alarm / n_bins)
+
+    def log_p(t):
+        p = np.sum(weights * special.gammaincc(k, k * t[:, None] * scale), axis=1) / math.sqrt(math.pi)
+        return np.log(np.maximum(p, 1e-300))
 
     lo = np.zeros(len(unique))
     hi = np.ones(len(unique))
@@ -865,7 +962,7 @@ def _hann_leak(d):
     return np.where(d < 2, 1.0, np.minimum(1.0, bound))
 
 
-def _grandke(power, r, c, floor=None, others=()):
+def _grandke(power, r, c, floor=None, others=(), dof=1):
     """Sub-bin offsets (d_row, d_col) by the Hann three-bin formula, the scalloping factor and their one-sigma errors (bins).
 
     delta = (2 alpha - 1) / (1 + alpha), alpha the ratio of the larger neighbour to
@@ -882,7 +979,8 @@ def _grandke(power, r, c, floor=None, others=()):
       SNR = P / F with P the tone's power in the peak bin, and d delta / d alpha =
       3 / (1 + alpha)^2. That is 0.72 / sqrt(SNR) bins on a bin centre and
       0.43 / sqrt(SNR) half-way, 1.7 to 2.8 times the Cramér–Rao bound of the tone,
-      0.26 / sqrt(SNR) (Rife & Boorstyn 1974 in 2-D with the Hann SNR);
+      0.26 / sqrt(SNR) (Rife & Boorstyn 1974 in 2-D with the Hann SNR). An average of
+      ``dof`` independent periodograms (Welch) divides the variance by dof;
     - discretisation: the leakage of every other peak in ``others`` ((row, col, power)
       of the detected bins, the mirror included) into the three bins, bounded by the
       Hann kernel (:func:`_hann_leak`), with a random relative phase;
@@ -918,7 +1016,7 @@ def _grandke(power, r, c, floor=None, others=()):
             continue
         snr = max(peak**2 - noise, 1e-12 * noise, 1e-300) / max(noise, 1e-300)
         slope = 3 / (1 + alpha) ** 2
-        var_noise = slope**2 * max(1 + alpha**2 - 4 * alpha / 3, 0.0) / (2 * snr)
+        var_noise = slope**2 * max(1 + alpha**2 - 4 * alpha / 3, 0.0) / (2 * snr * dof)
         var_leak = 0.0
         for rj, cj, pj in others:
             if rj == r and cj == c:
@@ -935,7 +1033,7 @@ def _grandke(power, r, c, floor=None, others=()):
             e1 = rel * float(_hann_leak(min(d_r1, ny - d_r1)) * _hann_leak(min(d_c1, nx - d_c1)))
             var_leak += slope**2 * (e1**2 + alpha**2 * e0**2) / 2
         model = (1 - delta) / (2 + delta)
-        var_beta = max(1 + beta**2 - 4 * beta / 3, 0.0) / (2 * snr) + (3 / (2 + delta) ** 2) ** 2 * var_noise
+        var_beta = max(1 + beta**2 - 4 * beta / 3, 0.0) / (2 * snr * dof) + (3 / (2 + delta) ** 2) ** 2 * var_noise
         misfit = abs(beta - model)
         var_misfit = (1.5 * misfit) ** 2 if misfit > 3 * math.sqrt(var_beta + var_leak) else 0.0
         errs.append(math.sqrt(var_noise + var_leak + var_misfit))
@@ -946,7 +1044,7 @@ def _grandke(power, r, c, floor=None, others=()):
 
 
 def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_nm=None, snr=None,
-               false_alarm=0.01, refine="interpolate", sigma_nm=None):
+               false_alarm=0.01, refine="interpolate", sigma_nm=None, tile_px=None):
     """Find the peaks of an image's power spectrum, one per +q/-q pair.
 
     The spectrum is that of :func:`power_spectrum`. A peak is a local maximum
@@ -959,10 +1057,19 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
     rejected, and a disc around q = 0 (at least 3 bins, the reach of the
     window's main lobe) is ignored.
 
+    A large image (``tile_px``, or a dask array beyond ``WHOLE_FRAME_MAX_PIXELS``
+    pixels) is searched on the averaged periodogram of tiles (:func:`power_spectrum`;
+    the floor and threshold then follow the Gamma statistics of an average of
+    the equivalent number of independent periodograms), and every peak is
+    then refined on the full-resolution frame by the chunked lock-in with a
+    decimated output (as ``refine="lockin"``, unless ``refine`` is None), so
+    neither step holds the whole image.
+
     Parameters
     ----------
     image : (row, col) array_like, dask array or Scan
-        The image (a dask array is computed: the FFT needs the whole frame).
+        The image (a dask array up to ``WHOLE_FRAME_MAX_PIXELS`` pixels is
+        computed: the whole-frame FFT needs the whole frame).
     pixel_size_nm : float or (float, float)
         Pixel size in nm. May be None for a Scan.
     mask : (row, col) array of bool, optional
@@ -985,6 +1092,10 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
     sigma_nm : float, optional
         Lock-in width for ``refine="lockin"`` (default: per peak, from its
         distance to its neighbours).
+    tile_px : int, optional
+        Tiles of this many pixels a side (see above). Default: the whole frame
+        for an ndarray or a dask array up to ``WHOLE_FRAME_MAX_PIXELS`` pixels,
+        else ``WELCH_TILE_PX``.
 
     Returns
     -------
@@ -1007,6 +1118,8 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
     .. [2] T. Grandke, "Interpolation algorithms for discrete Fourier transforms
        of weighted signals", IEEE Trans. Instrum. Meas. 32, 350 (1983).
        doi:10.1109/TIM.1983.4315077
+    .. [3] P. D. Welch, IEEE Trans. Audio Electroacoust. 15, 70 (1967).
+       doi:10.1109/TAU.1967.1161901
 
     Examples
     --------
@@ -1018,7 +1131,7 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
     >>> len(peaks), np.round(peaks[0].q, 1).tolist()
     (1, [9.3, 4.1])
     """
-    image, pixel, valid = _unpack(image, pixel_size_nm, mask, "find_peaks")
+    image, pixel, mask = _open(image, pixel_size_nm, mask, "find_peaks")
     if refine not in ("interpolate", "lockin", None):
         raise InputError(f"refine must be 'interpolate', 'lockin' or None, got {refine!r}")
     max_peaks = int(max_peaks)
@@ -1026,6 +1139,16 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
         raise InputError(f"max_peaks must be at least 1, got {max_peaks}")
     if not 0 < false_alarm < 1:
         raise InputError(f"false_alarm must lie between 0 and 1, got {false_alarm}")
+    if sigma_nm is not None:
+        sigma_nm = positive(sigma_nm, "sigma_nm")
+    tile = _tile_size(image, tile_px)
+    if tile is not None:
+        power, shape, dof, coefs, counts = _welch_spectrum(image, mask, pixel, tile, "hann", np.float32)
+        peaks = _detect(power, shape, pixel, max_peaks, min_q_rad_per_nm, snr, false_alarm, refine is not None, dof)
+        if refine is not None and peaks:
+            peaks = _refine_tiled(image, mask, pixel, peaks, coefs, counts, shape, sigma_nm=sigma_nm)
+        return peaks
+    image, pixel, valid = _unpack(image, pixel, mask, "find_peaks")
     level = _subtract_plane(image, valid, pixel)
     power = _spectrum(level, "hann", np.float32)
     peaks = _detect(power, image.shape, pixel, max_peaks, min_q_rad_per_nm, snr, false_alarm, refine is not None)
@@ -1034,7 +1157,7 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
     return peaks
 
 
-def _candidates(power, ratio, samples, shape, pixel, min_q, snr, false_alarm):
+def _candidates(power, ratio, samples, shape, pixel, min_q, snr, false_alarm, dof=1):
     """Bins (rows, cols) that may hold a peak: in the search region, above the threshold, 5 x 5 local maxima.
 
     The search region is beyond a 3-bin disc around q = 0 and off the first row and column
@@ -1057,7 +1180,7 @@ def _candidates(power, ratio, samples, shape, pixel, min_q, snr, false_alarm):
         clipped = np.clip(samples.ravel(), 1, 1001)
         present = np.flatnonzero(np.bincount(clipped, minlength=1002))
         table = np.zeros(1002)
-        table[present] = _threshold_values(present, n_search, false_alarm)
+        table[present] = _threshold_values(present, n_search, false_alarm, dof)
         pre = np.flatnonzero(flat_ratio > table[present].min())
         pre = pre[flat_ratio[pre] > table[clipped[pre]]]
     else:
@@ -1078,12 +1201,13 @@ def _candidates(power, ratio, samples, shape, pixel, min_q, snr, false_alarm):
     return rows[top], cols[top]
 
 
-def _detect(power, shape, pixel, max_peaks, min_q, snr, false_alarm, interpolate):
+def _detect(power, shape, pixel, max_peaks, min_q, snr, false_alarm, interpolate, dof=1):
+    """Peaks of a power plane of ``shape`` (the frame, or the Welch tile with ``dof`` averaged periodograms)."""
     ny, nx = shape
     dy, dx = pixel
-    floor, samples = _two_pass_floor(power)
+    floor, samples = _two_pass_floor(power, dof)
     ratio = power / floor
-    cand = _candidates(power, ratio, samples, shape, pixel, min_q, snr, false_alarm)
+    cand = _candidates(power, ratio, samples, shape, pixel, min_q, snr, false_alarm, dof)
     # Both members of every pair are kept at this stage (side lobes of a peak's mirror
     # matter too); enough candidates for max_peaks canonical peaks and their mirrors.
     order = np.argsort(power[cand])[::-1][: 40 * max_peaks]
@@ -1114,7 +1238,7 @@ def _detect(power, shape, pixel, max_peaks, min_q, snr, false_alarm, interpolate
         if not (ki > 0 or (ki == 0 and kj > 0)):
             continue  # keep the canonical member of each +q/-q pair
         if interpolate:
-            d_row, d_col, scallop, (e_row, e_col) = _grandke(power, r, c, floor[r, c], accepted)
+            d_row, d_col, scallop, (e_row, e_col) = _grandke(power, r, c, floor[r, c], accepted, dof)
             how = "interpolated"
         else:
             d_row = d_col = 0.0
@@ -1233,7 +1357,46 @@ def _lockin_refine(level, valid, pixel, q0, sigma_nm, iterations, distance=None,
     k = len(q)
     mask = None if valid.all() else ~valid
     a = np.asarray(lockin(level.astype(np.float32), q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask, step=step))
-    a = a.reshape(k, *trusted.shape).astype(np.complex128)
+    a = a.reshape(k, *trusted.shape)
+    wc, wr = valid.sum(axis=0), valid.sum(axis=1)
+    return _fit_field(a, trusted, q, step, pixel, sigma_nm, iterations, noise_var, _spread_nm2(wr, wc, pixel))
+
+
+def _spread_nm2(wr, wc, pixel):
+    """sum (x - <x>)^2 and sum (y - <y>)^2 over the valid pixels (nm^2), from their row and column counts."""
+    dy, dx = pixel
+    xs, ys = np.arange(len(wc)) * dx, np.arange(len(wr)) * dy
+    n_valid = max(float(np.sum(wc)), 1.0)
+    return float(wc @ xs**2 - (wc @ xs) ** 2 / n_valid), float(wr @ ys**2 - (wr @ ys) ** 2 / n_valid)
+
+
+def _phase_slope(a, trusted, coarse):
+    """Phase slope (d/dx, d/dy) of each field by the angle of the summed lag-one products, (k, 2) rad/nm.
+
+    sum conj(A(r)) A(r + h) over neighbouring trusted samples: exact for a phase plane up to
+    pi per sample and weighted by |A|^2, so one update removes the offset of q (derived).
+    """
+    out = np.zeros((len(a), 2))
+    both_x = trusted[:, :-1] & trusted[:, 1:]
+    both_y = trusted[:-1, :] & trusted[1:, :]
+    for m, f in enumerate(a):
+        f = np.where(np.isfinite(f), f, 0)
+        px = np.sum((np.conj(f[:, :-1]) * f[:, 1:])[both_x])
+        py = np.sum((np.conj(f[:-1, :]) * f[1:, :])[both_y])
+        out[m] = [np.angle(px) / coarse[1], np.angle(py) / coarse[0]]
+    return out
+
+
+def _fit_field(a, trusted, q, step, pixel, sigma_nm, iterations, noise_var, spread):
+    """Refined q, errors and amplitude from lock-in fields ``a`` (k, rows, cols) sampled every ``step`` pixels.
+
+    See :func:`_lockin_refine`; ``spread`` is sum (x - <x>)^2, sum (y - <y>)^2 over the valid
+    pixels for the Cramér–Rao bound.
+    """
+    dy, dx = pixel
+    k = len(q)
+    q = np.array(q, dtype=float)
+    a = np.asarray(a).astype(np.complex128)
     coarse = (dy * step, dx * step)
     rows, cols = np.nonzero(trusted)
     x = cols * coarse[1]
@@ -1256,15 +1419,7 @@ def _lockin_refine(level, valid, pixel, q0, sigma_nm, iterations, distance=None,
             a[m] *= np.exp(-1j * dq[m, 1] * yg)[:, None] * np.exp(-1j * dq[m, 0] * xg)[None, :]
 
     for _ in range(iterations - 1):
-        at = a[:, trusted]
-        w = np.abs(at) ** 2
-        w = np.where(np.isfinite(w), w, 0.0)
-        grad = phase_gradient(a, pixel_size_nm=coarse)  # (2, k, row, col)
-        g = grad[:, :, trusted]
-        g = np.where(np.isfinite(g), g, 0.0)
-        wsum = w.sum(axis=1)
-        # Mean local wavevector offset, weighted by |A|^2 (the ML weight for phase noise).
-        dq = (np.sum(g * w[None], axis=2) / np.where(wsum > 0, wsum, 1.0)).T
+        dq = _phase_slope(a, trusted, coarse)
         q += dq
         rereference(dq)
     at = a[:, trusted]
@@ -1324,11 +1479,7 @@ def _lockin_refine(level, valid, pixel, q0, sigma_nm, iterations, distance=None,
             q_cov[m] = cov_med
     if noise_var is not None:
         # The bound over every valid pixel (the lock-in reaches beyond the trusted region).
-        wc, wr = valid.sum(axis=0), valid.sum(axis=1)
-        xs, ys = np.arange(nx) * dx, np.arange(ny) * dy
-        n_valid = max(float(wc.sum()), 1.0)
-        sxx = float(wc @ xs**2 - (wc @ xs) ** 2 / n_valid)
-        syy = float(wr @ ys**2 - (wr @ ys) ** 2 / n_valid)
+        sxx, syy = spread
         for m in range(k):
             # The spectral floor can hold more than noise (the leakage of a tone through a
             # mask): the smaller of it and the noise the lock-in phase itself shows.
@@ -1493,14 +1644,14 @@ def refine_q(image, q, *, pixel_size_nm, sigma_nm=None, mask=None, iterations=3,
     return (q_out[0], float(err[0])) if single else (q_out, err)
 
 
-def _refine_peaks(level, valid, pixel, peaks, *, sigma_nm=None, other_q=None, iterations=2, guard=True):
-    """Lock-in refinement of a list of peaks, grouped by lock-in width; returns new Peaks.
+def _plan_refinement(peaks, pixel, shape, sigma_nm=None, other_q=None, guard=True, ladder=1.25):
+    """Lock-in width of every peak and whether to refine it (``shape``: the frame whose spectrum found them).
 
-    With ``guard``, peaks too weak for the lock-in are left as they are, and a
-    refinement that moves a peak by more than 5 times its interpolation
-    uncertainty (or 0.3 bin) is discarded: it locked onto noise or a neighbour.
+    Widths are rounded up to steps of ``ladder`` so that peaks share lock-in passes (a
+    larger sigma only lowers the leakage; the cap of 1/12 of ``shape`` still holds).
+    With ``guard``, peaks too weak for the lock-in are left out.
     """
-    ny, nx = level.shape
+    ny, nx = shape
     dy, dx = pixel
     allq = np.array([p.q for p in peaks])
     if other_q is not None:
@@ -1511,15 +1662,11 @@ def _refine_peaks(level, valid, pixel, peaks, *, sigma_nm=None, other_q=None, it
             sigmas.append(float(sigma_nm))
         else:
             others = np.delete(allq, m, axis=0)
-            s = _auto_sigma_px(p.q, others, pixel, level.shape)
-            # Round up to 25 % steps so that peaks can share one lock-in pass (a larger
-            # sigma only lowers the leakage; the cap of 1/12 frame still holds).
-            s = min(float(np.exp(np.ceil(np.log(s) / np.log(1.25)) * np.log(1.25))),
+            s = _auto_sigma_px(p.q, others, pixel, shape)
+            s = min(float(np.exp(np.ceil(np.log(s) / np.log(ladder)) * np.log(ladder))),
                     max(min(ny * dy, nx * dx) / 12, 1.5 * max(dy, dx)))
             sigmas.append(s)
     sigmas = np.asarray(sigmas)
-    out = list(peaks)
-    bin_q = 2 * np.pi / np.array([nx * dx, ny * dy])
     todo = np.ones(len(peaks), bool)
     if guard:
         for m, p in enumerate(peaks):
@@ -1530,6 +1677,40 @@ def _refine_peaks(level, valid, pixel, peaks, *, sigma_nm=None, other_q=None, it
             if math.isfinite(p.snr):
                 var_phi = nx * ny / (2 * np.pi * s_px2 * 9 * max(p.snr, 1e-12))
                 todo[m] = var_phi < 0.25
+    return sigmas, todo
+
+
+def _noise_var(peak, shape):
+    """White-noise variance per pixel that gives a peak's local floor F = power / snr (Hann:
+    F = 2.25 sigma_n^2 / (Nx Ny) for the frame or tile ``shape``; derived)."""
+    if not (math.isfinite(peak.snr) and peak.snr > 0 and math.isfinite(peak.power)):
+        return np.nan
+    return peak.power / peak.snr * shape[0] * shape[1] / 2.25
+
+
+def _accepted(peak, qm, em, am, cm, bin_q, guard):
+    """The refined peak, or None when the refinement failed or (with ``guard``) moved it by more
+    than 5 times its interpolation uncertainty (or 0.3 bin): it locked onto noise or a neighbour."""
+    moved = float(np.hypot(*(qm - peak.q)))
+    limit = max(5 * peak.q_err if math.isfinite(peak.q_err) else 0.0, 0.3 * float(np.min(bin_q)))
+    if not np.all(np.isfinite(qm)) or not math.isfinite(em) or (guard and moved > limit):
+        return None
+    return replace(peak, q=qm, q_err=float(em), q_cov=cm,
+                   amplitude=float(am) if math.isfinite(am) else peak.amplitude, refined="lockin")
+
+
+def _refine_peaks(level, valid, pixel, peaks, *, sigma_nm=None, other_q=None, iterations=2, guard=True):
+    """Lock-in refinement of a list of peaks, grouped by lock-in width; returns new Peaks.
+
+    With ``guard``, peaks too weak for the lock-in are left as they are, and a
+    refinement that moves a peak by more than 5 times its interpolation
+    uncertainty (or 0.3 bin) is discarded: it locked onto noise or a neighbour.
+    """
+    ny, nx = level.shape
+    dy, dx = pixel
+    sigmas, todo = _plan_refinement(peaks, pixel, level.shape, sigma_nm, other_q, guard)
+    out = list(peaks)
+    bin_q = 2 * np.pi / np.array([nx * dx, ny * dy])
     distance = _edge_distance(valid, pixel)
     for s in np.unique(sigmas[todo]):
         idx = np.nonzero((sigmas == s) & todo)[0]
@@ -1539,10 +1720,7 @@ def _refine_peaks(level, valid, pixel, peaks, *, sigma_nm=None, other_q=None, it
         for start in range(0, len(idx), group):
             sel = idx[start:start + group]
             q0 = np.array([peaks[m].q for m in sel])
-            # White-noise variance per pixel that gives each peak's local floor F = power / snr
-            # (Hann: F = 2.25 sigma_n^2 / (Nx Ny); derived).
-            noise_var = np.array([peaks[m].power / peaks[m].snr * nx * ny / 2.25
-                                  if math.isfinite(peaks[m].snr) and peaks[m].snr > 0 else np.nan for m in sel])
+            noise_var = np.array([_noise_var(peaks[m], level.shape) for m in sel])
             try:
                 q, err, amp, cov, _ = _lockin_refine(level, valid, pixel, q0, float(s), iterations, distance,
                                                      noise_var)
@@ -1551,13 +1729,244 @@ def _refine_peaks(level, valid, pixel, peaks, *, sigma_nm=None, other_q=None, it
                     raise
                 continue  # sigma chosen here leaves no trusted region (a large mask): keep the peaks
             for m, qm, em, am, cm in zip(sel, q, err, amp, cov):
-                moved = float(np.hypot(*(qm - peaks[m].q)))
-                limit = max(5 * peaks[m].q_err if math.isfinite(peaks[m].q_err) else 0.0, 0.3 * float(bin_q.min()))
-                if not np.all(np.isfinite(qm)) or not math.isfinite(em) or (guard and moved > limit):
-                    continue
-                out[m] = replace(peaks[m], q=qm, q_err=float(em), q_cov=cm,
-                                 amplitude=float(am) if math.isfinite(am) else peaks[m].amplitude,
-                                 refined="lockin")
+                new = _accepted(peaks[m], qm, em, am, cm, bin_q, guard)
+                if new is not None:
+                    out[m] = new
+    return out
+
+
+# --------------------------------------------------------------------------------------
+# Large images: averaged periodogram of tiles (Welch) and a lazy, decimated refinement
+# --------------------------------------------------------------------------------------
+
+#: A dask array of up to this many pixels is read whole and transformed whole (as an ndarray).
+WHOLE_FRAME_MAX_PIXELS = 4096 * 4096
+#: Tile side (pixels) of the averaged periodogram of larger images.
+WELCH_TILE_PX = 2048
+#: Lock-in samples held at a time when refining the peaks of a large image (complex64: 128 MiB).
+_LAZY_SAMPLES = 1 << 24
+
+
+def _tile_size(image, tile_px):
+    """Side of the Welch tiles, or None for one transform of the whole frame."""
+    ny, nx = image.shape
+    if tile_px is None:
+        if not (_is_dask(image) and ny * nx > WHOLE_FRAME_MAX_PIXELS):
+            return None
+        tile_px = WELCH_TILE_PX
+    if isinstance(tile_px, (bool, np.bool_)) or not isinstance(tile_px, (int, np.integer)) or tile_px < 16:
+        raise InputError(f"tile_px must be a whole number of pixels, at least 16 (or None), got {tile_px!r}")
+    if tile_px >= max(ny, nx):
+        return None
+    return int(tile_px)
+
+
+def _tile_starts(n, tile):
+    """First pixels of the tiles along an axis of n pixels: 50 % overlap, the last tile flush with the end."""
+    if tile >= n:
+        return np.array([0]), n
+    starts = list(range(0, n - tile + 1, max(tile // 2, 1)))
+    if starts[-1] + tile < n:
+        starts.append(n - tile)
+    return np.array(starts), tile
+
+
+def _overlap_sum(starts, window):
+    """Sum over all pairs of tiles along one axis of the squared correlation of their windowed noise.
+
+    Two tiles d pixels apart share the noise of their overlap: the correlation of their
+    transforms at one frequency is c(d) = sum_n w(n) w(n - d) / sum w^2 (1/6 for a Hann
+    window at 50 %; Harris 1978), that of their periodograms c(d)^2 (derived).
+    """
+    n = len(window)
+    w2 = float(np.sum(window**2))
+    full = np.correlate(window, window, mode="full")  # lags -(n - 1) ... n - 1
+    d = np.abs(starts[:, None] - starts[None, :])
+    c = np.where(d < n, full[np.clip(n - 1 + d, 0, 2 * n - 2)] / w2, 0.0)
+    return float(np.sum(c**2))
+
+
+def _as_dask_mask(mask, chunks):
+    import dask.array as da
+
+    if _is_dask(mask):
+        return mask.astype(bool).rechunk(chunks)
+    return da.from_array(np.asarray(mask, dtype=bool), chunks=chunks)
+
+
+def _plane_fit(image, mask, pixel):
+    """Least-squares plane (c, gx, gy) through the valid pixels and the valid counts per row and column.
+
+    From row and column sums only (the normal equations of z = c + gx x + gy y), so a
+    dask array is read once, chunk by chunk, and nothing full-size is kept.
+    """
+    dy, dx = pixel
+    ny, nx = image.shape
+    x = np.arange(nx) * dx
+    y = np.arange(ny) * dy
+    if _is_dask(image):
+        import dask
+        import dask.array as da
+
+        valid = da.isfinite(image)
+        if mask is not None:
+            valid = valid & ~_as_dask_mask(mask, image.chunks)
+        w = valid.astype(np.float64)
+        z = da.where(valid, image, 0).astype(np.float64)
+        wr, wc, zr, zc, wx = dask.compute(w.sum(axis=1), w.sum(axis=0), z.sum(axis=1), z.sum(axis=0), w @ x)
+    else:
+        valid = np.isfinite(image)
+        if mask is not None:
+            valid &= ~np.asarray(mask, dtype=bool)
+        w = valid.astype(float)
+        z = np.where(valid, image, 0.0)
+        wr, wc, zr, zc, wx = w.sum(axis=1), w.sum(axis=0), z.sum(axis=1), z.sum(axis=0), w @ x
+    n = float(wr.sum())
+    if n < 16:
+        raise InputError("fewer than 16 valid (finite, unmasked) pixels in the image")
+    sx, sy = wc @ x, wr @ y
+    sxx, syy, sxy = wc @ x**2, wr @ y**2, y @ wx
+    mat = np.array([[n, sx, sy], [sx, sxx, sxy], [sy, sxy, syy]])
+    rhs = np.array([zr.sum(), zc @ x, zr @ y])
+    try:
+        coefs = np.linalg.solve(mat, rhs)
+        if not np.all(np.isfinite(coefs)):
+            raise np.linalg.LinAlgError
+    except np.linalg.LinAlgError:  # a single row or column of valid pixels: remove the mean only
+        coefs = np.array([rhs[0] / n, 0.0, 0.0])
+    return tuple(float(v) for v in coefs), (np.asarray(wr), np.asarray(wc))
+
+
+def _tile_power(block, invalid, r0, c0, coefs, pixel, window):
+    """Periodogram half-plane (float64) of one tile at global pixel (r0, c0): the global plane removed,
+    invalid pixels set to zero, windowed (the whole-frame recipe of :func:`power_spectrum`)."""
+    block = np.asarray(block, dtype=np.float64)
+    ty, tx = block.shape
+    valid = np.isfinite(block)
+    if invalid is not None:
+        valid &= ~np.asarray(invalid, dtype=bool)
+    c, gx, gy = coefs
+    dy, dx = pixel
+    plane = c + gx * (c0 + np.arange(tx))[None, :] * dx + gy * (r0 + np.arange(ty))[:, None] * dy
+    wy, wx = _windows((ty, tx), window)
+    return _half_power(np.where(valid, block - plane, 0.0), wy, wx)
+
+
+def _welch_spectrum(image, mask, pixel, tile, window, dtype):
+    """Averaged periodogram of overlapping windowed tiles (Welch 1967), tile by tile.
+
+    Returns the power plane of one tile (``fftshift`` layout), the tile shape, the
+    equivalent number of independent periodograms averaged, the plane and the valid
+    counts per row and column. A dask array is read tile by tile (one task per tile, summed
+    in a tree), an ndarray (e.g. a memory map) through views, so the whole image is never
+    held at once.
+    """
+    ny, nx = image.shape
+    coefs, counts = _plane_fit(image, mask, pixel)
+    rows, ty = _tile_starts(ny, tile)
+    cols, tx = _tile_starts(nx, tile)
+    starts = [(int(r0), int(c0)) for r0 in rows for c0 in cols]
+    if _is_dask(image):
+        import dask
+
+        msk = None if mask is None else _as_dask_mask(mask, image.chunks)
+        parts = [dask.delayed(_tile_power)(image[r0:r0 + ty, c0:c0 + tx],
+                                           None if msk is None else msk[r0:r0 + ty, c0:c0 + tx],
+                                           r0, c0, coefs, pixel, window) for r0, c0 in starts]
+        while len(parts) > 1:  # a tree of sums keeps a few tiles in memory at a time
+            parts = [dask.delayed(np.add)(parts[i], parts[i + 1]) if i + 1 < len(parts) else parts[i]
+                     for i in range(0, len(parts), 2)]
+        total = parts[0].compute()
+    else:
+        total = None
+        for r0, c0 in starts:
+            part = _tile_power(image[r0:r0 + ty, c0:c0 + tx],
+                               None if mask is None else np.asarray(mask)[r0:r0 + ty, c0:c0 + tx],
+                               r0, c0, coefs, pixel, window)
+            total = part if total is None else total + part
+    wy, wx = _windows((ty, tx), window)
+    # Variance of the average over that of one periodogram: sum of the pair correlations / K^2,
+    # separable in rows and columns (derived); its inverse is the equivalent count.
+    dof = len(starts) ** 2 / (_overlap_sum(rows, wy) * _overlap_sum(cols, wx))
+    return _full_plane(total / len(starts), (ty, tx), dtype), (ty, tx), float(dof), coefs, counts
+
+
+def _coarse_invalid(image, mask, block):
+    """Whether each block x block cell of the image (from pixel 0) holds an invalid pixel; None if none does."""
+    import dask.array as da
+
+    lazy = image if _is_dask(image) else da.from_array(image, chunks=(min(image.shape[0], 4096),
+                                                                       min(image.shape[1], 4096)))
+    invalid = ~da.isfinite(lazy)
+    if mask is not None:
+        invalid = invalid | _as_dask_mask(mask, lazy.chunks)
+    ny, nx = image.shape
+    pad = ((0, -ny % block), (0, -nx % block))
+    invalid = da.pad(invalid, pad, mode="constant", constant_values=False)
+    side = block * max(1, 4096 // block)
+    cells = da.coarsen(np.any, invalid.rechunk((side, side)), {0: block, 1: block}).compute()
+    return cells if cells.any() else None
+
+
+def _refine_tiled(image, mask, pixel, peaks, coefs, counts, tile_shape, *, sigma_nm=None, iterations=3):
+    """Lock-in refinement of peaks found on tiles, over the whole full-resolution frame, lazily.
+
+    The image (plane removed, invalid pixels NaN) goes through the chunked lock-in
+    (``domains._lockin.lockin`` on a dask array) with a decimated output, computed for a
+    bounded number of samples at a time; the fit is that of :func:`_lockin_refine`. The
+    trusted region keeps 2.5 sigma from the frame edge and from invalid pixels (found on
+    blocks, so a little more).
+    """
+    import dask.array as da
+
+    ny, nx = image.shape
+    dy, dx = pixel
+    lazy = image if _is_dask(image) else da.from_array(image, chunks=(min(ny, 4096), min(nx, 4096)))
+    lazy = lazy.astype(np.float32)
+    invalid = ~da.isfinite(lazy)
+    if mask is not None:
+        invalid = invalid | _as_dask_mask(mask, lazy.chunks)
+    c, gx, gy = coefs
+    row_plane = da.from_array((c + gy * np.arange(ny) * dy).astype(np.float32), chunks=(lazy.chunks[0],))
+    col_plane = da.from_array((gx * np.arange(nx) * dx).astype(np.float32), chunks=(lazy.chunks[1],))
+    level = da.where(invalid, np.float32(np.nan), lazy - row_plane[:, None] - col_plane[None, :])
+    spread = _spread_nm2(counts[0], counts[1], pixel)
+    sigmas, todo = _plan_refinement(peaks, pixel, tile_shape, sigma_nm, None, True, ladder=2.0)
+    bin_q = 2 * np.pi / np.array([tile_shape[1] * dx, tile_shape[0] * dy])
+    out = list(peaks)
+    if not todo.any():
+        return out
+    steps = {}
+    for s in np.unique(sigmas[todo]):
+        step = max(1, int(1.5 * s / max(pixel)))
+        cells = -(-ny // step) * -(-nx // step)
+        if cells > _LAZY_SAMPLES:
+            step = int(math.ceil(step * math.sqrt(cells / _LAZY_SAMPLES)))
+        steps[s] = step
+    base = min(steps.values())
+    bad = _coarse_invalid(image, mask, base)
+    for s in np.unique(sigmas[todo]):
+        idx = np.nonzero((sigmas == s) & todo)[0]
+        step = steps[s]
+        trusted = _coarse_trusted((ny, nx), pixel, step, s, None)
+        if bad is not None:
+            reach = int(math.ceil(2.5 * s / (base * min(dy, dx)))) + 1
+            yy, xx = np.mgrid[-reach:reach + 1, -reach:reach + 1]
+            near = ndimage.binary_dilation(bad, structure=(yy**2 + xx**2 <= (reach + 0.5) ** 2))
+            trusted &= ~near[(np.arange(trusted.shape[0]) * step) // base][:, (np.arange(trusted.shape[1]) * step) // base]
+        if trusted.sum() < 16:
+            continue
+        group = max(1, _LAZY_SAMPLES // trusted.size)
+        for start in range(0, len(idx), group):
+            sel = idx[start:start + group]
+            q0 = np.array([peaks[m].q for m in sel])
+            a = np.asarray(lockin(level, q0, sigma_nm=float(s), pixel_size_nm=pixel, step=step).compute())
+            noise_var = np.array([_noise_var(peaks[m], tile_shape) for m in sel])
+            q, err, amp, cov, _ = _fit_field(a, trusted, q0, step, pixel, float(s), iterations, noise_var, spread)
+            for m, qm, em, am, cm in zip(sel, q, err, amp, cov):
+                new = _accepted(peaks[m], qm, em, am, cm, bin_q, True)
+                if new is not None:
+                    out[m] = new
     return out
 
 
