@@ -562,7 +562,7 @@ def power_spectrum(image, *, pixel_size_nm, mask=None, window="hann", tile_px=No
 
     With tiles (``tile_px``, or a dask array of more than ``WHOLE_FRAME_MAX_PIXELS``
     pixels) it is instead the average of the periodograms of overlapping tiles
-    (50 %), each with the same plane removed and its own window (Welch 1967):
+    (50 %), each with its own plane removed and its own window (Welch 1967):
     computed tile by tile, so the image is never held whole, on the tile's
     frequency grid (coarser by frame / tile), with the same normalisation.
 
@@ -990,6 +990,7 @@ def _grandke(power, r, c, floor=None, others=(), dof=1):
       d delta / d alpha (about 1.5), is added.
     """
     ny, nx = power.shape
+    others = np.asarray(others, dtype=float).reshape(-1, 3)
 
     def mag(rr, cc):
         return math.sqrt(max(float(power[rr, cc]), 0.0))
@@ -1018,20 +1019,19 @@ def _grandke(power, r, c, floor=None, others=(), dof=1):
         slope = 3 / (1 + alpha) ** 2
         var_noise = slope**2 * max(1 + alpha**2 - 4 * alpha / 3, 0.0) / (2 * snr * dof)
         var_leak = 0.0
-        for rj, cj, pj in others:
-            if rj == r and cj == c:
-                continue
-            rel = math.sqrt(max(pj, 0.0) / peak**2)
-            d_r = abs(r - rj) % ny
-            d_c = abs(c - cj) % nx
-            d_r, d_c = min(d_r, ny - d_r), min(d_c, nx - d_c)
-            e0 = rel * float(_hann_leak(d_r) * _hann_leak(d_c))
-            step_r = sign if axis == 0 else 0
-            step_c = sign if axis == 1 else 0
-            d_r1 = abs(r + step_r - rj) % ny
-            d_c1 = abs(c + step_c - cj) % nx
-            e1 = rel * float(_hann_leak(min(d_r1, ny - d_r1)) * _hann_leak(min(d_c1, nx - d_c1)))
-            var_leak += slope**2 * (e1**2 + alpha**2 * e0**2) / 2
+        if len(others):
+            rj, cj, pj = others[:, 0], others[:, 1], others[:, 2]
+            rel = np.sqrt(np.maximum(pj, 0.0) / peak**2)
+            rel = np.where((rj == r) & (cj == c), 0.0, rel)  # not the peak itself
+            step_r, step_c = (sign, 0) if axis == 0 else (0, sign)
+
+            def leak(rr, cc):
+                d_r, d_c = np.abs(rr - rj) % ny, np.abs(cc - cj) % nx
+                return _hann_leak(np.minimum(d_r, ny - d_r)) * _hann_leak(np.minimum(d_c, nx - d_c))
+
+            e0 = rel * leak(r, c)
+            e1 = rel * leak(r + step_r, c + step_c)
+            var_leak = float(np.sum(slope**2 * (e1**2 + alpha**2 * e0**2) / 2))
         model = (1 - delta) / (2 + delta)
         var_beta = max(1 + beta**2 - 4 * beta / 3, 0.0) / (2 * snr * dof) + (3 / (2 + delta) ** 2) ** 2 * var_noise
         misfit = abs(beta - model)
@@ -1143,10 +1143,10 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
         sigma_nm = positive(sigma_nm, "sigma_nm")
     tile = _tile_size(image, tile_px)
     if tile is not None:
-        power, shape, dof, coefs, counts = _welch_spectrum(image, mask, pixel, tile, "hann", np.float32)
+        power, shape, dof, counts, bad = _welch_spectrum(image, mask, pixel, tile, "hann", np.float32)
         peaks = _detect(power, shape, pixel, max_peaks, min_q_rad_per_nm, snr, false_alarm, refine is not None, dof)
         if refine is not None and peaks:
-            peaks = _refine_tiled(image, mask, pixel, peaks, coefs, counts, shape, sigma_nm=sigma_nm)
+            peaks = _refine_tiled(image, mask, pixel, peaks, counts, bad, shape, sigma_nm=sigma_nm)
         return peaks
     image, pixel, valid = _unpack(image, pixel, mask, "find_peaks")
     level = _subtract_plane(image, valid, pixel)
@@ -1233,12 +1233,13 @@ def _detect(power, shape, pixel, max_peaks, min_q, snr, false_alarm, interpolate
         n_acc += 1
         accepted.append((r, c, float(p)))
     peaks = []
+    others = np.array(accepted, dtype=float).reshape(-1, 3)
     for r, c, p in accepted:
         ki, kj = r - ny // 2, c - nx // 2
         if not (ki > 0 or (ki == 0 and kj > 0)):
             continue  # keep the canonical member of each +q/-q pair
         if interpolate:
-            d_row, d_col, scallop, (e_row, e_col) = _grandke(power, r, c, floor[r, c], accepted, dof)
+            d_row, d_col, scallop, (e_row, e_col) = _grandke(power, r, c, floor[r, c], others, dof)
             how = "interpolated"
         else:
             d_row = d_col = 0.0
@@ -1745,6 +1746,8 @@ WHOLE_FRAME_MAX_PIXELS = 4096 * 4096
 WELCH_TILE_PX = 2048
 #: Lock-in samples held at a time when refining the peaks of a large image (complex64: 128 MiB).
 _LAZY_SAMPLES = 1 << 24
+#: Side (pixels) of the blocks on which invalid pixels are mapped for the trusted region.
+_BAD_BLOCK = 16
 
 
 def _tile_size(image, tile_px):
@@ -1794,179 +1797,143 @@ def _as_dask_mask(mask, chunks):
     return da.from_array(np.asarray(mask, dtype=bool), chunks=chunks)
 
 
-def _plane_fit(image, mask, pixel):
-    """Least-squares plane (c, gx, gy) through the valid pixels and the valid counts per row and column.
+def _tile_power(block, invalid, pixel, window):
+    """Periodogram half-plane (float64) of one tile and 1, or zeros and 0 for a tile with almost no data.
 
-    From row and column sums only (the normal equations of z = c + gx x + gy y), so a
-    dask array is read once, chunk by chunk, and nothing full-size is kept.
+    The recipe of :func:`power_spectrum` on the tile: its own least-squares plane removed,
+    invalid pixels set to zero, windowed.
     """
-    dy, dx = pixel
-    ny, nx = image.shape
-    x = np.arange(nx) * dx
-    y = np.arange(ny) * dy
-    if _is_dask(image):
-        import dask
-        import dask.array as da
-
-        valid = da.isfinite(image)
-        if mask is not None:
-            valid = valid & ~_as_dask_mask(mask, image.chunks)
-        w = valid.astype(np.float64)
-        z = da.where(valid, image, 0).astype(np.float64)
-        wr, wc, zr, zc, wx = dask.compute(w.sum(axis=1), w.sum(axis=0), z.sum(axis=1), z.sum(axis=0), w @ x)
-    else:
-        valid = np.isfinite(image)
-        if mask is not None:
-            valid &= ~np.asarray(mask, dtype=bool)
-        w = valid.astype(float)
-        z = np.where(valid, image, 0.0)
-        wr, wc, zr, zc, wx = w.sum(axis=1), w.sum(axis=0), z.sum(axis=1), z.sum(axis=0), w @ x
-    n = float(wr.sum())
-    if n < 16:
-        raise InputError("fewer than 16 valid (finite, unmasked) pixels in the image")
-    sx, sy = wc @ x, wr @ y
-    sxx, syy, sxy = wc @ x**2, wr @ y**2, y @ wx
-    mat = np.array([[n, sx, sy], [sx, sxx, sxy], [sy, sxy, syy]])
-    rhs = np.array([zr.sum(), zc @ x, zr @ y])
-    try:
-        coefs = np.linalg.solve(mat, rhs)
-        if not np.all(np.isfinite(coefs)):
-            raise np.linalg.LinAlgError
-    except np.linalg.LinAlgError:  # a single row or column of valid pixels: remove the mean only
-        coefs = np.array([rhs[0] / n, 0.0, 0.0])
-    return tuple(float(v) for v in coefs), (np.asarray(wr), np.asarray(wc))
-
-
-def _tile_power(block, invalid, r0, c0, coefs, pixel, window):
-    """Periodogram half-plane (float64) of one tile at global pixel (r0, c0): the global plane removed,
-    invalid pixels set to zero, windowed (the whole-frame recipe of :func:`power_spectrum`)."""
     block = np.asarray(block, dtype=np.float64)
     ty, tx = block.shape
     valid = np.isfinite(block)
     if invalid is not None:
         valid &= ~np.asarray(invalid, dtype=bool)
-    c, gx, gy = coefs
-    dy, dx = pixel
-    plane = c + gx * (c0 + np.arange(tx))[None, :] * dx + gy * (r0 + np.arange(ty))[:, None] * dy
+    if valid.sum() < 16:
+        return np.zeros((ty, tx // 2 + 1)), 0
     wy, wx = _windows((ty, tx), window)
-    return _half_power(np.where(valid, block - plane, 0.0), wy, wx)
+    return _half_power(_subtract_plane(np.where(valid, block, 0.0), valid, pixel), wy, wx), 1
+
+
+def _add_parts(a, b):
+    return a[0] + b[0], a[1] + b[1]
+
+
+def _block_any(invalid, block):
+    """Whether each block x block cell (from pixel 0; the last ones may be partial) holds a True."""
+    ny, nx = invalid.shape
+    pad = ((0, -ny % block), (0, -nx % block))
+    if _is_dask(invalid):
+        import dask.array as da
+
+        padded = da.pad(invalid, pad, mode="constant", constant_values=False)
+        side = block * max(1, 2048 // block)
+        return da.coarsen(np.any, padded.rechunk((side, side)), {0: block, 1: block})
+    padded = np.pad(invalid, pad, constant_values=False)
+    return padded.reshape(padded.shape[0] // block, block, padded.shape[1] // block, block).any(axis=(1, 3))
 
 
 def _welch_spectrum(image, mask, pixel, tile, window, dtype):
-    """Averaged periodogram of overlapping windowed tiles (Welch 1967), tile by tile.
+    """Averaged periodogram of overlapping windowed tiles (Welch 1967), in one reading of the image.
 
     Returns the power plane of one tile (``fftshift`` layout), the tile shape, the
-    equivalent number of independent periodograms averaged, the plane and the valid
-    counts per row and column. A dask array is read tile by tile (one task per tile, summed
-    in a tree), an ndarray (e.g. a memory map) through views, so the whole image is never
-    held at once.
+    equivalent number of independent periodograms averaged, the valid pixel counts per
+    row and per column, and which ``_BAD_BLOCK``-pixel blocks hold an invalid pixel (None if
+    none does). A dask array is read chunk by chunk (one task per tile, summed in a tree,
+    with the counts in the same pass), an ndarray (e.g. a memory map) through views, so the
+    whole image is never held at once.
     """
     ny, nx = image.shape
-    coefs, counts = _plane_fit(image, mask, pixel)
     rows, ty = _tile_starts(ny, tile)
     cols, tx = _tile_starts(nx, tile)
     starts = [(int(r0), int(c0)) for r0 in rows for c0 in cols]
     if _is_dask(image):
         import dask
+        import dask.array as da
 
-        msk = None if mask is None else _as_dask_mask(mask, image.chunks)
-        parts = [dask.delayed(_tile_power)(image[r0:r0 + ty, c0:c0 + tx],
-                                           None if msk is None else msk[r0:r0 + ty, c0:c0 + tx],
-                                           r0, c0, coefs, pixel, window) for r0, c0 in starts]
+        invalid = ~da.isfinite(image)
+        if mask is not None:
+            invalid = invalid | _as_dask_mask(mask, image.chunks)
+        parts = [dask.delayed(_tile_power)(image[r0:r0 + ty, c0:c0 + tx], invalid[r0:r0 + ty, c0:c0 + tx],
+                                           pixel, window) for r0, c0 in starts]
         while len(parts) > 1:  # a tree of sums keeps a few tiles in memory at a time
-            parts = [dask.delayed(np.add)(parts[i], parts[i + 1]) if i + 1 < len(parts) else parts[i]
+            parts = [dask.delayed(_add_parts)(parts[i], parts[i + 1]) if i + 1 < len(parts) else parts[i]
                      for i in range(0, len(parts), 2)]
-        total = parts[0].compute()
+        valid = (~invalid).astype(np.int64)
+        (total, used), wr, wc, bad = dask.compute(parts[0], valid.sum(axis=1), valid.sum(axis=0),
+                                                  _block_any(invalid, _BAD_BLOCK))
     else:
-        total = None
+        invalid = ~np.isfinite(image)
+        if mask is not None:
+            invalid |= np.asarray(mask, dtype=bool)
+        total, used = 0.0, 0
         for r0, c0 in starts:
-            part = _tile_power(image[r0:r0 + ty, c0:c0 + tx],
-                               None if mask is None else np.asarray(mask)[r0:r0 + ty, c0:c0 + tx],
-                               r0, c0, coefs, pixel, window)
-            total = part if total is None else total + part
+            part = _tile_power(image[r0:r0 + ty, c0:c0 + tx], invalid[r0:r0 + ty, c0:c0 + tx], pixel, window)
+            total, used = _add_parts((total, used), part)
+        wr, wc = (~invalid).sum(axis=1), (~invalid).sum(axis=0)
+        bad = _block_any(invalid, _BAD_BLOCK)
+    if used == 0:
+        raise InputError(f"no tile of {ty} x {tx} pixels holds 16 valid (finite, unmasked) pixels")
     wy, wx = _windows((ty, tx), window)
-    # Variance of the average over that of one periodogram: sum of the pair correlations / K^2,
-    # separable in rows and columns (derived); its inverse is the equivalent count.
+    # Variance of the average over that of one periodogram: the sum of the pair correlations over
+    # K^2, separable in rows and columns (derived); its inverse is the equivalent count.
     dof = len(starts) ** 2 / (_overlap_sum(rows, wy) * _overlap_sum(cols, wx))
-    return _full_plane(total / len(starts), (ty, tx), dtype), (ty, tx), float(dof), coefs, counts
+    bad = np.asarray(bad)
+    return (_full_plane(total / used, (ty, tx), dtype), (ty, tx), float(dof),
+            (np.asarray(wr), np.asarray(wc)), bad if bad.any() else None)
 
 
-def _coarse_invalid(image, mask, block):
-    """Whether each block x block cell of the image (from pixel 0) holds an invalid pixel; None if none does."""
-    import dask.array as da
-
-    lazy = image if _is_dask(image) else da.from_array(image, chunks=(min(image.shape[0], 4096),
-                                                                       min(image.shape[1], 4096)))
-    invalid = ~da.isfinite(lazy)
-    if mask is not None:
-        invalid = invalid | _as_dask_mask(mask, lazy.chunks)
-    ny, nx = image.shape
-    pad = ((0, -ny % block), (0, -nx % block))
-    invalid = da.pad(invalid, pad, mode="constant", constant_values=False)
-    side = block * max(1, 4096 // block)
-    cells = da.coarsen(np.any, invalid.rechunk((side, side)), {0: block, 1: block}).compute()
-    return cells if cells.any() else None
-
-
-def _refine_tiled(image, mask, pixel, peaks, coefs, counts, tile_shape, *, sigma_nm=None, iterations=3):
+def _refine_tiled(image, mask, pixel, peaks, counts, bad, tile_shape, *, sigma_nm=None, iterations=3):
     """Lock-in refinement of peaks found on tiles, over the whole full-resolution frame, lazily.
 
-    The image (plane removed, invalid pixels NaN) goes through the chunked lock-in
-    (``domains._lockin.lockin`` on a dask array) with a decimated output, computed for a
-    bounded number of samples at a time; the fit is that of :func:`_lockin_refine`. The
-    trusted region keeps 2.5 sigma from the frame edge and from invalid pixels (found on
-    blocks, so a little more).
+    All peaks share one lock-in width (the largest any of them needs, at most 1/12 of a
+    tile), so the frame is read once: the chunked lock-in (``domains._lockin.lockin`` on a
+    dask array, invalid pixels NaN) with a decimated output, computed for a bounded number
+    of samples at a time; the fit is that of :func:`_lockin_refine`. No plane is removed:
+    the lock-in's width keeps q = 0 below 0.1 % leakage (:func:`_auto_sigma_px`). The
+    trusted region keeps 2.5 sigma from the frame edge and from invalid pixels (mapped on
+    blocks of ``_BAD_BLOCK`` pixels, so a little more).
     """
     import dask.array as da
 
     ny, nx = image.shape
     dy, dx = pixel
-    lazy = image if _is_dask(image) else da.from_array(image, chunks=(min(ny, 4096), min(nx, 4096)))
-    lazy = lazy.astype(np.float32)
-    invalid = ~da.isfinite(lazy)
-    if mask is not None:
-        invalid = invalid | _as_dask_mask(mask, lazy.chunks)
-    c, gx, gy = coefs
-    row_plane = da.from_array((c + gy * np.arange(ny) * dy).astype(np.float32), chunks=(lazy.chunks[0],))
-    col_plane = da.from_array((gx * np.arange(nx) * dx).astype(np.float32), chunks=(lazy.chunks[1],))
-    level = da.where(invalid, np.float32(np.nan), lazy - row_plane[:, None] - col_plane[None, :])
-    spread = _spread_nm2(counts[0], counts[1], pixel)
-    sigmas, todo = _plan_refinement(peaks, pixel, tile_shape, sigma_nm, None, True, ladder=2.0)
-    bin_q = 2 * np.pi / np.array([tile_shape[1] * dx, tile_shape[0] * dy])
+    sigmas, todo = _plan_refinement(peaks, pixel, tile_shape, sigma_nm, None, True)
     out = list(peaks)
     if not todo.any():
         return out
-    steps = {}
-    for s in np.unique(sigmas[todo]):
-        step = max(1, int(1.5 * s / max(pixel)))
-        cells = -(-ny // step) * -(-nx // step)
-        if cells > _LAZY_SAMPLES:
-            step = int(math.ceil(step * math.sqrt(cells / _LAZY_SAMPLES)))
-        steps[s] = step
-    base = min(steps.values())
-    bad = _coarse_invalid(image, mask, base)
-    for s in np.unique(sigmas[todo]):
-        idx = np.nonzero((sigmas == s) & todo)[0]
-        step = steps[s]
-        trusted = _coarse_trusted((ny, nx), pixel, step, s, None)
-        if bad is not None:
-            reach = int(math.ceil(2.5 * s / (base * min(dy, dx)))) + 1
-            yy, xx = np.mgrid[-reach:reach + 1, -reach:reach + 1]
-            near = ndimage.binary_dilation(bad, structure=(yy**2 + xx**2 <= (reach + 0.5) ** 2))
-            trusted &= ~near[(np.arange(trusted.shape[0]) * step) // base][:, (np.arange(trusted.shape[1]) * step) // base]
-        if trusted.sum() < 16:
-            continue
-        group = max(1, _LAZY_SAMPLES // trusted.size)
-        for start in range(0, len(idx), group):
-            sel = idx[start:start + group]
-            q0 = np.array([peaks[m].q for m in sel])
-            a = np.asarray(lockin(level, q0, sigma_nm=float(s), pixel_size_nm=pixel, step=step).compute())
-            noise_var = np.array([_noise_var(peaks[m], tile_shape) for m in sel])
-            q, err, amp, cov, _ = _fit_field(a, trusted, q0, step, pixel, float(s), iterations, noise_var, spread)
-            for m, qm, em, am, cm in zip(sel, q, err, amp, cov):
-                new = _accepted(peaks[m], qm, em, am, cm, bin_q, True)
-                if new is not None:
-                    out[m] = new
+    s = float(sigmas[todo].max())
+    lazy = image if _is_dask(image) else da.from_array(image, chunks=(min(ny, 4096), min(nx, 4096)))
+    lazy = lazy.astype(np.float32)
+    if mask is not None:
+        lazy = da.where(_as_dask_mask(mask, lazy.chunks), np.float32(np.nan), lazy)
+    step = max(1, int(1.5 * s / max(pixel)))
+    cells = -(-ny // step) * -(-nx // step)
+    if cells > _LAZY_SAMPLES:
+        step = int(math.ceil(step * math.sqrt(cells / _LAZY_SAMPLES)))
+    trusted = _coarse_trusted((ny, nx), pixel, step, s, None)
+    if bad is not None:
+        reach = int(math.ceil(2.5 * s / (_BAD_BLOCK * min(dy, dx)))) + 1
+        yy, xx = np.mgrid[-reach:reach + 1, -reach:reach + 1]
+        near = ndimage.binary_dilation(bad, structure=yy**2 + xx**2 <= (reach + 0.5) ** 2)
+        r_idx = (np.arange(trusted.shape[0]) * step) // _BAD_BLOCK
+        c_idx = (np.arange(trusted.shape[1]) * step) // _BAD_BLOCK
+        trusted &= ~near[r_idx][:, c_idx]
+    if trusted.sum() < 16:
+        return out
+    spread = _spread_nm2(counts[0], counts[1], pixel)
+    bin_q = 2 * np.pi / np.array([tile_shape[1] * dx, tile_shape[0] * dy])
+    idx = np.nonzero(todo)[0]
+    group = max(1, _LAZY_SAMPLES // trusted.size)
+    for start in range(0, len(idx), group):
+        sel = idx[start:start + group]
+        q0 = np.array([peaks[m].q for m in sel])
+        a = np.asarray(lockin(lazy, q0, sigma_nm=s, pixel_size_nm=pixel, step=step).compute())
+        noise_var = np.array([_noise_var(peaks[m], tile_shape) for m in sel])
+        q, err, amp, cov, _ = _fit_field(a, trusted, q0, step, pixel, s, iterations, noise_var, spread)
+        for m, qm, em, am, cm in zip(sel, q, err, amp, cov):
+            new = _accepted(peaks[m], qm, em, am, cm, bin_q, True)
+            if new is not None:
+                out[m] = new
     return out
 
 
@@ -2712,7 +2679,7 @@ def _lattice_from_dict(spec):
 
 
 def analyze_spectrum(image, *, pixel_size_nm, mask=None, lattice=None, q=None, superlattice=None,
-                     max_peaks=40, snr=None, max_refine=8, max_denominator=6, kind=None):
+                     max_peaks=40, snr=None, max_refine=8, max_denominator=6, kind=None, tile_px=None):
     """Peaks, lattice, superlattice and moire candidates of one image, with manual overrides.
 
     Steps: :func:`find_peaks` (or the given ``q``), :func:`index_lattice` (or
@@ -2747,6 +2714,9 @@ def analyze_spectrum(image, *, pixel_size_nm, mask=None, lattice=None, q=None, s
         Largest denominator of a commensurate fraction.
     kind : {"hexagonal", "square", "oblique"}, optional
         Restrict the automatic lattice search.
+    tile_px : int, optional
+        Search a large image on tiles (see :func:`find_peaks`); every peak is
+        then refined on the whole frame and ``max_refine`` does not apply.
 
     Returns
     -------
@@ -2769,16 +2739,28 @@ def analyze_spectrum(image, *, pixel_size_nm, mask=None, lattice=None, q=None, s
     >>> result.superlattice.order, round(result.lattice.a_nm, 3)
     ('3x3', 0.35)
     """
-    image, pixel, valid = _unpack(image, pixel_size_nm, mask, "analyze_spectrum")
+    image, pixel, mask = _open(image, pixel_size_nm, mask, "analyze_spectrum")
     if superlattice is not None and not isinstance(superlattice, str):
         raise InputError(f"superlattice must be a string such as '3x3', got {superlattice!r}")
     given_lattice = None if lattice is None else _lattice_from_dict(lattice)
-    level = _subtract_plane(image, valid, pixel)
-    power = _spectrum(level, "hann", np.float32)
+    tile = _tile_size(image, tile_px)
+    full_shape = tuple(image.shape)
+    if tile is not None:
+        # A large image: peaks from the tiles, every one already refined on the whole frame.
+        power, shape, dof, _, _ = _welch_spectrum(image, mask, pixel, tile, "hann", np.float32)
+        if q is None:
+            peaks = find_peaks(image, pixel_size_nm=pixel, mask=mask, max_peaks=max_peaks, snr=snr, tile_px=tile)
+    else:
+        image, pixel, valid = _unpack(image, pixel, mask, "analyze_spectrum")
+        level = _subtract_plane(image, valid, pixel)
+        power = _spectrum(level, "hann", np.float32)
+        shape, dof = image.shape, 1
+        if q is None:
+            peaks = _detect(power, shape, pixel, int(max_peaks), None, snr, 0.01, True)
     if q is not None:
         q_arr = _check_q_override(q, pixel)
-        floor, _ = _two_pass_floor(power)
-        ny, nx = image.shape
+        floor, _ = _two_pass_floor(power, dof)
+        ny, nx = shape
         dy, dx = pixel
         peaks = []
         for qj in q_arr:
@@ -2788,10 +2770,8 @@ def analyze_spectrum(image, *, pixel_size_nm, mask=None, lattice=None, q=None, s
             peaks.append(Peak(q=_canonical(qj), q_err=0.0, power=float(power[r, c]),
                               snr=float(power[r, c] / floor[r, c]), amplitude=2 * math.sqrt(power[r, c]),
                               refined="manual"))
-    else:
-        peaks = _detect(power, image.shape, pixel, int(max_peaks), None, snr, 0.01, True)
     lat = given_lattice if given_lattice is not None else index_lattice(peaks, kind=kind)
-    if q is None and peaks and max_refine > 0:
+    if q is None and peaks and max_refine > 0 and tile is None:
         # Refine the peaks that matter most: the Bragg peaks, then the strongest
         # peaks that are not integer harmonics of the lattice.
         first = index_peaks(peaks, lat, max_denominator=max_denominator)
@@ -2816,7 +2796,7 @@ def analyze_spectrum(image, *, pixel_size_nm, mask=None, lattice=None, q=None, s
         sup = _summarize_superlattice(indexed, lat)
     moire = sorted([p for p in indexed if p.role == "moire"], key=lambda p: p.q_abs_rad_per_nm)
     moire_q = np.array([p.q for p in moire]).reshape(-1, 2)
-    return SpectrumResult(indexed, lat, sup, moire_q, pixel, tuple(image.shape))
+    return SpectrumResult(indexed, lat, sup, moire_q, pixel, full_shape)
 
 
 def format_peak_table(result):
