@@ -680,12 +680,14 @@ class _FloorCells:
         self.ring_of_label = np.searchsorted(offset, np.arange(n + 1), side="right") - 1
         cell = np.where(self.in_band, 0, self.labels).ravel()
         self.counts = np.bincount(cell, minlength=n + 1)
-        order = np.argsort(cell, kind="stable")[self.counts[0]:]  # band bins (label 0) sort first
-        lab = cell[order]
+        # Band bins (label 0) sort first; 16-bit labels sort by radix.
+        order = np.argsort(cell.astype(np.uint16) if n < 2**16 else cell, kind="stable")[self.counts[0]:]
+        lab = cell[order].astype(np.int64)
         starts = np.concatenate([[0], np.cumsum(self.counts[1:])[:-1]])
         width = max(int(self.counts[1:].max()), 1)
-        self.index = np.full((n, width), ny * nx, dtype=np.int32 if ny * nx < 2**31 - 1 else np.int64)
-        self.index[lab - 1, np.arange(order.size) - starts[lab - 1]] = order
+        index = np.full(n * width, ny * nx, dtype=np.int32 if ny * nx < 2**31 - 1 else np.int64)
+        index[(lab - 1) * width + (np.arange(order.size) - starts[lab - 1])] = order  # in increasing order
+        self.index = index.reshape(n, width)
         # Peak search region without options: beyond the 3-bin disc, off the unpaired first row/column.
         search = r >= 3.0
         search[0, :] = search[-1, :] = search[:, 0] = search[:, -1] = False
@@ -822,29 +824,19 @@ def _floor_map(power, cells, med, counts, dof=1):
     return floor, samples
 
 
-def _noise_floor(power, exclude=None, dof=1):
-    """Local mean noise power at every bin, float32, and the number of bins it was estimated from.
+def _two_pass_floor(power, dof=1):
+    """Local mean noise power at every bin (float32) and the number of bins it was estimated from.
 
     Away from the axes: the median over a polar cell (thin rings near the origin,
     where the background falls steeply; sectors of ~192 bins further out). Along
     the qx = 0 and qy = 0 bands: a running median along the band itself, so that
     the streak of scan-line offsets is its own background. The power of pure
     noise in one bin is exponentially distributed, whose mean is median / ln 2.
-    Bins in ``exclude`` (a boolean map, peaks found in a first pass) are left out
-    of the cell medians, so that peaks crowding a thin ring do not raise its floor.
-    All cell medians come from one row-wise sort of the cells (geometry cached
-    per shape), so the cost is a few passes over the spectrum.
+    The second pass leaves out the bins around clear first-pass excesses, so
+    that peaks crowding a thin ring do not raise its floor. All cell medians
+    come from one row-wise sort of the cells (geometry cached per shape), and
+    the second pass re-sorts only the cells that lost bins.
     """
-    cells = _floor_cells(power.shape)
-    med, ext = _cell_medians(power, cells)
-    counts = cells.counts
-    if exclude is not None:
-        med, counts = _excluded_medians(power, ext, cells, med, np.flatnonzero(exclude))
-    return _floor_map(power, cells, med, counts, dof)
-
-
-def _two_pass_floor(power, dof=1):
-    """Noise floor, re-estimated without the bins around clear first-pass excesses; and its sample counts."""
     cells = _floor_cells(power.shape)
     med, ext = _cell_medians(power, cells)
     floor, _ = _floor_map(power, cells, med, cells.counts, dof)
@@ -868,8 +860,8 @@ def _two_pass_floor(power, dof=1):
     return _floor_map(power, cells, med2, counts2, dof)
 
 
-def _threshold(samples, n_bins, false_alarm, dof=1):
-    """Per-bin detection threshold for a power / floor ratio, given the floor's sample count.
+def _threshold_values(unique, n_bins, false_alarm, dof=1):
+    """Detection threshold for a power / floor ratio, per distinct sample count m of the floor.
 
     Under pure noise the bin power X is exponential (mean 1) and the floor is the
     median M of m such powers divided by ln 2. Then P(X > t M / ln 2) =
@@ -877,17 +869,9 @@ def _threshold(samples, n_bins, false_alarm, dof=1):
     statistics M = sum_{i<=k} E_i / (m - i + 1), k = ceil(m / 2), so
     P = prod_{i<=k} (m - i + 1) / (m - i + 1 + s) (derived). t solves
     n_bins * P = false_alarm; for large m it tends to ln(n_bins / false_alarm).
-    Computed once per distinct sample count and looked up.
+    Beyond ~1000 samples the floor's scatter no longer matters (callers clip m).
+    For an average of ``dof`` periodograms see :func:`_threshold_values_averaged`.
     """
-    # Beyond ~1000 samples the floor's scatter no longer matters (t -> ln(n_bins / false_alarm)).
-    clipped = np.clip(np.asarray(samples), 1, 1001)
-    present = np.flatnonzero(np.bincount(clipped.ravel(), minlength=1002))
-    table = np.zeros(1002)
-    table[present] = _threshold_values(present, n_bins, false_alarm, dof)
-    return table[clipped]
-
-
-def _threshold_values(unique, n_bins, false_alarm, dof=1):
     if dof != 1:
         return _threshold_values_averaged(unique, n_bins, false_alarm, dof)
     target = math.log(false_alarm / n_bins)
@@ -922,7 +906,7 @@ def _threshold_values_averaged(unique, n_bins, false_alarm, dof):
     median mu, which scatters by 1 / (2 f(mu) mu sqrt(m)) relative (f the Gamma density;
     the large-sample variance of a median). The chance that noise passes t times the floor
     is averaged over that scatter (Gauss–Hermite, 24 nodes) and t solves
-    n_bins * P = false_alarm (derived; dof = 1 is :func:`_threshold`'s exact formula).
+    n_bins * P = false_alarm (derived; dof = 1 is the exact formula of :func:`_threshold_values`).
     """
     k = float(dof)
     mu = float(special.gammaincinv(k, 0.5) / k)
