@@ -14,15 +14,18 @@ from dataclasses import dataclass, replace
 from fractions import Fraction
 
 import numpy as np
-from scipy import ndimage
+from scipy import fft as sfft
+from scipy import ndimage, special
 
 from ._checks import positive, within_nyquist
 from ._errors import InputError
 from ._lattice import bragg_from_reciprocal, real_basis, reciprocal_basis
-from ._lockin import lockin, phase_gradient, trusted_mask
+from ._lockin import lockin, phase_gradient
 from ._scan import Scan, _is_dask, pixel_size_pair
 
 __all__ = [
+    "WELCH_TILE_PX",
+    "WHOLE_FRAME_MAX_PIXELS",
     "Lattice",
     "Peak",
     "SpectrumResult",
@@ -46,9 +49,6 @@ _AXIS_BAND = 1
 #: scatters by about 1/sqrt(m); a floor off by a fraction e multiplies the false-alarm
 #: rate at threshold t by about exp(t^2 e^2 / 2), so cells must be large (derived).
 _CELL_BINS = 192
-#: Interpolated peaks get at least this uncertainty (bins): the three-bin Hann formula is
-#: exact for one complex tone only; the mirror peak and neighbours bias it at this level.
-_INTERP_FLOOR_BINS = 0.02
 
 
 # --------------------------------------------------------------------------------------
@@ -65,7 +65,22 @@ class Peak:
     q : ndarray, shape (2,)
         Wavevector (qx, qy) in rad/nm.
     q_err : float
-        One-sigma uncertainty of each component of ``q``, rad/nm.
+        One-sigma statistical uncertainty of each component of ``q``, rad/nm
+        (the root mean square of the two when they differ; ``q_cov`` has both).
+        It is the scatter that the estimate would show over repeated images of
+        the same sample with new noise, from the noise measured in this image:
+        for an interpolated peak, the noise propagated through the three-bin
+        formula (Cramér–Rao-type, from the local noise floor) plus the bias
+        that the window leakage of every other detected peak may cause, plus
+        the peak's misfit to the single-tone shape where that is significant
+        (a peak broadened by domains or drift); for a lock-in refined peak, the
+        scatter of the lock-in phase about a plane over the independent
+        sigma-patches of the trusted region (which includes a spatially varying
+        wavevector, e.g. drift), never below the Cramér–Rao bound over that
+        region. It does not include the pixel-size calibration or the
+        difference between the image's mean lattice and the sample's (drift).
+    q_cov : ndarray, shape (2, 2), or None
+        Covariance of (qx, qy), rad^2/nm^2, when known (detected or refined peaks).
     power : float
         Peak power in image units squared: (A0/2)^2 for a cosine of amplitude A0
         centred on a frequency bin (Hann-windowed spectrum).
@@ -92,10 +107,31 @@ class Peak:
     hk: tuple[float, float] | None = None
     fraction: tuple[Fraction, Fraction] | None = None
     refined: str = "interpolated"
+    q_cov: np.ndarray | None = None
 
     def __post_init__(self):
         self.q = np.asarray(self.q, dtype=float).reshape(2)
         self.q_err = float(self.q_err)
+        if self.q_cov is not None:
+            self.q_cov = np.asarray(self.q_cov, dtype=float).reshape(2, 2)
+
+    def _cov(self):
+        if self.q_cov is not None and np.all(np.isfinite(self.q_cov)):
+            return self.q_cov
+        return np.eye(2) * self.q_err**2
+
+    @property
+    def q_abs_err_rad_per_nm(self) -> float:
+        """One-sigma uncertainty of |q| in rad/nm (the radial part of ``q_cov``)."""
+        u = self.q / max(np.hypot(*self.q), 1e-300)
+        return float(math.sqrt(max(u @ self._cov() @ u, 0.0)))
+
+    @property
+    def angle_err_deg(self) -> float:
+        """One-sigma uncertainty of the direction of q in degrees (the tangential part of ``q_cov`` over |q|)."""
+        qa = max(float(np.hypot(*self.q)), 1e-300)
+        t = np.array([-self.q[1], self.q[0]]) / qa
+        return float(math.degrees(math.sqrt(max(t @ self._cov() @ t, 0.0)) / qa))
 
     @property
     def q_abs_rad_per_nm(self) -> float:
@@ -251,7 +287,9 @@ class Superlattice:
         One wavevector per independent direction, rad/nm. For an n x n order,
         G_j / n for the lattice's Bragg vectors G_j.
     q_err : ndarray, shape (k,)
-        One-sigma uncertainty per component, rad/nm (0 for ideal commensurate q).
+        One-sigma uncertainty per component, rad/nm. For commensurate order the q
+        are fractions of the lattice's reciprocal basis and inherit its errors
+        (scale and rotation; 0 for a lattice given by the user).
     coefficients : list of tuple
         (h, k) of each q in the reciprocal basis; Fractions when commensurate.
     supercell : ndarray of int, shape (2, 2), or None
@@ -313,7 +351,7 @@ class SpectrumResult:
     shape: tuple
 
     def rows(self) -> list[dict]:
-        """One dict per peak: qx, qy, |q|, period_nm, angle_deg, h, k, role, q_err and more."""
+        """One dict per peak: qx, qy, |q|, period_nm, angle_deg, h, k, role, q_err (and of |q|, angle) and more."""
         out = []
         for p in self.peaks:
             h, k = p.hk if p.hk is not None else (None, None)
@@ -328,6 +366,8 @@ class SpectrumResult:
                 "hk_fraction": None if p.fraction is None else f"{p.fraction[0]}, {p.fraction[1]}",
                 "role": p.role,
                 "q_err_rad_per_nm": p.q_err,
+                "q_abs_err_rad_per_nm": p.q_abs_err_rad_per_nm,
+                "angle_err_deg": p.angle_err_deg,
                 "power": p.power,
                 "snr": p.snr,
                 "amplitude": p.amplitude,
@@ -371,8 +411,8 @@ def _json_clean(obj):
     return obj
 
 
-def _unpack(image, pixel_size_nm, mask, caller):
-    """Image as a float ndarray, the (dy, dx) pixel size and the validity map."""
+def _open(image, pixel_size_nm, mask, caller):
+    """The image (ndarray or dask array, not read), the (dy, dx) pixel size and the mask, checked."""
     if isinstance(image, Scan):
         if image.is_grid:
             raise InputError(f"{caller} needs a 2-D image, got a 3-D grid; pass one energy slice")
@@ -381,10 +421,8 @@ def _unpack(image, pixel_size_nm, mask, caller):
         if mask is None:
             mask = image.mask
         image = image.data
-    if _is_dask(image):
-        # The FFT needs the whole frame at once (one chunk per FFT axis).
-        image = image.compute()
-    image = np.asarray(image)
+    if not _is_dask(image):
+        image = np.asarray(image)
     if image.ndim != 2:
         raise InputError(f"{caller} needs a 2-D image (row, col), got shape {tuple(image.shape)}")
     if image.size == 0 or min(image.shape) < 8:
@@ -392,6 +430,19 @@ def _unpack(image, pixel_size_nm, mask, caller):
     if image.dtype.kind not in "biuf":
         raise InputError(f"{caller} needs a real-valued image, got dtype {image.dtype}")
     pixel = pixel_size_pair(pixel_size_nm)
+    if mask is not None and tuple(mask.shape if _is_dask(mask) else np.shape(mask)) != tuple(image.shape):
+        raise InputError(f"mask shape {tuple(np.shape(mask))} differs from the image shape {tuple(image.shape)}")
+    return image, pixel, mask
+
+
+def _unpack(image, pixel_size_nm, mask, caller):
+    """Image as a float ndarray, the (dy, dx) pixel size and the validity map."""
+    image, pixel, mask = _open(image, pixel_size_nm, mask, caller)
+    if _is_dask(image):
+        # The whole-frame FFT needs the whole frame at once (one chunk per FFT axis).
+        image = image.compute()
+    if _is_dask(mask):
+        mask = mask.compute()
     valid = np.isfinite(image)
     if mask is not None:
         mask = np.asarray(mask)
@@ -461,24 +512,59 @@ def _q_axes(shape, pixel):
     return qx, qy
 
 
-def _spectrum(level, window):
-    ny, nx = level.shape
-    if window == "hann":
-        wy, wx = _hann(ny), _hann(nx)
-    else:
-        wy, wx = np.ones(ny), np.ones(nx)
-    f = np.fft.fftshift(np.fft.fft2(level * wy[:, None] * wx[None, :]))
-    # (A0/2)^2 for a cosine of amplitude A0 centred on a bin.
+def _half_power(level, wy, wx):
+    """|rfft2(level w)|^2, float64, normalised so that a cosine of amplitude A0 centred on a bin gives (A0/2)^2."""
+    f = sfft.rfft2(level * wy[:, None] * wx[None, :], workers=-1)
     return (f.real**2 + f.imag**2) / (wy.sum() * wx.sum()) ** 2
 
 
-def power_spectrum(image, *, pixel_size_nm, mask=None, window="hann"):
+def _full_plane(half, shape, dtype):
+    """The whole (row, col) power plane, zero wavevector at the centre (``fftshift`` layout), from its real-FFT half.
+
+    The other half follows from the Hermitian symmetry of a real image's transform,
+    P(-k) = P(k), so it costs no second transform.
+    """
+    ny, nx = shape
+    half = half.astype(dtype, copy=False)
+    ki = np.arange(ny) - ny // 2
+    m = nx // 2
+    out = np.empty((ny, nx), dtype)
+    out[:, m:] = np.take(half, ki % ny, axis=0)[:, : nx - m]  # qx >= 0
+    out[:, :m] = np.take(half, (-ki) % ny, axis=0)[:, m:0:-1]  # qx < 0: P(ky, kx) = P(-ky, -kx)
+    return out
+
+
+def _windows(shape, window):
+    ny, nx = shape
+    if window == "hann":
+        return _hann(ny), _hann(nx)
+    return np.ones(ny), np.ones(nx)
+
+
+def _spectrum(level, window, dtype=np.float64):
+    """Power of the windowed image with the zero wavevector at the centre (``fftshift`` layout).
+
+    One real FFT in float64 (scipy.fft, all cores) and the Hermitian mirror
+    (:func:`_full_plane`). Stored as ``dtype`` (float32 is plenty for peak
+    finding, where only ratios of powers matter).
+    """
+    wy, wx = _windows(level.shape, window)
+    return _full_plane(_half_power(level, wy, wx), level.shape, dtype)
+
+
+def power_spectrum(image, *, pixel_size_nm, mask=None, window="hann", tile_px=None):
     """Plane-levelled, Hann-windowed power spectrum with physical wavevector axes.
 
     A least-squares plane over the valid pixels is subtracted, masked and NaN
     pixels are set to the mean, a periodic Hann window is applied along both
     axes (docs/methods.md §7), and the squared modulus of the FFT is returned with the
     zero wavevector at the centre (``numpy.fft.fftshift`` layout).
+
+    With tiles (``tile_px``, or a dask array of more than ``WHOLE_FRAME_MAX_PIXELS``
+    pixels) it is instead the average of the periodograms of overlapping tiles
+    (50 %), each with its own plane removed and its own window (Welch 1967):
+    computed tile by tile, so the image is never held whole, on the tile's
+    frequency grid (coarser by frame / tile), with the same normalisation.
 
     Parameters
     ----------
@@ -490,10 +576,15 @@ def power_spectrum(image, *, pixel_size_nm, mask=None, window="hann"):
         True where pixels are untrusted.
     window : {"hann", None}
         "hann" (default) or None for no window.
+    tile_px : int, optional
+        Side of the tiles in pixels. Default: the whole frame for an ndarray or
+        a dask array up to ``WHOLE_FRAME_MAX_PIXELS`` pixels, else
+        ``WELCH_TILE_PX``. A tile at least as large as the frame means the
+        whole frame.
 
     Returns
     -------
-    power : ndarray, shape (row, col)
+    power : ndarray, shape (row, col) (of a tile with tiles)
         Normalised so that a cosine of amplitude A0 centred on a frequency bin
         gives a peak of (A0/2)^2 (image units squared).
     qx_rad_per_nm : ndarray, shape (col,)
@@ -512,6 +603,10 @@ def power_spectrum(image, *, pixel_size_nm, mask=None, window="hann"):
     .. [1] F. J. Harris, "On the use of windows for harmonic analysis with the
        discrete Fourier transform", Proc. IEEE 66, 51 (1978).
        doi:10.1109/PROC.1978.10837
+    .. [2] P. D. Welch, "The use of fast Fourier transform for the estimation of
+       power spectra: a method based on time averaging over short, modified
+       periodograms", IEEE Trans. Audio Electroacoust. 15, 70 (1967).
+       doi:10.1109/TAU.1967.1161901
 
     Examples
     --------
@@ -525,7 +620,13 @@ def power_spectrum(image, *, pixel_size_nm, mask=None, window="hann"):
     """
     if window not in ("hann", None):
         raise InputError(f"window must be 'hann' or None, got {window!r}")
-    image, pixel, valid = _unpack(image, pixel_size_nm, mask, "power_spectrum")
+    image, pixel, mask = _open(image, pixel_size_nm, mask, "power_spectrum")
+    tile = _tile_size(image, tile_px)
+    if tile is not None:
+        power, shape, _, _, _ = _welch_spectrum(image, mask, pixel, tile, window, np.float64)
+        qx, qy = _q_axes(shape, pixel)
+        return power, qx, qy
+    image, pixel, valid = _unpack(image, pixel, mask, "power_spectrum")
     power = _spectrum(_subtract_plane(image, valid, pixel), window)
     qx, qy = _q_axes(image.shape, pixel)
     return power, qx, qy
@@ -543,86 +644,167 @@ def _bin_offsets(shape):
     return i, j
 
 
-def _group_median(values, labels, n_labels):
-    """Median of ``values`` per label 1..n_labels (label 0 ignored), by one integer sort."""
-    keep = labels > 0
-    v, lab = values[keep], labels[keep].astype(np.int64)
-    order = np.argsort(v)
-    rank = np.empty(len(v), dtype=np.int64)
-    rank[order] = np.arange(len(v))
-    # Sorting label * n + rank groups by label with values ascending inside each group.
-    key = np.sort(lab * len(v) + rank)
-    v_sorted = v[order][key % len(v)]
-    counts = np.bincount(lab, minlength=n_labels + 1)
-    starts = np.cumsum(np.concatenate([[0], counts[:-1]]))
-    med = np.zeros(n_labels + 1)
-    has = counts > 0
-    lo = starts[has] + (counts[has] - 1) // 2
-    hi = starts[has] + counts[has] // 2
-    med[has] = 0.5 * (v_sorted[lo] + v_sorted[hi])
-    return med
+class _FloorCells:
+    """The polar cells of the noise floor for one spectrum shape (built once per shape and cached).
 
-
-def _noise_floor(power, exclude=None):
-    """Local mean noise power at every bin.
-
-    Away from the axes: the median over a polar cell (thin rings near the origin,
-    where the background falls steeply; sectors of ~192 bins further out). Along
-    the qx = 0 and qy = 0 bands: a running median along the band itself, so that
-    the streak of scan-line offsets is its own background. The power of pure
-    noise in one bin is exponentially distributed, whose mean is median / ln 2.
-    Bins in ``exclude`` (peaks found in a first pass) are left out of the cell
-    medians, so that peaks crowding a thin ring do not raise its floor.
+    ``labels`` numbers every bin's cell (1 ... n_cells: thin rings near the origin, sectors of
+    about ``_CELL_BINS`` bins further out); ``in_band`` marks the bands along the qx = 0 and
+    qy = 0 axes, which belong to no cell. ``index`` lists the flat bin numbers of each cell,
+    one row per cell, padded with the number of bins (an extra slot that holds +inf), so that
+    all cell medians come from one row-wise sort.
     """
-    ny, nx = power.shape
-    i, j = _bin_offsets(power.shape)
-    r = np.hypot(i, j)
-    theta = np.arctan2(i, j) + np.pi  # [0, 2 pi]
-    edges = [0.0, 1.0]
-    while edges[-1] <= r.max():
-        edges.append(edges[-1] + max(1.0, 0.08 * edges[-1]))
-    edges = np.asarray(edges)
-    ring = np.searchsorted(edges, r, side="right") - 1
-    mids = 0.5 * (edges[:-1] + edges[1:])
-    widths = np.diff(edges)
-    n_sec = np.maximum(1, np.round(2 * np.pi * mids * widths / _CELL_BINS)).astype(int)
-    offset = np.concatenate([[1], 1 + np.cumsum(n_sec)[:-1]])
-    ns = n_sec[ring]
-    sector = np.minimum((theta / (2 * np.pi) * ns).astype(int), ns - 1)
-    labels = offset[ring] + sector
-    in_band = (np.abs(i) <= _AXIS_BAND) | (np.abs(j) <= _AXIS_BAND)
-    n_labels = int(offset[-1] + n_sec[-1])
-    cell_labels = np.where(in_band, 0, labels)
-    counts = np.bincount(cell_labels.ravel(), minlength=n_labels + 1)
-    if exclude is None:
-        med = _group_median(power, cell_labels, n_labels)
-    else:
-        med2 = _group_median(power, np.where(exclude, 0, cell_labels), n_labels)
-        counts2 = np.bincount(np.where(exclude, 0, cell_labels).ravel(), minlength=n_labels + 1)
-        # Where peaks crowd a cell (thin rings near q = 0), widen it radially until 16
-        # bins that are not excluded remain.
-        keep = ~exclude & ~in_band
-        r_keep, p_keep = r[keep], power[keep]
-        for lab in np.nonzero((counts2 < 16) & (counts > 0))[0]:
-            if lab == 0:
-                continue
-            k = int(np.searchsorted(offset, lab, side="right") - 1)
+
+    def __init__(self, shape):
+        ny, nx = shape
+        i, j = _bin_offsets(shape)
+        r = np.hypot(i, j)
+        theta = np.arctan2(i, j) + np.pi  # [0, 2 pi]
+        edges = [0.0, 1.0]
+        r_max = float(r.max())
+        while edges[-1] <= r_max:
+            edges.append(edges[-1] + max(1.0, 0.08 * edges[-1]))
+        edges = np.asarray(edges)
+        ring = np.searchsorted(edges, r, side="right") - 1
+        mids = 0.5 * (edges[:-1] + edges[1:])
+        widths = np.diff(edges)
+        n_sec = np.maximum(1, np.round(2 * np.pi * mids * widths / _CELL_BINS)).astype(int)
+        offset = np.concatenate([[1], 1 + np.cumsum(n_sec)[:-1]])
+        ns = n_sec[ring]
+        sector = np.minimum((theta / (2 * np.pi) * ns).astype(int), ns - 1)
+        del theta, ns
+        self.labels = (offset[ring] + sector).astype(np.int32)
+        del ring, sector
+        self.in_band = np.broadcast_to((np.abs(i) <= _AXIS_BAND) | (np.abs(j) <= _AXIS_BAND), shape).copy()
+        self.n_labels = n = int(offset[-1] + n_sec[-1])
+        self.edges, self.offset, self.n_sec = edges, offset, n_sec
+        self.ring_of_label = np.searchsorted(offset, np.arange(n + 1), side="right") - 1
+        cell = np.where(self.in_band, 0, self.labels).ravel()
+        self.counts = np.bincount(cell, minlength=n + 1)
+        # Band bins (label 0) sort first; 16-bit labels sort by radix.
+        order = np.argsort(cell.astype(np.uint16) if n < 2**16 else cell, kind="stable")[self.counts[0]:]
+        lab = cell[order].astype(np.int64)
+        starts = np.concatenate([[0], np.cumsum(self.counts[1:])[:-1]])
+        width = max(int(self.counts[1:].max()), 1)
+        index = np.full(n * width, ny * nx, dtype=np.int32 if ny * nx < 2**31 - 1 else np.int64)
+        index[(lab - 1) * width + (np.arange(order.size) - starts[lab - 1])] = order  # in increasing order
+        self.index = index.reshape(n, width)
+        # Peak search region without options: beyond the 3-bin disc, off the unpaired first row/column.
+        search = r >= 3.0
+        search[0, :] = search[-1, :] = search[:, 0] = search[:, -1] = False
+        self.n_search = int(search.sum())
+
+
+_CELLS_CACHE: dict = {}
+
+
+def _floor_cells(shape):
+    shape = tuple(int(s) for s in shape)
+    cells = _CELLS_CACHE.get(shape)
+    if cells is None:
+        cells = _FloorCells(shape)
+        while len(_CELLS_CACHE) >= 2:  # a couple of shapes at a time: bounded memory
+            _CELLS_CACHE.pop(next(iter(_CELLS_CACHE)))
+        _CELLS_CACHE[shape] = cells
+    return cells
+
+
+def _row_medians(rows, counts):
+    """Median of the first ``counts[m]`` entries of each sorted row (0 for an empty row)."""
+    counts = np.asarray(counts)
+    idx = np.arange(len(rows))
+    lo = np.maximum((counts - 1) // 2, 0)
+    hi = np.maximum(counts // 2, 0)
+    med = 0.5 * (rows[idx, lo].astype(float) + rows[idx, hi].astype(float))
+    return np.where(counts > 0, med, 0.0)
+
+
+def _cell_medians(power, cells):
+    """Median power of every cell (index = label, 0 unused) and the flat power with its +inf slot."""
+    ext = np.empty(power.size + 1, np.float32)
+    ext[:-1] = power.ravel()
+    ext[-1] = np.inf
+    rows = ext[cells.index]
+    rows.sort(axis=1)
+    med = np.zeros(cells.n_labels + 1)
+    med[1:] = _row_medians(rows, cells.counts[1:])
+    return med, ext
+
+
+def _excluded_medians(power, ext, cells, med, exclude):
+    """Cell medians and sample counts without the bins in ``exclude`` (flat indices).
+
+    Only the cells that hold an excluded bin change. Where peaks crowd a cell (thin rings
+    near q = 0) so that fewer than 16 bins remain, it is widened radially until 16 bins
+    that are not excluded remain; failing that, it keeps the median of all its bins.
+    """
+    counts = cells.counts
+    band = cells.in_band.ravel()
+    ex = exclude[~band[exclude]]
+    n_ex = np.bincount(cells.labels.ravel()[ex], minlength=cells.n_labels + 1)
+    n_ex[0] = 0
+    counts2 = counts - n_ex
+    med2 = med.copy()
+    touched = np.flatnonzero(n_ex)
+    if touched.size:
+        marked = np.zeros(ext.size, bool)
+        marked[ex] = True
+        idx = cells.index[touched - 1]
+        rows = ext[idx]
+        rows[marked[idx]] = np.inf
+        rows.sort(axis=1)
+        med2[touched] = _row_medians(rows, counts2[touched])
+    crowded = np.flatnonzero((counts2 < 16) & (counts > 0))
+    crowded = crowded[crowded > 0]
+    if crowded.size:
+        ny, nx = power.shape
+        edges = cells.edges
+        flat = power.ravel()
+        marked = np.zeros(flat.size, bool)
+        marked[ex] = True
+        rings = cells.ring_of_label[crowded]
+        # The result depends on the ring only (its radial range, widened): once per ring. That
+        # covers the corner fragments of the outer rings, cut by the frame into cells of few bins.
+        for k in np.unique(rings):
             lo, hi = edges[k], edges[k + 1]
             for grow in (1, 2, 4, 8, 16, 32):
-                sel = (r_keep >= lo - grow) & (r_keep < hi + grow)
-                if sel.sum() >= 16:
-                    med2[lab] = np.median(p_keep[sel])
-                    counts2[lab] = int(sel.sum())
+                a, b = lo - grow, hi + grow
+                first = max(int(np.searchsorted(edges, a, side="right")) - 1, 0)
+                last = min(int(np.searchsorted(edges, b, side="left")) - 1, len(cells.n_sec) - 1)
+                labs = np.arange(cells.offset[first], cells.offset[last] + cells.n_sec[last])
+                idx = cells.index[labs - 1].ravel()  # non-band bins of the rings that meet [a, b)
+                idx = idx[idx < flat.size]
+                idx = idx[~marked[idx]]
+                rr, cc = np.divmod(idx, nx)
+                r = np.hypot(rr - ny // 2, cc - nx // 2)
+                sel = idx[(r >= a) & (r < b)]
+                if sel.size >= 16:
+                    med2[crowded[rings == k]] = float(np.median(flat[sel].astype(float)))
+                    counts2[crowded[rings == k]] = sel.size
                     break
-        use2 = counts2 >= 16
-        if not np.all(use2 | (counts == 0)):
-            med = np.where(use2, med2, _group_median(power, cell_labels, n_labels))
-        else:
-            med = med2
-        counts = np.where(use2, counts2, counts)
-    floor = med[labels]
-    samples = counts[labels]
-    # Bands: running median along each band line (the spectrum is periodic in q: wrap).
+    use2 = counts2 >= 16
+    return np.where(use2, med2, med), np.where(use2, counts2, counts)
+
+
+def _median_to_mean(dof):
+    """Median over mean of the noise power of a bin: ln 2 for one periodogram (exponential),
+    that of a Gamma(dof) variate for an average of dof independent ones (Welch)."""
+    if dof == 1:
+        return math.log(2)
+    return float(special.gammaincinv(dof, 0.5) / dof)
+
+
+def _floor_map(power, cells, med, counts, dof=1):
+    """The floor (mean noise power, float32) and its sample count at every bin from the cell medians.
+
+    Along the qx = 0 and qy = 0 bands: a running median along each band line (the
+    spectrum is periodic in q: wrap), so that the streak of scan-line offsets is its own
+    background. The power of pure noise in one bin is exponentially distributed, whose
+    mean is median / ln 2 (median / :func:`_median_to_mean` for ``dof`` averaged
+    periodograms).
+    """
+    ny, nx = power.shape
+    floor = med.astype(np.float32)[cells.labels]
+    samples = counts.astype(np.int32)[cells.labels]
     half_r = max(16, ny // 16)
     half_c = max(16, nx // 16)
     cc, rc = nx // 2, ny // 2
@@ -636,23 +818,50 @@ def _noise_floor(power, exclude=None):
         if 0 <= row < ny:
             floor[row, :] = ndimage.median_filter(power[row, :], size=2 * half_c + 1, mode="wrap")
             samples[row, :] = 2 * half_c + 1
-    floor = floor / math.log(2)
-    tiny = 1e-14 * float(power.max()) + 1e-300
-    return np.maximum(floor, tiny), samples
+    floor *= np.float32(1 / _median_to_mean(dof))
+    tiny = max(1e-14 * float(power.max()), float(np.finfo(np.float32).tiny))
+    np.maximum(floor, np.float32(tiny), out=floor)
+    return floor, samples
 
 
-def _two_pass_floor(power):
-    """Noise floor, re-estimated without the bins around clear first-pass excesses; and its sample counts."""
-    floor, _ = _noise_floor(power)
+def _two_pass_floor(power, dof=1):
+    """Local mean noise power at every bin (float32) and the number of bins it was estimated from.
+
+    Away from the axes: the median over a polar cell (thin rings near the origin,
+    where the background falls steeply; sectors of ~192 bins further out). Along
+    the qx = 0 and qy = 0 bands: a running median along the band itself, so that
+    the streak of scan-line offsets is its own background. The power of pure
+    noise in one bin is exponentially distributed, whose mean is median / ln 2.
+    The second pass leaves out the bins around clear first-pass excesses, so
+    that peaks crowding a thin ring do not raise its floor. All cell medians
+    come from one row-wise sort of the cells (geometry cached per shape), and
+    the second pass re-sorts only the cells that lost bins.
+    """
+    cells = _floor_cells(power.shape)
+    med, ext = _cell_medians(power, cells)
+    floor, _ = _floor_map(power, cells, med, cells.counts, dof)
     # A bin 10 times above the mean noise has probability exp(-10) = 5e-5 under pure
     # noise; masking those (and the window's main lobe around them) barely thins the
-    # noise sample but keeps crowded peaks out of thin rings.
-    strong = ndimage.binary_dilation(power / floor > 10.0, structure=np.ones((3, 3), bool))
-    return _noise_floor(power, exclude=strong)
+    # noise sample but keeps crowded peaks out of thin rings. For an average of dof
+    # periodograms, the level with the same probability under Gamma(dof) noise.
+    level = 10.0 if dof == 1 else float(special.gammainccinv(dof, math.exp(-10.0)) / dof)
+    strong = np.flatnonzero(power > level * floor)
+    del floor
+    ny, nx = power.shape
+    rows, cols = np.divmod(strong, nx)
+    parts = [strong]
+    for di in (-1, 0, 1):  # the 3 x 3 neighbourhood, inside the frame (a binary dilation)
+        for dj in (-1, 0, 1):
+            rr, cc = rows + di, cols + dj
+            ok = (rr >= 0) & (rr < ny) & (cc >= 0) & (cc < nx)
+            parts.append(rr[ok] * nx + cc[ok])
+    exclude = np.unique(np.concatenate(parts))
+    med2, counts2 = _excluded_medians(power, ext, cells, med, exclude)
+    return _floor_map(power, cells, med2, counts2, dof)
 
 
-def _threshold(samples, n_bins, false_alarm):
-    """Per-bin detection threshold for a power / floor ratio, given the floor's sample count.
+def _threshold_values(unique, n_bins, false_alarm, dof=1):
+    """Detection threshold for a power / floor ratio, per distinct sample count m of the floor.
 
     Under pure noise the bin power X is exponential (mean 1) and the floor is the
     median M of m such powers divided by ln 2. Then P(X > t M / ln 2) =
@@ -660,10 +869,12 @@ def _threshold(samples, n_bins, false_alarm):
     statistics M = sum_{i<=k} E_i / (m - i + 1), k = ceil(m / 2), so
     P = prod_{i<=k} (m - i + 1) / (m - i + 1 + s) (derived). t solves
     n_bins * P = false_alarm; for large m it tends to ln(n_bins / false_alarm).
+    Beyond ~1000 samples the floor's scatter no longer matters (callers clip m).
+    For an average of ``dof`` periodograms see :func:`_threshold_values_averaged`.
     """
+    if dof != 1:
+        return _threshold_values_averaged(unique, n_bins, false_alarm, dof)
     target = math.log(false_alarm / n_bins)
-    # Beyond ~1000 samples the floor's scatter no longer matters (t -> ln(n_bins / false_alarm)).
-    unique, inverse = np.unique(np.clip(np.asarray(samples, dtype=int), 1, 1001), return_inverse=True)
     kmax = int((unique.max() + 1) // 2)
     i = np.arange(kmax)[None, :]
     j = unique[:, None] - i + 0.0  # m, m-1, ..., m-k+1 for each m (padded)
@@ -683,7 +894,42 @@ def _threshold(samples, n_bins, false_alarm):
         above = log_p(mid) > target
         lo = np.where(above, mid, lo)
         hi = np.where(above, hi, mid)
-    return hi[inverse].reshape(np.shape(samples))
+    return hi
+
+
+def _threshold_values_averaged(unique, n_bins, false_alarm, dof):
+    """Thresholds for a power / floor ratio when every bin is an average of ``dof`` independent periodograms.
+
+    Under pure noise a bin's power over its mean is Gamma(dof, 1/dof) distributed (an
+    average of dof exponentials), P(X > x) = Q(dof, dof x) with Q the regularised upper
+    incomplete gamma function. The floor is a median of m such bins over the Gamma
+    median mu, which scatters by 1 / (2 f(mu) mu sqrt(m)) relative (f the Gamma density;
+    the large-sample variance of a median). The chance that noise passes t times the floor
+    is averaged over that scatter (Gauss–Hermite, 24 nodes) and t solves
+    n_bins * P = false_alarm (derived; dof = 1 is the exact formula of :func:`_threshold_values`).
+    """
+    k = float(dof)
+    mu = float(special.gammaincinv(k, 0.5) / k)
+    log_f = (k - 1) * math.log(mu) + k * math.log(k) - k * mu - float(special.gammaln(k))
+    rel = 1.0 / (2 * math.exp(log_f) * mu * np.sqrt(np.asarray(unique, dtype=float)))
+    nodes, weights = np.polynomial.hermite.hermgauss(24)
+    scale = np.maximum(1 + math.sqrt(2) * rel[:, None] * nodes[None, :], 0.05)
+    target = math.log(false_alarm / n_bins)
+
+    def log_p(t):
+        p = np.sum(weights * special.gammaincc(k, k * t[:, None] * scale), axis=1) / math.sqrt(math.pi)
+        return np.log(np.maximum(p, 1e-300))
+
+    lo = np.zeros(len(unique))
+    hi = np.ones(len(unique))
+    while np.any((log_p(hi) > target) & (hi < 1e12)):
+        hi = np.where(log_p(hi) > target, hi * 2, hi)
+    for _ in range(60):
+        mid = 0.5 * (lo + hi)
+        above = log_p(mid) > target
+        lo = np.where(above, mid, lo)
+        hi = np.where(above, hi, mid)
+    return hi
 
 
 def _hann_leak(d):
@@ -700,58 +946,89 @@ def _hann_leak(d):
     return np.where(d < 2, 1.0, np.minimum(1.0, bound))
 
 
-def _grandke(mag, r, c):
-    """Sub-bin offsets (d_row, d_col) by the Hann three-bin formula, the scalloping factor and a model misfit (bins).
+def _grandke(power, r, c, floor=None, others=(), dof=1):
+    """Sub-bin offsets (d_row, d_col) by the Hann three-bin formula, the scalloping factor and their one-sigma errors (bins).
 
     delta = (2 alpha - 1) / (1 + alpha), alpha the ratio of the larger neighbour to
-    the peak bin (Grandke, IEEE Trans. Instrum. Meas. 32, 350 (1983)).
+    the peak bin (Grandke, IEEE Trans. Instrum. Meas. 32, 350 (1983)); exact for one
+    complex tone (to 1e-8 bins at N >= 64, checked numerically).
+
+    The errors (per axis, bins; NaN without ``floor``) add in quadrature:
+
+    - noise (derived): a bin's magnitude moves by Re(n e^{-i phi}), variance F / 2
+      (F = ``floor``, the mean noise power of a bin). The periodic Hann window
+      correlates the noise of adjacent bins by -2/3 (sum w^2 e^{2 pi i n / N} over
+      sum w^2) and a tone's phase turns by pi from one bin to the next, so the two
+      magnitudes correlate by +2/3: var(alpha) = (1 + alpha^2 - 4 alpha / 3) / (2 SNR),
+      SNR = P / F with P the tone's power in the peak bin, and d delta / d alpha =
+      3 / (1 + alpha)^2. That is 0.72 / sqrt(SNR) bins on a bin centre and
+      0.43 / sqrt(SNR) half-way, 1.7 to 2.8 times the Cramér–Rao bound of the tone,
+      0.26 / sqrt(SNR) (Rife & Boorstyn 1974 in 2-D with the Hann SNR). An average of
+      ``dof`` independent periodograms (Welch) divides the variance by dof;
+    - discretisation: the leakage of every other peak in ``others`` ((row, col, power)
+      of the detected bins, the mirror included) into the three bins, bounded by the
+      Hann kernel (:func:`_hann_leak`), with a random relative phase;
+    - model misfit: the other neighbour should be (1 - delta) / (2 + delta) of the peak
+      (same kernel). Where it differs by more than 3 times its noise, the peak is not
+      one tone (domains, drift, a close neighbour) and the difference, times
+      d delta / d alpha (about 1.5), is added.
     """
-    ny, nx = mag.shape
-    out = []
-    misfit = []
+    ny, nx = power.shape
+    others = np.asarray(others, dtype=float).reshape(-1, 3)
+
+    def mag(rr, cc):
+        return math.sqrt(max(float(power[rr, cc]), 0.0))
+
+    out, errs = [], []
+    noise = float(floor) if floor is not None else float("nan")
     for axis in (0, 1):
         n = ny if axis == 0 else nx
         idx = r if axis == 0 else c
-        if idx <= 0 or idx >= n - 1:
+        peak = mag(r, c)
+        if idx <= 0 or idx >= n - 1 or peak <= 0:
             out.append(0.0)
+            errs.append(1 / math.sqrt(12))  # uniform within the bin
             continue
-        left = mag[r - 1, c] if axis == 0 else mag[r, c - 1]
-        right = mag[r + 1, c] if axis == 0 else mag[r, c + 1]
-        peak = mag[r, c]
-        if peak <= 0:
-            out.append(0.0)
-            continue
+        left = mag(r - 1, c) if axis == 0 else mag(r, c - 1)
+        right = mag(r + 1, c) if axis == 0 else mag(r, c + 1)
         sign = 1.0 if right >= left else -1.0
         alpha = max(left, right) / peak
         delta = float(np.clip((2 * alpha - 1) / (1 + alpha), 0.0, 0.5))
-        # Derived from the same Hann kernel: the other neighbour should be
-        # (1 - delta) / (2 + delta) of the peak. A peak broadened by domains, drift
-        # or a close neighbour breaks this; the misfit (times d delta / d alpha,
-        # about 1.5) measures how far the formula can be trusted.
         beta = min(left, right) / peak
-        misfit.append(1.5 * abs(beta - (1 - delta) / (2 + delta)))
         out.append(sign * delta)
+        if not math.isfinite(noise):
+            errs.append(float("nan"))
+            continue
+        snr = max(peak**2 - noise, 1e-12 * noise, 1e-300) / max(noise, 1e-300)
+        slope = 3 / (1 + alpha) ** 2
+        var_noise = slope**2 * max(1 + alpha**2 - 4 * alpha / 3, 0.0) / (2 * snr * dof)
+        var_leak = 0.0
+        if len(others):
+            rj, cj, pj = others[:, 0], others[:, 1], others[:, 2]
+            rel = np.sqrt(np.maximum(pj, 0.0) / peak**2)
+            rel = np.where((rj == r) & (cj == c), 0.0, rel)  # not the peak itself
+            step_r, step_c = (sign, 0) if axis == 0 else (0, sign)
+
+            def leak(rr, cc):
+                d_r, d_c = np.abs(rr - rj) % ny, np.abs(cc - cj) % nx
+                return _hann_leak(np.minimum(d_r, ny - d_r)) * _hann_leak(np.minimum(d_c, nx - d_c))
+
+            e0 = rel * leak(r, c)
+            e1 = rel * leak(r + step_r, c + step_c)
+            var_leak = float(np.sum(slope**2 * (e1**2 + alpha**2 * e0**2) / 2))
+        model = (1 - delta) / (2 + delta)
+        var_beta = max(1 + beta**2 - 4 * beta / 3, 0.0) / (2 * snr * dof) + (3 / (2 + delta) ** 2) ** 2 * var_noise
+        misfit = abs(beta - model)
+        var_misfit = (1.5 * misfit) ** 2 if misfit > 3 * math.sqrt(var_beta + var_leak) else 0.0
+        errs.append(math.sqrt(var_noise + var_leak + var_misfit))
     d_row, d_col = out
     # Hann kernel at the offset, normalised: sinc(d) / (1 - d^2) (Harris 1978).
     scallop = float(np.sinc(d_row) / (1 - d_row**2) * np.sinc(d_col) / (1 - d_col**2))
-    return d_row, d_col, scallop, float(max(misfit) if misfit else 0.0)
-
-
-def _interp_err_bins(snr):
-    """One-sigma uncertainty (bins, per axis) of an interpolated Hann peak.
-
-    Derived: the Cramér–Rao bound for a 2-D tone on N x N pixels,
-    var(q) >= 12 / (eta N^2 (N^2 - 1)) (Rife & Boorstyn 1974, extended to 2-D),
-    with eta = A^2 / (2 sigma_n^2) and the Hann spectral SNR = 2 eta N^2 / 9,
-    gives sigma = sqrt(24 / (9 SNR)) / (2 pi) = 0.26 / sqrt(SNR) bins. The three-bin
-    formula is about 1.5 times less efficient; a floor covers its model error.
-    """
-    snr = max(float(snr), 1e-12)
-    return math.hypot(1.5 * 0.26 / math.sqrt(snr), _INTERP_FLOOR_BINS)
+    return d_row, d_col, scallop, (errs[0], errs[1])
 
 
 def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_nm=None, snr=None,
-               false_alarm=0.01, refine="interpolate", sigma_nm=None):
+               false_alarm=0.01, refine="interpolate", sigma_nm=None, tile_px=None):
     """Find the peaks of an image's power spectrum, one per +q/-q pair.
 
     The spectrum is that of :func:`power_spectrum`. A peak is a local maximum
@@ -764,10 +1041,19 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
     rejected, and a disc around q = 0 (at least 3 bins, the reach of the
     window's main lobe) is ignored.
 
+    A large image (``tile_px``, or a dask array beyond ``WHOLE_FRAME_MAX_PIXELS``
+    pixels) is searched on the averaged periodogram of tiles (:func:`power_spectrum`;
+    the floor and threshold then follow the Gamma statistics of an average of
+    the equivalent number of independent periodograms), and every peak is
+    then refined on the full-resolution frame by the chunked lock-in with a
+    decimated output (as ``refine="lockin"``, unless ``refine`` is None), so
+    neither step holds the whole image.
+
     Parameters
     ----------
     image : (row, col) array_like, dask array or Scan
-        The image (a dask array is computed: the FFT needs the whole frame).
+        The image (a dask array up to ``WHOLE_FRAME_MAX_PIXELS`` pixels is
+        computed: the whole-frame FFT needs the whole frame).
     pixel_size_nm : float or (float, float)
         Pixel size in nm. May be None for a Scan.
     mask : (row, col) array of bool, optional
@@ -790,11 +1076,18 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
     sigma_nm : float, optional
         Lock-in width for ``refine="lockin"`` (default: per peak, from its
         distance to its neighbours).
+    tile_px : int, optional
+        Tiles of this many pixels a side (see above). Default: the whole frame
+        for an ndarray or a dask array up to ``WHOLE_FRAME_MAX_PIXELS`` pixels,
+        else ``WELCH_TILE_PX``.
 
     Returns
     -------
     list of Peak
-        Strongest first, each in the half-plane qy > 0 (or qy = 0, qx > 0).
+        Strongest first, each in the half-plane qy > 0 (or qy = 0, qx > 0),
+        with ``q_err`` and ``q_cov``: one-sigma statistical errors from the
+        noise measured in this image (see :class:`Peak`), calibrated by
+        coverage over noise realisations (tests/test_fourier_errors.py).
 
     Raises
     ------
@@ -809,6 +1102,8 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
     .. [2] T. Grandke, "Interpolation algorithms for discrete Fourier transforms
        of weighted signals", IEEE Trans. Instrum. Meas. 32, 350 (1983).
        doi:10.1109/TIM.1983.4315077
+    .. [3] P. D. Welch, IEEE Trans. Audio Electroacoust. 15, 70 (1967).
+       doi:10.1109/TAU.1967.1161901
 
     Examples
     --------
@@ -820,7 +1115,7 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
     >>> len(peaks), np.round(peaks[0].q, 1).tolist()
     (1, [9.3, 4.1])
     """
-    image, pixel, valid = _unpack(image, pixel_size_nm, mask, "find_peaks")
+    image, pixel, mask = _open(image, pixel_size_nm, mask, "find_peaks")
     if refine not in ("interpolate", "lockin", None):
         raise InputError(f"refine must be 'interpolate', 'lockin' or None, got {refine!r}")
     max_peaks = int(max_peaks)
@@ -828,39 +1123,75 @@ def find_peaks(image, *, pixel_size_nm, mask=None, max_peaks=40, min_q_rad_per_n
         raise InputError(f"max_peaks must be at least 1, got {max_peaks}")
     if not 0 < false_alarm < 1:
         raise InputError(f"false_alarm must lie between 0 and 1, got {false_alarm}")
+    if sigma_nm is not None:
+        sigma_nm = positive(sigma_nm, "sigma_nm")
+    tile = _tile_size(image, tile_px)
+    if tile is not None:
+        power, shape, dof, counts, bad = _welch_spectrum(image, mask, pixel, tile, "hann", np.float32)
+        peaks = _detect(power, shape, pixel, max_peaks, min_q_rad_per_nm, snr, false_alarm, refine is not None, dof)
+        if refine is not None and peaks:
+            peaks = _refine_tiled(image, mask, pixel, peaks, counts, bad, shape, sigma_nm=sigma_nm)
+        return peaks
+    image, pixel, valid = _unpack(image, pixel, mask, "find_peaks")
     level = _subtract_plane(image, valid, pixel)
-    power = _spectrum(level, "hann")
+    power = _spectrum(level, "hann", np.float32)
     peaks = _detect(power, image.shape, pixel, max_peaks, min_q_rad_per_nm, snr, false_alarm, refine is not None)
     if refine == "lockin" and peaks:
         peaks = _refine_peaks(level, valid, pixel, peaks, sigma_nm=sigma_nm)
     return peaks
 
 
-def _detect(power, shape, pixel, max_peaks, min_q, snr, false_alarm, interpolate):
+def _candidates(power, ratio, samples, shape, pixel, min_q, snr, false_alarm, dof=1):
+    """Bins (rows, cols) that may hold a peak: in the search region, above the threshold, 5 x 5 local maxima.
+
+    The search region is beyond a 3-bin disc around q = 0 and off the first row and column
+    (the Nyquist bin of an even axis has no mirror partner), and |q| >= ``min_q``. The
+    tests run on the few bins above the lowest threshold only, never on the whole plane.
+    """
     ny, nx = shape
-    dy, dx = pixel
-    qx_axis, qy_axis = _q_axes(shape, pixel)
-    floor, samples = _two_pass_floor(power)
-    ratio = power / floor
-    i, j = _bin_offsets(shape)
-    r_bins = np.hypot(i, j)
-    search = r_bins >= 3.0
+    cells = _floor_cells(shape)
+    n_search = cells.n_search
     if min_q is not None:
         min_q = _finite_float(min_q, "min_q_rad_per_nm")
-        qabs = np.hypot(qy_axis[:, None], qx_axis[None, :])
-        search &= qabs >= min_q
-    # The first row/column (the Nyquist bin of an even axis) has no mirror partner.
-    search[0, :] = False
-    search[:, 0] = False
-    search[-1, :] = False
-    search[:, -1] = False
-    n_search = max(int(search.sum()) // 2, 1)
+        qx_axis, qy_axis = _q_axes(shape, pixel)
+        i, j = _bin_offsets(shape)
+        search = (np.hypot(i, j) >= 3.0) & (np.hypot(qy_axis[:, None], qx_axis[None, :]) >= min_q)
+        search[0, :] = search[-1, :] = search[:, 0] = search[:, -1] = False
+        n_search = int(search.sum())
+    n_search = max(n_search // 2, 1)
+    flat_ratio = ratio.ravel()
     if snr is None:
-        threshold = _threshold(samples, n_search, false_alarm)
+        clipped = np.clip(samples.ravel(), 1, 1001)
+        present = np.flatnonzero(np.bincount(clipped, minlength=1002))
+        table = np.zeros(1002)
+        table[present] = _threshold_values(present, n_search, false_alarm, dof)
+        pre = np.flatnonzero(flat_ratio > table[present].min())
+        pre = pre[flat_ratio[pre] > table[clipped[pre]]]
     else:
-        threshold = positive(snr, "snr")
-    local_max = power >= ndimage.maximum_filter(power, size=5, mode="nearest")
-    cand = np.nonzero(search & local_max & (ratio > threshold) & (power > 0))
+        pre = np.flatnonzero(flat_ratio > positive(snr, "snr"))
+    rows, cols = np.divmod(pre, nx)
+    ki, kj = rows - ny // 2, cols - nx // 2
+    ok = (ki * ki + kj * kj >= 9) & (rows > 0) & (rows < ny - 1) & (cols > 0) & (cols < nx - 1)
+    ok &= power[rows, cols] > 0
+    if min_q is not None:
+        ok &= np.hypot(qx_axis[cols], qy_axis[rows]) >= min_q
+    rows, cols = rows[ok], cols[ok]
+    # Local maxima over 5 x 5 bins, the frame edge replicated (as ndimage.maximum_filter, mode "nearest").
+    off = np.arange(-2, 3)
+    rr = np.clip(rows[:, None, None] + off[None, :, None], 0, ny - 1)
+    cc = np.clip(cols[:, None, None] + off[None, None, :], 0, nx - 1)
+    neighbours = power[rr, cc].reshape(len(rows), -1).max(axis=1) if len(rows) else np.zeros(0)
+    top = power[rows, cols] >= neighbours
+    return rows[top], cols[top]
+
+
+def _detect(power, shape, pixel, max_peaks, min_q, snr, false_alarm, interpolate, dof=1):
+    """Peaks of a power plane of ``shape`` (the frame, or the Welch tile with ``dof`` averaged periodograms)."""
+    ny, nx = shape
+    dy, dx = pixel
+    floor, samples = _two_pass_floor(power, dof)
+    ratio = power / floor
+    cand = _candidates(power, ratio, samples, shape, pixel, min_q, snr, false_alarm, dof)
     # Both members of every pair are kept at this stage (side lobes of a peak's mirror
     # matter too); enough candidates for max_peaks canonical peaks and their mirrors.
     order = np.argsort(power[cand])[::-1][: 40 * max_peaks]
@@ -884,26 +1215,25 @@ def _detect(power, shape, pixel, max_peaks, min_q, snr, false_alarm, interpolate
                 continue
         acc_r[n_acc], acc_c[n_acc], acc_p[n_acc] = r, c, p
         n_acc += 1
-        accepted.append((r, c, p))
-    mag = np.sqrt(power)
+        accepted.append((r, c, float(p)))
     peaks = []
+    others = np.array(accepted, dtype=float).reshape(-1, 3)
     for r, c, p in accepted:
         ki, kj = r - ny // 2, c - nx // 2
         if not (ki > 0 or (ki == 0 and kj > 0)):
             continue  # keep the canonical member of each +q/-q pair
         if interpolate:
-            d_row, d_col, scallop, misfit = _grandke(mag, r, c)
-            err_bins = math.hypot(_interp_err_bins(ratio[r, c]), misfit)
+            d_row, d_col, scallop, (e_row, e_col) = _grandke(power, r, c, floor[r, c], others, dof)
             how = "interpolated"
         else:
             d_row = d_col = 0.0
             scallop = 1.0
-            err_bins = 1 / math.sqrt(12)  # uniform within the bin
+            e_row = e_col = 1 / math.sqrt(12)  # uniform within the bin
             how = "bin"
         q = np.array([2 * np.pi * (kj + d_col) / (nx * dx), 2 * np.pi * (ki + d_row) / (ny * dy)])
-        q_err = err_bins * 2 * np.pi * math.sqrt(0.5 / (nx * dx) ** 2 + 0.5 / (ny * dy) ** 2)
-        peaks.append(Peak(q=q, q_err=q_err, power=float(p), snr=float(ratio[r, c]),
-                          amplitude=2 * math.sqrt(p) / max(scallop, 1e-6), refined=how))
+        cov = np.diag([(e_col * 2 * np.pi / (nx * dx)) ** 2, (e_row * 2 * np.pi / (ny * dy)) ** 2])
+        peaks.append(Peak(q=q, q_err=math.sqrt(0.5 * np.trace(cov)), power=float(p), snr=float(ratio[r, c]),
+                          amplitude=2 * math.sqrt(p) / max(scallop, 1e-6), refined=how, q_cov=cov))
         if len(peaks) >= max_peaks:
             break
     return peaks
@@ -934,91 +1264,219 @@ def _auto_sigma_px(qj, others, pixel, shape):
     return float(np.clip(sigma, lo, max(hi, lo)))
 
 
-def _lockin_refine(level, valid, pixel, q0, sigma_nm, iterations):
+def _edge_distance(valid, pixel):
+    """Distance (nm) from every pixel to the nearest invalid pixel or the frame edge, as trusted_mask measures it.
+
+    None when every pixel is valid: then it is separable and computed where needed.
+    """
+    if valid.all():
+        return None
+    padded = np.pad(valid, 1, constant_values=False)
+    return ndimage.distance_transform_edt(padded, sampling=pixel)[1:-1, 1:-1]
+
+
+def _coarse_trusted(shape, pixel, step, sigma_nm, distance, margin_sigma=2.5):
+    """``trusted_mask`` (edge and mask margin ``margin_sigma`` sigma) sampled at rows and columns 0, s, 2s ..."""
+    ny, nx = shape
+    dy, dx = pixel
+    rows = np.arange(0, ny, step)
+    cols = np.arange(0, nx, step)
+    if distance is None:
+        # The edge sits half a pixel outside the outermost row or column (trusted_mask's convention).
+        dr = np.minimum(rows + 1, ny - rows) * dy
+        dc = np.minimum(cols + 1, nx - cols) * dx
+        dist = np.minimum(dr[:, None], dc[None, :])
+    else:
+        dist = distance[::step, ::step]
+    return dist - 0.5 * min(dy, dx) >= margin_sigma * float(sigma_nm)
+
+
+def _refine_step(shape, pixel, sigma_nm, distance=None):
+    """Decimation step (pixels) of the refinement lock-in and the trusted pixel count at full resolution.
+
+    The lock-in is exact at the pixels it returns (``_lockin.lockin``, ``step``), and its
+    noise is correlated over about sigma (correlation exp(-r^2 / 4 sigma^2)), so samples
+    every 1.5 sigma keep nearly all the information for the phase-plane fit (neighbours
+    still correlate by 0.57). At least 64 samples stay in the trusted region.
+    """
+    ny, nx = shape
+    dy, dx = pixel
+    if distance is None:
+        inner = max(ny - 2 * math.ceil(2.5 * sigma_nm / dy + 0.5) + 2, 0) * max(nx - 2 * math.ceil(2.5 * sigma_nm / dx + 0.5) + 2, 0)
+    else:
+        inner = int(np.count_nonzero(distance - 0.5 * min(dy, dx) >= 2.5 * sigma_nm))
+    step = max(1, int(1.5 * sigma_nm / max(pixel)))
+    return int(max(1, min(step, math.floor(math.sqrt(inner / 64))))), inner
+
+
+def _lockin_refine(level, valid, pixel, q0, sigma_nm, iterations, distance=None, noise_var=None):
     """Iterated phase-gradient update and a final phase-plane fit for wavevectors sharing one sigma.
 
-    Returns q (k, 2), q_err (k,), amplitude (k,).
+    One call of the lock-in for all of them (one shared forward FFT), sampled every
+    ``_refine_step`` pixels (exact at those pixels). The updates of q do not need a new
+    lock-in: for a tone at q_t, the lock-in at q + dq is exp(-i dq.r) times the one at q,
+    up to the constant factor exp(-sigma^2 (|q_t - q - dq|^2 - |q_t - q|^2) / 2)
+    (the Gaussian transfer; derived), so the field is re-referenced in place.
+
+    The covariance of each q is that of the phase-plane slope, cov = s^2 n_eff (X^T W X)^-1,
+    from the measured phase scatter s^2 about the plane and n_eff samples per independent
+    sigma-patch (the larger of the lock-in's own 4 pi sigma^2 and the residual's
+    correlation area), never below the Cramér–Rao bound of a tone over the trusted
+    region, var(q_x) >= 2 sigma_n^2 / (A0^2 sum (x - <x>)^2) (Rife & Boorstyn 1974,
+    Fisher information summed over the pixels; derived), with sigma_n^2 the white-noise
+    variance per pixel: the smaller of the one that gives the measured local floor
+    (``noise_var``) and the one that the lock-in phase scatter implies.
+
+    Returns q (k, 2), q_err (k,), amplitude (k,), q_cov (k, 2, 2) and the number of
+    independent sigma-patches in the trusted region (k,).
     """
     dy, dx = pixel
     ny, nx = level.shape
-    mask = ~valid
-    image = np.where(valid, level, np.nan)
-    trusted = trusted_mask(level.shape, sigma_nm=sigma_nm, pixel_size_nm=pixel,
-                           mask=None if valid.all() else mask, margin_sigma=2.5)
-    if trusted.sum() < 16:
+    step, inner = _refine_step(level.shape, pixel, sigma_nm, distance)
+    trusted = _coarse_trusted(level.shape, pixel, step, sigma_nm, distance)
+    if inner < 16 or trusted.sum() < 4:
         raise InputError(
             f"sigma_nm = {sigma_nm:g} nm leaves almost no trusted region in a {ny} x {nx} image; use a smaller sigma"
         )
-    rows, cols = np.nonzero(trusted)
-    x = cols * dx
-    y = rows * dy
     q = np.array(q0, dtype=float).reshape(-1, 2)
     k = len(q)
+    mask = None if valid.all() else ~valid
+    a = np.asarray(lockin(level.astype(np.float32), q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask, step=step))
+    a = a.reshape(k, *trusted.shape)
+    wc, wr = valid.sum(axis=0), valid.sum(axis=1)
+    return _fit_field(a, trusted, q, step, pixel, sigma_nm, iterations, noise_var, _spread_nm2(wr, wc, pixel))
+
+
+def _spread_nm2(wr, wc, pixel):
+    """sum (x - <x>)^2 and sum (y - <y>)^2 over the valid pixels (nm^2), from their row and column counts."""
+    dy, dx = pixel
+    xs, ys = np.arange(len(wc)) * dx, np.arange(len(wr)) * dy
+    n_valid = max(float(np.sum(wc)), 1.0)
+    return float(wc @ xs**2 - (wc @ xs) ** 2 / n_valid), float(wr @ ys**2 - (wr @ ys) ** 2 / n_valid)
+
+
+def _phase_slope(a, trusted, coarse):
+    """Phase slope (d/dx, d/dy) of each field by the angle of the summed lag-one products, (k, 2) rad/nm.
+
+    sum conj(A(r)) A(r + h) over neighbouring trusted samples: exact for a phase plane up to
+    pi per sample and weighted by |A|^2, so one update removes the offset of q (derived).
+    """
+    out = np.zeros((len(a), 2))
+    both_x = trusted[:, :-1] & trusted[:, 1:]
+    both_y = trusted[:-1, :] & trusted[1:, :]
+    for m, f in enumerate(a):
+        f = np.where(np.isfinite(f), f, 0)
+        px = np.sum((np.conj(f[:, :-1]) * f[:, 1:])[both_x])
+        py = np.sum((np.conj(f[:-1, :]) * f[1:, :])[both_y])
+        out[m] = [np.angle(px) / coarse[1], np.angle(py) / coarse[0]]
+    return out
+
+
+def _fit_field(a, trusted, q, step, pixel, sigma_nm, iterations, noise_var, spread):
+    """Refined q, errors and amplitude from lock-in fields ``a`` (k, rows, cols) sampled every ``step`` pixels.
+
+    See :func:`_lockin_refine`; ``spread`` is sum (x - <x>)^2, sum (y - <y>)^2 over the valid
+    pixels for the Cramér–Rao bound.
+    """
+    dy, dx = pixel
+    k = len(q)
+    q = np.array(q, dtype=float)
+    a = np.asarray(a).astype(np.complex128)
+    coarse = (dy * step, dx * step)
+    rows, cols = np.nonzero(trusted)
+    x = cols * coarse[1]
+    y = rows * coarse[0]
+    xg = np.arange(trusted.shape[1]) * coarse[1]
+    yg = np.arange(trusted.shape[0]) * coarse[0]
+    q_start = q.copy()
     q_err = np.full(k, np.nan)
+    q_cov = np.full((k, 2, 2), np.nan)
     amp = np.full(k, np.nan)
-    # Pixels per independent sample of the lock-in phase: the noise in A is white
-    # noise filtered by the Gaussian, correlation exp(-r^2 / 4 sigma^2), whose
-    # integral is 4 pi sigma^2 (derived).
-    n_corr = 4 * np.pi * sigma_nm**2 / (dx * dy)
-    for it in range(iterations):
-        a = lockin(image, q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=None if valid.all() else mask)
-        a = np.asarray(a).reshape(k, ny, nx)
-        at = a[:, trusted]
-        w = np.abs(at) ** 2
-        w = np.where(np.isfinite(w), w, 0.0)
-        at = np.where(np.isfinite(at), at, 0.0)
-        if it < iterations - 1:
-            grad = phase_gradient(a, pixel_size_nm=pixel)  # (2, k, row, col)
-            g = grad[:, :, trusted]
-            g = np.where(np.isfinite(g), g, 0.0)
-            wsum = w.sum(axis=1)
-            # Mean local wavevector offset, weighted by |A|^2 (the ML weight for phase noise).
-            q = q + (np.sum(g * w[None], axis=2) / np.where(wsum > 0, wsum, 1.0)).T
-            continue
+    phase_noise_var = np.full(k, np.nan)
+    # Samples per independent sample of the lock-in phase: the noise in A is white noise
+    # filtered by the Gaussian, correlation exp(-r^2 / 4 sigma^2), whose integral is
+    # 4 pi sigma^2 (derived), here in units of the sampled grid.
+    n_corr = max(4 * np.pi * sigma_nm**2 / (coarse[0] * coarse[1]), 1.0)
+    n_patches = trusted.sum() / n_corr
+
+    def rereference(dq):
         for m in range(k):
-            wm = w[m]
-            amp[m] = float(2 * np.sum(np.abs(at[m]) * wm) / max(wm.sum(), 1e-300))
-            # The |A|^2-weighted median of the local wavevector offset: robust to the
-            # phase slips at walls between domains of different phase, which bias a
-            # mean or a plane fit. Its error: 1.25 (median efficiency for Gaussian
-            # noise) x spread / sqrt(independent areas).
-            grad = phase_gradient(a[m], pixel_size_nm=pixel)[:, trusted]
-            ok = np.all(np.isfinite(grad), axis=0) & (wm > 0)
-            med_g = np.array([_weighted_median(grad[c, ok], wm[ok]) for c in (0, 1)])
-            spread2 = np.sum((grad[:, ok] - med_g[:, None]) ** 2 * wm[ok], axis=1) / wm[ok].sum()
-            err_med = 1.25 * math.sqrt(0.5 * spread2.sum() * n_corr / max(ok.sum(), 1))
-            unit = at[m] / np.where(np.abs(at[m]) > 0, np.abs(at[m]), 1.0)
-            mean = np.sum(unit * wm)
-            psi = np.angle(unit * np.conj(mean))
-            wrapped = np.sum(wm[np.abs(psi) > 2.5]) / max(wm.sum(), 1e-300)
-            if wrapped >= 0.01:
-                # The phase wraps inside the trusted region (walls, slips): no plane fit.
-                q[m] += med_g
-                q_err[m] = err_med
-                continue
-            # Weighted least-squares plane through the residual phase: its slope is the
-            # remaining offset of q (phase regression, efficient at high SNR).
-            xm = np.sum(wm * x) / wm.sum()
-            ym = np.sum(wm * y) / wm.sum()
-            design = np.stack([np.ones_like(x), x - xm, y - ym], axis=1)
-            normal = design.T @ (design * wm[:, None])
-            beta = np.linalg.solve(normal, design.T @ (wm * psi))
-            resid = psi - design @ beta
-            s2 = np.sum(wm * resid**2) / max(len(x) - 3, 1)
-            # A residual correlated over more than the lock-in's own noise area (phase
-            # texture, domains of different phase) leaves fewer independent samples.
-            n_eff = max(n_corr, _correlation_area_px(resid * np.sqrt(wm), trusted, sigma_nm / max(dx, dy)))
-            cov = s2 * n_eff * np.linalg.inv(normal)
-            err_fit = math.sqrt(max(0.5 * (cov[1, 1] + cov[2, 2]), 0.0))
-            diff = float(np.hypot(*(beta[1:] - med_g)))
-            if diff <= 3 * math.hypot(err_fit, err_med):
-                q[m] += beta[1:]
-                q_err[m] = err_fit
-            else:
-                # The phase is not one plane (domains of different phase): keep the median.
-                q[m] += med_g
-                q_err[m] = err_med
-    return q, q_err, amp
+            a[m] *= np.exp(-1j * dq[m, 1] * yg)[:, None] * np.exp(-1j * dq[m, 0] * xg)[None, :]
+
+    for _ in range(iterations - 1):
+        dq = _phase_slope(a, trusted, coarse)
+        q += dq
+        rereference(dq)
+    at = a[:, trusted]
+    w = np.abs(at) ** 2
+    w = np.where(np.isfinite(w), w, 0.0)
+    at = np.where(np.isfinite(at), at, 0.0)
+    for m in range(k):
+        wm = w[m]
+        # The Gaussian transfer attenuated the tone by exp(-sigma^2 |q - q_start|^2 / 2) (derived).
+        gain = math.exp(min(0.5 * sigma_nm**2 * float(np.sum((q[m] - q_start[m]) ** 2)), 50.0))
+        amp[m] = float(2 * np.sum(np.abs(at[m]) * wm) / max(wm.sum(), 1e-300)) * gain
+        # The |A|^2-weighted median of the local wavevector offset: robust to the
+        # phase slips at walls between domains of different phase, which bias a
+        # mean or a plane fit. Its error: 1.25 (median efficiency for Gaussian
+        # noise) x spread / sqrt(independent areas).
+        grad = phase_gradient(a[m], pixel_size_nm=coarse)[:, trusted]
+        ok = np.all(np.isfinite(grad), axis=0) & (wm > 0)
+        med_g = np.array([_weighted_median(grad[c, ok], wm[ok]) for c in (0, 1)])
+        spread2 = np.sum((grad[:, ok] - med_g[:, None]) ** 2 * wm[ok], axis=1) / wm[ok].sum()
+        err_med = 1.25 * np.sqrt(spread2 * n_corr / max(ok.sum(), 1))
+        unit = at[m] / np.where(np.abs(at[m]) > 0, np.abs(at[m]), 1.0)
+        mean = np.sum(unit * wm)
+        psi = np.angle(unit * np.conj(mean))
+        wrapped = np.sum(wm[np.abs(psi) > 2.5]) / max(wm.sum(), 1e-300)
+        cov_med = np.diag(err_med**2)
+        if wrapped >= 0.01:
+            # The phase wraps inside the trusted region (walls, slips): no plane fit.
+            q[m] += med_g
+            q_cov[m] = cov_med
+            continue
+        # Weighted least-squares plane through the residual phase: its slope is the
+        # remaining offset of q (phase regression, efficient at high SNR).
+        xm = np.sum(wm * x) / wm.sum()
+        ym = np.sum(wm * y) / wm.sum()
+        design = np.stack([np.ones_like(x), x - xm, y - ym], axis=1)
+        normal = design.T @ (design * wm[:, None])
+        beta = np.linalg.solve(normal, design.T @ (wm * psi))
+        resid = psi - design @ beta
+        s2 = np.sum(wm * resid**2) / max(len(x) - 3, 1)
+        # The white noise per pixel that this phase scatter means: var(phi) = sigma_n^2 /
+        # (2 pi sigma_px^2 A0^2) for a Gaussian-filtered tone (derived); s2 is weighted by |A|^2.
+        phase_noise_var[m] = s2 / np.mean(wm) * 2 * np.pi * sigma_nm**2 / (dx * dy) * amp[m] ** 2 \
+            if np.mean(wm) > 0 else np.nan
+        # A residual correlated over more than the lock-in's own noise area (phase
+        # texture, domains of different phase) leaves fewer independent samples.
+        n_eff = max(n_corr, _correlation_area_px(resid * np.sqrt(wm), trusted, sigma_nm / max(coarse)))
+        cov = s2 * n_eff * np.linalg.inv(normal)
+        cov_fit = cov[1:, 1:]
+        err_fit = math.sqrt(max(0.5 * (cov_fit[0, 0] + cov_fit[1, 1]), 0.0))
+        diff = float(np.hypot(*(beta[1:] - med_g)))
+        if diff <= 3 * math.hypot(err_fit, float(np.sqrt(0.5 * np.sum(err_med**2)))):
+            q[m] += beta[1:]
+            q_cov[m] = cov_fit
+        else:
+            # The phase is not one plane (domains of different phase): keep the median.
+            q[m] += med_g
+            q_cov[m] = cov_med
+    if noise_var is not None:
+        # The bound over every valid pixel (the lock-in reaches beyond the trusted region).
+        sxx, syy = spread
+        for m in range(k):
+            # The spectral floor can hold more than noise (the leakage of a tone through a
+            # mask): the smaller of it and the noise the lock-in phase itself shows.
+            nv = np.nanmin([noise_var[m], phase_noise_var[m]])
+            if math.isfinite(nv) and math.isfinite(amp[m]) and amp[m] > 0:
+                crb = 2 * nv / amp[m] ** 2 * np.array([1 / max(sxx, 1e-300), 1 / max(syy, 1e-300)])
+                d = np.diag(q_cov[m]).copy()
+                scale = np.sqrt(np.maximum(crb, d) / np.where(d > 0, d, 1.0))
+                q_cov[m] = np.where(d > 0, q_cov[m] * np.outer(scale, scale), np.diag(crb))
+    for m in range(k):
+        q_err[m] = math.sqrt(max(0.5 * (q_cov[m, 0, 0] + q_cov[m, 1, 1]), 0.0))
+    return q, q_err, amp, q_cov, np.full(k, n_patches)
 
 
 def _weighted_median(values, weights):
@@ -1072,7 +1530,11 @@ def refine_q(image, q, *, pixel_size_nm, sigma_nm=None, mask=None, iterations=3,
     and n_c = 4 pi sigma^2 / pixel area the pixels per independent sample of the
     lock-in phase (its noise correlation is exp(-r^2 / 4 sigma^2)). For a tone in
     white noise this is the Cramér–Rao bound of Rife & Boorstyn (1974) over the
-    trusted region (derived).
+    trusted region (derived). All wavevectors that share a sigma come from one
+    lock-in call (one forward FFT) sampled every ~1.5 sigma (exact at the
+    sampled pixels); the updates re-reference that field instead of repeating
+    the lock-in (a tone's lock-in at q + dq is exp(-i dq.r) times the one at q,
+    up to a constant).
 
     Parameters
     ----------
@@ -1136,30 +1598,90 @@ def refine_q(image, q, *, pixel_size_nm, sigma_nm=None, mask=None, iterations=3,
         sigma_nm = positive(sigma_nm, "sigma_nm")
     other = None if other_q is None else _check_q_override(other_q, pixel)
     level = _subtract_plane(image, valid, pixel)
-    power = _spectrum(level, "hann")
-    mag = np.sqrt(power)
+    power = _spectrum(level, "hann", np.float32)
     ny, nx = image.shape
     dy, dx = pixel
-    start = []
+    start, bins = [], []
     for qj in q_arr:
         # Nearest bin, then the strongest bin within one bin of it.
         c = int(round(qj[0] * nx * dx / (2 * np.pi))) + nx // 2
         r = int(round(qj[1] * ny * dy / (2 * np.pi))) + ny // 2
         r0, r1 = max(r - 1, 1), min(r + 2, ny - 1)
         c0, c1 = max(c - 1, 1), min(c + 2, nx - 1)
-        sub = mag[r0:r1, c0:c1]
+        sub = power[r0:r1, c0:c1]
         if sub.size:
             rr, cc = np.unravel_index(np.argmax(sub), sub.shape)
             r, c = r0 + rr, c0 + cc
-        d_row, d_col, _, _ = _grandke(mag, r, c)
+        d_row, d_col, _, _ = _grandke(power, r, c)
+        bins.append((r, c))
         start.append([2 * np.pi * (c - nx // 2 + d_col) / (nx * dx), 2 * np.pi * (r - ny // 2 + d_row) / (ny * dy)])
     start = np.asarray(start)
-    peaks = [Peak(q=s, q_err=np.nan) for s in start]
+    # The local noise floor at each start bin sets the Cramér–Rao bound of the refined q.
+    floor, _ = _two_pass_floor(power)
+    peaks = []
+    for qs, (r, c) in zip(start, bins):
+        p_bin = float(power[r, c])
+        peaks.append(Peak(q=qs, q_err=np.nan, power=p_bin, snr=p_bin / float(floor[r, c])))
     refined = _refine_peaks(level, valid, pixel, peaks, sigma_nm=sigma_nm, other_q=other,
                             iterations=iterations, guard=False)
     q_out = np.array([p.q for p in refined])
     err = np.array([p.q_err for p in refined])
     return (q_out[0], float(err[0])) if single else (q_out, err)
+
+
+def _plan_refinement(peaks, pixel, shape, sigma_nm=None, other_q=None, guard=True, ladder=1.25):
+    """Lock-in width of every peak and whether to refine it (``shape``: the frame whose spectrum found them).
+
+    Widths are rounded up to steps of ``ladder`` so that peaks share lock-in passes (a
+    larger sigma only lowers the leakage; the cap of 1/12 of ``shape`` still holds).
+    With ``guard``, peaks too weak for the lock-in are left out.
+    """
+    ny, nx = shape
+    dy, dx = pixel
+    allq = np.array([p.q for p in peaks])
+    if other_q is not None:
+        allq = np.concatenate([allq, np.asarray(other_q)])
+    sigmas = []
+    for m, p in enumerate(peaks):
+        if sigma_nm is not None:
+            sigmas.append(float(sigma_nm))
+        else:
+            others = np.delete(allq, m, axis=0)
+            s = _auto_sigma_px(p.q, others, pixel, shape)
+            s = min(float(np.exp(np.ceil(np.log(s) / np.log(ladder)) * np.log(ladder))),
+                    max(min(ny * dy, nx * dx) / 12, 1.5 * max(dy, dx)))
+            sigmas.append(s)
+    sigmas = np.asarray(sigmas)
+    todo = np.ones(len(peaks), bool)
+    if guard:
+        for m, p in enumerate(peaks):
+            # Derived: per-pixel lock-in phase variance sigma_n^2 / (2 pi sigma_px^2 A0^2),
+            # with A0^2 / sigma_n^2 = 9 SNR / (Nx Ny) for the Hann spectrum; above
+            # (0.5 rad)^2 the phase wraps too often for a gradient to mean anything.
+            s_px2 = sigmas[m] ** 2 / (dx * dy)
+            if math.isfinite(p.snr):
+                var_phi = nx * ny / (2 * np.pi * s_px2 * 9 * max(p.snr, 1e-12))
+                todo[m] = var_phi < 0.25
+    return sigmas, todo
+
+
+def _noise_var(peak, shape):
+    """White-noise variance per pixel that gives a peak's local floor F = power / snr (Hann:
+    F = 2.25 sigma_n^2 / (Nx Ny) for the frame or tile ``shape``; derived)."""
+    if not (math.isfinite(peak.snr) and peak.snr > 0 and math.isfinite(peak.power)):
+        return np.nan
+    return peak.power / peak.snr * shape[0] * shape[1] / 2.25
+
+
+def _accepted(peak, qm, em, am, cm, bin_q, guard):
+    """The refined peak, or None when the refinement failed or (with ``guard``) moved it by more
+    than 5 times its interpolation uncertainty (or 0.3 bin): it locked onto noise or a neighbour."""
+    moved = float(np.hypot(*(qm - peak.q)))
+    limit = max(5 * peak.q_err if math.isfinite(peak.q_err) else 0.0, 0.3 * float(np.min(bin_q)))
+    if not np.all(np.isfinite(qm)) or not math.isfinite(em) or (guard and moved > limit):
+        return None
+    return replace(peak, q=qm, q_err=float(em), q_cov=cm,
+                   amplitude=float(am) if math.isfinite(am) else peak.amplitude, refined="lockin")
 
 
 def _refine_peaks(level, valid, pixel, peaks, *, sigma_nm=None, other_q=None, iterations=2, guard=True):
@@ -1171,49 +1693,231 @@ def _refine_peaks(level, valid, pixel, peaks, *, sigma_nm=None, other_q=None, it
     """
     ny, nx = level.shape
     dy, dx = pixel
-    allq = np.array([p.q for p in peaks])
-    if other_q is not None:
-        allq = np.concatenate([allq, np.asarray(other_q)])
-    sigmas = []
-    for m, p in enumerate(peaks):
-        if sigma_nm is not None:
-            sigmas.append(float(sigma_nm))
-        else:
-            others = np.delete(allq, m, axis=0)
-            s = _auto_sigma_px(p.q, others, pixel, level.shape)
-            # Round up to 25 % steps so that peaks can share one lock-in pass (a larger
-            # sigma only lowers the leakage; the cap of 1/12 frame still holds).
-            s = min(float(np.exp(np.ceil(np.log(s) / np.log(1.25)) * np.log(1.25))),
-                    max(min(ny * dy, nx * dx) / 12, 1.5 * max(dy, dx)))
-            sigmas.append(s)
-    sigmas = np.asarray(sigmas)
+    sigmas, todo = _plan_refinement(peaks, pixel, level.shape, sigma_nm, other_q, guard)
     out = list(peaks)
     bin_q = 2 * np.pi / np.array([nx * dx, ny * dy])
-    todo = np.ones(len(peaks), bool)
-    if guard:
-        for m, p in enumerate(peaks):
-            # Derived: per-pixel lock-in phase variance sigma_n^2 / (2 pi sigma_px^2 A0^2),
-            # with A0^2 / sigma_n^2 = 9 SNR / (Nx Ny) for the Hann spectrum; above
-            # (0.5 rad)^2 the phase wraps too often for a gradient to mean anything.
-            s_px2 = sigmas[m] ** 2 / (dx * dy)
-            if math.isfinite(p.snr):
-                var_phi = nx * ny / (2 * np.pi * s_px2 * 9 * max(p.snr, 1e-12))
-                todo[m] = var_phi < 0.25
-    group = max(1, int(4e6 // (ny * nx)))  # bound memory: k complex images at a time
+    distance = _edge_distance(valid, pixel)
     for s in np.unique(sigmas[todo]):
         idx = np.nonzero((sigmas == s) & todo)[0]
+        # All peaks of one sigma in one lock-in call (one forward FFT), a bounded output at a time.
+        step, _ = _refine_step(level.shape, pixel, float(s), distance)
+        group = max(1, int(16e6 // (-(-ny // step) * -(-nx // step))))
         for start in range(0, len(idx), group):
             sel = idx[start:start + group]
             q0 = np.array([peaks[m].q for m in sel])
-            q, err, amp = _lockin_refine(level, valid, pixel, q0, float(s), iterations)
-            for m, qm, em, am in zip(sel, q, err, amp):
-                moved = float(np.hypot(*(qm - peaks[m].q)))
-                limit = max(5 * peaks[m].q_err if math.isfinite(peaks[m].q_err) else 0.0, 0.3 * float(bin_q.min()))
-                if not np.all(np.isfinite(qm)) or not math.isfinite(em) or (guard and moved > limit):
-                    continue
-                out[m] = replace(peaks[m], q=qm, q_err=float(em),
-                                 amplitude=float(am) if math.isfinite(am) else peaks[m].amplitude,
-                                 refined="lockin")
+            noise_var = np.array([_noise_var(peaks[m], level.shape) for m in sel])
+            try:
+                q, err, amp, cov, _ = _lockin_refine(level, valid, pixel, q0, float(s), iterations, distance,
+                                                     noise_var)
+            except InputError:
+                if not guard:
+                    raise
+                continue  # sigma chosen here leaves no trusted region (a large mask): keep the peaks
+            for m, qm, em, am, cm in zip(sel, q, err, amp, cov):
+                new = _accepted(peaks[m], qm, em, am, cm, bin_q, guard)
+                if new is not None:
+                    out[m] = new
+    return out
+
+
+# --------------------------------------------------------------------------------------
+# Large images: averaged periodogram of tiles (Welch) and a lazy, decimated refinement
+# --------------------------------------------------------------------------------------
+
+#: A dask array of up to this many pixels is read whole and transformed whole (as an ndarray).
+WHOLE_FRAME_MAX_PIXELS = 4096 * 4096
+#: Tile side (pixels) of the averaged periodogram of larger images.
+WELCH_TILE_PX = 2048
+#: Lock-in samples held at a time when refining the peaks of a large image (complex64: 128 MiB).
+_LAZY_SAMPLES = 1 << 24
+#: Side (pixels) of the blocks on which invalid pixels are mapped for the trusted region.
+_BAD_BLOCK = 16
+
+
+def _tile_size(image, tile_px):
+    """Side of the Welch tiles, or None for one transform of the whole frame."""
+    ny, nx = image.shape
+    if tile_px is None:
+        if not (_is_dask(image) and ny * nx > WHOLE_FRAME_MAX_PIXELS):
+            return None
+        tile_px = WELCH_TILE_PX
+    if isinstance(tile_px, (bool, np.bool_)) or not isinstance(tile_px, (int, np.integer)) or tile_px < 16:
+        raise InputError(f"tile_px must be a whole number of pixels, at least 16 (or None), got {tile_px!r}")
+    if tile_px >= max(ny, nx):
+        return None
+    return int(tile_px)
+
+
+def _tile_starts(n, tile):
+    """First pixels of the tiles along an axis of n pixels: 50 % overlap, the last tile flush with the end."""
+    if tile >= n:
+        return np.array([0]), n
+    starts = list(range(0, n - tile + 1, max(tile // 2, 1)))
+    if starts[-1] + tile < n:
+        starts.append(n - tile)
+    return np.array(starts), tile
+
+
+def _overlap_sum(starts, window):
+    """Sum over all pairs of tiles along one axis of the squared correlation of their windowed noise.
+
+    Two tiles d pixels apart share the noise of their overlap: the correlation of their
+    transforms at one frequency is c(d) = sum_n w(n) w(n - d) / sum w^2 (1/6 for a Hann
+    window at 50 %; Harris 1978), that of their periodograms c(d)^2 (derived).
+    """
+    n = len(window)
+    w2 = float(np.sum(window**2))
+    full = np.correlate(window, window, mode="full")  # lags -(n - 1) ... n - 1
+    d = np.abs(starts[:, None] - starts[None, :])
+    c = np.where(d < n, full[np.clip(n - 1 + d, 0, 2 * n - 2)] / w2, 0.0)
+    return float(np.sum(c**2))
+
+
+def _as_dask_mask(mask, chunks):
+    import dask.array as da
+
+    if _is_dask(mask):
+        return mask.astype(bool).rechunk(chunks)
+    return da.from_array(np.asarray(mask, dtype=bool), chunks=chunks)
+
+
+def _tile_power(block, invalid, pixel, window):
+    """Periodogram half-plane (float64) of one tile and 1, or zeros and 0 for a tile with almost no data.
+
+    The recipe of :func:`power_spectrum` on the tile: its own least-squares plane removed,
+    invalid pixels set to zero, windowed.
+    """
+    block = np.asarray(block, dtype=np.float64)
+    ty, tx = block.shape
+    valid = np.isfinite(block)
+    if invalid is not None:
+        valid &= ~np.asarray(invalid, dtype=bool)
+    if valid.sum() < 16:
+        return np.zeros((ty, tx // 2 + 1)), 0
+    wy, wx = _windows((ty, tx), window)
+    return _half_power(_subtract_plane(np.where(valid, block, 0.0), valid, pixel), wy, wx), 1
+
+
+def _add_parts(a, b):
+    return a[0] + b[0], a[1] + b[1]
+
+
+def _block_any(invalid, block):
+    """Whether each block x block cell (from pixel 0; the last ones may be partial) holds a True."""
+    ny, nx = invalid.shape
+    pad = ((0, -ny % block), (0, -nx % block))
+    if _is_dask(invalid):
+        import dask.array as da
+
+        padded = da.pad(invalid, pad, mode="constant", constant_values=False)
+        side = block * max(1, 2048 // block)
+        return da.coarsen(np.any, padded.rechunk((side, side)), {0: block, 1: block})
+    padded = np.pad(invalid, pad, constant_values=False)
+    return padded.reshape(padded.shape[0] // block, block, padded.shape[1] // block, block).any(axis=(1, 3))
+
+
+def _welch_spectrum(image, mask, pixel, tile, window, dtype):
+    """Averaged periodogram of overlapping windowed tiles (Welch 1967), in one reading of the image.
+
+    Returns the power plane of one tile (``fftshift`` layout), the tile shape, the
+    equivalent number of independent periodograms averaged, the valid pixel counts per
+    row and per column, and which ``_BAD_BLOCK``-pixel blocks hold an invalid pixel (None if
+    none does). A dask array is read chunk by chunk (one task per tile, summed in a tree,
+    with the counts in the same pass), an ndarray (e.g. a memory map) through views, so the
+    whole image is never held at once.
+    """
+    ny, nx = image.shape
+    rows, ty = _tile_starts(ny, tile)
+    cols, tx = _tile_starts(nx, tile)
+    starts = [(int(r0), int(c0)) for r0 in rows for c0 in cols]
+    if _is_dask(image):
+        import dask
+        import dask.array as da
+
+        invalid = ~da.isfinite(image)
+        if mask is not None:
+            invalid = invalid | _as_dask_mask(mask, image.chunks)
+        parts = [dask.delayed(_tile_power)(image[r0:r0 + ty, c0:c0 + tx], invalid[r0:r0 + ty, c0:c0 + tx],
+                                           pixel, window) for r0, c0 in starts]
+        while len(parts) > 1:  # a tree of sums keeps a few tiles in memory at a time
+            parts = [dask.delayed(_add_parts)(parts[i], parts[i + 1]) if i + 1 < len(parts) else parts[i]
+                     for i in range(0, len(parts), 2)]
+        valid = (~invalid).astype(np.int64)
+        (total, used), wr, wc, bad = dask.compute(parts[0], valid.sum(axis=1), valid.sum(axis=0),
+                                                  _block_any(invalid, _BAD_BLOCK))
+    else:
+        invalid = ~np.isfinite(image)
+        if mask is not None:
+            invalid |= np.asarray(mask, dtype=bool)
+        total, used = 0.0, 0
+        for r0, c0 in starts:
+            part = _tile_power(image[r0:r0 + ty, c0:c0 + tx], invalid[r0:r0 + ty, c0:c0 + tx], pixel, window)
+            total, used = _add_parts((total, used), part)
+        wr, wc = (~invalid).sum(axis=1), (~invalid).sum(axis=0)
+        bad = _block_any(invalid, _BAD_BLOCK)
+    if used == 0:
+        raise InputError(f"no tile of {ty} x {tx} pixels holds 16 valid (finite, unmasked) pixels")
+    wy, wx = _windows((ty, tx), window)
+    # Variance of the average over that of one periodogram: the sum of the pair correlations over
+    # K^2, separable in rows and columns (derived); its inverse is the equivalent count.
+    dof = len(starts) ** 2 / (_overlap_sum(rows, wy) * _overlap_sum(cols, wx))
+    bad = np.asarray(bad)
+    return (_full_plane(total / used, (ty, tx), dtype), (ty, tx), float(dof),
+            (np.asarray(wr), np.asarray(wc)), bad if bad.any() else None)
+
+
+def _refine_tiled(image, mask, pixel, peaks, counts, bad, tile_shape, *, sigma_nm=None, iterations=3):
+    """Lock-in refinement of peaks found on tiles, over the whole full-resolution frame, lazily.
+
+    All peaks share one lock-in width (the largest any of them needs, at most 1/12 of a
+    tile), so the frame is read once: the chunked lock-in (``domains._lockin.lockin`` on a
+    dask array, invalid pixels NaN) with a decimated output, computed for a bounded number
+    of samples at a time; the fit is that of :func:`_lockin_refine`. No plane is removed:
+    the lock-in's width keeps q = 0 below 0.1 % leakage (:func:`_auto_sigma_px`). The
+    trusted region keeps 2.5 sigma from the frame edge and from invalid pixels (mapped on
+    blocks of ``_BAD_BLOCK`` pixels, so a little more).
+    """
+    import dask.array as da
+
+    ny, nx = image.shape
+    dy, dx = pixel
+    sigmas, todo = _plan_refinement(peaks, pixel, tile_shape, sigma_nm, None, True)
+    out = list(peaks)
+    if not todo.any():
+        return out
+    s = float(sigmas[todo].max())
+    lazy = image if _is_dask(image) else da.from_array(image, chunks=(min(ny, 4096), min(nx, 4096)))
+    lazy = lazy.astype(np.float32)
+    if mask is not None:
+        lazy = da.where(_as_dask_mask(mask, lazy.chunks), np.float32(np.nan), lazy)
+    step = max(1, int(1.5 * s / max(pixel)))
+    cells = -(-ny // step) * -(-nx // step)
+    if cells > _LAZY_SAMPLES:
+        step = int(math.ceil(step * math.sqrt(cells / _LAZY_SAMPLES)))
+    trusted = _coarse_trusted((ny, nx), pixel, step, s, None)
+    if bad is not None:
+        reach = int(math.ceil(2.5 * s / (_BAD_BLOCK * min(dy, dx)))) + 1
+        yy, xx = np.mgrid[-reach:reach + 1, -reach:reach + 1]
+        near = ndimage.binary_dilation(bad, structure=yy**2 + xx**2 <= (reach + 0.5) ** 2)
+        r_idx = (np.arange(trusted.shape[0]) * step) // _BAD_BLOCK
+        c_idx = (np.arange(trusted.shape[1]) * step) // _BAD_BLOCK
+        trusted &= ~near[r_idx][:, c_idx]
+    if trusted.sum() < 16:
+        return out
+    spread = _spread_nm2(counts[0], counts[1], pixel)
+    bin_q = 2 * np.pi / np.array([tile_shape[1] * dx, tile_shape[0] * dy])
+    idx = np.nonzero(todo)[0]
+    group = max(1, _LAZY_SAMPLES // trusted.size)
+    for start in range(0, len(idx), group):
+        sel = idx[start:start + group]
+        q0 = np.array([peaks[m].q for m in sel])
+        a = np.asarray(lockin(lazy, q0, sigma_nm=s, pixel_size_nm=pixel, step=step).compute())
+        noise_var = np.array([_noise_var(peaks[m], tile_shape) for m in sel])
+        q, err, amp, cov, _ = _fit_field(a, trusted, q0, step, pixel, s, iterations, noise_var, spread)
+        for m, qm, em, am, cm in zip(sel, q, err, amp, cov):
+            new = _accepted(peaks[m], qm, em, am, cm, bin_q, True)
+            if new is not None:
+                out[m] = new
     return out
 
 
@@ -1810,6 +2514,19 @@ def _directions(vectors, errs, coefs):
     return chosen
 
 
+def _ideal_q_err(q, lattice):
+    """One-sigma error per component of wavevectors fixed to the lattice (commensurate q = f b).
+
+    They inherit the lattice's errors: radially |q| a_err / a (a scale), tangentially
+    |q| angle_err (a rotation), per component the root mean square of the two (derived).
+    """
+    q = np.asarray(q, dtype=float).reshape(-1, 2)
+    qa = np.hypot(q[:, 0], q[:, 1])
+    rel = lattice.a_err_nm / lattice.a_nm if lattice.a_nm > 0 else 0.0
+    rot = math.radians(lattice.angle_err_deg)
+    return qa * math.sqrt(0.5 * (rel**2 + rot**2))
+
+
 def _summarize_superlattice(peaks, lattice):
     if lattice is None:
         return None
@@ -1836,7 +2553,7 @@ def _summarize_superlattice(peaks, lattice):
             for v in q:
                 f = v @ np.linalg.inv(b)
                 coefs.append(tuple(Fraction(v_).limit_denominator(64) for v_ in f))
-        return Superlattice(order, True, np.asarray(q), np.zeros(len(q)), coefs, m, n_sites, None, note)
+        return Superlattice(order, True, np.asarray(q), _ideal_q_err(q, lattice), coefs, m, n_sites, None, note)
     if inc:
         vecs = [p.q for p in inc]
         chosen = _directions(vecs, [p.q_err for p in inc], [p.hk for p in inc])
@@ -1923,7 +2640,7 @@ def _superlattice_override(order, lattice):
         name = f"sqrt{n}xsqrt{n}R{mt.group(3)}"
     inv = np.linalg.inv(b)
     coefs = [tuple(Fraction(v).limit_denominator(64) for v in (qq @ inv)) for qq in q]
-    return Superlattice(name, True, q, np.zeros(len(q)), coefs, None, None, None, "set by the user")
+    return Superlattice(name, True, q, _ideal_q_err(q, lattice), coefs, None, None, None, "set by the user")
 
 
 # --------------------------------------------------------------------------------------
@@ -1946,7 +2663,7 @@ def _lattice_from_dict(spec):
 
 
 def analyze_spectrum(image, *, pixel_size_nm, mask=None, lattice=None, q=None, superlattice=None,
-                     max_peaks=40, snr=None, max_refine=8, max_denominator=6, kind=None):
+                     max_peaks=40, snr=None, max_refine=8, max_denominator=6, kind=None, tile_px=None):
     """Peaks, lattice, superlattice and moire candidates of one image, with manual overrides.
 
     Steps: :func:`find_peaks` (or the given ``q``), :func:`index_lattice` (or
@@ -1981,6 +2698,9 @@ def analyze_spectrum(image, *, pixel_size_nm, mask=None, lattice=None, q=None, s
         Largest denominator of a commensurate fraction.
     kind : {"hexagonal", "square", "oblique"}, optional
         Restrict the automatic lattice search.
+    tile_px : int, optional
+        Search a large image on tiles (see :func:`find_peaks`); every peak is
+        then refined on the whole frame and ``max_refine`` does not apply.
 
     Returns
     -------
@@ -2003,16 +2723,28 @@ def analyze_spectrum(image, *, pixel_size_nm, mask=None, lattice=None, q=None, s
     >>> result.superlattice.order, round(result.lattice.a_nm, 3)
     ('3x3', 0.35)
     """
-    image, pixel, valid = _unpack(image, pixel_size_nm, mask, "analyze_spectrum")
+    image, pixel, mask = _open(image, pixel_size_nm, mask, "analyze_spectrum")
     if superlattice is not None and not isinstance(superlattice, str):
         raise InputError(f"superlattice must be a string such as '3x3', got {superlattice!r}")
     given_lattice = None if lattice is None else _lattice_from_dict(lattice)
-    level = _subtract_plane(image, valid, pixel)
-    power = _spectrum(level, "hann")
+    tile = _tile_size(image, tile_px)
+    full_shape = tuple(image.shape)
+    if tile is not None:
+        # A large image: peaks from the tiles, every one already refined on the whole frame.
+        power, shape, dof, _, _ = _welch_spectrum(image, mask, pixel, tile, "hann", np.float32)
+        if q is None:
+            peaks = find_peaks(image, pixel_size_nm=pixel, mask=mask, max_peaks=max_peaks, snr=snr, tile_px=tile)
+    else:
+        image, pixel, valid = _unpack(image, pixel, mask, "analyze_spectrum")
+        level = _subtract_plane(image, valid, pixel)
+        power = _spectrum(level, "hann", np.float32)
+        shape, dof = image.shape, 1
+        if q is None:
+            peaks = _detect(power, shape, pixel, int(max_peaks), None, snr, 0.01, True)
     if q is not None:
         q_arr = _check_q_override(q, pixel)
-        floor, _ = _two_pass_floor(power)
-        ny, nx = image.shape
+        floor, _ = _two_pass_floor(power, dof)
+        ny, nx = shape
         dy, dx = pixel
         peaks = []
         for qj in q_arr:
@@ -2022,10 +2754,8 @@ def analyze_spectrum(image, *, pixel_size_nm, mask=None, lattice=None, q=None, s
             peaks.append(Peak(q=_canonical(qj), q_err=0.0, power=float(power[r, c]),
                               snr=float(power[r, c] / floor[r, c]), amplitude=2 * math.sqrt(power[r, c]),
                               refined="manual"))
-    else:
-        peaks = _detect(power, image.shape, pixel, int(max_peaks), None, snr, 0.01, True)
     lat = given_lattice if given_lattice is not None else index_lattice(peaks, kind=kind)
-    if q is None and peaks and max_refine > 0:
+    if q is None and peaks and max_refine > 0 and tile is None:
         # Refine the peaks that matter most: the Bragg peaks, then the strongest
         # peaks that are not integer harmonics of the lattice.
         first = index_peaks(peaks, lat, max_denominator=max_denominator)
@@ -2050,7 +2780,7 @@ def analyze_spectrum(image, *, pixel_size_nm, mask=None, lattice=None, q=None, s
         sup = _summarize_superlattice(indexed, lat)
     moire = sorted([p for p in indexed if p.role == "moire"], key=lambda p: p.q_abs_rad_per_nm)
     moire_q = np.array([p.q for p in moire]).reshape(-1, 2)
-    return SpectrumResult(indexed, lat, sup, moire_q, pixel, tuple(image.shape))
+    return SpectrumResult(indexed, lat, sup, moire_q, pixel, full_shape)
 
 
 def format_peak_table(result):
