@@ -692,8 +692,11 @@ def _to_input_grid(grid_, seg, score_at, confidence):
     band = grid_.to_input(band_c) & (grown > 0)
     if band.any():
         rows, cols = np.nonzero(band)
-        score, state = score_at(rows, cols)
-        score = np.nan_to_num(np.asarray(score, float), nan=0.0, neginf=0.0)
+        # In pieces: the interpolated fields of every component at every band pixel would be large.
+        parts = [score_at(rows[i:i + 2**17], cols[i:i + 2**17]) for i in range(0, rows.size, 2**17)]
+        score = np.nan_to_num(np.concatenate([np.asarray(p_[0], float) for p_ in parts]), nan=0.0, neginf=0.0)
+        state = np.concatenate([np.asarray(p_[1]) for p_ in parts])
+        del parts
         elevation = np.zeros(grown.shape, np.float32)
         elevation[rows, cols] = -score
         own = np.full(int(grown_c.max()) + 1, -2, np.int64)
