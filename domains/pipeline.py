@@ -355,7 +355,7 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
     elif reading.lattice is None or not reading.resolved:
         notes.append("No atomic lattice resolved: drift was not corrected.")
     # 4. What every other peak means, on the straightened image (drift smears peaks into sidebands).
-    fill = np.where(np.isfinite(corrected), corrected, np.nanmean(corrected))
+    fill = corrected if np.isfinite(corrected).all() else np.where(np.isfinite(corrected), corrected, np.nanmean(corrected))
     sup = (config.superlattice or "").lower()
     result = read_order(fill, pixel_size_nm=pixel, lattice_reading=reading, mask=mask,
                         peaks=None if drift_result is not None else peaks, leakage=config.leakage,
@@ -431,7 +431,9 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     # The same drift field straightens every map of the scan.
     corrected_maps, u = [np.asarray(m.data, float) for m in maps], None
     if drift_result is not None:
-        u = drift_result.u_nm
+        # The drift field on its own decimated grid (it is smooth on the scale of its sigma): no full-size copy.
+        u = drift_result.u_coarse_nm
+        u_pixel = [pixel[0] * drift_result.step, pixel[1] * drift_result.step]
         if corrected_maps:
             corrected_maps = list(drift_mod.correct_channels(np.stack(corrected_maps), drift_result, pixel_size_nm=pixel))
 
@@ -443,7 +445,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     # Isolated masked scan lines (glitches filled from their neighbours) do not cut the field: the lock-in
     # bridges them. Only masked regions several pixels thick (step edges, user masks) make pixels untrusted.
     trusted = trusted_mask(image.shape, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=_thick(mask))
-    fill = np.where(np.isfinite(corrected), corrected, np.nanmean(corrected))
+    fill = corrected if np.isfinite(corrected).all() else np.where(np.isfinite(corrected), corrected, np.nanmean(corrected))
     summary = {
         "input": {"source": topography.source, "shape": list(image.shape), "pixel_size_nm": list(pixel),
                   "channel": topography.channel, "bias_V": topography.bias_V, "setpoint_A": topography.setpoint_A},
@@ -471,9 +473,9 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                 ("spectrum", "Log power spectrum (Hann window) with the indexed peaks: "
                              + ", ".join(sorted({r for *_, r in marked})) + ".")]
     if u is not None:
-        out_maps["displacement/ux"] = (u[0].astype(np.float32), {**attrs, "units": "nm"})
-        out_maps["displacement/uy"] = (u[1].astype(np.float32), {**attrs, "units": "nm"})
-        figures["drift"] = report.image_figure(np.hypot(u[0], u[1]), pixel_size_nm=pixel, cmap="viridis",
+        out_maps["displacement/ux"] = (u[0].astype(np.float32), {**attrs, "pixel_size_nm": u_pixel, "units": "nm"})
+        out_maps["displacement/uy"] = (u[1].astype(np.float32), {**attrs, "pixel_size_nm": u_pixel, "units": "nm"})
+        figures["drift"] = report.image_figure(np.hypot(u[0], u[1]), pixel_size_nm=u_pixel, cmap="viridis",
                                                title="Drift |u| (Lawler–Fujita)", units="nm")
         overview.append(("drift", "Magnitude of the displacement field removed from every channel."))
     sections.append(("Overview", overview))
@@ -839,7 +841,7 @@ def _choose_sigma(config, order_q, lattice_q, moire_q, shape, pixel):
 def _drift_summary(result):
     if result is None:
         return None
-    u = np.hypot(*result.u_nm)
+    u = np.hypot(*result.u_coarse_nm)  # the samples of the smooth field (its decimated grid)
     return {
         "max_displacement_nm": float(np.nanmax(u)),
         "rms_displacement_nm": float(np.sqrt(np.nanmean(u**2))),
