@@ -1177,7 +1177,17 @@ def _bias_step(summary, tables, figures, sections, topo, corrected_maps, map_sca
                                     sigma_nm=sigma_nm, pixel_size_nm=pixel, bragg_q=bragg_q, mask=mask,
                                     register_maps=False)
     summary["bias_comparison"] = result.summary()
-    rows = result.contrast_rows()
+    # Units in the header: the map's values and amplitudes carry the unit of the maps' sidecar.
+    units = (map_scans[0].metadata or {}).get("units") or "arb. units"
+    token = "".join(ch if ch.isalnum() else "_" for ch in units).strip("_") or "value"
+
+    def with_unit(name):
+        import re
+
+        found = re.fullmatch(r"((?:amplitude_(?:q\d+|total))|map_mean)(_se)?", name)
+        return name if not found else f"{found.group(1)}_{token}{found.group(2) or ''}"
+
+    rows = [{with_unit(k): v for k, v in r.items()} for r in result.contrast_rows()]
     columns = list(rows[0]) if rows else ["domain", "bias_V"]
     tables["contrast"] = (columns, rows)
     verdict_rows = []
@@ -1206,8 +1216,8 @@ def _bias_step(summary, tables, figures, sections, topo, corrected_maps, map_sca
         curves = []
         for d in sorted({r["domain"] for r in rows}):
             mine = sorted((r for r in rows if r["domain"] == d), key=lambda r: r["bias_V"])
-            curves.append((f"domain {d}", [r["bias_V"] for r in mine], [r["map_mean"] for r in mine],
-                           [r["map_mean_se"] for r in mine]))
+            curves.append((f"domain {d}", [r["bias_V"] for r in mine], [r[f"map_mean_{token}"] for r in mine],
+                           [r[f"map_mean_{token}_se"] for r in mine]))
         figures["conductance"] = report.curves_figure(
             curves, xlabel="bias (V)", ylabel="mean map value", units=(map_scans[0].metadata or {}).get("units"),
             title="Per-domain mean conductance at each bias")

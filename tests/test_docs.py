@@ -118,6 +118,7 @@ def _generic(column: str) -> str:
     """
     column = re.sub(r"_q\d+", "_q1", column)
     column = re.sub(r"^member_\d+$", "member_1", column)
+    column = re.sub(r"^((?:amplitude_q1|amplitude_total|map_mean))_(?!se$)[A-Za-z0-9_]+?(_se)?$", r"\1_UNIT\2", column)
     return re.sub(r"^((?:amplitude_)?(?:mean|contrast|frame_contrast))_.+_at_[+-]\d+\.\d+V(_se)?$",
                   r"\1_UNIT_at_BIASV\2", column)
 
