@@ -596,8 +596,10 @@ def read_bundle_layers(path, *, lazy_threshold_bytes: int = BUNDLE_LAZY_BYTES) -
     layers = maps_layer_data(maps)
     pixel, shape = None, None
     if maps:
-        pixel = next(iter(maps.values()))[1]["pixel_size_nm"]
-        shape = tuple(next(iter(maps.values()))[0].shape[-2:])
+        # The input grid (labels, topograph): amplitude, phase and drift maps may sit on decimated grids.
+        key = next((k for k in ("labels", "topography") if k in maps), next(iter(maps)))
+        pixel = maps[key][1]["pixel_size_nm"]
+        shape = tuple(maps[key][0].shape[-2:])
     elif isinstance(summary.get("input"), dict):
         pixel = summary["input"].get("pixel_size_nm")
     if "topography" not in maps:

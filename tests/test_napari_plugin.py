@@ -565,3 +565,30 @@ def test_example_session_says_so_when_napari_is_missing():
                           env={**os.environ, "DOMAINS_EXAMPLE_HEADLESS": "1"})
     assert done.returncode == 0, done.stderr[-2000:]
     assert "napari is not installed" in done.stdout
+
+
+def test_maps_on_a_decimated_grid_keep_ids_and_defects_on_the_input_grid(tmp_path):
+    # The analysis writes amplitude, phase and drift on decimated grids (their own pixel_size_nm) and labels
+    # on the input grid; domain ids and defects are in input pixels, so they take the labels' scale.
+    shape, pixel, step = (40, 48), (0.05, 0.04), 4
+    labels = np.zeros(shape, np.int32)
+    labels[:, :23] = 1
+    labels[:, 25:] = 2
+    coarse = (shape[0] // step, shape[1] // step)
+    coarse_attrs = {"pixel_size_nm": [pixel[0] * step, pixel[1] * step]}
+    maps = {  # "amplitude" first: the reader must not take the first map's grid for the whole bundle
+        "amplitude/cdw_1": (np.ones(coarse, np.float32), {**coarse_attrs, "units": "nm"}),
+        "labels": (labels, {"pixel_size_nm": list(pixel), "units": "label"}),
+        "walls": (labels == 0, {"pixel_size_nm": list(pixel), "units": "bool"}),
+    }
+    defects = [{"component": 0, "winding": 1, "x_nm": 0.4, "y_nm": 0.5, "row": 10, "col": 10}]
+    summary = {"domains": {"count": 2}, "defects": {"count": 1, "positive": 1, "negative": 0, "list": defects}}
+    path = write_bundle(tmp_path / "b", summary=summary, provenance={"command_line": "test"}, maps=maps, tables={})
+    layers = {kw["name"]: (data, kw, kind) for data, kw, kind in _reader.read_bundle_layers(path)}
+    assert layers["amp cdw_1"][1]["scale"] == pytest.approx((0.2, 0.16))  # derived: step x pixel
+    for name in ("domains", "domain ids", "defects"):
+        assert layers[name][1]["scale"] == pytest.approx(pixel), name  # derived: the input grid
+    ids, _, _ = layers["domain ids"]
+    # derived: each id lies inside its own domain (columns 0-22 and 25-47 in input pixels)
+    cols = dict(zip(layers["domain ids"][1]["features"]["domain"], ids[:, 1]))
+    assert cols[1] < 23 and cols[2] >= 25
