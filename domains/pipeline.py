@@ -864,11 +864,14 @@ def _trusted_on_grid(grid_, sigma_nm, pixel, mask):
 
     Without a mask, :func:`domains.trusted_mask` is the product of a row and a column condition (the
     nearest untrusted pixel is the padding ring, straight above, below or beside): computed so, on the
-    samples only. With a mask the full-resolution mask is used.
+    samples only. With a mask, the same answer from distance transforms run only next to the masked
+    pixels (:func:`domains.drift._trusted`): one full-size boolean array, no full-size distances.
     """
     ny, nx = grid_.shape
     if mask is not None:
-        trusted = trusted_mask((ny, nx), sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask)
+        from .drift import _trusted
+
+        trusted = _trusted(np.asarray(mask, bool), (ny, nx), sigma_nm, pixel)
         return grid_.sample(trusted), float(trusted.mean())
     dy, dx = pixel
     limit, half = 2.5 * float(sigma_nm), 0.5 * min(dy, dx)

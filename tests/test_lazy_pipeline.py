@@ -111,3 +111,18 @@ def test_lazy_bundle_streams_maps_to_zarr(runs, tmp_path):
     assert bundle.summary["domains"]["count"] == memory.summary["domains"]["count"]
     # figures come from an overview of at most 1024 pixels per side (here the whole 512^2 frame)
     assert set(lazy.figures) == set(memory.figures)
+
+
+@pytest.mark.parametrize("with_mask", [False, True])
+def test_trusted_on_grid_equals_trusted_mask_sampled(with_mask):
+    from domains._grid import Grid
+    from domains._lockin import trusted_mask
+
+    shape, pixel, sigma = (300, 257), (0.1, 0.12), 0.5
+    mask = np.random.default_rng(1).random(shape) > 0.999 if with_mask else None
+    grid = Grid(shape, pixel, 3)
+    trusted_c, fraction = pipeline._trusted_on_grid(grid, sigma, pixel, mask)
+    # reference: domains.trusted_mask on the full grid (Euclidean distance transform), sampled
+    full = trusted_mask(shape, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
+    np.testing.assert_array_equal(trusted_c, grid.sample(full))
+    assert fraction == pytest.approx(full.mean(), rel=1e-12)
