@@ -112,7 +112,8 @@ def noise_floor(image, q, *, sigma_nm, pixel_size_nm, avoid_q=(), mask=None, tru
         )
     pick = np.linspace(0, len(candidates) - 1, min(n_probes, len(candidates))).round().astype(int)
     probes = np.array([candidates[i] for i in pick])
-    amps = amplitude(lockin(image, probes, sigma_nm=sigma_nm, pixel_size_nm=pixel_size_nm, mask=mask, step=step))
+    # np.asarray: a dask image gives a lazy lock-in; its samples are few enough to hold.
+    amps = np.asarray(amplitude(lockin(image, probes, sigma_nm=sigma_nm, pixel_size_nm=pixel_size_nm, mask=mask, step=step)))
     if trusted is None:
         # Near edges and masks fewer pixels are averaged and the noise is larger: keep away.
         trusted = trusted_mask(np.shape(image), sigma_nm=sigma_nm, pixel_size_nm=pixel_size_nm, mask=mask)

@@ -14,7 +14,7 @@ from . import report
 from ._errors import InputError
 from ._grid import Grid, choose_step
 from ._lockin import amplitude, choose_sigma, lockin, trusted_mask
-from ._scan import Scan
+from ._scan import Scan, pixel_size_pair
 
 ORDER_KINDS = ("auto", "commensurate", "stripes", "moire", "none")
 
@@ -263,7 +263,21 @@ def _component_names(prefix, k):
     return [f"{prefix}_{j + 1}" for j in range(k)]
 
 
-def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
+#: Largest side of the in-memory overview of a lazy topograph (its central crop) from which the
+#: peaks, the lattice and the order are read.
+OVERVIEW_PX = 2048
+
+
+def _central_crop(image, mask, size=OVERVIEW_PX):
+    """The central ``size`` x ``size`` (at most) window of a lazy image, in memory (float64), and its mask."""
+    ny, nx = image.shape
+    h, w = min(ny, size), min(nx, size)
+    r0, c0 = (ny - h) // 2, (nx - w) // 2
+    crop = np.asarray(image[r0:r0 + h, c0:c0 + w].compute(), dtype=float)
+    return crop, (None if mask is None else np.asarray(mask[r0:r0 + h, c0:c0 + w], bool))
+
+
+def find_order(topography: Scan, config: Config | None = None, *, on_step=None, lazy=True):
     """Level, index the spectrum, correct drift and index again: what order the image holds.
 
     The first three steps of :func:`analyze`, also what ``domains peaks`` shows: the
@@ -274,18 +288,25 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
     Parameters
     ----------
     topography : Scan
-        A 2-D image (in memory).
+        A 2-D image, in memory or dask-backed.
     config : Config, optional
         Parameters (defaults: automatic).
     on_step : callable, optional
         Called after each step (progress).
+    lazy : bool
+        Keep a dask-backed topograph lazy (float64 blocks): the peaks, the lattice and the
+        order are then read from its central crop of at most :data:`OVERVIEW_PX` squared
+        pixels, and ``image`` and ``corrected`` are dask arrays. A drift correction still
+        needs the whole image in memory (it is computed then, with a note). False: the
+        levelled image is computed first, as for an in-memory topograph.
 
     Returns
     -------
     dict
         ``image`` (levelled), ``mask``, ``spec`` (the indexing, with peak roles),
         ``drift`` (a :class:`domains.drift.DriftResult` or None), ``corrected`` (the
-        straightened image), ``notes`` and ``choices``.
+        straightened image), ``notes``, ``choices`` and ``lazy`` (whether ``image`` and
+        ``corrected`` are dask arrays).
 
     Examples
     --------
@@ -306,8 +327,21 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
     # The warning about per-line levelling becomes a note (the peaks tell whether it matters).
     first_lines = "difference" if config.line_method == "auto" else config.line_method
     levelled = level(topography, order=config.level_order, lines=first_lines, warn=False)
-    image = np.asarray(levelled.data, dtype=float)
+    from ._scan import _is_dask
+
+    lazy = bool(lazy) and _is_dask(levelled.data)
     mask = levelled.mask
+    if _is_dask(mask):
+        mask = np.asarray(mask.compute(), bool)
+    if lazy:
+        # Float64 blocks, as the in-memory run; the spectrum is read from the central crop.
+        image = levelled.data.astype(float)
+        view, view_mask = _central_crop(image, mask)
+        notes.append(f"Lazy run: peaks, lattice and order read from the central {view.shape[0]} x {view.shape[1]} "
+                     "pixels; lock-in, domains and maps from the whole image chunk by chunk.")
+    else:
+        image = np.asarray(levelled.data, dtype=float)
+        view, view_mask = image, mask
     found_in_level = (levelled.metadata or {}).get("level")
     if found_in_level and found_in_level.get("note"):
         notes.append("Levelling: " + found_in_level["note"])
@@ -318,9 +352,9 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
     from . import fourier
     from ._read_order import find_lattice, read_order
 
-    peaks = fourier.find_peaks(image, pixel_size_nm=pixel, mask=mask, max_peaks=60)
-    reading = find_lattice(peaks, shape=image.shape, pixel_size_nm=pixel, given=config.lattice, a_nm=config.a_nm)
-    near_axis = _peaks_near_qy_axis(peaks, image.shape, pixel)
+    peaks = fourier.find_peaks(view, pixel_size_nm=pixel, mask=view_mask, max_peaks=60)
+    reading = find_lattice(peaks, shape=view.shape, pixel_size_nm=pixel, given=config.lattice, a_nm=config.a_nm)
+    near_axis = _peaks_near_qy_axis(peaks, view.shape, pixel)
     line_method = first_lines
     if config.line_method == "auto":
         if near_axis:
@@ -330,13 +364,19 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
             # No order near the qy axis: Hann-weighted line means remove the offsets and leave every peak.
             image, _ = line_offsets(image, method="hann", mask=mask, warn=False)
             line_method = "difference, then hann"
+            view, view_mask = _central_crop(image, mask) if lazy else (image, mask)
     elif config.line_method in ("median", "mean", "hann") and near_axis:
         notes.append(f"Per-line {config.line_method} levelling removed modulations along y; "
                      f"{len(near_axis)} peak(s) lie near the qy axis and may be weakened.")
     choices["level"] = {"order": config.level_order, "line_method": line_method}
     if reading.lattice is not None and reading.source == "found":
-        reading = _refine_lattice(image, pixel, mask, reading, peaks)
+        reading = _refine_lattice(view, pixel, view_mask, reading, peaks)
     step("drift and order")
+    if lazy and config.drift and reading.lattice is not None and reading.resolved:
+        # The drift correction is not lazy yet: the whole levelled image is computed here.
+        image, lazy = np.asarray(image.compute(), dtype=float), False
+        view, view_mask = image, mask
+        notes.append("Lazy run: the drift correction needs the whole image in memory (it was computed there).")
 
     # 3. Drift (Lawler–Fujita) from the Bragg peaks.
     drift_result = None
@@ -355,20 +395,24 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
     elif reading.lattice is None or not reading.resolved:
         notes.append("No atomic lattice resolved: drift was not corrected.")
     # 4. What every other peak means, on the straightened image (drift smears peaks into sidebands).
-    fill = corrected if np.isfinite(corrected).all() else np.where(np.isfinite(corrected), corrected, np.nanmean(corrected))
+    if lazy:
+        fill, fill_mask = np.where(np.isfinite(view), view, np.nanmean(view)), view_mask
+    else:
+        fill = corrected if np.isfinite(corrected).all() else np.where(np.isfinite(corrected), corrected, np.nanmean(corrected))
+        fill_mask = mask
     sup = (config.superlattice or "").lower()
-    result = read_order(fill, pixel_size_nm=pixel, lattice_reading=reading, mask=mask,
+    result = read_order(fill, pixel_size_nm=pixel, lattice_reading=reading, mask=fill_mask,
                         peaks=None if drift_result is not None else peaks, leakage=config.leakage,
                         false_alarm=config.false_alarm, given_q=config.q_rad_per_nm,
                         given_superlattice=None if sup in ("", "none") else config.superlattice,
                         anisotropy_threshold=config.anisotropy_threshold)
-    spec = _spec_from_order(result, fill, pixel, mask, config)
+    spec = _spec_from_order(result, fill, pixel, fill_mask, config)
     if reading.lattice is None and spec["order_kind"] in ("none", "moire") and spec["moire_q"] is None:
         # No atoms resolved and no closed triplet among the peaks: look for a moiré triplet directly.
         from . import moire
 
         try:
-            spec["moire_q"] = np.asarray(moire.find_moire_q(image, pixel_size_nm=pixel, mask=mask))
+            spec["moire_q"] = np.asarray(moire.find_moire_q(view, pixel_size_nm=pixel, mask=view_mask))
             spec["result"].moire_q = spec["moire_q"]
             spec["order_kind"] = "moire"
             from dataclasses import replace as _replace
@@ -385,7 +429,7 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None):
     notes += spec["notes"]
     step("lock-in")
     return {"image": image, "mask": mask, "spec": spec, "drift": drift_result, "corrected": corrected,
-            "notes": notes, "choices": choices}
+            "notes": notes, "choices": choices, "lazy": lazy}
 
 
 def index_image(image, *, pixel_size_nm, mask=None, config=None):
@@ -424,9 +468,11 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
 
     pixel = topography.pixel_size_nm
     bar = _progress(8, progress)
-    found = find_order(topography, config, on_step=bar)
+    # A dask-backed topograph stays lazy when nothing else (maps, a grid) needs it in memory.
+    found = find_order(topography, config, on_step=bar, lazy=not maps and grid is None)
     image, mask, spec, drift_result = found["image"], found["mask"], found["spec"], found["drift"]
     corrected, notes, choices = found["corrected"], found["notes"], found["choices"]
+    lazy = found["lazy"]
     lattice_q = spec["bragg_q"]
     # The same drift field straightens every map of the scan.
     corrected_maps, u = [np.asarray(m.data, float) for m in maps], None
@@ -442,10 +488,21 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     sigma_nm, sigma_reason = _choose_sigma(config, order_q, lattice_q, spec["moire_q"], image.shape, pixel)
     choices["sigma_nm"] = {"value": sigma_nm, "why": sigma_reason}
 
+    # The decimated analysis grid (docs/methods.md §1): lock-in fields are band-limited, so the order,
+    # domains, walls and defects are computed on samples every `step` pixels and brought back.
+    grid_ = Grid(image.shape, tuple(pixel), config.grid_step or choose_step(sigma_nm, pixel, image.shape))
     # Isolated masked scan lines (glitches filled from their neighbours) do not cut the field: the lock-in
     # bridges them. Only masked regions several pixels thick (step edges, user masks) make pixels untrusted.
-    trusted = trusted_mask(image.shape, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=_thick(mask))
-    fill = corrected if np.isfinite(corrected).all() else np.where(np.isfinite(corrected), corrected, np.nanmean(corrected))
+    if lazy:
+        import dask.array as da
+
+        trusted_c, trusted_fraction = _trusted_on_grid(grid_, sigma_nm, pixel, _thick(mask))
+        finite_mean = float(da.nanmean(corrected).compute())
+        fill = da.where(da.isfinite(corrected), corrected, finite_mean)
+    else:
+        trusted = trusted_mask(image.shape, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=_thick(mask))
+        trusted_c, trusted_fraction = grid_.sample(trusted), float(trusted.mean())
+        fill = corrected if np.isfinite(corrected).all() else np.where(np.isfinite(corrected), corrected, np.nanmean(corrected))
     summary = {
         "input": {"source": topography.source, "shape": list(image.shape), "pixel_size_nm": list(pixel),
                   "channel": topography.channel, "bias_V": topography.bias_V, "setpoint_A": topography.setpoint_A},
@@ -458,14 +515,15 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         "bias_comparison": None,
         "drift": _drift_summary(drift_result),
         "sigma_nm": sigma_nm,
-        "trusted_fraction": float(trusted.mean()),
+        "trusted_fraction": trusted_fraction,
     }
     out_maps = {}
     tables = {}
     figures = {}
     sections = []
     attrs = {"pixel_size_nm": list(pixel)}
-    figures["topography"] = report.image_figure(image, pixel_size_nm=pixel, title="Topograph (levelled)",
+    shown, shown_pixel = _overview(image, pixel) if lazy else (image, pixel)
+    figures["topography"] = report.image_figure(shown, pixel_size_nm=shown_pixel, title="Topograph (levelled)",
                                                 units=topography.metadata.get("units", ""))
     marked = _marked_peaks(spec["result"])
     figures["spectrum"] = report.spectrum_figure(*spec["power"], peaks=marked)
@@ -481,19 +539,21 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     sections.append(("Overview", overview))
     bar("order and noise floor")
 
-    labels = np.zeros(image.shape, np.int32)
-    walls = np.zeros(image.shape, bool)
+    if lazy:
+        chunks = _tile_chunks(image.shape)
+        labels = da.zeros(image.shape, np.int32, chunks=chunks)
+        walls = da.zeros(image.shape, bool, chunks=chunks)
+    else:
+        labels = np.zeros(image.shape, np.int32)
+        walls = np.zeros(image.shape, bool)
     fields_used = None
-    # The decimated analysis grid (docs/methods.md §1): lock-in fields are band-limited, so the order,
-    # domains, walls and defects are computed on samples every `step` pixels and brought back.
-    grid_ = Grid(image.shape, tuple(pixel), config.grid_step or choose_step(sigma_nm, pixel, image.shape))
     step_, pc = grid_.step, grid_.coarse_pixel_nm
-    trusted_c = grid_.sample(trusted)
     choices["grid"] = {"step_px": step_, "pixel_size_nm": list(pc), "shape": list(grid_.coarse_shape),
                        "why": "given" if config.grid_step else "the lock-in's lossless step, at most sigma / 2"}
     if kind in ("commensurate", "stripes", "incommensurate"):
         names = _component_names("cdw" if kind != "stripes" else "stripe", len(order_q))
-        a_order = lockin(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask, step=step_)
+        # Coarse fields in memory (a dask input is demodulated chunk by chunk).
+        a_order = np.asarray(lockin(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask, step=step_))
         floor = order.noise_floor(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel,
                                   avoid_q=lattice_q if lattice_q is not None else (), mask=mask, trusted=trusted_c,
                                   false_alarm=config.false_alarm, step=step_)
@@ -578,10 +638,16 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                                     offsets_rad=state.offsets_rad)
             return at.score[0], at.state[0]
 
-        labels, walls = _to_input_grid(grid_, seg, score_at, confidence)
+        labels, walls = _to_input_grid(grid_, seg, score_at, confidence, lazy=lazy)
         # Areas, centroids and edge contact from the input-grid labels; amplitudes and phases from the samples.
-        domain_rows = measure.domain_table(labels, pixel_size_nm=pixel, state_names=state_names, amplitude=amp,
-                                           fields=fields_used, sample_labels=labels_c)
+        if lazy:
+            domain_rows, shown_labels, shown_walls = _domain_table_chunked(
+                labels, walls, pixel_size_nm=pixel, state_names=state_names, amplitude=amp, fields=fields_used,
+                sample_labels=labels_c, every=_overview_factor(image.shape))
+        else:
+            domain_rows = measure.domain_table(labels, pixel_size_nm=pixel, state_names=state_names, amplitude=amp,
+                                               fields=fields_used, sample_labels=labels_c)
+            shown_labels, shown_walls = labels, walls
         tables["domains"] = (measure.DOMAIN_COLUMNS, domain_rows)
         tables["walls"] = (measure.WALL_COLUMNS, wall_rows)
         summary["domains"] = measure.domain_summary(domain_rows, wall_rows, defects=defects)
@@ -601,7 +667,8 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                                                limits=(-math.pi, math.pi),
                                                title=f"Phase of {names[0]}" + (" (drift-free, relative)" if kind == "commensurate" else ""),
                                                units="rad")
-        figures["domains"] = report.domain_figure(image, labels, walls, pixel_size_nm=pixel, defects=defects,
+        figures["domains"] = report.domain_figure(shown, shown_labels, shown_walls, pixel_size_nm=shown_pixel,
+                                                  defects=defects,
                                                   states={r["domain"]: r["state"] for r in domain_rows})
         figures["areas"] = report.histogram_figure([r["area_nm2"] for r in domain_rows], xlabel="domain area (nm²)",
                                                    title=f"{len(domain_rows)} domains")
@@ -616,7 +683,11 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     else:
         bar("bias comparison and moiré", n=3)
     # The image the labels belong to (levelled, drift-corrected), so a viewer shows the bundle on its own.
-    out_maps["topography"] = (np.asarray(fill, np.float32), {**attrs, "units": topography.metadata.get("units", "nm")})
+    if lazy and kind in ("moire", "none"):
+        # The moiré maps are not lazy yet: the image is computed here.
+        fill, lazy = np.asarray(fill.compute()), False
+        notes.append("Lazy run: the moiré maps need the whole image in memory (it was computed there).")
+    out_maps["topography"] = (fill.astype(np.float32), {**attrs, "units": topography.metadata.get("units", "nm")})
     out_maps["labels"] = (labels.astype(np.int32), {**attrs, "units": "label"})
     out_maps["walls"] = (walls.astype(bool), {**attrs, "units": "bool"})
 
@@ -662,7 +733,18 @@ def _loop_confirms(field, defect, pixel, threshold):
     return winding == defect["winding"] and bool(np.abs(values).min() >= threshold)
 
 
-def _to_input_grid(grid_, seg, score_at, confidence):
+#: Side of the tiles (input pixels, aligned on the frame) in which labels are brought back to the input
+#: grid (:func:`_to_input_grid`); the input-grid maps of a lazy run are chunked so.
+TILE_PX = 2048
+
+
+def _tile_chunks(shape, tile=None):
+    """Chunks of the input grid in tiles of :data:`TILE_PX` aligned on the frame."""
+    tile = tile or TILE_PX
+    return tuple(tuple(min(tile, n - a) for a in range(0, n, tile)) for n in shape)
+
+
+def _to_input_grid(grid_, seg, score_at, confidence, lazy=False):
     """Labels and one-pixel walls on the input grid from a segmentation on the decimated grid.
 
     Away from walls every input pixel takes the domain of its nearest sample. Near walls (within one
@@ -676,43 +758,210 @@ def _to_input_grid(grid_, seg, score_at, confidence):
     the seeds are, as in :func:`domains.segment.segment_states`, the pixels confident of their
     domain's own state (score >= ``confidence``), so the floods start from smooth contours and meet
     on the valley of the score, not on the staircase of the samples.
+
+    The work is done tile by tile (:data:`TILE_PX`, aligned on the frame), each tile from a window
+    :func:`_band_halo` input pixels wider on every side, so that memory stays a few tiles whatever
+    the frame; the tiles are the same in memory and, with ``lazy``, as the chunks of the dask arrays
+    returned then, so both give the same labels. (A flood can follow a wall further than the halo,
+    so a frame larger than one tile may differ from a single whole-frame flood at a few pixels by
+    the wall; the ids come from the decimated grid and are the same in every tile.)
     """
     from scipy import ndimage
-    from skimage.segmentation import watershed
 
-    from .segment import thin_walls
-
+    chunks = _tile_chunks(grid_.shape)
     if grid_.step == 1:
-        return seg.labels, seg.walls
+        if not lazy:
+            return seg.labels, seg.walls
+        import dask.array as da
+
+        return da.from_array(seg.labels, chunks=chunks), da.from_array(seg.walls, chunks=chunks)
     grown_c = seg.grown
     big = np.iinfo(np.int32).max
     footprint = np.ones((3, 3), bool)
     lo = ndimage.minimum_filter(np.where(grown_c > 0, grown_c, big), footprint=footprint)
     hi = ndimage.maximum_filter(grown_c, footprint=footprint)
     band_c = ndimage.binary_dilation((grown_c > 0) & (lo != hi) & (lo < big), footprint)
-    grown = grid_.to_input(grown_c)
-    band = grid_.to_input(band_c) & (grown > 0)
+    has_c = (seg.labels > 0) | seg.walls
+    own = np.full(int(grown_c.max()) + 1, -2, np.int64)
+    for label, value in seg.state.items():
+        own[label] = value
+
+    halo = _band_halo(grid_.step)
+    ny, nx = grid_.shape
+
+    def tile(r0, r1, c0, c1):
+        # Labels (walls as -1) of input rows r0:r1 and columns c0:c1, from a window around them.
+        a, b, c, d = max(0, r0 - halo), min(ny, r1 + halo), max(0, c0 - halo), min(nx, c1 + halo)
+        code = _refine_window(grid_, grown_c, band_c, has_c, own, score_at, confidence, a, b, c, d)
+        return code[r0 - a:r1 - a, c0 - c:c1 - c]
+
+    if not lazy:
+        code = np.empty(grid_.shape, np.int32)
+        rows, cols = (np.cumsum((0,) + c) for c in chunks)
+        for r0, r1 in zip(rows[:-1], rows[1:]):
+            for c0, c1 in zip(cols[:-1], cols[1:]):
+                code[r0:r1, c0:c1] = tile(r0, r1, c0, c1)
+        return np.maximum(code, 0), code < 0
+    import dask.array as da
+
+    def block(template, block_info=None):
+        (r0, r1), (c0, c1) = block_info[None]["array-location"]
+        return tile(r0, r1, c0, c1)
+
+    code = da.map_blocks(block, da.empty(grid_.shape, np.int8, chunks=chunks), dtype=np.int32,
+                         meta=np.empty((0, 0), np.int32))
+    return da.maximum(code, 0), code < 0
+
+
+def _band_halo(step):
+    """Input pixels of context around a chunk for the band refinement of :func:`_to_input_grid`.
+
+    The band reaches about two samples (2 step pixels) from a change of domain and the flood inside
+    it starts from seeds at most that far away, but where the score is flat (untrusted margins) the
+    flood crosses plateaus in the order of arrival, which reaches further: 32 samples, measured on a
+    512^2 three-variant scene with 160-pixel tiles (16 of 262144 pixels differ from one whole-frame
+    flood at 32 samples, 421 at 16, 865 at 8), plus the one pixel thin walls need.
+    """
+    return 32 * int(step) + 2
+
+
+def _refine_window(grid_, grown_c, band_c, has_c, own, score_at, confidence, r0, r1, c0, c1):
+    """The input-grid labels of rows r0:r1, columns c0:c1 (walls as -1): see :func:`_to_input_grid`."""
+    from skimage.segmentation import watershed
+
+    from .segment import thin_walls
+
+    rows_i = np.minimum((np.arange(r0, r1) + grid_.step // 2) // grid_.step, grid_.coarse_shape[0] - 1)
+    cols_i = np.minimum((np.arange(c0, c1) + grid_.step // 2) // grid_.step, grid_.coarse_shape[1] - 1)
+    grown = grown_c[rows_i[:, None], cols_i[None, :]]
+    band = band_c[rows_i[:, None], cols_i[None, :]] & (grown > 0)
     if band.any():
         rows, cols = np.nonzero(band)
         # In pieces: the interpolated fields of every component at every band pixel would be large.
-        parts = [score_at(rows[i:i + 2**17], cols[i:i + 2**17]) for i in range(0, rows.size, 2**17)]
+        parts = [score_at(rows[i:i + 2**17] + r0, cols[i:i + 2**17] + c0) for i in range(0, rows.size, 2**17)]
         score = np.nan_to_num(np.concatenate([np.asarray(p_[0], float) for p_ in parts]), nan=0.0, neginf=0.0)
         state = np.concatenate([np.asarray(p_[1]) for p_ in parts])
         del parts
         elevation = np.zeros(grown.shape, np.float32)
         elevation[rows, cols] = -score
-        own = np.full(int(grown_c.max()) + 1, -2, np.int64)
-        for label, value in seg.state.items():
-            own[label] = value
         here = grown[rows, cols]
         core = (score >= confidence) & (np.asarray(state) == own[here])
         markers = np.where(band, 0, grown)
         markers[rows[core], cols[core]] = here[core]
         grown = watershed(elevation, markers=markers, mask=grown > 0).astype(np.int32)
     walls = thin_walls(grown)
-    has_domain = grid_.to_input((seg.labels > 0) | seg.walls)
-    labels = np.where(walls | ~has_domain, 0, grown).astype(np.int32)
-    return labels, walls
+    has_domain = has_c[rows_i[:, None], cols_i[None, :]]
+    return np.where(walls, -1, np.where(has_domain, grown, 0)).astype(np.int32)
+
+
+def _overview_factor(shape, max_px=report.FIGURE_MAX_PX):
+    """The stride that brings the longer side of ``shape`` to at most ``max_px`` pixels."""
+    return max(1, -(-max(shape) // max_px))
+
+
+def _overview(image, pixel):
+    """Every k-th pixel of a lazy image (k from :func:`_overview_factor`) in memory, and its pixel size."""
+    k = _overview_factor(image.shape)
+    return np.asarray(image[::k, ::k].compute()), (pixel[0] * k, pixel[1] * k)
+
+
+def _trusted_on_grid(grid_, sigma_nm, pixel, mask):
+    """The trusted samples of the decimated grid and the trusted fraction of the input grid.
+
+    Without a mask, :func:`domains.trusted_mask` is the product of a row and a column condition (the
+    nearest untrusted pixel is the padding ring, straight above, below or beside): computed so, on the
+    samples only. With a mask, the same answer from distance transforms run only next to the masked
+    pixels (:func:`domains.drift._trusted`): one full-size boolean array, no full-size distances.
+    """
+    ny, nx = grid_.shape
+    if mask is not None:
+        from .drift import _trusted
+
+        trusted = _trusted(np.asarray(mask, bool), (ny, nx), sigma_nm, pixel)
+        return grid_.sample(trusted), float(trusted.mean())
+    dy, dx = pixel
+    limit, half = 2.5 * float(sigma_nm), 0.5 * min(dy, dx)
+    rows_ok = np.minimum(np.arange(1, ny + 1), np.arange(ny, 0, -1)) * dy - half >= limit
+    cols_ok = np.minimum(np.arange(1, nx + 1), np.arange(nx, 0, -1)) * dx - half >= limit
+    fraction = float(rows_ok.mean() * cols_ok.mean())
+    return rows_ok[::grid_.step, None] & cols_ok[None, ::grid_.step], fraction
+
+
+def _domain_table_chunked(labels, walls, *, pixel_size_nm, state_names, amplitude, fields, sample_labels, every):
+    """:func:`domains.measure.domain_table` of lazy labels from per-chunk partial sums (pixel counts and
+    coordinate sums per label, combined exactly), and every ``every``-th pixel of the labels and walls
+    (for the figure), in one pass over the labels.
+    """
+    import dask
+    import dask.array as da
+
+    dy, dx = pixel_size_pair(pixel_size_nm)
+    ny, nx = labels.shape
+    n = int(max(np.max(sample_labels, initial=0), 0)) + 1
+    starts = [np.cumsum((0,) + c[:-1]) for c in labels.chunks]
+
+    def sums(block, r0, c0):
+        block = np.asarray(block)
+        flat = block.ravel()
+        r, c = np.divmod(np.arange(flat.size), block.shape[1])
+        size = max(n, int(flat.max(initial=0)) + 1)
+        out = np.zeros((3, size))
+        out[0] = np.bincount(flat, minlength=size)
+        out[1] = np.bincount(flat, weights=r + r0, minlength=size)
+        out[2] = np.bincount(flat, weights=c + c0, minlength=size)
+        return out
+
+    blocks = labels.to_delayed()
+    parts = [dask.delayed(sums)(blocks[i, j], int(starts[0][i]), int(starts[1][j]))
+             for i in range(blocks.shape[0]) for j in range(blocks.shape[1])]
+    edges = [labels[0, :], labels[-1, :], labels[:, 0], labels[:, -1]]
+    parts, edges, shown_labels, shown_walls = dask.compute(parts, edges, labels[::every, ::every],
+                                                           walls[::every, ::every])
+    size = max(p.shape[1] for p in parts)
+    total = np.zeros((3, size))
+    for p in parts:
+        total[:, :p.shape[1]] += p
+    touching = set(int(v) for e in edges for v in np.unique(e))
+    # Amplitudes and phases from the samples, as measure.domain_table reads them.
+    flat = np.clip(np.asarray(sample_labels), 0, None).ravel()
+    m = max(size, int(flat.max(initial=0)) + 1)
+
+    def label_sum(values):
+        finite = np.isfinite(values)
+        return (np.bincount(flat, weights=np.where(finite, values, 0).ravel(), minlength=m),
+                np.bincount(flat, weights=finite.ravel().astype(float), minlength=m))
+
+    amp = np.asarray(amplitude, dtype=float)
+    amp = amp[None] if amp.ndim == 2 else amp
+    amp_sums = [label_sum(a) for a in amp]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_amp = sum(t for t, _ in amp_sums) / sum(c for _, c in amp_sums)
+    phases = []
+    for f in fields:
+        f = np.asarray(f)
+        unit = f / np.where(np.abs(f) > 0, np.abs(f), 1)
+        re, cnt = label_sum(unit.real)
+        im, _ = label_sum(unit.imag)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            phases.append(np.degrees(np.angle((re + 1j * im) / cnt)))
+    rows = []
+    for lab in range(1, size):
+        count = int(total[0, lab])
+        if count == 0:
+            continue
+        rows.append({
+            "domain": lab,
+            "state": (state_names or {}).get(lab, ""),
+            "area_nm2": float(count * dx * dy),
+            "equivalent_diameter_nm": float(2 * math.sqrt(count * dx * dy / math.pi)),
+            "centroid_x_nm": float(total[2, lab] / count * dx),
+            "centroid_y_nm": float(total[1, lab] / count * dy),
+            "mean_amplitude": float(mean_amp[lab]),
+            "mean_phase_deg": ";".join(f"{p[lab]:.1f}" for p in phases),
+            "touches_edge": lab in touching,
+            "n_pixels": count,
+        })
+    return rows, shown_labels, shown_walls
 
 
 def _variant_of(name):
