@@ -696,10 +696,14 @@ class MoireMaps:
     summary: dict = field(default_factory=dict)
     #: Reference wavevectors of the lock-in (3, 2), rad/nm; its phases are relative to them.
     lockin_q_rad_per_nm: np.ndarray = None
-    #: Pixel (row, col) of each sample of the lock-in on the grid of independent patches, (n, 2).
+    #: Pixel (row, col) of each lock-in sample for region fits (:func:`region_fit`), (n, 2).
     patch_rc: np.ndarray = None
+    #: Grid indices (i, j) of those samples, (n, 2).
+    patch_ij: np.ndarray = None
     #: The lock-in fields A_j at those samples, (3, n) complex.
     patch_lockin: np.ndarray = None
+    #: Pixels that entered the lock-in (finite and not masked).
+    valid: np.ndarray = None
 
 
 def _solve_orientation(K, a_nm, poisson, near=None):
@@ -920,14 +924,16 @@ def moire_maps(image, moire_q=None, *, pixel_size_nm, a_nm=None, bragg_q=None, s
     tri = triangle_twist(maxima, a_nm)
 
     t = trusted & ~undefined
-    rc = _patch_grid(image.shape, sigma_nm, pixel_size)
+    rc, ij = _patch_grid(image.shape, sigma_nm, pixel_size)
     maps = MoireMaps(
         mode=mode, pixel_size_nm=pixel_size, sigma_nm=float(sigma_nm), a_nm=float(a_nm), poisson=poisson,
         moire_q_rad_per_nm=K, bragg_q_rad_per_nm=G, local_q_rad_per_nm=np.moveaxis(kloc, 0, 1),
         amplitude=2 * np.abs(a), period_nm=period, period_nm_err=period_err, twist_deg=theta,
         twist_deg_err=theta_err, heterostrain_percent=eps, heterostrain_percent_err=eps_err,
         heterostrain_angle_deg=angle, trusted=trusted, maxima_nm=maxima, triangles=tri, summary={},
-        lockin_q_rad_per_nm=np.asarray(k_used, float), patch_rc=rc, patch_lockin=a[:, rc[:, 0], rc[:, 1]],
+        lockin_q_rad_per_nm=np.asarray(k_used, float), patch_rc=rc, patch_ij=ij,
+        patch_lockin=a[:, rc[:, 0], rc[:, 1]],
+        valid=np.isfinite(image) if mask is None else np.isfinite(image) & ~np.asarray(mask, bool),
     )
     fit = region_fit(maps, t)
     wl = _wavelengths(K) if fit is None else fit["wavelengths_nm"]
@@ -980,15 +986,21 @@ _PHI_2 = 0.9772498680518208  # standard normal CDF at 2: a 2-sigma interval hold
 
 
 def _patch_grid(shape, sigma_nm, pixel_size):
-    """Pixels (row, col) of a grid of independent lock-in patches, spacing 2√π σ, centred on the frame."""
-    axes = []
+    """Lock-in sample pixels (row, col) at half the fit's spacing, centred on the frame, and their grid indices.
+
+    A region's fit uses one of the four sub-grids of even or odd indices (spacing
+    :data:`PATCH_SPACING_SIGMA` σ), the one that puts most samples inside it.
+    """
+    axes, index = [], []
     for n, d in zip(shape, pixel_size):
-        step = PATCH_SPACING_SIGMA * float(sigma_nm) / d
+        step = 0.5 * PATCH_SPACING_SIGMA * float(sigma_nm) / d
         centre = (n - 1) / 2
         k = int(math.floor(centre / step))
         axes.append(np.clip(np.round(centre + step * np.arange(-k, k + 1)).astype(int), 0, n - 1))
+        index.append(np.arange(2 * k + 1))
     rr, cc = np.meshgrid(*axes, indexing="ij")
-    return np.stack([rr.ravel(), cc.ravel()], axis=1)
+    ii, jj = np.meshgrid(*index, indexing="ij")
+    return np.stack([rr.ravel(), cc.ravel()], axis=1), np.stack([ii.ravel(), jj.ravel()], axis=1)
 
 
 def _geometry(K, *, mode, a_nm, poisson, G, near=None):
@@ -1004,32 +1016,59 @@ def _geometry(K, *, mode, a_nm, poisson, G, near=None):
                      float(_wavelengths(K).mean())]), G
 
 
+def _edge_phases(valid, rc, dk, sigma_nm, pixel_size):
+    """Phase that the normalised lock-in adds, near invalid pixels, to components detuned by dk from the reference.
+
+    For a component a exp(i(q + dk).r) the lock-in at q gives a exp(i dk.r) B(r) with
+    B(r) = sum_u G(u) w(r + u) exp(i dk.u) (w the valid pixels) [derived]; B is real where the
+    Gaussian's reach (4 sigma) holds no invalid pixel. Returns arg B, shape (len(dk), len(rc)).
+    """
+    dy, dx = pixel_size
+    out = np.zeros((len(dk), len(rc)))
+    if valid is None:
+        return out
+    ry, rx = int(math.ceil(4 * sigma_nm / dy)), int(math.ceil(4 * sigma_nm / dx))
+    uy, ux = np.arange(-ry, ry + 1) * dy, np.arange(-rx, rx + 1) * dx
+    g = np.exp(-uy[:, None] ** 2 / (2 * sigma_nm**2)) * np.exp(-ux[None, :] ** 2 / (2 * sigma_nm**2))
+    padded = np.pad(np.asarray(valid, bool), ((ry, ry), (rx, rx)), constant_values=False)
+    waves = [np.exp(1j * (d[0] * ux[None, :] + d[1] * uy[:, None])) for d in np.asarray(dk, float)]
+    for i, (r, c) in enumerate(rc):
+        window = padded[r:r + 2 * ry + 1, c:c + 2 * rx + 1]
+        if window.all():
+            continue
+        gw = g * window
+        for j, wave in enumerate(waves):
+            out[j, i] = np.angle(np.sum(gw * wave))
+    return out
+
+
 def _fit_component(z, x, y, dk0, chol):
     """Plane phi0 + dk.(r - r_mean) through the wrapped phases of z by generalised least squares.
 
     The phase noise of sample i has variance proportional to 1/|z_i|^2 and samples correlate
-    as the lock-in does, rho_ij = exp(-d_ij^2 / 4 sigma^2) (``chol``: its Cholesky factor);
-    the model is whitened by L^-1 D with D = diag|z|. Returns dk, its covariance (scaled by the
+    as the lock-in does, rho_ij = exp(-d_ij^2 / 4 sigma^2);
+    the model is whitened by L^-1 D with D = diag|z| (``chol`` holds L^-1, L the correlation's
+    Cholesky factor). Returns dk, its covariance (scaled by the
     whitened residual variance) and the degrees of freedom.
     """
-    from scipy.linalg import solve_triangular
-
     n = z.size
     xm, ym = x - x.mean(), y - y.mean()
     X = np.stack([np.ones(n), xm, ym], axis=1)
     d = np.abs(z) / np.sqrt(np.mean(np.abs(z) ** 2))
+    whiten = chol * d[None, :]  # L^-1 D, L the Cholesky factor of the correlation (chol holds L^-1)
 
     def white(v):
-        return solve_triangular(chol, d[:, None] * v if v.ndim == 2 else d * v, lower=True)
+        return whiten @ v
 
     Xw = white(X)
+    solve = np.linalg.pinv(Xw)
     phi = np.angle(z)
     w = d**2
     p = np.array([np.angle(np.sum(w * z * np.exp(-1j * (dk0[0] * xm + dk0[1] * ym)))), dk0[0], dk0[1]])
-    for _ in range(20):
+    for _ in range(50):
         model = X @ p
         target = model + np.angle(np.exp(1j * (phi - model)))
-        new = np.linalg.lstsq(Xw, white(target), rcond=None)[0]
+        new = solve @ white(target)
         done = np.allclose(new, p, rtol=0, atol=1e-12)
         p = new
         if done:
@@ -1044,18 +1083,23 @@ def _fit_component(z, x, y, dk0, chol):
 def region_fit(maps, region):
     """Moiré wavevectors, twist, heterostrain and period of one region, with calibrated errors.
 
-    The lock-in field of each moiré component is read on a grid of independent
-    patches (spacing 2√π σ, :data:`PATCH_SPACING_SIGMA`) inside ``region``; a
-    plane φ0 + δk·r fitted to the (wrapped) phases by weighted least squares
-    (weights |A|²) gives the region's wavevector q_j + δk_j and its covariance
-    from the measured phase scatter about the plane (so it holds noise and any
-    real variation of the field). The 1σ errors are scaled by t_ν(0.9772)/2
-    (Student t, ν = n − 3), so that ±2 errors hold 95.45 % with a scatter
-    estimated from few patches (JCGM 100:2008, G.3), and by the Birge ratio
-    of the closure k1 + k2 + k3 = 0 (exact for any homogeneous layer
-    transform) when the three wavevectors disagree beyond their errors (a
-    χ² test of the closure at 5 %; R. T. Birge, Phys. Rev. 40, 207 (1932)). Twist, heterostrain, its axis and
-    the mean period follow from the three wavevectors (docs/methods.md §4); their
+    The lock-in field of each moiré component is read on a grid of samples
+    √2 σ apart (:data:`PATCH_SPACING_SIGMA`) inside ``region``; a plane
+    φ0 + δk·r fitted to the (wrapped) phases by generalised least squares gives
+    the region's wavevector q_j + δk_j. The samples' phase noise has variance
+    ∝ 1/|A|² and correlates between samples as the lock-in of white noise does,
+    exp(−d²/4σ²) [derived]; the fit whitens both, and its covariance is
+    scaled by the measured (whitened) phase scatter about the plane, so it
+    holds the noise actually present and any real variation of the field, and
+    its effective number of independent patches is that of the region's area
+    over the lock-in's reach. The 1σ errors are scaled by t_ν(0.9772)/2
+    (Student t, ν = n − 3), so that ±2 errors hold 95.45 % although the
+    scatter is estimated (JCGM 100:2008, G.3), and by the Birge ratio of the
+    closure k1 + k2 + k3 = 0 (exact for any homogeneous layer transform)
+    when the three wavevectors disagree beyond their errors (a χ² test of the
+    closure at 5 %; R. T. Birge, Phys. Rev. 40, 207 (1932)). Twist,
+    heterostrain, its axis and the mean period follow from the three
+    wavevectors (docs/methods.md §4); their
     errors are propagated through the Jacobian (central differences).
 
     Parameters
@@ -1072,7 +1116,8 @@ def region_fit(maps, region):
         and their ``*_err`` (1σ), ``wavelengths_nm``, ``moire_q_rad_per_nm`` (3, 2),
         ``moire_q_cov`` (3, 2, 2 covariance of each wavevector, (rad/nm)²), ``bragg_q_rad_per_nm``,
         ``n_patches``, ``dof``, ``closure_ratio`` (Birge ratio, 1 when the three agree
-        within their errors); None when the region holds fewer than four patches.
+        within their errors); None when the region holds fewer than four samples
+        or they lie on one row or column.
 
     References
     ----------
@@ -1100,14 +1145,24 @@ def region_fit(maps, region):
         raise InputError(f"region must be a bool map of shape {maps.trusted.shape} for these moiré maps")
     rc = maps.patch_rc
     z_all = maps.patch_lockin
-    inside = region[rc[:, 0], rc[:, 1]] & np.all(np.isfinite(z_all), axis=0) & np.all(z_all != 0, axis=0)
+    usable = region[rc[:, 0], rc[:, 1]] & np.all(np.isfinite(z_all), axis=0) & np.all(z_all != 0, axis=0)
+    # Of the four sub-grids at the fit's spacing, the one with most samples in the region.
+    parity = maps.patch_ij % 2
+    best = max(((oi, oj) for oi in (0, 1) for oj in (0, 1)),
+               key=lambda o: int(np.sum(usable & (parity[:, 0] == o[0]) & (parity[:, 1] == o[1]))))
+    inside = usable & (parity[:, 0] == best[0]) & (parity[:, 1] == best[1])
     n = int(inside.sum())
     if n < 4:
         return None
     dy, dx = maps.pixel_size_nm
     x, y = rc[inside, 1] * dx, rc[inside, 0] * dy
+    if np.ptp(x) == 0 or np.ptp(y) == 0:
+        return None  # samples on one line fix the wavevector along it only
     d2 = (x[:, None] - x[None]) ** 2 + (y[:, None] - y[None]) ** 2
-    chol = np.linalg.cholesky(np.exp(-d2 / (4 * maps.sigma_nm**2)) + 1e-10 * np.eye(n))
+    from scipy.linalg import solve_triangular
+
+    lower = np.linalg.cholesky(np.exp(-d2 / (4 * maps.sigma_nm**2)) + 1e-10 * np.eye(n))
+    chol = solve_triangular(lower, np.eye(n), lower=True)  # L^-1, applied to every component
     # Start from the |A|^2-weighted mean local wavevector of the region, so that the wrapped
     # phases of neighbouring patches differ by less than pi.
     kq = maps.local_q_rad_per_nm  # (3, 2, row, col)
@@ -1115,14 +1170,25 @@ def region_fit(maps, region):
     ok = np.all(np.isfinite(kq), axis=1) & region[None]
     k_used = np.asarray(maps.lockin_q_rad_per_nm, float)
     K, covs, dof = [], [], n - 3
+    dk = []
     for j in range(len(k_used)):
         wj = np.where(ok[j], w[j], 0.0)
-        dk0 = (np.array([np.sum(np.where(ok[j], kq[j, c], 0.0) * wj) for c in range(2)]) / wj.sum()
-               - k_used[j]) if wj.sum() > 0 else np.zeros(2)
-        dk, cov, dof = _fit_component(z_all[j, inside], x, y, dk0, chol)
-        K.append(k_used[j] + dk)
-        covs.append(cov)
-    K, covs = np.array(K), np.array(covs)
+        dk.append((np.array([np.sum(np.where(ok[j], kq[j, c], 0.0) * wj) for c in range(2)]) / wj.sum()
+                   - k_used[j]) if wj.sum() > 0 else np.zeros(2))
+    z = z_all[:, inside]
+    bias = np.zeros(z.shape)
+    for _ in range(4):
+        fits = [_fit_component(z[j] * np.exp(-1j * bias[j]), x, y, dk[j], chol) for j in range(len(k_used))]
+        dk = [f[0] for f in fits]
+        # Near the frame edge or a mask the normalised lock-in shifts the phase of a component detuned
+        # from its reference; remove that shift, computed for the fitted detuning, and fit again.
+        new = _edge_phases(maps.valid, rc[inside], np.array(dk), maps.sigma_nm, maps.pixel_size_nm)
+        if np.max(np.abs(new - bias), initial=0.0) < 1e-6:
+            break
+        bias = new
+    K = k_used + np.array(dk)
+    covs = np.array([f[1] for f in fits])
+    dof = fits[0][2]
     # Student t with nu = n - 3: +-2 errors hold 95.45 % although the scatter comes from n patches.
     t_factor = float(stats.t.ppf(_PHI_2, dof)) / 2
     closure = K.sum(axis=0)
@@ -1453,13 +1519,23 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
         min_area_nm2 = (math.pi * float(resolution_nm) ** 2 if resolution_nm is not None
                         else 0.01 * use.sum() * area_px)
 
-    # Greedy histogram levels.
+    # Greedy histogram levels, from the pixels where the twist is flat at the maps' resolution: across
+    # a boundary the maps blend two twists over about 2.6 sigma, and the blend's values are no level.
+    # Flat: the twist changes by less than half a tolerance over one resolution length.
+    if resolution_nm is not None:
+        filled = np.where(np.isfinite(twist), twist, np.nanmedian(values))
+        gy, gx = np.gradient(filled, *pixel_size)
+        flat = use & (np.hypot(gx, gy) * float(resolution_nm) <= tolerance_deg / 2)
+        if flat.any():
+            values = twist[flat]
     levels = []
     remaining = np.sort(values)
     while remaining.size:
         lo = np.searchsorted(remaining, remaining - tolerance_deg / 2, side="left")
         hi = np.searchsorted(remaining, remaining + tolerance_deg / 2, side="right")
         i = int(np.argmax(hi - lo))
+        if (hi[i] - lo[i]) * area_px < min_area_nm2:
+            break  # no level left with the area of a domain (greedy: later windows hold fewer pixels)
         inside = remaining[lo[i]:hi[i]]
         level = float(np.mean(inside))
         levels.append(level)
@@ -1561,6 +1637,10 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
 #: fraction of the smaller level's density (the half-maximum convention for resolving two peaks;
 #: common practice, no source).
 DIP_RATIO = 0.5
+
+#: A twist domain's own values are fitted this many sigma from its walls, where the lock-in's kernel
+#: puts Phi(-2) = 2.3 % of its weight across the wall [derived].
+WALL_MARGIN_SIGMA = 2.0
 
 #: Two twist domains disagree when their values differ by more than this many combined errors.
 DISAGREE_SIGMA = 3.0
@@ -1674,7 +1754,7 @@ def moire_fields(maps, domains):
     t = maps.trusted & np.isfinite(maps.twist_deg)
     labels = np.asarray(domains.labels)
     walls = np.asarray(domains.walls if domains.walls is not None else domains.boundaries, bool)
-    far = ndimage.distance_transform_edt(~walls, sampling=maps.pixel_size_nm) > 2 * maps.sigma_nm
+    far = ndimage.distance_transform_edt(~walls, sampling=maps.pixel_size_nm) > WALL_MARGIN_SIGMA * maps.sigma_nm
     total = float((labels > 0).sum())
     table = []
     for row in domains.table:
@@ -1685,12 +1765,24 @@ def moire_fields(maps, domains):
             out[key] = math.nan if fit is None else fit[key]
             out[f"{key}_err"] = math.nan if fit is None else fit[f"{key}_err"]
         if fit is None:
-            # Too small for four independent patches: the mean of the local map, without an error.
-            inside = (labels == lab) & t
-            for key, name in (("twist_deg", "twist_deg"), ("period_nm", "period_nm"),
-                              ("heterostrain_percent", "heterostrain_percent"),
-                              ("heterostrain_angle_deg", "heterostrain_angle_deg")):
-                out[key] = float(np.nanmean(getattr(maps, name)[inside])) if inside.any() else math.nan
+            # No room for a plane fit (narrower than the lock-in's reach on both sides of its walls):
+            # the mean of the local maps over the domain's core, and their spread there as a
+            # (conservative) error; the core excludes the band where two twists blend.
+            inside = (np.asarray(domains.core) == lab) & t if domains.core is not None else (labels == lab) & t
+            for key in ("twist_deg", "period_nm", "heterostrain_percent"):
+                values = getattr(maps, key)[inside]
+                values = values[np.isfinite(values)]
+                out[key] = float(values.mean()) if values.size else math.nan
+                out[f"{key}_err"] = float(values.std()) if values.size > 1 else math.nan
+            doubled = np.radians(2 * maps.heterostrain_angle_deg[inside])
+            doubled = doubled[np.isfinite(doubled)]
+            if doubled.size > 1:
+                resultant = np.mean(np.exp(1j * doubled))
+                out["heterostrain_angle_deg"] = float(np.degrees(np.angle(resultant)) / 2 % 180)
+                # circular standard deviation of the doubled angle, halved (Mardia & Jupp 2000, §2.3.4)
+                spread = math.sqrt(max(-2 * math.log(max(abs(resultant), 1e-300)), 0.0))
+                out["heterostrain_angle_deg_err"] = float(min(np.degrees(spread) / 2, 180 / math.sqrt(12)))
+        out["error_from"] = "fit" if fit is not None else "spread"
         out.update({
             "twist_deg_mean": row["twist_deg_mean"], "twist_deg_std": row["twist_deg_std"],
             "area_nm2": row["area_nm2"],
