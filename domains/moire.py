@@ -1525,9 +1525,7 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
     if resolution_nm is not None:
         filled = np.where(np.isfinite(twist), twist, np.nanmedian(values))
         gy, gx = np.gradient(filled, *pixel_size)
-        flat = use & (np.hypot(gx, gy) * float(resolution_nm) <= tolerance_deg / 2)
-        if flat.any():
-            values = twist[flat]
+        values = twist[use & (np.hypot(gx, gy) * float(resolution_nm) <= tolerance_deg / 2)]
     levels = []
     remaining = np.sort(values)
     while remaining.size:
@@ -1717,7 +1715,8 @@ def moire_fields(maps, domains):
     lock-in does not mix in the neighbour), with calibrated errors
     (:func:`region_fit`). Over the trusted frame each local map is
     summarised by its median and quartiles. A quantity *varies* when two
-    twist domains disagree by more than 3 combined errors; it is
+    twist domains, or two quarters of the trusted frame fitted on their own,
+    disagree by more than 3 combined errors; it is
     *multimodal* when, besides, the density of its trusted pixels halfway
     between two disagreeing levels falls below half the density at the
     smaller level (a dip between separate modes, :data:`DIP_RATIO`), which
@@ -1793,6 +1792,20 @@ def moire_fields(maps, domains):
         })
         table.append(out)
 
+    # Does the field vary where no two twist domains tell? The four quarters of the trusted frame, each
+    # fitted on its own, must agree within DISAGREE_SIGMA combined errors (a gradient fails this).
+    rows_t, cols_t = np.nonzero(t)
+    quarters = []
+    if rows_t.size:
+        r_mid, c_mid = np.median(rows_t), np.median(cols_t)
+        rr, cc = np.ogrid[:t.shape[0], :t.shape[1]]
+        for top in (True, False):
+            for left in (True, False):
+                part = t & ((rr < r_mid) if top else (rr >= r_mid)) & ((cc < c_mid) if left else (cc >= c_mid))
+                fit = region_fit(maps, part)
+                if fit is not None:
+                    quarters.append(fit)
+
     summary, notes = {}, []
     for key, name, unit, digits in _FIELDS:
         pixels = getattr(maps, key)[t]
@@ -1807,6 +1820,9 @@ def moire_fields(maps, domains):
             kind = "varies"
             if min(_dip_ratios(pixels, [g[0] for g in groups])) < DIP_RATIO:
                 kind = "multimodal"
+        elif len(_groups(np.array([f[key] for f in quarters]), np.array([f[f"{key}_err"] for f in quarters]),
+                         np.ones(len(quarters)))) > 1:
+            kind = "varies"
         summary[f"{key}_distribution"] = kind
         area = sum(r["area_nm2"] for r in table) or 1.0
         summary[f"{key}_levels"] = [{"value": float(g[0]), "err": float(g[1]), "area_fraction": float(g[2] / area)}
@@ -1820,8 +1836,9 @@ def moire_fields(maps, domains):
             notes.append(f"The {name} is multimodal: twist domains at {modes}; no single {name} describes the "
                          f"frame ({spread}).")
         elif kind == "varies":
-            notes.append(f"The {name} varies over the frame ({spread}): the {len(rows)} twist domains differ beyond "
-                         "their errors, without separate modes.")
+            why = (f"its {len(rows)} twist domains differ beyond their errors, without separate modes" if len(groups) > 1
+                   else "the quarters of the frame differ beyond their errors")
+            notes.append(f"The {name} varies over the frame ({spread}): {why}.")
         if kind != "uniform":
             summary[key] = float(median)
             summary[f"{key}_err"] = None

@@ -1505,9 +1505,8 @@ def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, im
     choices["sigma_nm"] = {"value": maps.sigma_nm, "why": "the moiré lock-in's width: leakage of the nearest moiré "
                            "peak or the DC term below 0.2 % (domains.moire.moire_maps)"}
     valid = np.ones(image.shape, bool) if mask is None else ~np.asarray(mask, bool)
-    # Two twists blend over about 2 sigma: a twist region must hold a disc of that diameter.
     twist = moire.twist_domains(maps.twist_deg, pixel_size_nm=pixel, tolerance_deg=config.twist_tolerance_deg,
-                                twist_err_deg=maps.twist_deg_err, resolution_nm=2 * maps.sigma_nm,
+                                twist_err_deg=maps.twist_deg_err, resolution_nm=maps.sigma_nm,
                                 min_area_nm2=config.min_domain_area_nm2, trusted=maps.trusted, valid=valid)
     fields = moire.moire_fields(maps, twist)
     summary["moire"] = {**maps.summary, **fields.summary, "twist_domains": len(twist.table),
@@ -1589,6 +1588,11 @@ def _moire_headline(moire):
         if key == "twist_deg" and moire.get("twist_domains") is not None:
             text += f" ({moire['twist_domains']} twist domains)"
         if key == "heterostrain_percent" and kind == "uniform" and moire.get("heterostrain_angle_deg") is not None:
-            text += f" along {_pm(moire['heterostrain_angle_deg'], moire.get('heterostrain_angle_deg_err'), 'deg', 3)}"
+            err = moire.get("heterostrain_percent_err")
+            if err is not None and np.isfinite(err) and value < 2 * err:
+                # A magnitude within two errors of zero: its axis means nothing.
+                text += " (consistent with zero; axis undetermined)"
+            else:
+                text += f" along {_pm(moire['heterostrain_angle_deg'], moire.get('heterostrain_angle_deg_err'), 'deg', 3)}"
         rows[name] = text
     return rows
