@@ -672,6 +672,8 @@ class MoireMaps:
 
     Maps are (row, col) on the input grid, NaN where undefined; ``trusted``
     marks pixels at least 2.5 sigma from the frame edge and masked pixels.
+    The lock-in samples (``patch_*``, ``lockin_q_rad_per_nm``, ``valid``) let
+    :func:`region_fit` measure any region's wavevectors with calibrated errors.
     """
 
     mode: str
@@ -796,7 +798,11 @@ def moire_maps(image, moire_q=None, *, pixel_size_nm, a_nm=None, bragg_q=None, s
         from the white-noise level of the image), NaN where a moiré component's
         amplitude falls below a quarter of its median (walls, defects), the
         moiré ``maxima_nm`` and
-        per-triangle twists (:func:`triangle_twist`), and a ``summary`` dict.
+        per-triangle twists (:func:`triangle_twist`), and a ``summary`` dict
+        whose period, twist, heterostrain and axis, with their 1σ ``*_err``,
+        come from :func:`region_fit` over the trusted frame (errors calibrated
+        on the measured phase noise; docs/methods.md §4). For a field that
+        varies, see :func:`twist_domains` and :func:`moire_fields`.
 
     Raises
     ------
@@ -1139,6 +1145,7 @@ def region_fit(maps, region):
     (True, True)
     """
     from scipy import stats
+    from scipy.linalg import solve_triangular
 
     region = np.asarray(region, bool)
     if maps.patch_rc is None or region.shape != maps.trusted.shape:
@@ -1159,8 +1166,6 @@ def region_fit(maps, region):
     if np.ptp(x) == 0 or np.ptp(y) == 0:
         return None  # samples on one line fix the wavevector along it only
     d2 = (x[:, None] - x[None]) ** 2 + (y[:, None] - y[None]) ** 2
-    from scipy.linalg import solve_triangular
-
     lower = np.linalg.cholesky(np.exp(-d2 / (4 * maps.sigma_nm**2)) + 1e-10 * np.eye(n))
     chol = solve_triangular(lower, np.eye(n), lower=True)  # L^-1, applied to every component
     # Start from the |A|^2-weighted mean local wavevector of the region, so that the wrapped
@@ -1169,7 +1174,6 @@ def region_fit(maps, region):
     w = np.where(region, maps.amplitude ** 2, 0.0)
     ok = np.all(np.isfinite(kq), axis=1) & region[None]
     k_used = np.asarray(maps.lockin_q_rad_per_nm, float)
-    K, covs, dof = [], [], n - 3
     dk = []
     for j in range(len(k_used)):
         wj = np.where(ok[j], w[j], 0.0)
@@ -1189,7 +1193,7 @@ def region_fit(maps, region):
     K = k_used + np.array(dk)
     covs = np.array([f[1] for f in fits])
     dof = fits[0][2]
-    # Student t with nu = n - 3: +-2 errors hold 95.45 % although the scatter comes from n patches.
+    # Student t with nu = n - 3: +-2 errors hold 95.45 % although the scatter comes from n samples.
     t_factor = float(stats.t.ppf(_PHI_2, dof)) / 2
     closure = K.sum(axis=0)
     chi2 = float(closure @ np.linalg.solve(covs.sum(axis=0), closure)) if len(K) == 3 else 0.0
@@ -1423,7 +1427,11 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
     as the transition across a sharp twist boundary, are not domains), split
     into connected components, and
     components smaller than ``min_area_nm2`` are dropped: these are the
-    domains' cores (``core``). The cores are then grown over every valid pixel
+    domains' cores (``core``). With ``resolution_nm`` given, the levels come
+    only from pixels where the twist is flat at that resolution (it changes by
+    less than half a tolerance over ``resolution_nm``), and a level needs
+    ``min_area_nm2`` of them: the blend across a sharp boundary is no level,
+    and a twist gradient steeper than that has no domains. The cores are then grown over every valid pixel
     of the frame, each pixel joining the nearest core it is connected to
     through valid pixels (a watershed flood on the distance to the cores):
     the band where the lock-in blends two twists (about 2.6 σ wide, 10-90 %)
