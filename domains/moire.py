@@ -1684,6 +1684,14 @@ class MoireFields:
     notes: list
 
 
+def _with_error(value, error, unit=""):
+    """'1.30016 ± 0.00036 unit': the value to the last decimal of its error's two significant digits."""
+    if error is None or not np.isfinite(error) or error <= 0:
+        return f"{value:.4g}{unit}"
+    decimals = max(0, 1 - int(math.floor(math.log10(error))))
+    return f"{value:.{decimals}f} ± {error:.2g}{unit}"
+
+
 def _groups(values, errors, weights):
     """Merge levels that agree within DISAGREE_SIGMA combined errors: (value, error, weight) per group, sorted."""
     order = np.argsort(values)
@@ -1839,7 +1847,7 @@ def moire_fields(maps, domains):
                   "over the trusted frame")
         if kind == "multimodal":
             weight = sum(g[2] for g in groups)
-            modes = " and ".join(f"{g[0]:.{digits}g} ± {g[1]:.2g}{unit} ({100 * g[2] / weight:.0f} % of the area)"
+            modes = " and ".join(f"{_with_error(g[0], g[1], unit)} ({100 * g[2] / weight:.0f} % of the area)"
                                  for g in groups)
             notes.append(f"The {name} is multimodal: twist domains at {modes}; no single {name} describes the "
                          f"frame ({spread}).")

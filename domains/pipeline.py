@@ -1522,7 +1522,10 @@ def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, im
             # (Yankowitz et al. 2012) the mismatch reads as strain there, so the Bragg-peak values are quoted.
             for key in ("twist_deg", "heterostrain_percent", "period_nm"):
                 summary["moire"][f"{key}_maps"] = summary["moire"].get(key)
+                summary["moire"][f"{key}_err_maps"] = summary["moire"].get(f"{key}_err")
                 summary["moire"][key] = reading.moire_from_bragg.get(key)
+                # the maps' error does not belong to the Bragg-peak value
+                summary["moire"][f"{key}_err"] = reading.moire_from_bragg.get(f"{key}_err")
             summary["moire"]["lattice_mismatch"] = abs(mismatch)
             notes.append(f"Lattice mismatch of {100 * abs(mismatch):.2f} %: twist, heterostrain and period are "
                          "quoted from the two layers' Bragg peaks; the twist maps assume equal lattice constants.")
@@ -1567,6 +1570,8 @@ def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, im
 
 def _moire_headline(moire):
     """Headline rows for a moiré: one value with its error where a quantity is uniform, its modes or spread where not."""
+    from .moire import _with_error
+
     rows = {}
     keys = (("moiré period", "period_nm", "nm"), ("twist angle", "twist_deg", "deg"),
             ("heterostrain", "heterostrain_percent", "%"))
@@ -1577,14 +1582,15 @@ def _moire_headline(moire):
         kind = moire.get(f"{key}_distribution", "uniform")
         if kind == "multimodal":
             levels = moire.get(f"{key}_levels") or []
-            text = "multimodal: " + ", ".join(f"{_pm(lv['value'], lv['err'], unit)} ({100 * lv['area_fraction']:.0f} %)"
-                                              for lv in levels)
+            text = "multimodal: " + ", ".join(f"{_with_error(lv['value'], lv['err'], ' ' + unit)} "
+                                              f"({100 * lv['area_fraction']:.0f} %)" for lv in levels)
             text += f"; median {moire[f'{key}_median']:.4g}, IQR {moire[f'{key}_q25']:.4g}–{moire[f'{key}_q75']:.4g} {unit}"
         elif kind == "varies":
             text = (f"varies: median {moire[f'{key}_median']:.4g} {unit}, IQR {moire[f'{key}_q25']:.4g}–"
                     f"{moire[f'{key}_q75']:.4g} {unit} (no single value)")
         else:
-            text = _pm(value, moire.get(f"{key}_err"), unit)
+            err = moire.get(f"{key}_err")
+            text = _with_error(value, err, " " + unit) if err is not None else _pm(value, None, unit)
         if key == "twist_deg" and moire.get("twist_domains") is not None:
             text += f" ({moire['twist_domains']} twist domains)"
         if key == "heterostrain_percent" and kind == "uniform" and moire.get("heterostrain_angle_deg") is not None:
@@ -1593,6 +1599,8 @@ def _moire_headline(moire):
                 # A magnitude within two errors of zero: its axis means nothing.
                 text += " (consistent with zero; axis undetermined)"
             else:
-                text += f" along {_pm(moire['heterostrain_angle_deg'], moire.get('heterostrain_angle_deg_err'), 'deg', 3)}"
+                axis_err = moire.get("heterostrain_angle_deg_err")
+                text += " along " + (_with_error(moire["heterostrain_angle_deg"], axis_err, " deg") if axis_err is not None
+                                     else _pm(moire["heterostrain_angle_deg"], None, "deg", 3))
         rows[name] = text
     return rows
