@@ -999,7 +999,7 @@ def _patch_grid(shape, sigma_nm, pixel_size):
     """
     axes, index = [], []
     for n, d in zip(shape, pixel_size):
-        step = 0.5 * PATCH_SPACING_SIGMA * float(sigma_nm) / d
+        step = max(0.5 * PATCH_SPACING_SIGMA * float(sigma_nm) / d, 1.0)  # distinct pixels
         centre = (n - 1) / 2
         k = int(math.floor(centre / step))
         axes.append(np.clip(np.round(centre + step * np.arange(-k, k + 1)).astype(int), 0, n - 1))
@@ -1166,7 +1166,10 @@ def region_fit(maps, region):
     if np.ptp(x) == 0 or np.ptp(y) == 0:
         return None  # samples on one line fix the wavevector along it only
     d2 = (x[:, None] - x[None]) ** 2 + (y[:, None] - y[None]) ** 2
-    lower = np.linalg.cholesky(np.exp(-d2 / (4 * maps.sigma_nm**2)) + 1e-10 * np.eye(n))
+    try:
+        lower = np.linalg.cholesky(np.exp(-d2 / (4 * maps.sigma_nm**2)) + 1e-10 * np.eye(n))
+    except np.linalg.LinAlgError:
+        return None  # samples too close for their correlation to be inverted
     chol = solve_triangular(lower, np.eye(n), lower=True)  # L^-1, applied to every component
     # Start from the |A|^2-weighted mean local wavevector of the region, so that the wrapped
     # phases of neighbouring patches differ by less than pi.
