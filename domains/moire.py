@@ -29,17 +29,20 @@ from ._lockin import choose_sigma, local_wavevector, lockin, phase_gradient, tru
 from ._scan import pixel_size_pair
 
 __all__ = [
+    "MoireFields",
     "MoireMaps",
     "TwistDomains",
     "TwistStrain",
     "find_moire_q",
     "layer_transform",
+    "moire_fields",
     "moire_maps",
     "moire_maxima",
     "moire_period",
     "moire_period_mismatch",
     "moire_wavelengths",
     "moire_wavevectors",
+    "region_fit",
     "triangle_twist",
     "twist_domains",
     "twist_from_period",
@@ -669,6 +672,8 @@ class MoireMaps:
 
     Maps are (row, col) on the input grid, NaN where undefined; ``trusted``
     marks pixels at least 2.5 sigma from the frame edge and masked pixels.
+    The lock-in samples (``patch_*``, ``lockin_q_rad_per_nm``, ``valid``) let
+    :func:`region_fit` measure any region's wavevectors with calibrated errors.
     """
 
     mode: str
@@ -691,9 +696,19 @@ class MoireMaps:
     maxima_nm: np.ndarray
     triangles: dict
     summary: dict = field(default_factory=dict)
+    #: Reference wavevectors of the lock-in (3, 2), rad/nm; its phases are relative to them.
+    lockin_q_rad_per_nm: np.ndarray = None
+    #: Pixel (row, col) of each lock-in sample for region fits (:func:`region_fit`), (n, 2).
+    patch_rc: np.ndarray = None
+    #: Grid indices (i, j) of those samples, (n, 2).
+    patch_ij: np.ndarray = None
+    #: The lock-in fields A_j at those samples, (3, n) complex.
+    patch_lockin: np.ndarray = None
+    #: Pixels that entered the lock-in (finite and not masked).
+    valid: np.ndarray = None
 
 
-def _solve_orientation(K, a_nm, poisson):
+def _solve_orientation(K, a_nm, poisson, near=None):
     """Orientation of the (unseen) hexagonal lattice from the moiré alone.
 
     With G = R(α) G0 of known length, every α gives some T; the uniaxial model
@@ -713,6 +728,13 @@ def _solve_orientation(K, a_nm, poisson):
         lam = np.linalg.eigvalsh(0.5 * (p + np.swapaxes(p, -1, -2)))
         return lam[:, 0] + poisson * lam[:, 1]
 
+    if near is not None:
+        # A small change of K moves the root a little: search a narrow bracket first.
+        grid = float(near) + np.radians(np.arange(-1.0, 1.001, 0.25))
+        values = residual(grid)
+        if np.any(np.sign(values[:-1]) != np.sign(values[1:])):
+            i = int(np.nonzero(np.sign(values[:-1]) != np.sign(values[1:]))[0][0])
+            return float(brentq(lambda al: float(residual(al)[0]), grid[i], grid[i + 1], xtol=1e-13))
     grid = alpha0 + np.radians(np.arange(-30.0, 30.001, 0.25))
     values = residual(grid)
     roots = []
@@ -776,7 +798,11 @@ def moire_maps(image, moire_q=None, *, pixel_size_nm, a_nm=None, bragg_q=None, s
         from the white-noise level of the image), NaN where a moiré component's
         amplitude falls below a quarter of its median (walls, defects), the
         moiré ``maxima_nm`` and
-        per-triangle twists (:func:`triangle_twist`), and a ``summary`` dict.
+        per-triangle twists (:func:`triangle_twist`), and a ``summary`` dict
+        whose period, twist, heterostrain and axis, with their 1σ ``*_err``,
+        come from :func:`region_fit` over the trusted frame (errors calibrated
+        on the measured phase noise; docs/methods.md §4). For a field that
+        varies, see :func:`twist_domains` and :func:`moire_fields`.
 
     Raises
     ------
@@ -904,37 +930,311 @@ def moire_maps(image, moire_q=None, *, pixel_size_nm, a_nm=None, bragg_q=None, s
     tri = triangle_twist(maxima, a_nm)
 
     t = trusted & ~undefined
-    n_eff = max(1.0, t.sum() * pixel_size[0] * pixel_size[1] / (4 * math.pi * sigma_nm**2))
-    wl = _wavelengths(K)
+    rc, ij = _patch_grid(image.shape, sigma_nm, pixel_size)
+    maps = MoireMaps(
+        mode=mode, pixel_size_nm=pixel_size, sigma_nm=float(sigma_nm), a_nm=float(a_nm), poisson=poisson,
+        moire_q_rad_per_nm=K, bragg_q_rad_per_nm=G, local_q_rad_per_nm=np.moveaxis(kloc, 0, 1),
+        amplitude=2 * np.abs(a), period_nm=period, period_nm_err=period_err, twist_deg=theta,
+        twist_deg_err=theta_err, heterostrain_percent=eps, heterostrain_percent_err=eps_err,
+        heterostrain_angle_deg=angle, trusted=trusted, maxima_nm=maxima, triangles=tri, summary={},
+        lockin_q_rad_per_nm=np.asarray(k_used, float), patch_rc=rc, patch_ij=ij,
+        patch_lockin=a[:, rc[:, 0], rc[:, 1]],
+        valid=np.isfinite(image) if mask is None else np.isfinite(image) & ~np.asarray(mask, bool),
+    )
+    fit = region_fit(maps, t)
+    wl = _wavelengths(K) if fit is None else fit["wavelengths_nm"]
+    values = {"twist_deg": abs(math.degrees(theta_g)), "heterostrain_percent": abs(eps_g) * 100,
+              "heterostrain_angle_deg": math.degrees(angle_g), "period_nm": float(np.mean(wl))}
+    if fit is not None:
+        values = {key: fit[key] for key in values}
     summary = {
         "mode": mode,
-        "period_nm": float(wl.mean()),
-        "period_nm_err": float(np.sqrt(np.nanmean(period_err[t] ** 2) / n_eff)),
+        "period_nm": values["period_nm"],
+        "period_nm_err": None if fit is None else fit["period_nm_err"],
         "wavelengths_nm": [float(v) for v in wl],
-        "twist_deg": float(abs(np.degrees(theta_g))),
-        "twist_deg_err": float(np.sqrt(np.nanmean(theta_err[t] ** 2) / n_eff)),
+        "twist_deg": values["twist_deg"],
+        "twist_deg_err": None if fit is None else fit["twist_deg_err"],
         "twist_deg_std": float(np.nanstd(theta[t])),
         "twist_deg_min": float(np.nanmin(theta[t])),
         "twist_deg_max": float(np.nanmax(theta[t])),
-        "heterostrain_percent": float(abs(eps_g) * 100),
-        "heterostrain_percent_err": float(np.sqrt(np.nanmean(eps_err[t] ** 2) / n_eff)),
-        "heterostrain_angle_deg": float(np.degrees(angle_g)),
+        "heterostrain_percent": values["heterostrain_percent"],
+        "heterostrain_percent_err": None if fit is None else fit["heterostrain_percent_err"],
+        "heterostrain_angle_deg": values["heterostrain_angle_deg"],
+        "heterostrain_angle_deg_err": None if fit is None else fit["heterostrain_angle_deg_err"],
+        "n_patches": 0 if fit is None else fit["n_patches"],
+        "closure_ratio": None if fit is None else fit["closure_ratio"],
         "twist_from_maxima_deg": float(np.median(tri["twist_deg"])) if len(tri["twist_deg"]) else None,
         "twist_from_maxima_deg_std": float(np.std(tri["twist_deg"])) if len(tri["twist_deg"]) else None,
         "n_triangles": int(len(tri["twist_deg"])),
         "a_nm": float(a_nm),
         "poisson": poisson,
         "sigma_nm": float(sigma_nm),
-        "moire_q_rad_per_nm": K.tolist(),
-        "bragg_q_rad_per_nm": G.tolist(),
+        "moire_q_rad_per_nm": (K if fit is None else fit["moire_q_rad_per_nm"]).tolist(),
+        "bragg_q_rad_per_nm": (G if fit is None else fit["bragg_q_rad_per_nm"]).tolist(),
     }
-    return MoireMaps(
-        mode=mode, pixel_size_nm=pixel_size, sigma_nm=float(sigma_nm), a_nm=float(a_nm), poisson=poisson,
-        moire_q_rad_per_nm=K, bragg_q_rad_per_nm=G, local_q_rad_per_nm=np.moveaxis(kloc, 0, 1),
-        amplitude=2 * np.abs(a), period_nm=period, period_nm_err=period_err, twist_deg=theta,
-        twist_deg_err=theta_err, heterostrain_percent=eps, heterostrain_percent_err=eps_err,
-        heterostrain_angle_deg=angle, trusted=trusted, maxima_nm=maxima, triangles=tri, summary=summary,
-    )
+    maps.summary = summary
+    return maps
+
+
+# --------------------------------------------------------------------------- calibrated errors
+
+
+#: Spacing of the lock-in samples used for a region's wavevectors, in units of sigma. Lock-in values
+#: of white noise a distance d apart correlate by exp(-d^2 / 4 sigma^2) [derived: the autocorrelation
+#: of the unit-sum Gaussian kernel], 61 % at sqrt(2) sigma; the fit takes that correlation into
+#: account. Sampled that densely the lock-in field loses little (its power spectrum has fallen to
+#: exp(-pi^2 / 2) = 0.7 % at the samples' Nyquist frequency), while a denser grid would make the
+#: correlation matrix so ill-conditioned that the whitening amplifies the leakage ripple [measured:
+#: at spacing sigma the errors came out 3 x the scatter over noise realisations].
+PATCH_SPACING_SIGMA = math.sqrt(2.0)
+
+_PHI_2 = 0.9772498680518208  # standard normal CDF at 2: a 2-sigma interval holds 95.45 %
+
+
+def _patch_grid(shape, sigma_nm, pixel_size):
+    """Lock-in sample pixels (row, col) at half the fit's spacing, centred on the frame, and their grid indices.
+
+    A region's fit uses one of the four sub-grids of even or odd indices (spacing
+    :data:`PATCH_SPACING_SIGMA` σ), the one that puts most samples inside it.
+    """
+    axes, index = [], []
+    for n, d in zip(shape, pixel_size):
+        step = max(0.5 * PATCH_SPACING_SIGMA * float(sigma_nm) / d, 1.0)  # distinct pixels
+        centre = (n - 1) / 2
+        k = int(math.floor(centre / step))
+        axes.append(np.clip(np.round(centre + step * np.arange(-k, k + 1)).astype(int), 0, n - 1))
+        index.append(np.arange(2 * k + 1))
+    rr, cc = np.meshgrid(*axes, indexing="ij")
+    ii, jj = np.meshgrid(*index, indexing="ij")
+    return np.stack([rr.ravel(), cc.ravel()], axis=1), np.stack([ii.ravel(), jj.ravel()], axis=1)
+
+
+def _geometry(K, *, mode, a_nm, poisson, G, near=None):
+    """Twist (deg, >= 0), |heterostrain| (%), its axis (deg) and mean period (nm) of one triplet K.
+
+    In period mode the (unseen) lattice's orientation is solved again for this K (near the
+    angle ``near``, rad, when given), so that its dependence on K enters the propagated errors.
+    """
+    if mode == "period":
+        G = _hex_bragg(a_nm, _solve_orientation(K, a_nm, poisson, near=near))
+    theta, eps, angle, _ = _decompose(K, G, poisson=poisson, reference="mean" if mode == "atomic" else "layer1")
+    return np.array([abs(math.degrees(float(theta))), abs(float(eps)) * 100, math.degrees(float(angle)),
+                     float(_wavelengths(K).mean())]), G
+
+
+def _edge_phases(valid, rc, dk, sigma_nm, pixel_size):
+    """Phase that the normalised lock-in adds, near invalid pixels, to components detuned by dk from the reference.
+
+    For a component a exp(i(q + dk).r) the lock-in at q gives a exp(i dk.r) B(r) with
+    B(r) = sum_u G(u) w(r + u) exp(i dk.u) (w the valid pixels) [derived]; B is real where the
+    Gaussian's reach (4 sigma) holds no invalid pixel. Returns arg B, shape (len(dk), len(rc)).
+    """
+    dy, dx = pixel_size
+    out = np.zeros((len(dk), len(rc)))
+    if valid is None:
+        return out
+    ry, rx = int(math.ceil(4 * sigma_nm / dy)), int(math.ceil(4 * sigma_nm / dx))
+    uy, ux = np.arange(-ry, ry + 1) * dy, np.arange(-rx, rx + 1) * dx
+    g = np.exp(-uy[:, None] ** 2 / (2 * sigma_nm**2)) * np.exp(-ux[None, :] ** 2 / (2 * sigma_nm**2))
+    padded = np.pad(np.asarray(valid, bool), ((ry, ry), (rx, rx)), constant_values=False)
+    near = [i for i, (r, c) in enumerate(rc) if not padded[r:r + 2 * ry + 1, c:c + 2 * rx + 1].all()]
+    if not near:
+        return out
+    waves = [np.exp(1j * d[1] * uy)[:, None] * np.exp(1j * d[0] * ux)[None, :] for d in np.asarray(dk, float)]
+    for i in near:
+        r, c = rc[i]
+        gw = g * padded[r:r + 2 * ry + 1, c:c + 2 * rx + 1]
+        for j, wave in enumerate(waves):
+            out[j, i] = np.angle(np.sum(gw * wave))
+    return out
+
+
+def _fit_component(z, x, y, dk0, chol):
+    """Plane phi0 + dk.(r - r_mean) through the wrapped phases of z by generalised least squares.
+
+    The phase noise of sample i has variance proportional to 1/|z_i|^2 and samples correlate
+    as the lock-in does, rho_ij = exp(-d_ij^2 / 4 sigma^2);
+    the model is whitened by L^-1 D with D = diag|z| (``chol`` holds L^-1, L the correlation's
+    Cholesky factor). Returns dk, its covariance (scaled by the
+    whitened residual variance) and the degrees of freedom.
+    """
+    n = z.size
+    xm, ym = x - x.mean(), y - y.mean()
+    X = np.stack([np.ones(n), xm, ym], axis=1)
+    d = np.abs(z) / np.sqrt(np.mean(np.abs(z) ** 2))
+    whiten = chol * d[None, :]  # L^-1 D, L the Cholesky factor of the correlation (chol holds L^-1)
+
+    def white(v):
+        return whiten @ v
+
+    Xw = white(X)
+    solve = np.linalg.pinv(Xw)
+    phi = np.angle(z)
+    w = d**2
+    p = np.array([np.angle(np.sum(w * z * np.exp(-1j * (dk0[0] * xm + dk0[1] * ym)))), dk0[0], dk0[1]])
+    for _ in range(50):
+        model = X @ p
+        target = model + np.angle(np.exp(1j * (phi - model)))
+        new = solve @ white(target)
+        done = np.allclose(new, p, rtol=0, atol=1e-12)
+        p = new
+        if done:
+            break
+    res = white(np.angle(np.exp(1j * (phi - X @ p))))
+    dof = n - 3
+    s2 = float(res @ res / dof)
+    cov = s2 * np.linalg.inv(Xw.T @ Xw)
+    return p[1:], cov[1:, 1:], dof
+
+
+def region_fit(maps, region):
+    """Moiré wavevectors, twist, heterostrain and period of one region, with calibrated errors.
+
+    The lock-in field of each moiré component is read on a grid of samples
+    √2 σ apart (:data:`PATCH_SPACING_SIGMA`) inside ``region``; a plane
+    φ0 + δk·r fitted to the (wrapped) phases by generalised least squares gives
+    the region's wavevector q_j + δk_j. The samples' phase noise has variance
+    ∝ 1/|A|² and correlates between samples as the lock-in of white noise does,
+    exp(−d²/4σ²) [derived]; the fit whitens both, and its covariance is
+    scaled by the measured (whitened) phase scatter about the plane, so it
+    holds the noise actually present and any real variation of the field, and
+    its effective number of independent patches is that of the region's area
+    over the lock-in's reach. The 1σ errors are scaled by t_ν(0.9772)/2
+    (Student t, ν = n − 3), so that ±2 errors hold 95.45 % although the
+    scatter is estimated (JCGM 100:2008, G.3), and by the Birge ratio of the
+    closure k1 + k2 + k3 = 0 (exact for any homogeneous layer transform)
+    when the three wavevectors disagree beyond their errors (a χ² test of the
+    closure at 5 %; R. T. Birge, Phys. Rev. 40, 207 (1932)). Twist,
+    heterostrain, its axis and the mean period follow from the three
+    wavevectors (docs/methods.md §4); their
+    errors are propagated through the Jacobian (forward differences).
+
+    Parameters
+    ----------
+    maps : MoireMaps
+        From :func:`moire_maps`.
+    region : (row, col) array of bool
+        Pixels of the region (e.g. a twist domain's trusted core).
+
+    Returns
+    -------
+    dict or None
+        ``twist_deg``, ``heterostrain_percent``, ``heterostrain_angle_deg``, ``period_nm``
+        and their ``*_err`` (1σ), ``wavelengths_nm``, ``moire_q_rad_per_nm`` (3, 2),
+        ``moire_q_cov`` (3, 2, 2 covariance of each wavevector, (rad/nm)²), ``bragg_q_rad_per_nm``,
+        ``n_patches``, ``dof``, ``closure_ratio`` (Birge ratio, 1 when the three agree
+        within their errors); None when the region holds fewer than four samples
+        or they lie on one row or column.
+
+    References
+    ----------
+    .. [1] D. C. Rife, R. R. Boorstyn, "Single-tone parameter estimation from
+       discrete-time observations", IEEE Trans. Inf. Theory 20, 591 (1974).
+       doi:10.1109/TIT.1974.1055282
+    .. [2] R. T. Birge, "The calculation of errors by the method of least
+       squares", Phys. Rev. 40, 207 (1932). doi:10.1103/PhysRev.40.207
+    .. [3] JCGM 100:2008, Evaluation of measurement data: Guide to the expression
+       of uncertainty in measurement, annex G.
+
+    Examples
+    --------
+    >>> from domains.synth.moire import twisted_bilayer
+    >>> image, truth = twisted_bilayer(shape=(160, 160), pixel_size_nm=0.5, theta_deg=1.5, noise=0.5, rng=1)
+    >>> maps = moire_maps(image, truth["moire_q_rad_per_nm"], pixel_size_nm=0.5, a_nm=0.246)
+    >>> fit = region_fit(maps, maps.trusted)
+    >>> bool(abs(fit["twist_deg"] - 1.5) < 3 * fit["twist_deg_err"] + 1e-9), fit["n_patches"] >= 4
+    (True, True)
+    """
+    from scipy import stats
+    from scipy.linalg import solve_triangular
+
+    region = np.asarray(region, bool)
+    if maps.patch_rc is None or region.shape != maps.trusted.shape:
+        raise InputError(f"region must be a bool map of shape {maps.trusted.shape} for these moiré maps")
+    rc = maps.patch_rc
+    z_all = maps.patch_lockin
+    usable = region[rc[:, 0], rc[:, 1]] & np.all(np.isfinite(z_all), axis=0) & np.all(z_all != 0, axis=0)
+    # Of the four sub-grids at the fit's spacing, the one with most samples in the region.
+    parity = maps.patch_ij % 2
+    best = max(((oi, oj) for oi in (0, 1) for oj in (0, 1)),
+               key=lambda o: int(np.sum(usable & (parity[:, 0] == o[0]) & (parity[:, 1] == o[1]))))
+    inside = usable & (parity[:, 0] == best[0]) & (parity[:, 1] == best[1])
+    n = int(inside.sum())
+    if n < 4:
+        return None
+    dy, dx = maps.pixel_size_nm
+    x, y = rc[inside, 1] * dx, rc[inside, 0] * dy
+    if np.ptp(x) == 0 or np.ptp(y) == 0:
+        return None  # samples on one line fix the wavevector along it only
+    d2 = (x[:, None] - x[None]) ** 2 + (y[:, None] - y[None]) ** 2
+    try:
+        lower = np.linalg.cholesky(np.exp(-d2 / (4 * maps.sigma_nm**2)) + 1e-10 * np.eye(n))
+    except np.linalg.LinAlgError:
+        return None  # samples too close for their correlation to be inverted
+    chol = solve_triangular(lower, np.eye(n), lower=True)  # L^-1, applied to every component
+    # Start from the |A|^2-weighted mean local wavevector of the region, so that the wrapped
+    # phases of neighbouring patches differ by less than pi.
+    kq = maps.local_q_rad_per_nm  # (3, 2, row, col)
+    w = np.where(region, maps.amplitude ** 2, 0.0)
+    ok = np.all(np.isfinite(kq), axis=1) & region[None]
+    k_used = np.asarray(maps.lockin_q_rad_per_nm, float)
+    dk = []
+    for j in range(len(k_used)):
+        wj = np.where(ok[j], w[j], 0.0)
+        dk.append((np.array([np.sum(np.where(ok[j], kq[j, c], 0.0) * wj) for c in range(2)]) / wj.sum()
+                   - k_used[j]) if wj.sum() > 0 else np.zeros(2))
+    z = z_all[:, inside]
+    bias = np.zeros(z.shape)
+    for _ in range(4):
+        fits = [_fit_component(z[j] * np.exp(-1j * bias[j]), x, y, dk[j], chol) for j in range(len(k_used))]
+        dk = [f[0] for f in fits]
+        # Near the frame edge or a mask the normalised lock-in shifts the phase of a component detuned
+        # from its reference; remove that shift, computed for the fitted detuning, and fit again.
+        new = _edge_phases(maps.valid, rc[inside], np.array(dk), maps.sigma_nm, maps.pixel_size_nm)
+        if np.max(np.abs(new - bias), initial=0.0) < 1e-6:
+            break
+        bias = new
+    K = k_used + np.array(dk)
+    covs = np.array([f[1] for f in fits])
+    dof = fits[0][2]
+    # Student t with nu = n - 3: +-2 errors hold 95.45 % although the scatter comes from n samples.
+    t_factor = float(stats.t.ppf(_PHI_2, dof)) / 2
+    closure = K.sum(axis=0)
+    chi2 = float(closure @ np.linalg.solve(covs.sum(axis=0), closure)) if len(K) == 3 else 0.0
+    # Inflate only when the closure fails a chi-square test at 5 % (2 degrees of freedom): a Birge
+    # ratio from two numbers scatters widely, and inflating on every chance excess over 1 would
+    # make the errors too large for pure noise.
+    birge = math.sqrt(chi2 / 2) if chi2 > stats.chi2.ppf(0.95, 2) else 1.0
+    covs = covs * (t_factor * birge) ** 2
+    mode, G = maps.mode, np.asarray(maps.bragg_q_rad_per_nm, float)
+    kw = dict(mode=mode, a_nm=maps.a_nm, poisson=maps.poisson, G=G)
+    f0, G0 = _geometry(K, **kw)
+    kw["near"] = math.atan2(G0[0, 1], G0[0, 0])
+    # Forward differences: with a step of 1e-4 |K| the Jacobian is good to about 1e-4 relative,
+    # far below what an error bar needs.
+    step = 1e-4 * float(np.mean(np.hypot(*K.T)))
+    jac = np.zeros((4, K.size))
+    for i in range(K.size):
+        dK = np.zeros(K.size)
+        dK[i] = step
+        diff = _geometry(K + dK.reshape(K.shape), **kw)[0] - f0
+        diff[2] = (diff[2] + 90) % 180 - 90  # the axis lives on [0, 180)
+        jac[:, i] = diff / step
+    cov_k = np.zeros((K.size, K.size))
+    for j in range(len(K)):
+        cov_k[2 * j:2 * j + 2, 2 * j:2 * j + 2] = covs[j]
+    err = np.sqrt(np.maximum(np.diag(jac @ cov_k @ jac.T), 0))
+    # An axis known to no better than a uniform guess on [0, 180) has the error of that guess.
+    err[2] = min(err[2], 180 / math.sqrt(12))
+    wl = _wavelengths(K)
+    return {
+        "twist_deg": float(f0[0]), "twist_deg_err": float(err[0]),
+        "heterostrain_percent": float(f0[1]), "heterostrain_percent_err": float(err[1]),
+        "heterostrain_angle_deg": float(f0[2]), "heterostrain_angle_deg_err": float(err[2]),
+        "period_nm": float(f0[3]), "period_nm_err": float(err[3]),
+        "wavelengths_nm": wl, "moire_q_rad_per_nm": K, "moire_q_cov": covs, "bragg_q_rad_per_nm": G0,
+        "n_patches": n, "dof": int(dof), "closure_ratio": float(math.sqrt(chi2 / 2)),
+    }
 
 
 # --------------------------------------------------------------------------- maxima
@@ -1072,7 +1372,27 @@ def triangle_twist(points, a_nm, *, max_distortion=0.3):
 
 @dataclass
 class TwistDomains:
-    """Twist-angle domains from :func:`twist_domains`."""
+    """Twist-angle domains from :func:`twist_domains`.
+
+    Attributes
+    ----------
+    labels : (row, col) int32
+        Domains 1..N covering every valid pixel of the frame; 0 on the one-pixel
+        walls between domains and on invalid (masked) pixels.
+    grown : (row, col) int32
+        The same before the walls were cut out (no gaps between domains).
+    walls : (row, col) bool
+        One-pixel walls between two twist domains (:func:`domains.segment.thin_walls`).
+    core : (row, col) int32
+        Where each domain was found: trusted pixels within half a tolerance of
+        its level, opened by the resolution (the seeds of ``grown``).
+    boundaries : (row, col) bool
+        Same as ``walls`` (kept for earlier callers).
+    table : list of dict
+        One row per domain.
+    tolerance_deg, tolerance_source, min_area_nm2
+        The thresholds used and where the tolerance came from.
+    """
 
     labels: np.ndarray
     boundaries: np.ndarray
@@ -1080,6 +1400,9 @@ class TwistDomains:
     tolerance_deg: float
     tolerance_source: str
     min_area_nm2: float
+    grown: np.ndarray = None
+    walls: np.ndarray = None
+    core: np.ndarray = None
 
 
 def _nearest_level(values, levels):
@@ -1097,8 +1420,8 @@ def _nearest_level(values, levels):
 
 
 def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err_deg=None, min_area_nm2=None,
-                  resolution_nm=None, trusted=None):
-    """Connected regions of one twist range.
+                  resolution_nm=None, trusted=None, valid=None):
+    """Twist-angle domains covering the frame: connected regions of one twist range, grown to meet at walls.
 
     Twist levels are picked greedily from the histogram of the trusted
     pixels (the most populated window of width ``tolerance_deg`` first, then
@@ -1107,7 +1430,18 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
     ``resolution_nm``/2 (so strips narrower than the maps' resolution, such
     as the transition across a sharp twist boundary, are not domains), split
     into connected components, and
-    components smaller than ``min_area_nm2`` are dropped (label 0).
+    components smaller than ``min_area_nm2`` are dropped: these are the
+    domains' cores (``core``). With ``resolution_nm`` given, the levels come
+    only from pixels where the twist is flat at that resolution (it changes by
+    less than half a tolerance over ``resolution_nm``), and a level needs
+    ``min_area_nm2`` of them: the blend across a sharp boundary is no level,
+    and a twist gradient steeper than that has no domains. The cores are then grown over every valid pixel
+    of the frame, each pixel joining the nearest core it is connected to
+    through valid pixels (a watershed flood on the distance to the cores):
+    the band where the lock-in blends two twists (about 2.6 σ wide, 10-90 %)
+    is split down its middle, and the border where the maps are not trusted
+    (within 2.5 σ of the frame edge) goes to the domain it continues. Walls are
+    the one-pixel lines where two grown domains meet.
     The opening is two thresholds of exact Euclidean distance transforms, so
     its cost does not grow with the radius; it equals ``scipy.ndimage.binary_opening``
     by the disc {i^2 + j^2 <= r^2} with ``border_value=0`` (outside the frame
@@ -1133,15 +1467,20 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
     resolution_nm : float, optional
         Spatial resolution of the map (the lock-in sigma).
     trusted : (row, col) array of bool, optional
-        Pixels to use; others get label 0.
+        Pixels whose twist is trusted (e.g. ``MoireMaps.trusted``): the levels
+        and the cores come from them alone.
+    valid : (row, col) array of bool, optional
+        Pixels the domains may cover (default: all; e.g. not masked).
 
     Returns
     -------
     TwistDomains
-        ``labels`` (int32, 0 = boundary or unassigned), ``boundaries`` (bool:
-        unassigned trusted pixels and pixels touching another domain),
-        ``table`` (one dict per domain: ``id``, ``twist_deg_mean``,
-        ``twist_deg_std``, ``area_nm2``, ``centroid_x_nm``, ``centroid_y_nm``),
+        ``labels`` (int32, domains covering the valid frame, 0 on walls and
+        invalid pixels), ``grown`` (no walls cut out), ``walls`` (bool, one
+        pixel thin), ``core`` (where each domain was found), ``table`` (one
+        dict per domain: ``id``, ``twist_deg_mean``, ``twist_deg_std`` (over
+        its core), ``area_nm2``, ``centroid_x_nm``, ``centroid_y_nm`` (over
+        ``labels``), ``touches_edge`` (reaches the frame edge: cut by the frame)),
         and the ``tolerance_deg`` used with where it came from.
 
     Raises
@@ -1152,9 +1491,12 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
     Examples
     --------
     >>> twist = np.where(np.arange(80)[None, :] < 40, 1.0, 1.3) * np.ones((80, 1))
-    >>> dom = twist_domains(twist, pixel_size_nm=1.0, tolerance_deg=0.05)
+    >>> trusted = np.zeros((80, 80), bool); trusted[10:-10, 10:-10] = True
+    >>> dom = twist_domains(twist, pixel_size_nm=1.0, tolerance_deg=0.05, trusted=trusted)
     >>> len(dom.table), sorted(round(d["twist_deg_mean"], 2) for d in dom.table)
     (2, [1.0, 1.3])
+    >>> int((dom.grown > 0).sum()), int(dom.walls.sum()), [d["touches_edge"] for d in dom.table]
+    (6400, 80, [True, True])
     """
     pixel_size = pixel_size_pair(pixel_size_nm)
     twist = np.asarray(twist_deg_map, dtype=float)
@@ -1189,13 +1531,21 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
         min_area_nm2 = (math.pi * float(resolution_nm) ** 2 if resolution_nm is not None
                         else 0.01 * use.sum() * area_px)
 
-    # Greedy histogram levels.
+    # Greedy histogram levels, from the pixels where the twist is flat at the maps' resolution: across
+    # a boundary the maps blend two twists over about 2.6 sigma, and the blend's values are no level.
+    # Flat: the twist changes by less than half a tolerance over one resolution length.
+    if resolution_nm is not None:
+        filled = np.where(np.isfinite(twist), twist, np.nanmedian(values))
+        gy, gx = np.gradient(filled, *pixel_size)
+        values = twist[use & (np.hypot(gx, gy) * float(resolution_nm) <= tolerance_deg / 2)]
     levels = []
     remaining = np.sort(values)
     while remaining.size:
         lo = np.searchsorted(remaining, remaining - tolerance_deg / 2, side="left")
         hi = np.searchsorted(remaining, remaining + tolerance_deg / 2, side="right")
         i = int(np.argmax(hi - lo))
+        if (hi[i] - lo[i]) * area_px < min_area_nm2:
+            break  # no level left with the area of a domain (greedy: later windows hold fewer pixels)
         inside = remaining[lo[i]:hi[i]]
         level = float(np.mean(inside))
         levels.append(level)
@@ -1235,33 +1585,296 @@ def twist_domains(twist_deg_map, *, pixel_size_nm, tolerance_deg=None, twist_err
         sub[new > 0] = new[new > 0]
         next_id += big.size
 
-    # Boundaries: unassigned trusted pixels, and labelled pixels touching another label.
-    grown_max = ndimage.maximum_filter(labels, size=3, mode="nearest")
-    grown_min = ndimage.minimum_filter(np.where(labels > 0, labels, np.iinfo(np.int32).max), size=3,
-                                       mode="nearest")
-    touching = (labels > 0) & ((grown_max != labels) | (grown_min != labels))
-    boundaries = (use & (labels == 0)) | touching
+    # Grow the cores over the valid frame: each pixel joins the nearest core it is connected to.
+    from skimage.segmentation import watershed
 
-    # Per-domain sums in one pass over the frame (a mask per domain would cost N x domains).
+    from .segment import thin_walls
+
+    core = labels
+    if valid is None:
+        valid = np.ones(twist.shape, bool)
+    else:
+        valid = np.asarray(valid, dtype=bool)
+        if valid.shape != twist.shape:
+            raise InputError(f"valid shape {valid.shape} differs from twist_deg_map shape {twist.shape}")
+    if core.any():
+        distance = ndimage.distance_transform_edt(core == 0, sampling=pixel_size)
+        grown = watershed(distance, markers=core, mask=valid | (core > 0)).astype(np.int32)
+    else:
+        grown = core.copy()
+    walls = thin_walls(grown)
+    labels = np.where(walls, 0, grown).astype(np.int32)
+
+    # Per-domain sums in one pass over the frame (a mask per domain would cost N x domains):
+    # twist statistics over the cores (trusted, within the tolerance), areas over the labels.
     table = []
-    flat = labels.ravel()
+    flat = core.ravel()
     inside = flat > 0
     lab_in = flat[inside]
     count = np.bincount(lab_in, minlength=next_id).astype(float)
     vals = twist.ravel()[inside]
     mean = np.bincount(lab_in, weights=vals, minlength=next_id) / np.maximum(count, 1)
     var = np.bincount(lab_in, weights=(vals - mean[lab_in]) ** 2, minlength=next_id) / np.maximum(count, 1)
+    flat = labels.ravel()
+    inside = flat > 0
+    lab_in = flat[inside]
+    area = np.bincount(lab_in, minlength=next_id).astype(float)
     rows, cols = np.divmod(np.nonzero(inside)[0], labels.shape[1])
-    row_mean = np.bincount(lab_in, weights=rows, minlength=next_id) / np.maximum(count, 1)
-    col_mean = np.bincount(lab_in, weights=cols, minlength=next_id) / np.maximum(count, 1)
+    row_mean = np.bincount(lab_in, weights=rows, minlength=next_id) / np.maximum(area, 1)
+    col_mean = np.bincount(lab_in, weights=cols, minlength=next_id) / np.maximum(area, 1)
+    edge = np.zeros(next_id, bool)
+    for side in (labels[0], labels[-1], labels[:, 0], labels[:, -1]):
+        edge[side[side > 0]] = True
     for lab in range(1, next_id):
         table.append({
             "id": lab,
             "twist_deg_mean": float(mean[lab]),
             "twist_deg_std": float(math.sqrt(var[lab])),
-            "area_nm2": float(count[lab] * area_px),
+            "area_nm2": float(area[lab] * area_px),
             "centroid_x_nm": float(col_mean[lab] * pixel_size[1]),
             "centroid_y_nm": float(row_mean[lab] * pixel_size[0]),
+            "touches_edge": bool(edge[lab]),
         })
-    return TwistDomains(labels=labels, boundaries=boundaries, table=table, tolerance_deg=float(tolerance_deg),
-                        tolerance_source=source, min_area_nm2=float(min_area_nm2))
+    return TwistDomains(labels=labels, boundaries=walls, table=table, tolerance_deg=float(tolerance_deg),
+                        tolerance_source=source, min_area_nm2=float(min_area_nm2), grown=grown, walls=walls,
+                        core=core)
+
+
+# --------------------------------------------------------------------------- fields
+
+
+#: A distribution has separate modes when the density halfway between two levels falls below this
+#: fraction of the smaller level's density (the half-maximum convention for resolving two peaks;
+#: common practice, no source).
+DIP_RATIO = 0.5
+
+#: A twist domain's own values are fitted this many sigma from its walls, where the lock-in's kernel
+#: puts Phi(-2) = 2.3 % of its weight across the wall [derived].
+WALL_MARGIN_SIGMA = 2.0
+
+#: Two twist domains disagree when their values differ by more than this many combined errors.
+DISAGREE_SIGMA = 3.0
+
+_FIELDS = (("twist_deg", "twist", "°", 4), ("period_nm", "period", " nm", 4),
+           ("heterostrain_percent", "heterostrain", " %", 3))
+
+
+@dataclass
+class MoireFields:
+    """Twist, period and heterostrain as fields, from :func:`moire_fields`.
+
+    Attributes
+    ----------
+    table : list of dict
+        One row per twist domain: the domain's values from its own wavevectors
+        with calibrated errors (:func:`region_fit`), its area and edge contact.
+    summary : dict
+        Frame statistics to merge into the ``moire`` block of summary.json:
+        ``<q>_median``, ``<q>_q25``, ``<q>_q75`` over the trusted frame,
+        ``<q>_distribution`` ("uniform", "varies" or "multimodal") and
+        ``<q>_levels`` (the twist domains' values, those agreeing within 3
+        errors merged: ``value``, ``err``, ``area_fraction``) for q in
+        twist_deg, period_nm, heterostrain_percent, ``multimodal`` and
+        ``field_note``. The frame value of each quantity (``<q>``, ``<q>_err``,
+        and ``heterostrain_angle_deg`` with its error) is the twist domains'
+        merged value where it is uniform, and the median with no error
+        (``<q>_err`` None) where it varies.
+    notes : list of str
+        The same in words.
+    """
+
+    table: list
+    summary: dict
+    notes: list
+
+
+def _with_error(value, error, unit=""):
+    """'1.30016 ± 0.00036 unit': the value to the last decimal of its error's two significant digits."""
+    if error is None or not np.isfinite(error) or error <= 0:
+        return f"{value:.4g}{unit}"
+    decimals = max(0, 1 - int(math.floor(math.log10(error))))
+    return f"{value:.{decimals}f} ± {error:.2g}{unit}"
+
+
+def _groups(values, errors, weights):
+    """Merge levels that agree within DISAGREE_SIGMA combined errors: (value, error, weight) per group, sorted."""
+    order = np.argsort(values)
+    groups = []
+    for i in order:
+        v, e, w = values[i], errors[i], weights[i]
+        if groups:
+            gv, ge, gw = groups[-1]
+            if abs(v - gv) <= DISAGREE_SIGMA * math.hypot(e, ge):
+                total = gw + w
+                groups[-1] = ((gv * gw + v * w) / total, math.hypot(ge * gw, e * w) / total, total)
+                continue
+        groups.append((v, e, w))
+    return groups
+
+
+def _dip_ratios(pixels, levels):
+    """Density halfway between neighbouring levels over that at the smaller of the two (windows of a sixth)."""
+    pixels = np.sort(pixels)
+    out = []
+    for lo, hi in zip(levels[:-1], levels[1:]):
+        half = (hi - lo) / 6
+
+        def count(centre, half=half):
+            return np.searchsorted(pixels, centre + half) - np.searchsorted(pixels, centre - half)
+
+        peak = min(count(lo), count(hi))
+        out.append(count(0.5 * (lo + hi)) / peak if peak > 0 else math.inf)
+    return out
+
+
+def moire_fields(maps, domains):
+    """Twist, period and heterostrain summarised per twist domain and over the frame, with a flag for multimodality.
+
+    Each twist domain's values come from its own moiré wavevectors, fitted on
+    the patches of its trusted part farther than 2σ from a wall (where the
+    lock-in does not mix in the neighbour), with calibrated errors
+    (:func:`region_fit`). Over the trusted frame each local map is
+    summarised by its median and quartiles. A quantity *varies* when two
+    twist domains, or two quarters of the trusted frame fitted on their own,
+    disagree by more than 3 combined errors; it is
+    *multimodal* when, besides, the density of its trusted pixels halfway
+    between two disagreeing levels falls below half the density at the
+    smaller level (a dip between separate modes, :data:`DIP_RATIO`), which
+    a continuous gradient does not show. A quantity that varies has no single
+    value: its frame value becomes the median, with no error.
+
+    Parameters
+    ----------
+    maps : MoireMaps
+        From :func:`moire_maps`.
+    domains : TwistDomains
+        From :func:`twist_domains` on ``maps.twist_deg``.
+
+    Returns
+    -------
+    MoireFields
+
+    References
+    ----------
+    .. [1] M. J. Hÿtch, E. Snoeck, R. Kilaas, Ultramicroscopy 74, 131 (1998).
+       doi:10.1016/S0304-3991(98)00035-7
+
+    Examples
+    --------
+    >>> from domains.synth.moire import twisted_bilayer
+    >>> image, _ = twisted_bilayer(shape=(320, 320), pixel_size_nm=0.3, regions=[1.0, 1.3], noise=0.2, rng=1)
+    >>> maps = moire_maps(image, pixel_size_nm=0.3, a_nm=0.246)
+    >>> dom = twist_domains(maps.twist_deg, pixel_size_nm=0.3, twist_err_deg=maps.twist_deg_err,
+    ...                     resolution_nm=maps.sigma_nm, trusted=maps.trusted)
+    >>> fields = moire_fields(maps, dom)
+    >>> fields.summary["twist_deg_distribution"], sorted(round(r["twist_deg"], 2) for r in fields.table)
+    ('multimodal', [1.0, 1.3])
+    """
+    t = maps.trusted & np.isfinite(maps.twist_deg)
+    labels = np.asarray(domains.labels)
+    walls = np.asarray(domains.walls if domains.walls is not None else domains.boundaries, bool)
+    far = ndimage.distance_transform_edt(~walls, sampling=maps.pixel_size_nm) > WALL_MARGIN_SIGMA * maps.sigma_nm
+    total = float((labels > 0).sum())
+    table = []
+    for row in domains.table:
+        lab = row["id"]
+        fit = region_fit(maps, (labels == lab) & maps.trusted & far)
+        out = {"id": lab}
+        for key, *_ in _FIELDS + (("heterostrain_angle_deg",),):
+            out[key] = math.nan if fit is None else fit[key]
+            out[f"{key}_err"] = math.nan if fit is None else fit[f"{key}_err"]
+        if fit is None:
+            # No room for a plane fit (narrower than the lock-in's reach on both sides of its walls):
+            # the mean of the local maps over the domain's core, and their spread there as a
+            # (conservative) error; the core excludes the band where two twists blend.
+            inside = (np.asarray(domains.core) == lab) & t if domains.core is not None else (labels == lab) & t
+            for key in ("twist_deg", "period_nm", "heterostrain_percent"):
+                values = getattr(maps, key)[inside]
+                values = values[np.isfinite(values)]
+                out[key] = float(values.mean()) if values.size else math.nan
+                out[f"{key}_err"] = float(values.std()) if values.size > 1 else math.nan
+            doubled = np.radians(2 * maps.heterostrain_angle_deg[inside])
+            doubled = doubled[np.isfinite(doubled)]
+            if doubled.size > 1:
+                resultant = np.mean(np.exp(1j * doubled))
+                out["heterostrain_angle_deg"] = float(np.degrees(np.angle(resultant)) / 2 % 180)
+                # circular standard deviation of the doubled angle, halved (Mardia & Jupp 2000, §2.3.4)
+                spread = math.sqrt(max(-2 * math.log(max(abs(resultant), 1e-300)), 0.0))
+                out["heterostrain_angle_deg_err"] = float(min(np.degrees(spread) / 2, 180 / math.sqrt(12)))
+        out["error_from"] = "fit" if fit is not None else "spread"
+        out.update({
+            "twist_deg_mean": row["twist_deg_mean"], "twist_deg_std": row["twist_deg_std"],
+            "area_nm2": row["area_nm2"],
+            "area_fraction": row["area_nm2"] / (total * maps.pixel_size_nm[0] * maps.pixel_size_nm[1]) if total else math.nan,
+            "centroid_x_nm": row["centroid_x_nm"], "centroid_y_nm": row["centroid_y_nm"],
+            "touches_edge": row["touches_edge"], "n_patches": 0 if fit is None else fit["n_patches"],
+            "closure_ratio": math.nan if fit is None else fit["closure_ratio"],
+        })
+        table.append(out)
+
+    # Does the field vary where no two twist domains tell? The four quarters of the trusted frame, each
+    # fitted on its own, must agree within DISAGREE_SIGMA combined errors (a gradient fails this).
+    rows_t, cols_t = np.nonzero(t)
+    quarters = []
+    if rows_t.size:
+        r_mid, c_mid = np.median(rows_t), np.median(cols_t)
+        rr, cc = np.ogrid[:t.shape[0], :t.shape[1]]
+        for top in (True, False):
+            for left in (True, False):
+                part = t & ((rr < r_mid) if top else (rr >= r_mid)) & ((cc < c_mid) if left else (cc >= c_mid))
+                fit = region_fit(maps, part)
+                if fit is not None:
+                    quarters.append(fit)
+
+    summary, notes = {}, []
+    for key, name, unit, digits in _FIELDS:
+        pixels = getattr(maps, key)[t]
+        pixels = pixels[np.isfinite(pixels)]
+        q25, median, q75 = (np.percentile(pixels, [25, 50, 75]) if pixels.size else (math.nan,) * 3)
+        summary[f"{key}_median"], summary[f"{key}_q25"], summary[f"{key}_q75"] = float(median), float(q25), float(q75)
+        rows = [r for r in table if np.isfinite(r[key]) and np.isfinite(r[f"{key}_err"])]
+        groups = _groups(np.array([r[key] for r in rows]), np.array([r[f"{key}_err"] for r in rows]),
+                         np.array([r["area_nm2"] for r in rows])) if rows else []
+        kind = "uniform"
+        if len(groups) > 1:
+            kind = "varies"
+            if min(_dip_ratios(pixels, [g[0] for g in groups])) < DIP_RATIO:
+                kind = "multimodal"
+        elif len(_groups(np.array([f[key] for f in quarters]), np.array([f[f"{key}_err"] for f in quarters]),
+                         np.ones(len(quarters)))) > 1:
+            kind = "varies"
+        summary[f"{key}_distribution"] = kind
+        area = sum(r["area_nm2"] for r in table) or 1.0
+        summary[f"{key}_levels"] = [{"value": float(g[0]), "err": float(g[1]), "area_fraction": float(g[2] / area)}
+                                    for g in groups]
+        spread = (f"median {median:.{digits}g}{unit}, interquartile range {q25:.{digits}g}–{q75:.{digits}g}{unit} "
+                  "over the trusted frame")
+        if kind == "multimodal":
+            weight = sum(g[2] for g in groups)
+            modes = " and ".join(f"{_with_error(g[0], g[1], unit)} ({100 * g[2] / weight:.0f} % of the area)"
+                                 for g in groups)
+            notes.append(f"The {name} is multimodal: twist domains at {modes}; no single {name} describes the "
+                         f"frame ({spread}).")
+        elif kind == "varies":
+            why = (f"its {len(rows)} twist domains differ beyond their errors, without separate modes" if len(groups) > 1
+                   else "the quarters of the frame differ beyond their errors")
+            notes.append(f"The {name} varies over the frame ({spread}): {why}.")
+        if kind != "uniform":
+            summary[key] = float(median)
+            summary[f"{key}_err"] = None
+        elif groups:
+            # One level: the domains' values, merged (with one domain, its own fit).
+            summary[key], summary[f"{key}_err"] = float(groups[0][0]), float(groups[0][1])
+    # The heterostrain axis is an axial angle (0-180 deg): the area-weighted mean of the doubled angles.
+    rows = [r for r in table if np.isfinite(r["heterostrain_angle_deg"]) and np.isfinite(r["heterostrain_angle_deg_err"])]
+    if rows and summary["heterostrain_percent_distribution"] == "uniform":
+        w = np.array([r["area_nm2"] for r in rows])
+        doubled = np.radians(2 * np.array([r["heterostrain_angle_deg"] for r in rows]))
+        mean = math.degrees(math.atan2(np.sum(w * np.sin(doubled)), np.sum(w * np.cos(doubled)))) / 2 % 180
+        err = math.sqrt(np.sum((w * np.array([r["heterostrain_angle_deg_err"] for r in rows])) ** 2)) / w.sum()
+        summary["heterostrain_angle_deg"], summary["heterostrain_angle_deg_err"] = float(mean), float(err)
+    elif rows:
+        summary["heterostrain_angle_deg_err"] = None
+    summary["multimodal"] = any(summary[f"{key}_distribution"] == "multimodal" for key, *_ in _FIELDS)
+    summary["field_note"] = " ".join(notes) if notes else "Twist, period and heterostrain are uniform within their errors."
+    return MoireFields(table=table, summary=summary, notes=notes)

@@ -1187,12 +1187,7 @@ def _headline(summary):
         rows["electronic types"] = types["sentences"][0]
     moire = summary.get("moire")
     if moire:
-        rows["moiré period"] = _pm(moire.get("period_nm"), moire.get("period_nm_err"), "nm")
-        if moire.get("twist_deg") is not None:
-            rows["twist angle"] = (f"{_pm(moire['twist_deg'], moire.get('twist_deg_err'), 'deg')} "
-                                   f"(spread {moire['twist_deg_std']:.2g} deg; {moire.get('twist_domains')} twist domains)")
-            rows["heterostrain"] = (f"{_pm(moire['heterostrain_percent'], moire.get('heterostrain_percent_err'), '%')} "
-                                    f"along {moire['heterostrain_angle_deg']:.3g} deg")
+        rows.update(_moire_headline(moire))
     rows["lock-in width σ"] = f"{summary['sigma_nm']:.3g} nm (spatial resolution)"
     return rows
 
@@ -1793,10 +1788,19 @@ def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, im
                             "note": f"no twist maps: {err}"}
         notes.append(f"Moiré maps not made ({err}); twist and heterostrain from the two layers' Bragg peaks.")
         return None
+    # The moiré's own lock-in sets the resolution and the trusted region of everything below.
+    summary["sigma_nm"] = maps.sigma_nm
+    summary["trusted_fraction"] = float(maps.trusted.mean())
+    choices["sigma_nm"] = {"value": maps.sigma_nm, "why": "the moiré lock-in's width: leakage of the nearest moiré "
+                           "peak or the DC term below 0.2 % (domains.moire.moire_maps)"}
+    valid = np.ones(image.shape, bool) if mask is None else ~np.asarray(mask, bool)
     twist = moire.twist_domains(maps.twist_deg, pixel_size_nm=pixel, tolerance_deg=config.twist_tolerance_deg,
-                                twist_err_deg=maps.twist_deg_err, resolution_nm=maps.sigma_nm, trusted=maps.trusted)
-    summary["moire"] = {**maps.summary, "twist_domains": len(twist.table), "twist_tolerance_deg": twist.tolerance_deg,
-                        "twist_tolerance_from": twist.tolerance_source}
+                                twist_err_deg=maps.twist_deg_err, resolution_nm=maps.sigma_nm,
+                                min_area_nm2=config.min_domain_area_nm2, trusted=maps.trusted, valid=valid)
+    fields = moire.moire_fields(maps, twist)
+    summary["moire"] = {**maps.summary, **fields.summary, "twist_domains": len(twist.table),
+                        "twist_tolerance_deg": twist.tolerance_deg, "twist_tolerance_from": twist.tolerance_source}
+    notes.extend(fields.notes)
     reading = spec.get("reading")
     if reading is not None and reading.moire_from_bragg:
         # With both layers' atoms resolved: the same twist and heterostrain from the two Bragg lattices.
@@ -1807,14 +1811,17 @@ def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, im
             # (Yankowitz et al. 2012) the mismatch reads as strain there, so the Bragg-peak values are quoted.
             for key in ("twist_deg", "heterostrain_percent", "period_nm"):
                 summary["moire"][f"{key}_maps"] = summary["moire"].get(key)
+                summary["moire"][f"{key}_err_maps"] = summary["moire"].get(f"{key}_err")
                 summary["moire"][key] = reading.moire_from_bragg.get(key)
+                # the maps' error does not belong to the Bragg-peak value
+                summary["moire"][f"{key}_err"] = reading.moire_from_bragg.get(f"{key}_err")
             summary["moire"]["lattice_mismatch"] = abs(mismatch)
             notes.append(f"Lattice mismatch of {100 * abs(mismatch):.2f} %: twist, heterostrain and period are "
                          "quoted from the two layers' Bragg peaks; the twist maps assume equal lattice constants.")
     choices["moire"] = {"mode": maps.mode, "sigma_nm": maps.sigma_nm, "twist_tolerance_deg": twist.tolerance_deg,
                         "twist_tolerance_from": twist.tolerance_source}
     labels = twist.labels.astype(np.int32)
-    walls = np.asarray(twist.boundaries, bool)
+    walls = np.asarray(twist.walls, bool)
     out_maps["labels"] = (labels, {**attrs, "units": "label"})
     out_maps["walls"] = (walls, {**attrs, "units": "bool"})
     out_maps["twist_deg"] = (maps.twist_deg.astype(np.float32), {**attrs, "units": "deg"})
@@ -1823,11 +1830,15 @@ def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, im
     out_maps["moire/heterostrain_percent"] = (maps.heterostrain_percent.astype(np.float32), {**attrs, "units": "%"})
     out_maps["moire/heterostrain_angle_deg"] = (maps.heterostrain_angle_deg.astype(np.float32),
                                                 {**attrs, "units": "deg"})
-    state = {int(r["id"]): f"twist {r['twist_deg_mean']:.3f} deg" for r in twist.table}
+    state = {int(r["id"]): f"twist {r['twist_deg']:.4g} deg" for r in fields.table}
     rows = measure.domain_table(labels, pixel_size_nm=pixel, state_names=state, amplitude=maps.amplitude)
+    # Boundaries between twist domains are walls: counted, with their lengths (their width is the maps' resolution).
+    wall_rows = measure.wall_table(twist.grown, walls, pixel_size_nm=pixel)
     tables["domains"] = (measure.DOMAIN_COLUMNS, rows)
-    tables["twist_domains"] = (list(twist.table[0]) if twist.table else ["domain"], twist.table)
-    summary["domains"] = measure.domain_summary(rows, [])
+    tables["walls"] = (measure.WALL_COLUMNS, wall_rows)
+    twist_columns = list(fields.table[0]) if fields.table else ["id"]
+    tables["twist_domains"] = (twist_columns, fields.table)
+    summary["domains"] = measure.domain_summary(rows, wall_rows)
     figures["twist"] = report.image_figure(maps.twist_deg, pixel_size_nm=pixel, cmap="viridis", units="deg",
                                            title="Local twist angle θ(r)")
     figures["heterostrain"] = report.image_figure(maps.heterostrain_percent, pixel_size_nm=pixel, cmap="magma",
@@ -1835,9 +1846,50 @@ def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, im
     figures["twist_domains"] = report.domain_figure(image, labels, walls, pixel_size_nm=pixel,
                                                     title="Twist-angle domains over the image")
     sections.append(("Moiré", [
-        ("twist", f"Local twist from the moiré wavevectors (mode: {maps.mode}); σ = {maps.sigma_nm:.3g} nm."),
+        ("twist", f"Local twist from the moiré wavevectors (mode: {maps.mode}); σ = {maps.sigma_nm:.3g} nm; "
+                  f"trusted {2.5 * maps.sigma_nm:.3g} nm (2.5 σ) from the frame edge. " + summary["moire"]["field_note"]),
         ("heterostrain", "Magnitude of the uniaxial heterostrain (polar decomposition of the layer transform)."),
-        ("twist_domains", f"Regions of one twist range (tolerance {twist.tolerance_deg:.3g}°, {twist.tolerance_source})."),
-        (None, "<h3>Twist domains</h3>" + report.html_table(list(twist.table[0]) if twist.table else [], twist.table)),
+        ("twist_domains", f"Regions of one twist range (tolerance {twist.tolerance_deg:.3g}°, {twist.tolerance_source}), "
+                          "grown over the whole frame; black lines are the walls between them."),
+        (None, "<h3>Twist domains</h3>" + report.html_table(twist_columns if fields.table else [], fields.table)),
+        (None, "<h3>Walls between twist domains</h3>" + report.html_table(measure.WALL_COLUMNS, wall_rows)),
     ]))
     return maps
+
+
+def _moire_headline(moire):
+    """Headline rows for a moiré: one value with its error where a quantity is uniform, its modes or spread where not."""
+    from .moire import _with_error
+
+    rows = {}
+    keys = (("moiré period", "period_nm", "nm"), ("twist angle", "twist_deg", "deg"),
+            ("heterostrain", "heterostrain_percent", "%"))
+    for name, key, unit in keys:
+        value = moire.get(key)
+        if value is None:
+            continue
+        kind = moire.get(f"{key}_distribution", "uniform")
+        if kind == "multimodal":
+            levels = moire.get(f"{key}_levels") or []
+            text = "multimodal: " + ", ".join(f"{_with_error(lv['value'], lv['err'], ' ' + unit)} "
+                                              f"({100 * lv['area_fraction']:.0f} %)" for lv in levels)
+            text += f"; median {moire[f'{key}_median']:.4g}, IQR {moire[f'{key}_q25']:.4g}–{moire[f'{key}_q75']:.4g} {unit}"
+        elif kind == "varies":
+            text = (f"varies: median {moire[f'{key}_median']:.4g} {unit}, IQR {moire[f'{key}_q25']:.4g}–"
+                    f"{moire[f'{key}_q75']:.4g} {unit} (no single value)")
+        else:
+            err = moire.get(f"{key}_err")
+            text = _with_error(value, err, " " + unit) if err is not None else _pm(value, None, unit)
+        if key == "twist_deg" and moire.get("twist_domains") is not None:
+            text += f" ({moire['twist_domains']} twist domains)"
+        if key == "heterostrain_percent" and kind == "uniform" and moire.get("heterostrain_angle_deg") is not None:
+            err = moire.get("heterostrain_percent_err")
+            if err is not None and np.isfinite(err) and value < 2 * err:
+                # A magnitude within two errors of zero: its axis means nothing.
+                text += " (consistent with zero; axis undetermined)"
+            else:
+                axis_err = moire.get("heterostrain_angle_deg_err")
+                text += " along " + (_with_error(moire["heterostrain_angle_deg"], axis_err, " deg") if axis_err is not None
+                                     else _pm(moire["heterostrain_angle_deg"], None, "deg", 3))
+        rows[name] = text
+    return rows

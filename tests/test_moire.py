@@ -227,7 +227,7 @@ def test_twist_map_follows_gradient():
     assert_allclose(slope, 0.002, rtol=0.05)
 
 
-def test_two_twist_regions_give_two_domains():
+def test_two_twist_regions_give_two_domains_that_cover_the_frame():
     px = 0.3
     image, truth = twisted_bilayer(shape=(320, 320), pixel_size_nm=px, regions=[1.0, 1.3])
     maps = moire_maps(image, pixel_size_nm=px, a_nm=A_GR)
@@ -238,21 +238,18 @@ def test_two_twist_regions_give_two_domains():
     # derived: away from the wall the local twist is the region's (ripple 0.2 %, see above);
     # the domain mean includes pixels within ~sigma of the wall, so 0.02 deg.
     assert_allclose(means, [1.0, 1.3], atol=0.02)
-    # Wall position: the midpoint between the two domains on each row, against the true x_b.
+    # The domains cover the frame: every pixel is in a domain or on the one-pixel wall (nothing is masked),
+    # and both reach the frame's edges (cut by the frame).
+    assert np.all((dom.labels > 0) | dom.walls)
+    assert [d["touches_edge"] for d in dom.table] == [True, True]
+    assert np.array_equal(dom.labels > 0, (dom.grown > 0) & ~dom.walls)
+    # Wall position against the true x_b: asked, within two moiré periods, on every row (the
+    # boundary runs from the top edge to the bottom edge).
     x_b = truth["boundary_x_nm"][0]
     period = moire_period(A_GR, 1.0)
-    left = min(dom.table, key=lambda d: d["twist_deg_mean"])["id"]
-    right = max(dom.table, key=lambda d: d["twist_deg_mean"])["id"]
-    walls = []
-    for row in range(dom.labels.shape[0]):
-        lc = np.nonzero(dom.labels[row] == left)[0]
-        rc = np.nonzero(dom.labels[row] == right)[0]
-        if lc.size and rc.size:
-            walls.append(0.5 * (lc.max() + rc.min()) * px)
-    assert len(walls) > 50
-    # Asked: the wall within two moiré periods of the truth.
-    assert np.max(np.abs(np.array(walls) - x_b)) < 2 * period
-    assert dom.boundaries[:, int(x_b / px)].sum() > 50
+    rows, cols = np.nonzero(dom.walls)
+    assert np.max(np.abs(cols * px - x_b)) < 2 * period
+    assert np.array_equal(np.unique(rows), np.arange(320))
 
 
 def test_find_moire_q_ignores_bragg_peaks():

@@ -129,7 +129,7 @@ def test_twist_domains_on_an_analytic_disc_and_an_unresolved_strip():
     dom = twist_domains(twist, pixel_size_nm=1.0, tolerance_deg=0.1, resolution_nm=8.0)
     means = sorted(round(d["twist_deg_mean"], 6) for d in dom.table)
     assert means == [1.0, 1.3]  # derived: two domains; the strip is gone
-    assert not dom.labels[85:87, 10:80].any()  # derived: the strip is narrower than the opening disc
+    assert not dom.core[85:87, 10:80].any()  # derived: the strip is narrower than the opening disc
     disc_row = next(d for d in dom.table if abs(d["twist_deg_mean"] - 1.3) < 1e-9)
     # derived: lattice points within radius 20 (Gauss circle count) = the digital disc's area;
     # a disc opened by a smaller disc is itself (digital pixels at the rim may go: one rim ring)
@@ -286,7 +286,7 @@ def test_twist_domain_opening_equals_scipy_binary_opening():
         dom = twist_domains(twist, pixel_size_nm=1.0, tolerance_deg=0.1, resolution_nm=2 * r, min_area_nm2=1e-9)
         ids = [row["id"] for row in dom.table if abs(row["twist_deg_mean"] - 1.0) < 1e-9]
         # reference library: scipy.ndimage.binary_opening by the same disc, border_value=0
-        assert_array_equal(np.isin(dom.labels, ids), ndimage.binary_opening(region, structure=_disc(r)))
+        assert_array_equal(np.isin(dom.core, ids), ndimage.binary_opening(region, structure=_disc(r)))
 
 
 def test_defects_per_component_significance():
