@@ -16,7 +16,7 @@ DOMAIN_COLUMNS = [
 ]
 WALL_COLUMNS = [
     "wall", "domain_a", "domain_b", "length_nm", "width_nm", "width_nm_err", "width_nm_upper_limit",
-    "width_resolved", "phase_jump_deg", "n_pixels",
+    "width_resolved", "phase_jump_deg", "phase_jump_deg_err", "n_pixels",
 ]
 
 #: Bootstrap resamples for the uncertainty of summary statistics.
@@ -103,7 +103,7 @@ def domain_table(labels, *, pixel_size_nm, state_names=None, amplitude=None, fie
     return rows
 
 
-def wall_table(grown, walls, *, pixel_size_nm, fields=None, sigma_nm=None):
+def wall_table(grown, walls, *, pixel_size_nm, fields=None, sigma_nm=None, trusted=None):
     """A row per wall segment: the two domains, length, width from the forward model, phase jump.
 
     Parameters
@@ -118,6 +118,8 @@ def wall_table(grown, walls, *, pixel_size_nm, fields=None, sigma_nm=None):
         Order-parameter fields for the width fit (:func:`domains.segment.wall_profile_fit`).
     sigma_nm : float, optional
         Lock-in width used for ``fields``.
+    trusted : (row, col) bool, optional
+        Where the lock-in is reliable; the width fit uses only these pixels.
 
     Returns
     -------
@@ -126,7 +128,9 @@ def wall_table(grown, walls, *, pixel_size_nm, fields=None, sigma_nm=None):
         (``width_resolved``) has ``width_nm`` +- ``width_nm_err`` and no upper
         limit (NaN); an unresolved wall has ``width_nm`` and ``width_nm_err`` NaN
         and ``width_nm_upper_limit``, a one-sided limit at two standard errors
-        (:func:`domains.segment.wall_profile_fit`).
+        (:func:`domains.segment.wall_profile_fit`). ``phase_jump_deg`` and
+        ``phase_jump_deg_err`` hold one value per component, separated by ";"
+        (the 1 sigma errors of the fitted jumps).
 
     Examples
     --------
@@ -144,11 +148,12 @@ def wall_table(grown, walls, *, pixel_size_nm, fields=None, sigma_nm=None):
         row = {"wall": number, "domain_a": a, "domain_b": b,
                "length_nm": skeleton_length_nm(pixels, pixel_size_nm), "width_nm": math.nan,
                "width_nm_err": math.nan, "width_nm_upper_limit": math.nan, "width_resolved": False,
-               "phase_jump_deg": "", "n_pixels": int(pixels.sum())}
+               "phase_jump_deg": "", "phase_jump_deg_err": "", "n_pixels": int(pixels.sum())}
         if fields is not None and sigma_nm is not None:
             fit = _profile_fit_near(fields, grown, a, b, pixels, corner, sigma_nm=sigma_nm, dy=dy, dx=dx,
-                                    reach_sigma=4.0)
-            row.update(width_resolved=fit["resolved"], phase_jump_deg=";".join(f"{j:.1f}" for j in fit["phase_jump_deg"]))
+                                    reach_sigma=4.0, trusted=trusted)
+            row.update(width_resolved=fit["resolved"], phase_jump_deg=";".join(f"{j:.1f}" for j in fit["phase_jump_deg"]),
+                       phase_jump_deg_err=";".join(f"{e:.2g}" for e in fit["phase_jump_deg_err"]))
             if fit["resolved"]:
                 row.update(width_nm=fit["width_nm"], width_nm_err=fit["width_nm_err"])
             else:

@@ -558,7 +558,8 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                                             amplitude_threshold=floor.threshold / 2)
             # Rows and columns on the input grid (positions in nm are the same on both grids).
             defects += [{**d, "component": j, "row": d["row"] * step_, "col": d["col"] * step_} for d in found_j]
-        wall_rows = measure.wall_table(seg.grown, walls_c, pixel_size_nm=pc, fields=fields_used, sigma_nm=sigma_nm)
+        wall_rows = measure.wall_table(seg.grown, walls_c, pixel_size_nm=pc, fields=fields_used, sigma_nm=sigma_nm,
+                                       trusted=trusted_c)
 
         def score_at(rows, cols):
             # The state's score at input pixels from the fields interpolated between samples (band-limited).
