@@ -253,11 +253,31 @@ class OrderResult:
             "q_rad_per_nm": None if self.order_q is None else self.order_q.tolist(),
             "q_err_rad_per_nm": None if not self.families else np.concatenate(
                 [f.q_err_rad_per_nm for f in self.families]).tolist(),
+            "q_err_meaning": _q_err_meaning(self.families, self.lattice),
             "coefficients": None if self.coefficients is None else self.coefficients.tolist(),
             "variants": None if not self.families else int(sum(f.variants for f in self.families)),
             "moire_from_bragg": self.moire_from_bragg,
             "reasons": list(self.reasons),
         }
+
+
+def _q_err_meaning(families, lattice_reading):
+    """What ``q_err_rad_per_nm`` of the summary is, in words (None without an order)."""
+    if not families:
+        return None
+    kinds = {f.kind for f in families}
+    given = lattice_reading is None or lattice_reading.bragg_err_rad_per_nm is None
+    basis = ("the lattice given or not measured by lock-in: the lattice constant and orientation errors "
+             "propagated (zero for a lattice given by the user)" if given else
+             "the errors of the Bragg vectors measured by lock-in (phase noise of the image; the closure "
+             "G1 + G2 + G3 = 0 when it fails beyond them) propagated to q = h G1 + k G2")
+    parts = []
+    if "commensurate" in kinds:
+        parts.append("commensurate q: exact in units of the lattice; its error is that of the lattice, " + basis)
+    if "incommensurate" in kinds:
+        parts.append("incommensurate q: standard error of the local wavevector measured relative to the "
+                     "lattice (phase-gradient spread / sqrt(independent sigma-patches)), with the basis error added")
+    return "1 sigma per Cartesian component, statistical; " + "; ".join(parts)
 
 
 # --------------------------------------------------------------------------------------

@@ -215,7 +215,8 @@ def domain_summary(domain_rows, wall_rows, *, defects=()):
 
     Wall widths: only walls whose width the lock-in resolves (``width_resolved``;
     rows without that flag count as resolved) enter ``wall_width_nm_mean`` +-
-    ``wall_width_nm_mean_err`` (NaN when none is resolved). Unresolved walls
+    ``wall_width_nm_mean_err`` (NaN when none is resolved); the error is the larger of the
+    bootstrap over those walls and their fit errors carried to the mean, sqrt(sum e_i^2) / n. Unresolved walls
     carry only an upper limit; they are summarised by
     ``wall_width_nm_upper_limit``, the largest of their per-wall limits (each
     unresolved wall is narrower than it), and ``wall_width_nm_upper_limit_median``,
@@ -255,9 +256,12 @@ def domain_summary(domain_rows, wall_rows, *, defects=()):
     resolved = [r for r in resolved if np.isfinite(r.get("width_nm", math.nan))]
     widths = [r["width_nm"] for r in resolved]
     width, width_err = bootstrap(widths)
-    if len(resolved) == 1:
-        # One wall: no spread to bootstrap; its own fit error is the uncertainty.
-        width_err = float(resolved[0].get("width_nm_err", math.nan))
+    fit_errors = np.array([r.get("width_nm_err", math.nan) for r in resolved], dtype=float)
+    if fit_errors.size and np.all(np.isfinite(fit_errors)):
+        # The fit errors carried to the mean, sqrt(sum e_i^2) / n: a few walls can agree by chance
+        # better than their errors allow, and the bootstrap of their spread would then be too small.
+        propagated = float(np.sqrt(np.sum(fit_errors**2)) / fit_errors.size)
+        width_err = propagated if not np.isfinite(width_err) else max(width_err, propagated)
     limits = [r["width_nm_upper_limit"] for r in wall_rows if not r.get("width_resolved", True)
               and np.isfinite(r.get("width_nm_upper_limit", math.nan))]
     return {
@@ -278,6 +282,8 @@ def domain_summary(domain_rows, wall_rows, *, defects=()):
         "wall_width_nm_upper_limit": float(max(limits)) if limits else math.nan,
         "wall_width_nm_upper_limit_median": float(np.median(limits)) if limits else math.nan,
         "defect_count": len(defects),
-        "uncertainty": f"bootstrap standard error over domains ({BOOTSTRAP_RESAMPLES} resamples, fixed seed); "
-                       "unresolved wall widths as upper limits (two standard errors), not averaged",
+        "uncertainty": f"1 sigma; areas: bootstrap standard error over domains ({BOOTSTRAP_RESAMPLES} resamples, "
+                       "fixed seed), the spread of this frame's domains, not a measurement error of each; wall "
+                       "width: the larger of the bootstrap over resolved walls and their fit errors carried to the "
+                       "mean; unresolved wall widths as upper limits (two standard errors), not averaged",
     }

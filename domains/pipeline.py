@@ -1357,6 +1357,7 @@ def _refine_lattice(image, pixel, mask, reading, peaks):
         # Where the plane fit failed, the centre of the gradients with its own (isotropic) error.
         q_fit[bad] = local[bad]
         cov[bad] = (np.asarray(err, float)[bad] ** 2 / 2)[:, None, None] * np.eye(2)
+        cov = cov + _quadrant_spread(fill, q_fit, sigma_fit, pixel, mask, noise_var)[:, None, None] * np.eye(2)
         signs = np.array([1.0 if np.allclose(fourier._canonical(v), v) else -1.0 for v in q_fit])
         return signs[:, None] * q_fit, cov, np.sqrt(np.trace(cov, axis1=1, axis2=2) / 2)
 
@@ -1428,6 +1429,50 @@ def _refine_lattice(image, pixel, mask, reading, peaks):
                 f"orientation undo a slow-axis drift distortion (shear {shear:+.4f}, stretch {stretch:+.4f}): "
                 f"a = {a_nm:.5g} nm",))
     return replace(reading, lattice=refined, bragg_err_rad_per_nm=e_matched)
+
+
+def _quadrant_spread(image, q, sigma_nm, pixel, mask, noise_var, level=0.05):
+    """Variance per Cartesian component that a non-uniform distortion adds to each frame-wide wavevector.
+
+    Each wavevector is measured again in the four quadrants of the frame
+    (:func:`domains._read_order._wavevector_fit`). When they disagree beyond their own errors (chi^2
+    with 6 degrees of freedom above its upper ``level`` quantile: drift, creep), the frame value,
+    roughly their mean, is uncertain by their spread s over sqrt(4) (the quadrants taken as
+    independent samples of the distortion, as a block jackknife does; derived); otherwise 0. A
+    distortion uniform over the frame (a piezo calibration, a constant creep) leaves no spread and
+    is not included: no single image shows it.
+    """
+    from scipy.stats import chi2 as chi2_dist
+
+    from ._read_order import _wavevector_fit
+
+    rows, cols = image.shape
+    halves = [(slice(0, rows // 2), slice(0, cols // 2)), (slice(0, rows // 2), slice(cols // 2, cols)),
+              (slice(rows // 2, rows), slice(0, cols // 2)), (slice(rows // 2, rows), slice(cols // 2, cols))]
+    values, covs = [], []
+    for part in halves:
+        try:
+            v, c = _wavevector_fit(image[part], q, sigma_nm=sigma_nm, pixel=pixel,
+                                   mask=None if mask is None else np.asarray(mask)[part], noise_var=noise_var)
+        except InputError:
+            return np.zeros(len(q))
+        values.append(v)
+        covs.append(c)
+    values, covs = np.array(values), np.array(covs)  # (4, k, 2), (4, k, 2, 2)
+    extra = np.zeros(len(q))
+    for j in range(len(q)):
+        good = np.all(np.isfinite(values[:, j]), axis=1) & np.all(np.isfinite(covs[:, j].reshape(4, -1)), axis=1)
+        if good.sum() < 3:
+            continue
+        v, c = values[good, j], covs[good, j]
+        w = np.linalg.inv(c)
+        centre = np.linalg.solve(w.sum(axis=0), np.einsum("bij,bj->i", w, v))
+        d = v - centre
+        chi2 = float(np.einsum("bi,bij,bj->", d, w, d))
+        dof = 2 * (len(v) - 1)
+        if chi2 > chi2_dist.ppf(1 - level, dof):
+            extra[j] = float(np.sum(d**2)) / dof / len(v)  # per component: sample variance / number of quadrants
+    return extra
 
 
 def _spec_from_order(result, image, pixel, mask, config):
