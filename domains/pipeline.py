@@ -622,7 +622,8 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                 found_j = [d for d in found_j if _loop_confirms(fields_used[j], d, pc, floor.threshold / 2)]
             # Rows and columns on the input grid (positions in nm are the same on both grids).
             defects += [{**d, "component": j, "row": d["row"] * step_, "col": d["col"] * step_} for d in found_j]
-        wall_rows = measure.wall_table(seg.grown, walls_c, pixel_size_nm=pc, fields=fields_used, sigma_nm=sigma_nm)
+        wall_rows = measure.wall_table(seg.grown, walls_c, pixel_size_nm=pc, fields=fields_used, sigma_nm=sigma_nm,
+                                       trusted=trusted_c)
 
         def score_at(rows, cols):
             # The state's score at input pixels from the fields interpolated between samples (band-limited).
@@ -1592,14 +1593,20 @@ def _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_
 def _refine_lattice(image, pixel, mask, reading, peaks):
     """The lattice fitted again to its Bragg wavevectors measured by lock-in where the lattice is regular.
 
-    The local wavevector q + grad(theta) is taken at the centre of its distribution over the frame
-    (trimmed mean), not the frame average: piezo creep in the first lines, a tip change or a step
-    distorts part of the frame and would bias the average.
+    The local wavevector q + grad(theta) is first taken at the centre of its distribution over the
+    frame (trimmed mean), not the frame average: piezo creep in the first lines, a tip change or a step
+    distorts part of the frame and would bias the average. From there a plane through the unwrapped
+    lock-in phase, with the pixels far off it left out, gives each Bragg vector at the Cramér–Rao
+    precision and its covariance from the phase noise measured in the image
+    (:func:`domains._read_order._wavevector_fit`). The errors of a and of the orientation follow from
+    those covariances, scaled up by the disagreement of the Bragg peaks with an ideal lattice
+    (:func:`domains._read_order._lattice_uncertainty`); the errors of the measured Bragg vectors are kept
+    (``bragg_err_rad_per_nm``) for the superlattice's wavevectors.
     """
     from dataclasses import replace
 
     from . import fourier
-    from ._read_order import _wavevector_stats
+    from ._read_order import _lattice_uncertainty, _wavevector_fit, _wavevector_stats
 
     lat = reading.lattice
     measured = np.asarray(lat.bragg_measured if lat.bragg_measured is not None else lat.bragg, float)
@@ -1607,18 +1614,76 @@ def _refine_lattice(image, pixel, mask, reading, peaks):
     sigma, _ = choose_sigma(np.vstack([measured, allq]) if len(allq) else measured, leakage=0.01)
     sigma = min(max(2 * sigma, 3 * max(pixel)), min(image.shape[0] * pixel[0], image.shape[1] * pixel[1]) / 10)
     fill = np.where(np.isfinite(image), image, np.nanmean(image))
-    local, err, *_ = _wavevector_stats(fill, measured, sigma_nm=sigma, pixel=pixel, mask=mask, threshold=0.0)
-    if not np.all(np.isfinite(local)):
+    # The plane fit needs only the Bragg peaks kept apart from their own nearest neighbours (twice the
+    # 1 % leakage width): a narrower lock-in than the one above leaves more of the frame trusted and
+    # more independent patches to measure the noise on.
+    others = np.vstack([measured, -measured, allq, -allq, np.zeros((1, 2))]) if len(allq) else \
+        np.vstack([measured, -measured, np.zeros((1, 2))])
+    nearest = min(float(np.min(d[d > 1e-6 * np.hypot(*g)])) for g in measured
+                  for d in [np.hypot(*(others - g).T)])
+    sigma_fit = min(max(2 * math.sqrt(2 * math.log(100)) / nearest, 3 * max(pixel)), sigma)
+    try:
+        from .order import noise_floor
+
+        floor = noise_floor(fill, measured, sigma_nm=sigma_fit, pixel_size_nm=pixel, mask=mask,
+                            avoid_q=allq if len(allq) else (), step=choose_step(sigma_fit, pixel, fill.shape))
+        noise_var = (floor.rayleigh_scale / 2) ** 2  # 2|A| of noise is Rayleigh: each component has sd scale / 2
+    except InputError:
+        noise_var = None
+
+    def measure(q_start):
+        """Bragg vectors (canonical), their 2 x 2 covariances, isotropic 1 sigma per component, and the
+        statistical covariances alone (without the quadrant spread)."""
+        local, err, *_ = _wavevector_stats(fill, q_start, sigma_nm=sigma, pixel=pixel, mask=mask, threshold=0.0)
+        if not np.all(np.isfinite(local)):
+            return None
+        q_fit, cov = _wavevector_fit(fill, local, sigma_nm=sigma_fit, pixel=pixel, mask=mask, noise_var=noise_var)
+        bad = ~np.all(np.isfinite(q_fit), axis=1) | ~np.all(np.isfinite(cov.reshape(len(cov), -1)), axis=1)
+        # Where the plane fit failed, the centre of the gradients with its own (isotropic) error.
+        q_fit[bad] = local[bad]
+        cov[bad] = (np.asarray(err, float)[bad] ** 2 / 2)[:, None, None] * np.eye(2)
+        stat = cov.copy()
+        cov = cov + _quadrant_spread(fill, q_fit, sigma_fit, pixel, mask, noise_var)
+        signs = np.array([1.0 if np.allclose(fourier._canonical(v), v) else -1.0 for v in q_fit])
+        return signs[:, None] * q_fit, cov, np.sqrt(np.trace(cov, axis1=1, axis2=2) / 2), stat
+
+    def in_matched_order(refined, q_can, values):
+        """``values`` (one per measured vector) in the order of ``refined.bragg_measured``."""
+        index = [int(np.argmin([min(np.hypot(*(m - v)), np.hypot(*(m + v))) for v in q_can]))
+                 for m in np.asarray(refined.bragg_measured, float)]
+        return np.asarray(values)[index]
+
+    def closure_scaled(refined, e_matched):
+        """Errors of the matched vectors, scaled up when a hexagonal set does not close (G1 + G2 + G3 = 0)."""
+        if refined.kind != "hexagonal" or len(e_matched) != 3:
+            return e_matched
+        from ._read_order import _birge
+
+        closure = np.sum(np.asarray(refined.bragg_measured, float), axis=0)
+        chi2 = float(closure @ closure) / float(np.sum(e_matched**2))  # two components, 2 degrees of freedom
+        return e_matched * _birge(chi2, 2)
+
+    first = measure(measured)
+    if first is None:
         return reading
-    refined = fourier._fit_lattice(lat.kind, np.array([fourier._canonical(v) for v in local]), err)
+    q_can, cov, e_iso, cov_stat = first
+    refined = fourier._fit_lattice(lat.kind, q_can, e_iso)
+    if refined.kind in ("hexagonal", "square") and len(q_can) >= 2:
+        rel, rot, _, _ = _lattice_uncertainty(refined.kind, q_can, cov)
+        refined = replace(refined, a_err_nm=refined.a_nm * rel, angle_err_deg=math.degrees(rot))
+    e_matched = closure_scaled(refined, in_matched_order(refined, q_can, e_iso))
     if reading.second is not None:
         # The other layer of a bilayer, measured the same way (its peaks sit a moiré wavevector away).
         sec = reading.second
         q2 = np.asarray(sec.bragg_measured if sec.bragg_measured is not None else sec.bragg, float)
-        local2, err2, *_ = _wavevector_stats(fill, q2, sigma_nm=sigma, pixel=pixel, mask=mask, threshold=0.0)
-        if np.all(np.isfinite(local2)):
-            reading = replace(reading, second=fourier._fit_lattice(
-                sec.kind, np.array([fourier._canonical(v) for v in local2]), err2))
+        second = measure(q2)
+        if second is not None:
+            q2_can, cov2, e2, _ = second
+            refined2 = fourier._fit_lattice(sec.kind, q2_can, e2)
+            if refined2.kind in ("hexagonal", "square") and len(q2_can) >= 2:
+                rel2, rot2, _, _ = _lattice_uncertainty(refined2.kind, q2_can, cov2)
+                refined2 = replace(refined2, a_err_nm=refined2.a_nm * rel2, angle_err_deg=math.degrees(rot2))
+            reading = replace(reading, second=refined2)
     if refined.kind in ("hexagonal", "square"):
         # Drift and creep stretch and shear the frame along the slow scan axis; the lattice constant and
         # orientation are those of the regular lattice behind that distortion (slow_axis_drift_fit).
@@ -1627,19 +1692,21 @@ def _refine_lattice(image, pixel, mask, reading, peaks):
         g = np.asarray(refined.bragg_measured, float)
         a_nm, angle, shear, stretch = slow_axis_drift_fit(g, refined.kind)
         # Only a significant distortion is undone: the lengths of the Bragg vectors must disagree beyond
-        # their errors (chi-square with 2 degrees of freedom above 13.8, p < 0.001), else the fit would
-        # turn measurement noise into a drift.
+        # their statistical errors (chi-square with 2 degrees of freedom above 13.8, p < 0.001), else the
+        # fit would turn measurement noise into a drift. (Not beyond the quadrant spread: a creep makes
+        # that spread itself.)
         lengths = np.hypot(*g.T)
-        e_len = np.broadcast_to(np.asarray(err, float), lengths.shape) if np.size(err) in (1, len(g)) else \
-            np.full(lengths.shape, float(np.nanmax(err)))
+        e_len = in_matched_order(refined, q_can, np.sqrt(np.einsum(
+            "ni,nij,nj->n", q_can / np.hypot(*q_can.T)[:, None], cov_stat, q_can / np.hypot(*q_can.T)[:, None])))
         w = 1 / np.maximum(e_len, 1e-12) ** 2
         centre = np.sum(w * lengths) / np.sum(w)
         chi2 = float(np.sum(w * (lengths - centre) ** 2))
         if max(abs(shear), abs(stretch)) < 0.1 and chi2 > 13.8:
+            # The distortion model takes up the disagreement of the peaks: the error of a and of the
+            # orientation is the spread of its fit over redraws of the vectors within their errors.
             rng = np.random.default_rng(0)
-            e = np.broadcast_to(np.asarray(err, float).reshape(-1, 1) if np.size(err) == len(g) else np.nanmax(err),
-                                g.shape)
-            draws = [slow_axis_drift_fit(g + rng.normal(0, 1, g.shape) * e, refined.kind)[:2] for _ in range(24)]
+            draws = [slow_axis_drift_fit(g + rng.normal(0, 1, g.shape) * e_matched[:, None], refined.kind)[:2]
+                     for _ in range(64)]
             a_err = float(np.std([d[0] for d in draws], ddof=1))
             angle_err = float(np.std([(d[1] - angle + 30) % 60 - 30 for d in draws], ddof=1))
             refined = replace(refined, a_nm=a_nm, a_err_nm=max(a_err, 1e-12), angle_deg=angle,
@@ -1648,7 +1715,54 @@ def _refine_lattice(image, pixel, mask, reading, peaks):
                 f"the Bragg vectors differ in length beyond their errors (chi2 = {chi2:.3g}): a and the "
                 f"orientation undo a slow-axis drift distortion (shear {shear:+.4f}, stretch {stretch:+.4f}): "
                 f"a = {a_nm:.5g} nm",))
-    return replace(reading, lattice=refined)
+    return replace(reading, lattice=refined, bragg_err_rad_per_nm=e_matched)
+
+
+def _quadrant_spread(image, q, sigma_nm, pixel, mask, noise_var, level=0.05):
+    """Covariance (k, 2, 2) that a non-uniform distortion adds to each frame-wide wavevector.
+
+    Each wavevector is measured again in the four quadrants of the frame
+    (:func:`domains._read_order._wavevector_fit`). When they disagree beyond their own errors (chi^2
+    with 6 degrees of freedom above its upper ``level`` quantile: drift, creep), the frame value,
+    roughly their mean, is uncertain by their spread over sqrt(2) (the 2 x 2 sample covariance of the
+    quadrant values over 2: a drift that mostly rotates the lattice adds to the angle, not to a); otherwise 0. A block jackknife
+    would divide by sqrt(4), taking the quadrants as independent samples of the distortion; a drift
+    smooth on the scale of the frame makes them correlated, and over 60 drifted lattices (128 and 160
+    px, wavelengths 0.8-3 frames) sqrt(4) left the angle's 2-sigma coverage at 87 %, sqrt(2) gave
+    93-97 % [measured]. A distortion uniform over the frame (a piezo calibration, a constant creep)
+    leaves no spread and is not included: no single image shows it.
+    """
+    from scipy.stats import chi2 as chi2_dist
+
+    from ._read_order import _wavevector_fit
+
+    rows, cols = image.shape
+    halves = [(slice(0, rows // 2), slice(0, cols // 2)), (slice(0, rows // 2), slice(cols // 2, cols)),
+              (slice(rows // 2, rows), slice(0, cols // 2)), (slice(rows // 2, rows), slice(cols // 2, cols))]
+    values, covs = [], []
+    for part in halves:
+        try:
+            v, c = _wavevector_fit(image[part], q, sigma_nm=sigma_nm, pixel=pixel,
+                                   mask=None if mask is None else np.asarray(mask)[part], noise_var=noise_var)
+        except InputError:
+            return np.zeros((len(q), 2, 2))
+        values.append(v)
+        covs.append(c)
+    values, covs = np.array(values), np.array(covs)  # (4, k, 2), (4, k, 2, 2)
+    extra = np.zeros((len(q), 2, 2))
+    for j in range(len(q)):
+        good = np.all(np.isfinite(values[:, j]), axis=1) & np.all(np.isfinite(covs[:, j].reshape(4, -1)), axis=1)
+        if good.sum() < 3:
+            continue
+        v, c = values[good, j], covs[good, j]
+        w = np.linalg.inv(c)
+        centre = np.linalg.solve(w.sum(axis=0), np.einsum("bij,bj->i", w, v))
+        d = v - centre
+        chi2 = float(np.einsum("bi,bij,bj->", d, w, d))
+        dof = 2 * (len(v) - 1)
+        if chi2 > chi2_dist.ppf(1 - level, dof):
+            extra[j] = d.T @ d / (len(v) - 1) / 2  # sample covariance / 2 (see above)
+    return extra
 
 
 def _spec_from_order(result, image, pixel, mask, config):

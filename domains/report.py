@@ -906,6 +906,7 @@ UNIT_SUFFIXES = ("rad_per_nm", "nm2", "nm", "deg", "rad", "nS", "pA", "pct", "pe
 LIST_COLUMNS = {
     "mean_phase_deg": "mean_phase_q{i}_deg",
     "phase_jump_deg": "phase_jump_q{i}_deg",
+    "phase_jump_deg_err": "phase_jump_q{i}_deg_err",
     "delta_phi_deg": "delta_phi_q{i}_deg",
     "delta_phi_deg_se": "delta_phi_q{i}_deg_se",
     "q_rad_per_nm": "q{i}{xy}_rad_per_nm",
