@@ -854,7 +854,10 @@ def _wavevector_fit(image, q, *, sigma_nm, pixel, mask=None, clip=4.0, noise_var
         for col in range(3):
             plane[r_, c_] = design[:, col]
             smoothed[:, col] = norm * ndimage.gaussian_filter(plane, corr_px, mode="constant")[r_, c_]
-        inv = np.linalg.inv(design.T @ design)
+        try:
+            inv = np.linalg.inv(design.T @ design)
+        except np.linalg.LinAlgError:
+            continue
         xrx = design.T @ smoothed
         dof = r_.size - float(np.trace(inv @ xrx))
         if not dof > 0:

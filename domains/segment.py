@@ -375,11 +375,12 @@ def wall_profile_fit(fields, grown, a, b, *, sigma_nm, pixel_size_nm, segment=No
     Errors (1 sigma, statistical): the least-squares covariance in its sandwich form for the lock-in's
     correlated noise, (J^T J)^-1 J^T R J (J^T J)^-1 v, with R the correlation of the lock-in of white
     noise between two pixels d apart, exp(-d^2 / (4 sigma^2)), in both the real and the imaginary
-    part, and v the noise variance measured from the fit's own residuals (their expectation under
-    that correlation, N - tr((J^T J)^-1 J^T R J), as the degrees of freedom). It is the covariance
-    of the least-squares estimate under that noise [1]; the residuals include any misfit of the
-    model, so a wall that is not a smoothed step gets a larger error. Checked by coverage over noise
-    realisations on the decimated grid (tests/test_errors_coverage.py).
+    part, and v the noise variance of each component measured from its own residuals (their
+    expectation under that correlation, N - tr((J^T J)^-1 J^T R J), as the degrees of freedom). It is
+    the covariance of the least-squares estimate under that noise [1]; the residuals include any
+    misfit of the model (a wall that is not a smoothed step; near a sharp wall, the other components'
+    steps leaking into a component's band), which then counts as noise. Checked by coverage over
+    noise realisations on the decimated grid (tests/test_errors_coverage.py).
 
     Parameters
     ----------

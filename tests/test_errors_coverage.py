@@ -233,6 +233,7 @@ def test_unresolved_wall_is_reported_by_an_upper_limit_that_covers_the_truth():
     assert LOW <= np.mean(covered) <= HIGH
 
 
+@pytest.mark.slow
 def test_mean_domain_area_error_covers_the_material_mean():
     # The error of the mean area treats the frame's domains as a sample of the material's: each draw
     # is one frame of six domains whose areas are gamma-distributed with shape 4 and mean 30 nm^2 (close
