@@ -23,6 +23,33 @@ WALL_COLUMNS = [
 BOOTSTRAP_RESAMPLES = 2000
 
 
+def _label_means(labels, n, amplitude=None, fields=None):
+    """Per label 0..n-1 (NaN ignored): the mean amplitude over pixels and components, and per field the
+    circular mean phase in degrees; (None, []) for what is not given. One bincount per quantity."""
+    flat = np.clip(np.asarray(labels), 0, None).ravel()
+
+    def label_sum(values):
+        finite = np.isfinite(values)
+        return (np.bincount(flat, weights=np.where(finite, values, 0).ravel(), minlength=n),
+                np.bincount(flat, weights=finite.ravel().astype(float), minlength=n))
+
+    mean_amp = None
+    if amplitude is not None:
+        amp = np.asarray(amplitude, dtype=float)
+        sums = [label_sum(a) for a in (amp[None] if amp.ndim == 2 else amp)]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean_amp = sum(t for t, _ in sums) / sum(c for _, c in sums)
+    phases = []
+    for f in fields if fields is not None else ():
+        f = np.asarray(f)
+        unit = f / np.where(np.abs(f) > 0, np.abs(f), 1)
+        re, cnt = label_sum(unit.real)
+        im, _ = label_sum(unit.imag)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            phases.append(np.degrees(np.angle((re + 1j * im) / cnt)))
+    return mean_amp, phases
+
+
 def domain_table(labels, *, pixel_size_nm, state_names=None, amplitude=None, fields=None, sample_labels=None):
     """A row per domain: area, equivalent diameter, centroid, mean amplitude and phases, edge contact.
 
@@ -57,32 +84,9 @@ def domain_table(labels, *, pixel_size_nm, state_names=None, amplitude=None, fie
     """
     dy, dx = pixel_size_pair(pixel_size_nm)
     labels = np.asarray(labels)
-    amp = None if amplitude is None else np.asarray(amplitude, dtype=float)
-    if amp is not None and amp.ndim == 2:
-        amp = amp[None]
     on = labels if sample_labels is None else np.asarray(sample_labels)
     n = int(max(labels.max(initial=0), on.max(initial=0))) + 1
-    flat = np.clip(on, 0, None).ravel()
-
-    def label_sum(values):
-        finite = np.isfinite(values)
-        return (np.bincount(flat, weights=np.where(finite, values, 0).ravel(), minlength=n),
-                np.bincount(flat, weights=finite.ravel().astype(float), minlength=n))
-
-    mean_amp = None
-    if amp is not None:
-        sums = [label_sum(a) for a in amp]
-        total, count = sum(t for t, _ in sums), sum(c for _, c in sums)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            mean_amp = total / count
-    phases = []
-    for f in fields if fields is not None else ():
-        f = np.asarray(f)
-        unit = f / np.where(np.abs(f) > 0, np.abs(f), 1)
-        re, cnt = label_sum(unit.real)
-        im, _ = label_sum(unit.imag)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            phases.append(np.degrees(np.angle((re + 1j * im) / cnt)))
+    mean_amp, phases = _label_means(on, n, amplitude, fields)
     rows = []
     for region in regionprops(labels, spacing=(dy, dx)):
         r0, c0, r1, c1 = region.bbox

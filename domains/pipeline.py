@@ -924,27 +924,10 @@ def _domain_table_chunked(labels, walls, *, pixel_size_nm, state_names, amplitud
         total[:, :p.shape[1]] += p
     touching = set(int(v) for e in edges for v in np.unique(e))
     # Amplitudes and phases from the samples, as measure.domain_table reads them.
-    flat = np.clip(np.asarray(sample_labels), 0, None).ravel()
-    m = max(size, int(flat.max(initial=0)) + 1)
+    from .measure import _label_means
 
-    def label_sum(values):
-        finite = np.isfinite(values)
-        return (np.bincount(flat, weights=np.where(finite, values, 0).ravel(), minlength=m),
-                np.bincount(flat, weights=finite.ravel().astype(float), minlength=m))
-
-    amp = np.asarray(amplitude, dtype=float)
-    amp = amp[None] if amp.ndim == 2 else amp
-    amp_sums = [label_sum(a) for a in amp]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean_amp = sum(t for t, _ in amp_sums) / sum(c for _, c in amp_sums)
-    phases = []
-    for f in fields:
-        f = np.asarray(f)
-        unit = f / np.where(np.abs(f) > 0, np.abs(f), 1)
-        re, cnt = label_sum(unit.real)
-        im, _ = label_sum(unit.imag)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            phases.append(np.degrees(np.angle((re + 1j * im) / cnt)))
+    m = max(size, int(np.max(sample_labels, initial=0)) + 1)
+    mean_amp, phases = _label_means(sample_labels, m, amplitude, fields)
     rows = []
     for lab in range(1, size):
         count = int(total[0, lab])
