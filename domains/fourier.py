@@ -885,8 +885,14 @@ def _threshold_values(unique, n_bins, false_alarm, dof=1):
     def log_p(t):
         return np.sum(log_j - np.where(used, np.log(j + t[:, None] / math.log(2)), 0.0), axis=1)
 
-    lo = np.zeros(len(unique))
-    hi = np.ones(len(unique))
+    return _solve_decreasing(log_p, target, len(unique))
+
+
+def _solve_decreasing(log_p, target, n):
+    """The t > 0 (n of them, vectorised) where a decreasing log_p(t) falls to ``target``: doubling to
+    bracket it, then 60 bisections (relative precision below 1e-15)."""
+    lo = np.zeros(n)
+    hi = np.ones(n)
     while np.any((log_p(hi) > target) & (hi < 1e12)):
         hi = np.where(log_p(hi) > target, hi * 2, hi)
     for _ in range(60):
@@ -920,16 +926,7 @@ def _threshold_values_averaged(unique, n_bins, false_alarm, dof):
         p = np.sum(weights * special.gammaincc(k, k * t[:, None] * scale), axis=1) / math.sqrt(math.pi)
         return np.log(np.maximum(p, 1e-300))
 
-    lo = np.zeros(len(unique))
-    hi = np.ones(len(unique))
-    while np.any((log_p(hi) > target) & (hi < 1e12)):
-        hi = np.where(log_p(hi) > target, hi * 2, hi)
-    for _ in range(60):
-        mid = 0.5 * (lo + hi)
-        above = log_p(mid) > target
-        lo = np.where(above, mid, lo)
-        hi = np.where(above, hi, mid)
-    return hi
+    return _solve_decreasing(log_p, target, len(unique))
 
 
 def _hann_leak(d):
