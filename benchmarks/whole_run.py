@@ -104,22 +104,6 @@ def _import_everything():
             pass
 
 
-def textbook_lockin(image, q_px, sigma_px, truncate=6.0):
-    """The plain real-space lock-in: Gaussian-filter I cos and I sin for each q, divide by the filtered frame."""
-    import numpy as np
-    from scipy import ndimage
-
-    y, x = np.mgrid[: image.shape[0], : image.shape[1]]
-    norm = ndimage.gaussian_filter(np.ones(image.shape), sigma_px, truncate=truncate, mode="constant")
-    out = []
-    for qx, qy in q_px:
-        arg = qx * x + qy * y
-        re = ndimage.gaussian_filter(image * np.cos(arg), sigma_px, truncate=truncate, mode="constant")
-        im = ndimage.gaussian_filter(image * np.sin(arg), sigma_px, truncate=truncate, mode="constant")
-        out.append((re - 1j * im) / norm)
-    return np.array(out)
-
-
 def measure(size, cache, reference):
     _import_everything()
     import matplotlib
@@ -155,6 +139,9 @@ def measure(size, cache, reference):
     }
     del result
     if reference:
+        # The same textbook lock-in as the kernel case (benchmarks/ is on sys.path when this file runs).
+        from lockin_kernel import textbook_lockin
+
         # Three wavevectors of the scene (its CDW star), in rad/px; the cost does not depend on them.
         q_px = (np.asarray(payload["q_rad_per_nm"])[:3] * np.asarray(topo.pixel_size_nm)[::-1]).tolist()
         while len(q_px) < 3:
