@@ -101,13 +101,14 @@ class Grid:
         """The input-grid array at the decimated grid's samples (the last two axes)."""
         return array[..., :: self.step, :: self.step]
 
-    def _nearest(self, n, m):
-        return np.minimum((np.arange(n) + self.step // 2) // self.step, m - 1)
+    def nearest(self, axis, start=0, stop=None):
+        """Index of the nearest sample of each input row (axis 0) or column (axis 1) in [start, stop)."""
+        stop = self.shape[axis] if stop is None else stop
+        return np.minimum((np.arange(start, stop) + self.step // 2) // self.step, self.coarse_shape[axis] - 1)
 
     def to_input(self, coarse):
         """Bring a decimated array back to the input grid: each pixel takes its nearest sample."""
-        rows = self._nearest(self.shape[0], self.coarse_shape[0])
-        cols = self._nearest(self.shape[1], self.coarse_shape[1])
+        rows, cols = self.nearest(0), self.nearest(1)
         return coarse[..., rows[:, None], cols[None, :]]
 
     def coarse_rows(self, rows):
@@ -115,7 +116,7 @@ class Grid:
         return [int(min(round(r / self.step), self.coarse_shape[0] - 1)) for r in rows]
 
     def _starts(self, axis):
-        index = self._nearest(self.shape[axis], self.coarse_shape[axis])
+        index = self.nearest(axis)
         return np.flatnonzero(np.r_[True, index[1:] != index[:-1]])
 
     def block_mean(self, array):

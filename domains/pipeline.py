@@ -832,8 +832,7 @@ def _refine_window(grid_, grown_c, band_c, has_c, own, score_at, confidence, r0,
 
     from .segment import thin_walls
 
-    rows_i = np.minimum((np.arange(r0, r1) + grid_.step // 2) // grid_.step, grid_.coarse_shape[0] - 1)
-    cols_i = np.minimum((np.arange(c0, c1) + grid_.step // 2) // grid_.step, grid_.coarse_shape[1] - 1)
+    rows_i, cols_i = grid_.nearest(0, r0, r1), grid_.nearest(1, c0, c1)
     grown = grown_c[rows_i[:, None], cols_i[None, :]]
     band = band_c[rows_i[:, None], cols_i[None, :]] & (grown > 0)
     if band.any():
