@@ -10,11 +10,12 @@ from pathlib import Path
 
 import numpy as np
 
-from . import report
+from . import _refine, report
 from ._errors import InputError
 from ._grid import Grid, choose_step
+from ._progress import progress as _progress
 from ._lockin import amplitude, choose_sigma, lockin, trusted_mask
-from ._scan import Scan, pixel_size_pair
+from ._scan import Scan
 
 ORDER_KINDS = ("auto", "commensurate", "stripes", "moire", "none")
 
@@ -176,39 +177,6 @@ class Analysis:
     choices: dict = field(default_factory=dict)
     #: Wall-clock seconds spent in each named step (benchmarks read it; not part of the summary).
     timings: dict = field(default_factory=dict)
-
-
-class _Progress:
-    """A progress bar that names the step about to run ("drift", "lock-in", "walls" ...).
-
-    It also times the steps: ``times[name]`` is the wall-clock time from the call that
-    announced ``name`` to the next call.
-    """
-
-    def __init__(self, total, enabled):
-        import time
-
-        from tqdm.auto import tqdm
-
-        self._clock = time.perf_counter
-        self._name, self._start, self.times = "level", self._clock(), {}
-        self.bar = tqdm(total=total, desc="domains: level", unit="step", disable=not enabled, leave=False)
-
-    def __call__(self, next_step=None, n=1):
-        now = self._clock()
-        self.times[self._name] = self.times.get(self._name, 0.0) + now - self._start
-        self._start = now
-        if next_step:
-            self._name = next_step
-            self.bar.set_description(f"domains: {next_step}")
-        self.bar.update(n)
-
-    def close(self):
-        self.bar.close()
-
-
-def _progress(total, enabled):
-    return _Progress(total, enabled)
 
 
 def _materialise(scan: Scan) -> Scan:
@@ -496,7 +464,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     if lazy:
         import dask.array as da
 
-        trusted_c, trusted_fraction = _trusted_on_grid(grid_, sigma_nm, pixel, _thick(mask))
+        trusted_c, trusted_fraction = _refine.trusted_on_grid(grid_, sigma_nm, pixel, _thick(mask))
         finite_mean = float(da.nanmean(corrected).compute())
         fill = da.where(da.isfinite(corrected), corrected, finite_mean)
     else:
@@ -540,7 +508,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     bar("order and noise floor")
 
     if lazy:
-        chunks = _tile_chunks(image.shape)
+        chunks = _refine.tile_chunks(image.shape)
         labels = da.zeros(image.shape, np.int32, chunks=chunks)
         walls = da.zeros(image.shape, bool, chunks=chunks)
     else:
@@ -619,7 +587,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                                             ordered=(amp[j] > floor.threshold) & trusted_c, sigma_nm=sigma_nm,
                                             amplitude_threshold=floor.threshold / 2)
             if step_ > 1:
-                found_j = [d for d in found_j if _loop_confirms(fields_used[j], d, pc, floor.threshold / 2)]
+                found_j = [d for d in found_j if _refine.loop_confirms(fields_used[j], d, pc, floor.threshold / 2)]
             # Rows and columns on the input grid (positions in nm are the same on both grids).
             defects += [{**d, "component": j, "row": d["row"] * step_, "col": d["col"] * step_} for d in found_j]
         wall_rows = measure.wall_table(seg.grown, walls_c, pixel_size_nm=pc, fields=fields_used, sigma_nm=sigma_nm,
@@ -639,10 +607,10 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                                     offsets_rad=state.offsets_rad)
             return at.score[0], at.state[0]
 
-        labels, walls = _to_input_grid(grid_, seg, score_at, confidence, lazy=lazy)
+        labels, walls = _refine.to_input_grid(grid_, seg, score_at, confidence, lazy=lazy)
         # Areas, centroids and edge contact from the input-grid labels; amplitudes and phases from the samples.
         if lazy:
-            domain_rows, shown_labels, shown_walls = _domain_table_chunked(
+            domain_rows, shown_labels, shown_walls = _refine.domain_table_chunked(
                 labels, walls, pixel_size_nm=pixel, state_names=state_names, amplitude=amp, fields=fields_used,
                 sample_labels=labels_c, every=_overview_factor(image.shape))
         else:
@@ -711,149 +679,6 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     return Analysis(config, summary, out_maps, tables, figures, sections, notes, choices, timings=dict(bar.times))
 
 
-def _loop_confirms(field, defect, pixel, threshold):
-    """Whether a winding found on the decimated grid holds on a densely sampled loop.
-
-    On samples sigma/2 apart a loop of radius 2 sigma has few points, and the phase step across a wall
-    between two of them can exceed pi and count a false winding. The field is band-limited, so it is
-    interpolated (cubic spline) at 16 points per sample of the loop's radius (at least 64); the winding
-    must be the same and |field| above ``threshold`` all along, as the rule on the grid asks.
-    """
-    from scipy import ndimage
-
-    dy, dx = pixel
-    radius = defect["loop_radius_nm"]
-    n = max(64, int(16 * math.ceil(radius / min(dy, dx))))
-    t = np.linspace(0, 2 * math.pi, n, endpoint=False)
-    rows = (defect["y_nm"] + radius * np.sin(t)) / dy
-    cols = (defect["x_nm"] + radius * np.cos(t)) / dx
-    values = (ndimage.map_coordinates(field.real, [rows, cols], order=3, mode="nearest")
-              + 1j * ndimage.map_coordinates(field.imag, [rows, cols], order=3, mode="nearest"))
-    steps = np.angle(np.roll(values, -1) * np.conj(values))
-    winding = int(np.rint(steps.sum() / (2 * math.pi)))
-    return winding == defect["winding"] and bool(np.abs(values).min() >= threshold)
-
-
-#: Side of the tiles (input pixels, aligned on the frame) in which labels are brought back to the input
-#: grid (:func:`_to_input_grid`); the input-grid maps of a lazy run are chunked so.
-TILE_PX = 2048
-
-
-def _tile_chunks(shape, tile=None):
-    """Chunks of the input grid in tiles of :data:`TILE_PX` aligned on the frame."""
-    tile = tile or TILE_PX
-    return tuple(tuple(min(tile, n - a) for a in range(0, n, tile)) for n in shape)
-
-
-def _to_input_grid(grid_, seg, score_at, confidence, lazy=False):
-    """Labels and one-pixel walls on the input grid from a segmentation on the decimated grid.
-
-    Away from walls every input pixel takes the domain of its nearest sample. Near walls (within one
-    sample of a change of domain) the boundary is refined at full resolution: the order's fields are
-    interpolated there from the samples (they are band-limited), ``score_at(rows, cols)`` gives the
-    state's score at those pixels, and the domains grow into the band by watershed on -score, as the
-    segmentation does on its own grid. Walls are then drawn one input pixel thin; pixels whose sample
-    carries no domain stay 0.
-
-    ``score_at(rows, cols)`` returns the score and the state at those input pixels. Inside the band
-    the seeds are, as in :func:`domains.segment.segment_states`, the pixels confident of their
-    domain's own state (score >= ``confidence``), so the floods start from smooth contours and meet
-    on the valley of the score, not on the staircase of the samples.
-
-    The work is done tile by tile (:data:`TILE_PX`, aligned on the frame), each tile from a window
-    :func:`_band_halo` input pixels wider on every side, so that memory stays a few tiles whatever
-    the frame; the tiles are the same in memory and, with ``lazy``, as the chunks of the dask arrays
-    returned then, so both give the same labels. (A flood can follow a wall further than the halo,
-    so a frame larger than one tile may differ from a single whole-frame flood at a few pixels by
-    the wall; the ids come from the decimated grid and are the same in every tile.)
-    """
-    from scipy import ndimage
-
-    chunks = _tile_chunks(grid_.shape)
-    if grid_.step == 1:
-        if not lazy:
-            return seg.labels, seg.walls
-        import dask.array as da
-
-        return da.from_array(seg.labels, chunks=chunks), da.from_array(seg.walls, chunks=chunks)
-    grown_c = seg.grown
-    big = np.iinfo(np.int32).max
-    footprint = np.ones((3, 3), bool)
-    lo = ndimage.minimum_filter(np.where(grown_c > 0, grown_c, big), footprint=footprint)
-    hi = ndimage.maximum_filter(grown_c, footprint=footprint)
-    band_c = ndimage.binary_dilation((grown_c > 0) & (lo != hi) & (lo < big), footprint)
-    has_c = (seg.labels > 0) | seg.walls
-    own = np.full(int(grown_c.max()) + 1, -2, np.int64)
-    for label, value in seg.state.items():
-        own[label] = value
-
-    halo = _band_halo(grid_.step)
-    ny, nx = grid_.shape
-
-    def tile(r0, r1, c0, c1):
-        # Labels (walls as -1) of input rows r0:r1 and columns c0:c1, from a window around them.
-        a, b, c, d = max(0, r0 - halo), min(ny, r1 + halo), max(0, c0 - halo), min(nx, c1 + halo)
-        code = _refine_window(grid_, grown_c, band_c, has_c, own, score_at, confidence, a, b, c, d)
-        return code[r0 - a:r1 - a, c0 - c:c1 - c]
-
-    if not lazy:
-        code = np.empty(grid_.shape, np.int32)
-        rows, cols = (np.cumsum((0,) + c) for c in chunks)
-        for r0, r1 in zip(rows[:-1], rows[1:]):
-            for c0, c1 in zip(cols[:-1], cols[1:]):
-                code[r0:r1, c0:c1] = tile(r0, r1, c0, c1)
-        return np.maximum(code, 0), code < 0
-    import dask.array as da
-
-    def block(template, block_info=None):
-        (r0, r1), (c0, c1) = block_info[None]["array-location"]
-        return tile(r0, r1, c0, c1)
-
-    code = da.map_blocks(block, da.empty(grid_.shape, np.int8, chunks=chunks), dtype=np.int32,
-                         meta=np.empty((0, 0), np.int32))
-    return da.maximum(code, 0), code < 0
-
-
-def _band_halo(step):
-    """Input pixels of context around a chunk for the band refinement of :func:`_to_input_grid`.
-
-    The band reaches about two samples (2 step pixels) from a change of domain and the flood inside
-    it starts from seeds at most that far away, but where the score is flat (untrusted margins) the
-    flood crosses plateaus in the order of arrival, which reaches further: 32 samples, measured on a
-    512^2 three-variant scene with 160-pixel tiles (16 of 262144 pixels differ from one whole-frame
-    flood at 32 samples, 421 at 16, 865 at 8), plus the one pixel thin walls need.
-    """
-    return 32 * int(step) + 2
-
-
-def _refine_window(grid_, grown_c, band_c, has_c, own, score_at, confidence, r0, r1, c0, c1):
-    """The input-grid labels of rows r0:r1, columns c0:c1 (walls as -1): see :func:`_to_input_grid`."""
-    from skimage.segmentation import watershed
-
-    from .segment import thin_walls
-
-    rows_i, cols_i = grid_.nearest(0, r0, r1), grid_.nearest(1, c0, c1)
-    grown = grown_c[rows_i[:, None], cols_i[None, :]]
-    band = band_c[rows_i[:, None], cols_i[None, :]] & (grown > 0)
-    if band.any():
-        rows, cols = np.nonzero(band)
-        # In pieces: the interpolated fields of every component at every band pixel would be large.
-        parts = [score_at(rows[i:i + 2**17] + r0, cols[i:i + 2**17] + c0) for i in range(0, rows.size, 2**17)]
-        score = np.nan_to_num(np.concatenate([np.asarray(p_[0], float) for p_ in parts]), nan=0.0, neginf=0.0)
-        state = np.concatenate([np.asarray(p_[1]) for p_ in parts])
-        del parts
-        elevation = np.zeros(grown.shape, np.float32)
-        elevation[rows, cols] = -score
-        here = grown[rows, cols]
-        core = (score >= confidence) & (np.asarray(state) == own[here])
-        markers = np.where(band, 0, grown)
-        markers[rows[core], cols[core]] = here[core]
-        grown = watershed(elevation, markers=markers, mask=grown > 0).astype(np.int32)
-    walls = thin_walls(grown)
-    has_domain = has_c[rows_i[:, None], cols_i[None, :]]
-    return np.where(walls, -1, np.where(has_domain, grown, 0)).astype(np.int32)
-
-
 def _overview_factor(shape, max_px=report.FIGURE_MAX_PX):
     """The stride that brings the longer side of ``shape`` to at most ``max_px`` pixels."""
     return max(1, -(-max(shape) // max_px))
@@ -863,88 +688,6 @@ def _overview(image, pixel):
     """Every k-th pixel of a lazy image (k from :func:`_overview_factor`) in memory, and its pixel size."""
     k = _overview_factor(image.shape)
     return np.asarray(image[::k, ::k].compute()), (pixel[0] * k, pixel[1] * k)
-
-
-def _trusted_on_grid(grid_, sigma_nm, pixel, mask):
-    """The trusted samples of the decimated grid and the trusted fraction of the input grid.
-
-    Without a mask, :func:`domains.trusted_mask` is the product of a row and a column condition (the
-    nearest untrusted pixel is the padding ring, straight above, below or beside): computed so, on the
-    samples only. With a mask, the same answer from distance transforms run only next to the masked
-    pixels (:func:`domains.drift._trusted`): one full-size boolean array, no full-size distances.
-    """
-    ny, nx = grid_.shape
-    if mask is not None:
-        from .drift import _trusted
-
-        trusted = _trusted(np.asarray(mask, bool), (ny, nx), sigma_nm, pixel)
-        return grid_.sample(trusted), float(trusted.mean())
-    dy, dx = pixel
-    limit, half = 2.5 * float(sigma_nm), 0.5 * min(dy, dx)
-    rows_ok = np.minimum(np.arange(1, ny + 1), np.arange(ny, 0, -1)) * dy - half >= limit
-    cols_ok = np.minimum(np.arange(1, nx + 1), np.arange(nx, 0, -1)) * dx - half >= limit
-    fraction = float(rows_ok.mean() * cols_ok.mean())
-    return rows_ok[::grid_.step, None] & cols_ok[None, ::grid_.step], fraction
-
-
-def _domain_table_chunked(labels, walls, *, pixel_size_nm, state_names, amplitude, fields, sample_labels, every):
-    """:func:`domains.measure.domain_table` of lazy labels from per-chunk partial sums (pixel counts and
-    coordinate sums per label, combined exactly), and every ``every``-th pixel of the labels and walls
-    (for the figure), in one pass over the labels.
-    """
-    import dask
-    import dask.array as da
-
-    dy, dx = pixel_size_pair(pixel_size_nm)
-    ny, nx = labels.shape
-    n = int(max(np.max(sample_labels, initial=0), 0)) + 1
-    starts = [np.cumsum((0,) + c[:-1]) for c in labels.chunks]
-
-    def sums(block, r0, c0):
-        block = np.asarray(block)
-        flat = block.ravel()
-        r, c = np.divmod(np.arange(flat.size), block.shape[1])
-        size = max(n, int(flat.max(initial=0)) + 1)
-        out = np.zeros((3, size))
-        out[0] = np.bincount(flat, minlength=size)
-        out[1] = np.bincount(flat, weights=r + r0, minlength=size)
-        out[2] = np.bincount(flat, weights=c + c0, minlength=size)
-        return out
-
-    blocks = labels.to_delayed()
-    parts = [dask.delayed(sums)(blocks[i, j], int(starts[0][i]), int(starts[1][j]))
-             for i in range(blocks.shape[0]) for j in range(blocks.shape[1])]
-    edges = [labels[0, :], labels[-1, :], labels[:, 0], labels[:, -1]]
-    parts, edges, shown_labels, shown_walls = dask.compute(parts, edges, labels[::every, ::every],
-                                                           walls[::every, ::every])
-    size = max(p.shape[1] for p in parts)
-    total = np.zeros((3, size))
-    for p in parts:
-        total[:, :p.shape[1]] += p
-    touching = set(int(v) for e in edges for v in np.unique(e))
-    # Amplitudes and phases from the samples, as measure.domain_table reads them.
-    from .measure import _label_means
-
-    m = max(size, int(np.max(sample_labels, initial=0)) + 1)
-    mean_amp, phases = _label_means(sample_labels, m, amplitude, fields)
-    rows = []
-    for lab in range(1, size):
-        count = int(total[0, lab])
-        if count == 0:
-            continue
-        rows.append({
-            "domain": lab,
-            "state": (state_names or {}).get(lab, ""),
-            "area_nm2": float(count * dx * dy),
-            "equivalent_diameter_nm": float(2 * math.sqrt(count * dx * dy / math.pi)),
-            "centroid_x_nm": float(total[2, lab] / count * dx),
-            "centroid_y_nm": float(total[1, lab] / count * dy),
-            "mean_amplitude": float(mean_amp[lab]),
-            "mean_phase_deg": ";".join(f"{p[lab]:.1f}" for p in phases),
-            "touches_edge": lab in touching,
-            "n_pixels": count,
-        })
-    return rows, shown_labels, shown_walls
 
 
 def _variant_of(name):

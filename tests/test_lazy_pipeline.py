@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from domains import pipeline
+from domains import _refine, pipeline
 from domains.io import read_bundle
 from domains.synth import cdw_scene
 
@@ -26,14 +26,14 @@ def runs():
     scene = cdw_scene(shape=(512, 512), n_domains=4, rng=3)
     topo = scene.topography
     config = pipeline.Config(drift=False)
-    saved = pipeline.TILE_PX
-    pipeline.TILE_PX = TILE
+    saved = _refine.TILE_PX
+    _refine.TILE_PX = TILE
     try:
         memory = pipeline.analyze(topo, config=config, progress=False)
         lazy_topo = topo.with_data(dask_array.from_array(np.asarray(topo.data), chunks=CHUNKS))
         lazy = pipeline.analyze(lazy_topo, config=config, progress=False)
     finally:
-        pipeline.TILE_PX = saved
+        _refine.TILE_PX = saved
     return scene, memory, lazy
 
 
@@ -121,7 +121,7 @@ def test_trusted_on_grid_equals_trusted_mask_sampled(with_mask):
     shape, pixel, sigma = (300, 257), (0.1, 0.12), 0.5
     mask = np.random.default_rng(1).random(shape) > 0.999 if with_mask else None
     grid = Grid(shape, pixel, 3)
-    trusted_c, fraction = pipeline._trusted_on_grid(grid, sigma, pixel, mask)
+    trusted_c, fraction = _refine.trusted_on_grid(grid, sigma, pixel, mask)
     # reference: domains.trusted_mask on the full grid (Euclidean distance transform), sampled
     full = trusted_mask(shape, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
     np.testing.assert_array_equal(trusted_c, grid.sample(full))
