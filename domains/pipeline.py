@@ -165,18 +165,23 @@ def load_config(path) -> Config:
 
 @dataclass
 class Analysis:
-    """Everything one run found: numbers, maps, tables, figures and the choices made."""
+    """Everything one run found: numbers, maps, tables and the choices made (data only).
+
+    The report's figures are drawn from it afterwards (:func:`domains.present.present`,
+    called by :func:`write_analysis`) from ``views``: images already reduced for drawing and
+    the result objects the figures show.
+    """
 
     config: Config
     summary: dict
     maps: dict
     tables: dict
-    figures: dict
-    sections: list
     notes: list = field(default_factory=list)
     choices: dict = field(default_factory=dict)
     #: Wall-clock seconds spent in each named step (benchmarks read it; not part of the summary).
     timings: dict = field(default_factory=dict)
+    #: What the figures are drawn from (small arrays, result objects); not written to the bundle as such.
+    views: dict = field(default_factory=dict)
 
 
 def _materialise(scan: Scan) -> Scan:
@@ -191,7 +196,8 @@ def analyze(topography: Scan, *, maps=(), grid: Scan | None = None, config: Conf
     Steps: level → spectrum and lattice indexing → drift (Lawler–Fujita) → lock-in
     at the order's wavevectors → order (translational variants or stripe
     orientation) → domains, walls, defects → tables and summary → bias
-    comparison (maps, grid) → moiré maps (when a moiré is found) → figures.
+    comparison (maps, grid) → moiré maps (when a moiré is found). The figures are drawn afterwards
+    from the result (:func:`domains.present.present`, when the bundle is written).
 
     Parameters
     ----------
@@ -487,24 +493,16 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     }
     out_maps = {}
     tables = {}
-    figures = {}
-    sections = []
+    # What the report's pictures are drawn from after the run (domains.present): small arrays and result objects.
+    views = {}
     attrs = {"pixel_size_nm": list(pixel)}
     shown, shown_pixel = _overview(image, pixel) if lazy else (image, pixel)
-    figures["topography"] = report.image_figure(shown, pixel_size_nm=shown_pixel, title="Topograph (levelled)",
-                                                units=topography.metadata.get("units", ""))
-    marked = _marked_peaks(spec["result"])
-    figures["spectrum"] = report.spectrum_figure(*spec["power"], peaks=marked)
-    overview = [("topography", "The levelled topograph."),
-                ("spectrum", "Log power spectrum (Hann window) with the indexed peaks: "
-                             + ", ".join(sorted({r for *_, r in marked})) + ".")]
+    views["topography"] = (*_small(shown, shown_pixel), topography.metadata.get("units", ""))
+    views["spectrum"] = (spec["power"], _marked_peaks(spec["result"]))
     if u is not None:
         out_maps["displacement/ux"] = (u[0].astype(np.float32), {**attrs, "pixel_size_nm": u_pixel, "units": "nm"})
         out_maps["displacement/uy"] = (u[1].astype(np.float32), {**attrs, "pixel_size_nm": u_pixel, "units": "nm"})
-        figures["drift"] = report.image_figure(np.hypot(u[0], u[1]), pixel_size_nm=u_pixel, cmap="viridis",
-                                               title="Drift |u| (Lawler–Fujita)", units="nm")
-        overview.append(("drift", "Magnitude of the displacement field removed from every channel."))
-    sections.append(("Overview", overview))
+        views["drift"] = _small(np.hypot(u[0], u[1]), u_pixel)
     bar("order and noise floor")
 
     if lazy:
@@ -629,26 +627,10 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
             out_maps[f"amplitude/{name}"] = (amplitude(a_j).astype(np.float32), {**attrs, "pixel_size_nm": list(pc), "units": topography.metadata.get("units", "image units")})
             out_maps[f"phase/{name}"] = (np.angle(a_j).astype(np.float32), {**attrs, "pixel_size_nm": list(pc), "units": "rad"})
         bar("bias comparison and moiré")
-        figures["amplitude"] = report.image_figure(amp.mean(axis=0), pixel_size_nm=pc, cmap="viridis",
-                                                   title=f"Order amplitude (mean of {len(names)}), sigma = {sigma_nm:.3g} nm",
-                                                   units=topography.metadata.get("units", ""))
-        figures["phase"] = report.image_figure(np.angle(fields_used[0]), pixel_size_nm=pc, cmap="twilight",
-                                               limits=(-math.pi, math.pi),
-                                               title=f"Phase of {names[0]}" + (" (drift-free, relative)" if kind == "commensurate" else ""),
-                                               units="rad")
-        figures["domains"] = report.domain_figure(shown, shown_labels, shown_walls, pixel_size_nm=shown_pixel,
-                                                  defects=defects,
-                                                  states={r["domain"]: r["state"] for r in domain_rows})
-        figures["areas"] = report.histogram_figure([r["area_nm2"] for r in domain_rows], xlabel="domain area (nm²)",
-                                                   title=f"{len(domain_rows)} domains")
-        sections.append(("Order and domains", [
-            ("amplitude", "Lock-in amplitude 2|A| averaged over the order's components."),
-            ("phase", "Phase of the first component (cyclic colour map)."),
-            ("domains", "Domains (colours) over the topograph; walls in black; defects: + winding +1, x winding -1."),
-            ("areas", "Histogram of domain areas (domains cut by the frame are lower bounds)."),
-            (None, "<h3>Domains</h3>" + report.html_table(measure.DOMAIN_COLUMNS, domain_rows)),
-            (None, "<h3>Walls</h3>" + report.html_table(measure.WALL_COLUMNS, wall_rows)),
-        ]))
+        views["order"] = {"names": names, "units": topography.metadata.get("units", ""),
+                          "amplitude": _small(amp.mean(axis=0), pc),
+                          "phase": _small(np.angle(fields_used[0]), pc, how="phase")}
+        views["domains"] = _domain_view(shown, shown_labels, shown_walls, shown_pixel)
     else:
         bar("bias comparison and moiré", n=3)
     # The image the labels belong to (levelled, drift-corrected), so a viewer shows the bundle on its own.
@@ -661,12 +643,12 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     out_maps["walls"] = (walls.astype(bool), {**attrs, "units": "bool"})
 
     if maps and kind in ("commensurate", "stripes", "incommensurate"):
-        _bias_step(summary, tables, figures, sections, corrected, corrected_maps, maps, labels, order_q, sigma_nm,
+        _bias_step(summary, tables, views, corrected, corrected_maps, maps, labels, order_q, sigma_nm,
                    pixel, lattice_q, mask)
     if grid is not None and kind in ("commensurate", "stripes", "incommensurate"):
-        _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_nm, pixel, mask)
+        _grid_step(summary, tables, views, grid, labels, order_q, sigma_nm, pixel, mask)
     if kind in ("moire", "none"):
-        _moire_step(summary, out_maps, tables, figures, sections, choices, notes, fill, spec, pixel, mask, config)
+        _moire_step(summary, out_maps, tables, views, choices, notes, fill, spec, pixel, mask, config)
         if summary["moire"] is not None:
             summary["order_kind"] = "moire"
             summary["superlattice"]["note"] = "a moiré pattern, not a superlattice of the atomic lattice"
@@ -676,7 +658,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     bar.close()
     summary["choices"] = choices
     summary["notes"] = notes
-    return Analysis(config, summary, out_maps, tables, figures, sections, notes, choices, timings=dict(bar.times))
+    return Analysis(config, summary, out_maps, tables, notes, choices, timings=dict(bar.times), views=views)
 
 
 def _overview_factor(shape, max_px=report.FIGURE_MAX_PX):
@@ -688,6 +670,27 @@ def _overview(image, pixel):
     """Every k-th pixel of a lazy image (k from :func:`_overview_factor`) in memory, and its pixel size."""
     k = _overview_factor(image.shape)
     return np.asarray(image[::k, ::k].compute()), (pixel[0] * k, pixel[1] * k)
+
+
+def _small(array, pixel, how="mean"):
+    """``array`` reduced for drawing (:func:`domains.report.downsample`) and its pixel size (nm)."""
+    small, f = report.downsample(np.asarray(array), how=how)
+    return small, (pixel[0] * f, pixel[1] * f)
+
+
+def _domain_view(image, labels, walls, pixel, id_labels=None):
+    """What a domain figure is drawn from: the image, labels and walls reduced for drawing, with the
+    colours and the id positions of the full labels (so that they are the viewer's)."""
+    from ._palette import label_colours
+
+    labels = np.asarray(labels)
+    small_image, small_pixel = _small(image, pixel)
+    return {"image": small_image, "pixel": small_pixel,
+            "labels": report.downsample(labels, how="mode")[0],
+            "walls": report.downsample(np.asarray(walls, bool), how="max")[0],
+            "colours": label_colours(labels) if labels.size else {},
+            "positions": report.domain_label_positions(labels if id_labels is None else id_labels,
+                                                       pixel_size_nm=pixel)}
 
 
 def _variant_of(name):
@@ -851,9 +854,11 @@ def write_analysis(analysis: Analysis, out, *, command_line, inputs, overwrite=F
         The bundle folder.
     """
     from .io import json_safe, provenance, write_bundle
+    from .present import present
 
+    shown = present(analysis)
     html = report.render_html(title="Domain analysis", summary=_report_summary(analysis.summary),
-                              sections=analysis.sections, parameters={**asdict(analysis.config),
+                              sections=shown.sections, parameters={**asdict(analysis.config),
                                                                       "automatic choices": analysis.choices},
                               notes=analysis.notes, headline=_headline(analysis.summary))
     prov = provenance(command_line=command_line, parameters=json_safe(asdict(analysis.config)), inputs=inputs)
@@ -864,7 +869,7 @@ def write_analysis(analysis: Analysis, out, *, command_line, inputs, overwrite=F
     if type_map is not None:
         maps["electronic_types"] = type_map
     return write_bundle(out, summary=analysis.summary, provenance=prov, tables=tables, maps=maps,
-                        figures=analysis.figures, report_html=html, overwrite=overwrite)
+                        figures=shown.figures, report_html=html, overwrite=overwrite)
 
 
 def _pm(value, error, unit="", digits=4):
@@ -1134,8 +1139,8 @@ def run_demo(out, *, scene="cdw", seed=7, overwrite=True, command_line=("domains
     return Path(bundle) / "report.html"
 
 
-def _bias_step(summary, tables, figures, sections, topo, corrected_maps, map_scans, labels, order_q, sigma_nm, pixel,
-               bragg_q, mask):
+def _bias_step(summary, tables, views, topo, corrected_maps, map_scans, labels, order_q, sigma_nm, pixel, bragg_q,
+               mask):
     from . import compare
 
     maps = {float(s.bias_V): np.where(np.isfinite(m), m, np.nanmean(m)) for s, m in zip(map_scans, corrected_maps)}
@@ -1160,56 +1165,19 @@ def _bias_step(summary, tables, figures, sections, topo, corrected_maps, map_sca
     rows = [{with_unit(k): v for k, v in r.items()} for r in result.contrast_rows()]
     columns = list(rows[0]) if rows else ["domain", "bias_V"]
     tables["contrast"] = (columns, rows)
-    verdict_rows = []
-    for pair in summary["bias_comparison"]["pairs"]:
-        for d in pair["domains"]:
-            verdict = d.get("verdict", {})
-            verdict_rows.append({"bias_1_V": pair["bias_1_V"], "bias_2_V": pair["bias_2_V"], "domain": d["domain"],
-                                 "delta_phi_deg": ";".join("–" if v is None else f"{v:.0f}" for v in d.get("delta_phi_deg") or []),
-                                 "verdict": verdict.get("verdict", ""), "confidence": verdict.get("confidence")})
-    first = summary["bias_comparison"]["pairs"][0]
-    k = len(order_q)
-    def shown(value):
-        # Shown in [-90, 270) so that inversions (180) and unchanged contrast (0) do not wrap.
-        return None if value is None else (value + 90) % 360 - 90
-
-    shifts = [(f"q{j + 1}", [d["domain"] + 0.08 * (j - (k - 1) / 2) for d in first["domains"]],
-               [shown((d.get("delta_phi_deg") or [None] * k)[j]) for d in first["domains"]],
-               [(d.get("delta_phi_deg_se") or [None] * k)[j] for d in first["domains"]]) for j in range(k)]
-    figures["contrast"] = report.curves_figure(
-        shifts, xlabel="domain", ylabel="Δφ (deg)", lines=False, reference=(0, 180),
-        title=f"Phase shift of each order component, {first['bias_1_V']:+.2f} V vs {first['bias_2_V']:+.2f} V")
-    types_items = _electronic_types_step(summary, tables, figures, map_scans, corrected_maps, labels, order_q,
-                                         sigma_nm, pixel, mask)
-    if "conductance" not in figures:
-        # No offset-free contrast (the types step said why): the plain means, in the sidecar's units.
-        curves = []
-        for d in sorted({r["domain"] for r in rows}):
-            mine = sorted((r for r in rows if r["domain"] == d), key=lambda r: r["bias_V"])
-            curves.append((f"domain {d}", [r["bias_V"] for r in mine], [r[f"map_mean_{token}"] for r in mine],
-                           [r[f"map_mean_{token}_se"] for r in mine]))
-        figures["conductance"] = report.curves_figure(
-            curves, xlabel="bias (V)", ylabel="mean map value", units=(map_scans[0].metadata or {}).get("units"),
-            title="Per-domain mean conductance at each bias")
-        types_items = types_items + [("conductance", "Mean map value of each domain at each bias, with standard "
-                                                     "errors (pixels taken as independent).")]
-    sections.append(("Bias comparison", types_items + [
-        ("contrast", "Δφ_j = arg(A_j(V1) A_j(V2)*) of each order component in each domain, with standard errors: "
-                     "±180° is an inverted contrast, 0° an unchanged one."),
-        (None, "<h3>Contrast between biases</h3><p>Δφ_j = arg(A_j(V1) A_j(V2)*) per component; "
-               "'inverted' needs every component compatible with π.</p>"
-         + report.html_table(["bias_1_V", "bias_2_V", "domain", "delta_phi_deg", "verdict", "confidence"], verdict_rows)),
-    ]))
+    views["bias"] = {"n_components": len(order_q), "unit_token": token,
+                     "units": (map_scans[0].metadata or {}).get("units")}
+    _electronic_types_step(summary, tables, views, map_scans, corrected_maps, labels, order_q, sigma_nm, pixel, mask)
 
 
-def _electronic_types_step(summary, tables, figures, map_scans, corrected_maps, labels, order_q, sigma_nm, pixel,
+def _electronic_types_step(summary, tables, views, map_scans, corrected_maps, labels, order_q, sigma_nm, pixel,
                            mask):
     """Which domains differ electronically: per-domain contrast with errors at every bias, and types.
 
     Maps taken at other setpoints are scaled to one setpoint (or to their frame mean when a setpoint is
     unknown); contrasts are free of scan-line offsets (domains.compare.domain_electronic_contrast), and
     domains are grouped into types while their differences are not significant
-    (domains.compare.electronic_types). Returns the report items.
+    (domains.compare.electronic_types).
     """
     from . import compare
 
@@ -1224,7 +1192,7 @@ def _electronic_types_step(summary, tables, figures, map_scans, corrected_maps, 
         types = compare.electronic_types(ec)
     except InputError as err:
         summary["electronic_types"] = {"note": f"not measured: {err}"}
-        return []
+        return
     summary["electronic_types"] = types.to_summary()
     rows = types.rows()
     if rows:
@@ -1232,42 +1200,15 @@ def _electronic_types_step(summary, tables, figures, map_scans, corrected_maps, 
     drows = types.domain_rows()
     if drows:
         tables["domain_contrast"] = (list(drows[0]), drows)
-    # A map coloured by type and, per type, its contrast at every bias with errors.
+    # A map coloured by type: what the report's types figure and the viewer's types layer show.
     lut = np.zeros(int(labels.max()) + 1, np.int32)
     for i, members in enumerate(types.types):
         lut[list(members)] = i + 1
-    type_map = lut[labels]
-    ids = {d: f"{d}: {name}" for d, name in types.type_of().items()}
-    figures["types"] = report.domain_figure(np.asarray(corrected_maps[0]), type_map, labels == 0,
-                                            pixel_size_nm=pixel, id_labels=labels, ids=ids, legend_title="electronic type",
-                                            title=f"{types.n_types} electronic type{'s' if types.n_types > 1 else ''}",
-                                            states={i + 1: f"type {n}" for i, n in enumerate(types.names)})
-    from ._palette import label_colours
-
-    # Each domain and each type in its type's colour of the type map (the viewer colours types alike).
-    type_colours = label_colours(type_map)
-    figures["conductance"] = report.conductance_figure(ec, types=types, colours={
-        d: type_colours.get(i + 1) for i, members in enumerate(types.types) for d in members})
-    limits = " ".join(summary["electronic_types"].get("limitations", []))
-    items = [(None, "<h3>Electronic types</h3><p>" + " ".join(types.sentences()) + "</p>"
-              + (f"<p><b>Limits.</b> {limits}</p>" if limits else "")),
-             ("conductance", report.conductance_caption(ec, types)),
-             ("types", "Domains coloured by electronic type, each written with its id and type (walls in black).")]
-    if types.n_types > 1:
-        # With one type its contrast to the frame is zero by construction: no figure to show.
-        biases = [b for q_, b in types.features if q_ == "conductance"]
-        cols = [f for f, (q_, _) in enumerate(types.features) if q_ == "conductance"]
-        curves = [(f"type {name}", biases, [float(types.value[i, f]) for f in cols],
-                   [float(types.se[i, f]) for f in cols]) for i, name in enumerate(types.names)]
-        figures["type_contrast"] = report.curves_figure(
-            curves, xlabel="bias (V)", ylabel="contrast to the frame", units=ec.units,
-            colours=[type_colours.get(i + 1) for i in range(types.n_types)],
-            title="Conductance contrast of each electronic type")
-        items.append(("type_contrast", "Contrast of each type to the frame at each bias, with standard errors."))
-    return items
+    views["electronic"] = {"contrast": ec, "types": types,
+                           "map": _domain_view(corrected_maps[0], lut[labels], labels == 0, pixel, id_labels=labels)}
 
 
-def _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_nm, pixel, mask):
+def _grid_step(summary, tables, views, grid, labels, order_q, sigma_nm, pixel, mask):
     """Per-domain order amplitude across the grid's energies, and the domains' electronic types with their mean
     spectra and the energies where the types differ (domains.compare.grid_electronic_contrast, electronic_types)."""
     from . import compare
@@ -1279,11 +1220,8 @@ def _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_
     peaks = compare.fingerprint_peaks(fp)
     summary["grid"] = {"source": grid.source, "energies_V": [float(e) for e in grid.energies_V],
                        "peak_energy_V": peaks if isinstance(peaks, (dict, list)) else str(peaks)}
-    curves = [(f"domain {int(d)}", fp.energies_V, fp.amplitude_total[i], None) for i, d in enumerate(fp.domains)]
-    figures["fingerprint"] = report.curves_figure(curves, xlabel="bias (V)", ylabel="order amplitude",
-                                                  title="Per-domain order amplitude across the grid")
-    items = [("fingerprint", "Order amplitude versus energy in each domain.")]
     units = (grid.metadata or {}).get("units", "arb. units")
+    views["grid"] = {"fingerprints": fp, "types": None, "units": units}
     try:
         ec = compare.grid_electronic_contrast(grid.data, grid.energies_V, labels, pixel_size_nm=pixel,
                                               sigma_nm=sigma_nm, units=units, mask=mask, q=order_q)
@@ -1300,19 +1238,7 @@ def _grid_step(summary, tables, figures, sections, grid, labels, order_q, sigma_
                                      ("type_differences", types.difference_rows(), empty)):
             if table or columns:
                 tables[name] = (list(table[0]) if table else columns, table)
-        spectra = types.spectra()
-        mean, se = spectra["conductance"]
-        energies = spectra["biases_V"]
-        figures["type_spectra"] = report.curves_figure(
-            [(f"type {n}", energies, mean[i], se[i]) for i, n in enumerate(types.names)], xlabel="bias (V)",
-            ylabel="mean conductance", units=units, title="Mean spectrum of each electronic type (grid)")
-        limits = " ".join(summary["grid"]["electronic_types"]["limitations"])
-        items = [(None, "<h3>Electronic types in the grid</h3><p>" + " ".join(types.sentences()) + "</p>"
-                  "<p><b>Limits.</b> " + limits + "</p>"),
-                 ("type_spectra", "Mean spectrum of each type (area-weighted mean of its domains' interiors), with "
-                                  "standard errors; type_differences.csv says at which energies the types differ "
-                                  "(tests on contrasts free of scan-line offsets).")] + items
-    sections.append(("Spectroscopic grid", items))
+        views["grid"]["types"] = types
 
 
 def _refine_lattice(image, pixel, mask, reading, peaks):
@@ -1583,7 +1509,7 @@ def _peaks_near_qy_axis(peaks, shape, pixel, bins=3):
     return [p for p in peaks if abs(p.q[0]) < bins * width_bin]
 
 
-def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, image, spec, pixel, mask, config):
+def _moire_step(summary, out_maps, tables, views, choices, notes, image, spec, pixel, mask, config):
     """Local period, twist and heterostrain of a moiré, and its twist-angle domains."""
     from . import measure, moire
 
@@ -1678,21 +1604,9 @@ def _moire_step(summary, out_maps, tables, figures, sections, choices, notes, im
     twist_columns = list(fields.table[0]) if fields.table else ["id"]
     tables["twist_domains"] = (twist_columns, fields.table)
     summary["domains"] = measure.domain_summary(rows, wall_rows)
-    figures["twist"] = report.image_figure(maps.twist_deg, pixel_size_nm=pixel, cmap="viridis", units="deg",
-                                           title="Local twist angle θ(r)")
-    figures["heterostrain"] = report.image_figure(maps.heterostrain_percent, pixel_size_nm=pixel, cmap="magma",
-                                                  units="%", title="Uniaxial heterostrain")
-    figures["twist_domains"] = report.domain_figure(image, labels, walls, pixel_size_nm=pixel,
-                                                    title="Twist-angle domains over the image")
-    sections.append(("Moiré", [
-        ("twist", f"Local twist from the moiré wavevectors (mode: {maps.mode}); σ = {maps.sigma_nm:.3g} nm; "
-                  f"trusted {2.5 * maps.sigma_nm:.3g} nm (2.5 σ) from the frame edge. " + summary["moire"]["field_note"]),
-        ("heterostrain", "Magnitude of the uniaxial heterostrain (polar decomposition of the layer transform)."),
-        ("twist_domains", f"Regions of one twist range (tolerance {twist.tolerance_deg:.3g}°, {twist.tolerance_source}), "
-                          "grown over the whole frame; black lines are the walls between them."),
-        (None, "<h3>Twist domains</h3>" + report.html_table(twist_columns if fields.table else [], fields.table)),
-        (None, "<h3>Walls between twist domains</h3>" + report.html_table(measure.WALL_COLUMNS, wall_rows)),
-    ]))
+    views["moire"] = {"mode": maps.mode, "sigma_nm": maps.sigma_nm, "twist_deg": _small(maps.twist_deg, pixel),
+                      "heterostrain_percent": _small(maps.heterostrain_percent, pixel),
+                      "domains": _domain_view(image, labels, walls, pixel)}
     return maps
 
 

@@ -344,7 +344,8 @@ def domain_label_positions(labels, *, pixel_size_nm=1.0) -> dict[int, tuple[floa
 
 
 def domain_figure(topography, labels, walls, *, pixel_size_nm, defects=(), title="Domains over the topograph",
-                  states=None, colours=None, ids=None, id_labels=None, legend_title="domain", as_figure=False):
+                  states=None, colours=None, ids=None, id_labels=None, positions=None, legend_title="domain",
+                  as_figure=False):
     """Domains in colour over the grey topograph with their ids, walls in black, defects as markers.
 
     Each domain's id (the ``domain`` column of ``domains.csv``, equal to its
@@ -377,6 +378,10 @@ def domain_figure(topography, labels, walls, *, pixel_size_nm, defects=(), title
         Where the texts go: one per label of this image (default ``labels``). A map of
         electronic types writes each domain's type at each domain with the domain
         labels here and ``ids = {domain: "3: A"}``.
+    positions : dict, optional
+        ``label -> (x_nm, y_nm)`` where the texts go, when the labels drawn are reduced
+        from larger ones (:func:`domain_label_positions` of the full labels); default
+        computed from ``id_labels``.
     legend_title : str
         Title of the legend of colours.
     as_figure : bool
@@ -424,8 +429,9 @@ def domain_figure(topography, labels, walls, *, pixel_size_nm, defects=(), title
     shown = ndimage.binary_dilation(thin, iterations=max(1, min(thin.shape) // 400))
     ax.imshow(np.ma.masked_where(~shown, np.ones(shown.shape)), cmap=ListedColormap([WALL_COLOUR]),
               vmin=0, vmax=1, extent=_extent(shown.shape, pixel_size_nm, factor), interpolation="nearest")
-    where = labels if id_labels is None else np.asarray(id_labels)
-    positions = domain_label_positions(where, pixel_size_nm=pixel_size_nm)
+    if positions is None:
+        where = labels if id_labels is None else np.asarray(id_labels)
+        positions = domain_label_positions(where, pixel_size_nm=pixel_size_nm)
     big = max(6.0, min(11.0, 140.0 / max(1.0, math.sqrt(len(positions)))))
     dy, dx = pixel_size_pair(pixel_size_nm)
     for label, (x, y) in positions.items():

@@ -347,7 +347,7 @@ def _fake_analysis(scan):
                "defects": {"count": 1, "positive": 1, "negative": 0,
                            "list": [{"component": 0, "winding": 1, "x_nm": 3.0, "y_nm": 4.0}]},
                "sigma_nm": 0.5}
-    return Analysis(Config(), summary, maps, {}, {}, [])
+    return Analysis(Config(), summary, maps, {})
 
 
 def test_analysis_widget_shows_an_analysis_over_its_layer(make_napari_viewer, small_cdw):

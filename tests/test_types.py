@@ -381,15 +381,18 @@ def test_grid_step_writes_type_spectra_and_the_sentence():
     data = np.stack([m.data for m in clean.maps]) + gen.normal(0, 0.05, (len(GRID_E),) + labels.shape)
     grid = Scan(da.from_array(data, chunks=(3, 256, 256)), pixel_size_nm=PIXEL_NM, energies_V=GRID_E,
                 source="<synthetic grid>", metadata={"units": "nS"})
-    summary, tables, figures, sections = {}, {}, {}, []
-    pipeline._grid_step(summary, tables, figures, sections, grid, labels, np.array(clean.truth["q_cdw_rad_per_nm"]),
+    from domains.present import _grid
+
+    summary, tables, views, figures, sections = {}, {}, {}, {}, []
+    pipeline._grid_step(summary, tables, views, grid, labels, np.array(clean.truth["q_cdw_rad_per_nm"]),
                         SIGMA_NM, (PIXEL_NM, PIXEL_NM), None)
     block = summary["grid"]["electronic_types"]
     assert block["n_types"] == 2 and block["contrast"]["source"] == "grid"  # synthetic truth: two types
     assert {"grid_types", "type_spectra", "type_differences", "fingerprint"} <= set(tables)  # the bundle's tables
     columns, rows = tables["type_spectra"]
     assert "mean_nS" in columns and len(rows) == 2 * len(GRID_E)  # one row per type and energy
-    assert figures["type_spectra"][:4] == b"\x89PNG"  # the report's figure
+    _grid(summary, tables, views, figures, sections)  # the report's figure and text, drawn afterwards
+    assert figures["type_spectra"][:4] == b"\x89PNG"
     text = " ".join(t for _, t in sections[0][1] if t)
     assert block["sentences"][0] in text  # the report says what summary.json says
 
