@@ -182,6 +182,8 @@ class Analysis:
     timings: dict = field(default_factory=dict)
     #: What the figures are drawn from (small arrays, result objects); not written to the bundle as such.
     views: dict = field(default_factory=dict)
+    #: A lazy run's scratch folder (domains._scratch.Scratch) its lazy maps read from; removed with the Analysis.
+    scratch: object = field(default=None, repr=False)
 
 
 def _materialise(scan: Scan) -> Scan:
@@ -447,6 +449,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     image, mask, spec, drift_result = found["image"], found["mask"], found["spec"], found["drift"]
     corrected, notes, choices = found["corrected"], found["notes"], found["choices"]
     lazy = found["lazy"]
+    scratch = None  # a lazy run's scratch folder (domains._scratch)
     lattice_q = spec["bragg_q"]
     # The same drift field straightens every map of the scan.
     corrected_maps, u = [np.asarray(m.data, float) for m in maps], None
@@ -470,7 +473,13 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     if lazy:
         import dask.array as da
 
+        from ._scratch import Scratch, checkpoint
+
         trusted_c, trusted_fraction = _refine.trusted_on_grid(grid_, sigma_nm, pixel, _thick(mask))
+        # The straightened image is read by every lock-in, the noise floor and the bundle: computed once
+        # into a scratch store, not recomputed from the input store on every read.
+        scratch = Scratch()
+        corrected = checkpoint(corrected, scratch, "corrected")
         finite_mean = float(da.nanmean(corrected).compute())
         fill = da.where(da.isfinite(corrected), corrected, finite_mean)
     else:
@@ -606,6 +615,10 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
             return at.score[0], at.state[0]
 
         labels, walls = _refine.to_input_grid(grid_, seg, score_at, confidence, lazy=lazy)
+        if lazy:
+            # The refined labels (walls as -1) are read by the measurement and the bundle: computed once.
+            code = checkpoint(da.where(walls, -1, labels), scratch, "labels")
+            labels, walls = da.maximum(code, 0), code < 0
         # Areas, centroids and edge contact from the input-grid labels; amplitudes and phases from the samples.
         if lazy:
             domain_rows, shown_labels, shown_walls = _refine.domain_table_chunked(
@@ -658,7 +671,8 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     bar.close()
     summary["choices"] = choices
     summary["notes"] = notes
-    return Analysis(config, summary, out_maps, tables, notes, choices, timings=dict(bar.times), views=views)
+    return Analysis(config, summary, out_maps, tables, notes, choices, timings=dict(bar.times), views=views,
+                    scratch=scratch)
 
 
 def _overview_factor(shape, max_px=report.FIGURE_MAX_PX):
