@@ -128,3 +128,37 @@ def test_trusted_on_grid_equals_trusted_mask_sampled(with_mask):
     full = trusted_mask(shape, sigma_nm=sigma, pixel_size_nm=pixel, mask=mask)
     np.testing.assert_array_equal(trusted_c, grid.sample(full))
     assert fraction == pytest.approx(full.mean(), rel=1e-12)
+
+
+def _numbers_agree(memory, lazy, path="summary"):
+    """Every number of ``lazy`` equals ``memory``'s to float32 precision; strings and flags exactly.
+
+    Returns the paths where they differ (empty when all agree)."""
+    import math
+
+    if isinstance(memory, dict):
+        if set(memory) != set(lazy):
+            return [f"{path}: keys {sorted(set(memory) ^ set(lazy))}"]
+        return [d for k in memory for d in _numbers_agree(memory[k], lazy[k], f"{path}/{k}")]
+    if isinstance(memory, (list, tuple)):
+        if len(memory) != len(lazy):
+            return [f"{path}: length {len(memory)} != {len(lazy)}"]
+        return [d for i, (a, b) in enumerate(zip(memory, lazy)) for d in _numbers_agree(a, b, f"{path}[{i}]")]
+    if isinstance(memory, float) or isinstance(lazy, float):
+        same = (math.isnan(memory) and math.isnan(lazy)) if memory is not None and lazy is not None and (
+            math.isnan(memory) or math.isnan(lazy)) else math.isclose(memory, lazy, rel_tol=1e-5, abs_tol=1e-9)
+        return [] if same else [f"{path}: {memory} != {lazy}"]
+    return [] if memory == lazy else [f"{path}: {memory!r} != {lazy!r}"]
+
+
+def test_every_number_of_the_summary_equals_in_memory(runs):
+    from domains.io import json_safe
+
+    _, memory, lazy = runs
+    m, z = json_safe(memory.summary), json_safe(lazy.summary)
+    # The notes say how each run read the image (the lazy one adds its own); every other entry is a result.
+    m.pop("notes"), z.pop("notes")
+    # reference: the in-memory run of the same analysis (float32 precision: relative 1e-5)
+    assert _numbers_agree(m, z) == []
+    for name in ("domains", "walls"):
+        assert _numbers_agree(memory.tables[name], lazy.tables[name], name) == []
