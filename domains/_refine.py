@@ -104,12 +104,16 @@ def to_input_grid(grid_, seg, score_at, confidence, lazy=False):
         return code[r0 - a:r1 - a, c0 - c:c1 - c]
 
     if not lazy:
-        code = np.empty(grid_.shape, np.int32)
         rows, cols = (np.cumsum((0,) + c) for c in chunks)
-        for r0, r1 in zip(rows[:-1], rows[1:]):
-            for c0, c1 in zip(cols[:-1], cols[1:]):
-                code[r0:r1, c0:c1] = tile(r0, r1, c0, c1)
-        return np.maximum(code, 0), code < 0
+        if len(rows) == 2 and len(cols) == 2:
+            code = tile(0, ny, 0, nx)  # one tile: no second frame-sized copy
+        else:
+            code = np.empty(grid_.shape, np.int32)
+            for r0, r1 in zip(rows[:-1], rows[1:]):
+                for c0, c1 in zip(cols[:-1], cols[1:]):
+                    code[r0:r1, c0:c1] = tile(r0, r1, c0, c1)
+        walls = code < 0
+        return np.maximum(code, 0, out=code), walls
     import dask.array as da
 
     def block(template, block_info=None):
@@ -133,32 +137,56 @@ def _band_halo(step):
     return 32 * int(step) + 2
 
 
+#: Band pixels scored per call of ``score_at`` in :func:`_refine_window`: the score of one pixel
+#: holds every variant's template fit for a moment (about 1 KiB for a √13 star), so the pieces are
+#: kept to a few tens of MiB.
+SCORE_PIECE_PX = 2**15
+
+
 def _refine_window(grid_, grown_c, band_c, has_c, own, score_at, confidence, r0, r1, c0, c1):
-    """The input-grid labels of rows r0:r1, columns c0:c1 (walls as -1): see :func:`to_input_grid`."""
+    """The input-grid labels of rows r0:r1, columns c0:c1 (walls as -1): see :func:`to_input_grid`.
+
+    Only the band is flooded: every other pixel of the window is already labelled, so the watershed
+    runs on the band's bounding box, on the band and its ring of labelled neighbours (the pixels the
+    floods start from, besides the confident seeds inside the band). The labels are built in one
+    int32 array, changed in place.
+    """
+    from scipy import ndimage
     from skimage.segmentation import watershed
 
     from .segment import thin_walls
 
     rows_i, cols_i = grid_.nearest(0, r0, r1), grid_.nearest(1, c0, c1)
-    grown = grown_c[rows_i[:, None], cols_i[None, :]]
-    band = band_c[rows_i[:, None], cols_i[None, :]] & (grown > 0)
-    if band.any():
-        rows, cols = np.nonzero(band)
-        # In pieces: the interpolated fields of every component at every band pixel would be large.
-        parts = [score_at(rows[i:i + 2**17] + r0, cols[i:i + 2**17] + c0) for i in range(0, rows.size, 2**17)]
-        score = np.nan_to_num(np.concatenate([np.asarray(p_[0], float) for p_ in parts]), nan=0.0, neginf=0.0)
-        state = np.concatenate([np.asarray(p_[1]) for p_ in parts])
-        del parts
+    code = grown_c[rows_i[:, None], cols_i[None, :]].astype(np.int32, copy=False)
+    band = band_c[rows_i[:, None], cols_i[None, :]]
+    band &= code > 0
+    hit_r, hit_c = np.flatnonzero(band.any(axis=1)), np.flatnonzero(band.any(axis=0))
+    if hit_r.size:
+        # The band's bounding box and one pixel more (its ring of neighbours).
+        a, b = max(0, int(hit_r[0]) - 1), min(band.shape[0], int(hit_r[-1]) + 2)
+        c, d = max(0, int(hit_c[0]) - 1), min(band.shape[1], int(hit_c[-1]) + 2)
+        grown, inside = code[a:b, c:d], band[a:b, c:d]  # views: the flood writes into ``code``
+        reach = ndimage.binary_dilation(inside, np.ones((3, 3), bool)) & (grown > 0)
+        markers = np.where(reach & ~inside, grown, 0).astype(np.int32, copy=False)
         elevation = np.zeros(grown.shape, np.float32)
-        elevation[rows, cols] = -score
-        here = grown[rows, cols]
-        core = (score >= confidence) & (np.asarray(state) == own[here])
-        markers = np.where(band, 0, grown)
-        markers[rows[core], cols[core]] = here[core]
-        grown = watershed(elevation, markers=markers, mask=grown > 0).astype(np.int32)
-    walls = thin_walls(grown)
-    has_domain = has_c[rows_i[:, None], cols_i[None, :]]
-    return np.where(walls, -1, np.where(has_domain, grown, 0)).astype(np.int32)
+        rows, cols = np.nonzero(inside)
+        for i in range(0, rows.size, SCORE_PIECE_PX):
+            rr, cc = rows[i:i + SCORE_PIECE_PX], cols[i:i + SCORE_PIECE_PX]
+            score, state = score_at(rr + (r0 + a), cc + (c0 + c))
+            score = np.nan_to_num(np.asarray(score, float), nan=0.0, neginf=0.0)
+            elevation[rr, cc] = -score
+            here = grown[rr, cc]
+            core = (score >= confidence) & (np.asarray(state) == own[here])
+            markers[rr[core], cc[core]] = here[core]
+        del rows, cols
+        flooded = watershed(elevation, markers=markers, mask=reach)
+        del elevation, markers, reach
+        grown[inside] = flooded[inside]
+        del flooded
+    walls = thin_walls(code)
+    code[~has_c[rows_i[:, None], cols_i[None, :]]] = 0
+    code[walls] = -1
+    return code
 
 
 def trusted_on_grid(grid_, sigma_nm, pixel, mask):

@@ -319,6 +319,7 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None, 
         image = np.asarray(levelled.data, dtype=float)
         view, view_mask = image, mask
     found_in_level = (levelled.metadata or {}).get("level")
+    del levelled  # only its data as ``image`` (float64) is read from here: a float32 copy need not stay
     if found_in_level and found_in_level.get("note"):
         notes.append("Levelling: " + found_in_level["note"])
         choices["level_findings"] = found_in_level
@@ -403,6 +404,9 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None, 
             pass
     choices["spectrum"] = spec["choices"]
     notes += spec["notes"]
+    # The peak finder keeps the polar cells of its noise floor per spectrum shape (about 13 bytes a
+    # pixel); the spectrum is read now, so they go before the lock-in and the domains need the memory.
+    fourier._CELLS_CACHE.clear()
     step("lock-in")
     return {"image": image, "mask": mask, "spec": spec, "drift": drift_result, "corrected": corrected,
             "notes": notes, "choices": choices, "lazy": lazy}
@@ -1488,7 +1492,9 @@ def _spec_from_order(result, image, pixel, mask, config):
         superlattice_summary["order"] = None
     if kind == "none":
         superlattice_summary["note"] = "no superlattice found"
-    power = fourier.power_spectrum(image, pixel_size_nm=pixel, mask=mask)
+    power, qx, qy = fourier.power_spectrum(image, pixel_size_nm=pixel, mask=mask)
+    # Kept for the spectrum figure only (a log colour scale): float32, half the memory of the run's copy.
+    power = (power.astype(np.float32), qx, qy)
     choices = {"lattice": result.lattice.source,
                "lattice_resolved": bool(result.lattice.resolved),
                "spectrum_of": "drift-corrected image" if result.lattice.resolved else "levelled image",
