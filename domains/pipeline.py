@@ -462,7 +462,10 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         u = drift_result.u_coarse_nm
         u_pixel = [pixel[0] * drift_result.step, pixel[1] * drift_result.step]
         if corrected_maps:
-            corrected_maps = list(drift_mod.correct_channels(np.stack(corrected_maps), drift_result, pixel_size_nm=pixel))
+            stacked = np.stack(corrected_maps)
+            corrected_maps = None  # one copy of the maps at a time
+            corrected_maps = list(drift_mod.correct_channels(stacked, drift_result, pixel_size_nm=pixel))
+            del stacked
 
     order_q = spec["order_q"]
     kind = spec["order_kind"]
@@ -510,7 +513,10 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     views = {}
     attrs = {"pixel_size_nm": list(pixel)}
     shown, shown_pixel = _overview(image, pixel) if lazy else (image, pixel)
-    views["topography"] = (*_small(shown, shown_pixel), topography.metadata.get("units", ""))
+    background = _small(shown, shown_pixel)
+    views["topography"] = (*background, topography.metadata.get("units", ""))
+    # From here on only the reduced image is kept; the straightened image is `fill`.
+    shape, image, shown, found, corrected = image.shape, None, None, None, None
     views["spectrum"] = (spec["power"], _marked_peaks(spec["result"]))
     if u is not None:
         out_maps["displacement/ux"] = (u[0].astype(np.float32), {**attrs, "pixel_size_nm": u_pixel, "units": "nm"})
@@ -519,12 +525,12 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     bar("order and noise floor")
 
     if lazy:
-        chunks = _refine.tile_chunks(image.shape)
-        labels = da.zeros(image.shape, np.int32, chunks=chunks)
-        walls = da.zeros(image.shape, bool, chunks=chunks)
+        chunks = _refine.tile_chunks(shape)
+        labels = da.zeros(shape, np.int32, chunks=chunks)
+        walls = da.zeros(shape, bool, chunks=chunks)
     else:
-        labels = np.zeros(image.shape, np.int32)
-        walls = np.zeros(image.shape, bool)
+        labels = np.zeros(shape, np.int32)
+        walls = np.zeros(shape, bool)
     fields_used = None
     step_, pc = grid_.step, grid_.coarse_pixel_nm
     choices["grid"] = {"step_px": step_, "pixel_size_nm": list(pc), "shape": list(grid_.coarse_shape),
@@ -627,7 +633,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         if lazy:
             domain_rows, shown_labels, shown_walls = _refine.domain_table_chunked(
                 labels, walls, pixel_size_nm=pixel, state_names=state_names, amplitude=amp, fields=fields_used,
-                sample_labels=labels_c, every=_overview_factor(image.shape))
+                sample_labels=labels_c, every=_overview_factor(shape))
         else:
             domain_rows = measure.domain_table(labels, pixel_size_nm=pixel, state_names=state_names, amplitude=amp,
                                                fields=fields_used, sample_labels=labels_c)
@@ -647,7 +653,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         views["order"] = {"names": names, "units": topography.metadata.get("units", ""),
                           "amplitude": _small(amp.mean(axis=0), pc),
                           "phase": _small(np.angle(fields_used[0]), pc, how="phase")}
-        views["domains"] = _domain_view(shown, shown_labels, shown_walls, shown_pixel)
+        views["domains"] = _domain_view(background, shown_labels, shown_walls, shown_pixel)
     else:
         bar("bias comparison and moiré", n=3)
     # The image the labels belong to (levelled, drift-corrected), so a viewer shows the bundle on its own.
@@ -656,11 +662,12 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         fill, lazy = np.asarray(fill.compute()), False
         notes.append("Lazy run: the moiré maps need the whole image in memory (it was computed there).")
     out_maps["topography"] = (fill.astype(np.float32), {**attrs, "units": topography.metadata.get("units", "nm")})
-    out_maps["labels"] = (labels.astype(np.int32), {**attrs, "units": "label"})
-    out_maps["walls"] = (walls.astype(bool), {**attrs, "units": "bool"})
+    out_maps["labels"] = (labels.astype(np.int32, copy=False), {**attrs, "units": "label"})
+    out_maps["walls"] = (walls.astype(bool, copy=False), {**attrs, "units": "bool"})
 
     if maps and kind in ("commensurate", "stripes", "incommensurate"):
-        _bias_step(summary, tables, views, corrected, corrected_maps, maps, labels, order_q, sigma_nm,
+        # `fill` is the straightened topograph with its NaN filled, as the bias comparison needs it.
+        _bias_step(summary, tables, views, fill, corrected_maps, maps, labels, order_q, sigma_nm,
                    pixel, lattice_q, mask)
     if grid is not None and kind in ("commensurate", "stripes", "incommensurate"):
         _grid_step(summary, tables, views, grid, labels, order_q, sigma_nm, pixel, mask)
@@ -698,11 +705,12 @@ def _small(array, pixel, how="mean"):
 
 def _domain_view(image, labels, walls, pixel, id_labels=None):
     """What a domain figure is drawn from: the image, labels and walls reduced for drawing, with the
-    colours and the id positions of the full labels (so that they are the viewer's)."""
+    colours and the id positions of the full labels (so that they are the viewer's). ``image`` may be
+    given already reduced, as ``(reduced image, its pixel size)``."""
     from ._palette import label_colours
 
     labels = np.asarray(labels)
-    small_image, small_pixel = _small(image, pixel)
+    small_image, small_pixel = image if isinstance(image, tuple) else _small(image, pixel)
     return {"image": small_image, "pixel": small_pixel,
             "labels": report.downsample(labels, how="mode")[0],
             "walls": report.downsample(np.asarray(walls, bool), how="max")[0],
