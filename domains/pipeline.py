@@ -47,7 +47,8 @@ class Config:
     drift : bool
         Correct drift from the Bragg peaks (Lawler–Fujita) when a lattice is resolved.
     drift_sigma_nm : float or None
-        Lock-in width for the drift field; default twice the order's sigma.
+        Lock-in width for the drift field; default the narrowest that keeps the strong peaks near a
+        Bragg peak, and a second layer's Bragg peaks, below ``leakage`` (docs/methods.md §9).
     false_alarm : float
         Probability per pixel that noise alone passes the "order present" threshold.
     confidence : float or None
@@ -358,10 +359,10 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None, 
         # (1e-6: at the chosen width the leakage equals the allowance, up to rounding.)
         if config.drift_sigma_nm is None and layer_leak > config.leakage * (1 + 1e-6):
             # The frame is too small for a lock-in that keeps the other layer out: its Bragg peak would
-            # enter the drift field as a displacement with the moiré's period (docs/methods.md §4).
-            why = (f"the other layer's Bragg peaks (a moiré wavevector away) leak {layer_leak:.2g} into a drift "
-                   f"lock-in of sigma = {drift_sigma:.3g} nm (the largest this frame allows), above {config.leakage:g}")
-            notes.append(f"Drift was not corrected: not measurable apart from the moiré here ({why}).")
+            # enter the drift field as a displacement with the moiré's period (docs/methods.md §9).
+            why = (f"the other layer's Bragg peaks, a moiré wavevector away, leak {layer_leak:.2g} into a drift "
+                   f"lock-in of sigma = {drift_sigma:.3g} nm, the widest this frame allows (above {config.leakage:g})")
+            notes.append(f"Drift was not corrected: it cannot be told apart from the moiré here ({why}).")
             choices["drift"] = {"sigma_nm": None, "corrected": False, "note": why}
         else:
             # Residual Bragg phase below 0.03 rad: the tolerance of Lawler-Fujita's own test (docs/methods.md §2).
