@@ -47,7 +47,8 @@ class Config:
     drift : bool
         Correct drift from the Bragg peaks (Lawler–Fujita) when a lattice is resolved.
     drift_sigma_nm : float or None
-        Lock-in width for the drift field; default twice the order's sigma.
+        Lock-in width for the drift field; default the narrowest that keeps the strong peaks near a
+        Bragg peak, and a second layer's Bragg peaks, below ``leakage`` (docs/methods.md §9).
     false_alarm : float
         Probability per pixel that noise alone passes the "order present" threshold.
     confidence : float or None
@@ -360,15 +361,28 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None, 
     corrected = image
     if config.drift and reading.lattice is not None and reading.resolved:
         lattice_q = np.asarray(reading.lattice.bragg, float)
-        drift_sigma = config.drift_sigma_nm or _drift_sigma(peaks, lattice_q, config.leakage, pixel)
+        second_q = None if reading.second is None else np.asarray(reading.second.bragg, float)
+        drift_sigma = config.drift_sigma_nm or _drift_sigma(peaks, lattice_q, config.leakage, pixel, second=second_q)
         drift_sigma = min(drift_sigma, 0.2 * min(image.shape[0] * pixel[0], image.shape[1] * pixel[1]))
-        # Residual Bragg phase below 0.03 rad: the tolerance of Lawler-Fujita's own test (docs/methods.md §2).
-        drift_result = drift_mod.correct_drift(image, lattice_q, sigma_nm=drift_sigma, pixel_size_nm=pixel, mask=mask,
-                                               tol_rad=0.03)
-        corrected = drift_result.corrected
-        mask = drift_result.mask
-        choices["drift"] = {"sigma_nm": drift_sigma, "iterations": drift_result.iterations,
-                            "converged": drift_result.converged, "note": drift_result.note}
+        layer_leak = _other_layer_leakage(lattice_q, second_q, drift_sigma)
+        # (1e-6: at the chosen width the leakage equals the allowance, up to rounding.)
+        if config.drift_sigma_nm is None and layer_leak > config.leakage * (1 + 1e-6):
+            # The frame is too small for a lock-in that keeps the other layer out: its Bragg peak would
+            # enter the drift field as a displacement with the moiré's period (docs/methods.md §9).
+            why = (f"the other layer's Bragg peaks, a moiré wavevector away, leak {layer_leak:.2g} into a drift "
+                   f"lock-in of sigma = {drift_sigma:.3g} nm, the widest this frame allows (above {config.leakage:g})")
+            notes.append(f"Drift was not corrected: it cannot be told apart from the moiré here ({why}).")
+            choices["drift"] = {"sigma_nm": None, "corrected": False, "note": why}
+        else:
+            # Residual Bragg phase below 0.03 rad: the tolerance of Lawler-Fujita's own test (docs/methods.md §2).
+            drift_result = drift_mod.correct_drift(image, lattice_q, sigma_nm=drift_sigma, pixel_size_nm=pixel,
+                                                   mask=mask, tol_rad=0.03)
+            corrected = drift_result.corrected
+            mask = drift_result.mask
+            choices["drift"] = {"sigma_nm": drift_sigma, "iterations": drift_result.iterations,
+                                "converged": drift_result.converged, "note": drift_result.note}
+            if second_q is not None:
+                choices["drift"]["other_layer_leakage"] = layer_leak
     elif reading.lattice is None or not reading.resolved:
         notes.append("No atomic lattice resolved: drift was not corrected.")
     # 4. What every other peak means, on the straightened image (drift smears peaks into sidebands).
@@ -798,12 +812,15 @@ def _thick(mask, width_px=5):
     return ndimage.binary_opening(mask, structure=np.ones((width_px, width_px), bool))
 
 
-def _drift_sigma(peaks, bragg, leakage, pixel):
+def _drift_sigma(peaks, bragg, leakage, pixel, second=None):
     """Lock-in width for the drift field: as small as the leakage of the peaks that matter allows.
 
     Only peaks near a Bragg peak and not much weaker than it (power above 5 % of the weakest Bragg
     peak's) can bias its phase; weak speckle far from it does not. A small width follows piezo creep,
-    which changes over a few nm at the top of a frame.
+    which changes over a few nm at the top of a frame. Peaks within 2 % of |G| are the Bragg peak
+    itself (and sidebands of the drift being measured), except the Bragg peaks ``second`` of the
+    other layer of a bilayer: they sit a moiré wavevector |K| ≈ θ|G| away (under 2 % of |G| below
+    a twist of 1.15°) and must be kept out, else the drift field carries the moiré.
     """
     qs = np.array([p.q for p in peaks]).reshape(-1, 2)
     power = np.array([p.power for p in peaks])
@@ -817,10 +834,22 @@ def _drift_sigma(peaks, bragg, leakage, pixel):
         d = d[d > 0.02 * np.hypot(*g)]  # the Bragg peak itself (and its refined twin)
         if d.size:
             nearest = min(nearest, float(d.min()))
+        if second is not None:
+            nearest = min(nearest, float(np.min(np.hypot(*(np.vstack([second, -second]) - g).T))))
     sigma = math.sqrt(2 * math.log(1 / leakage)) / nearest if np.isfinite(nearest) else 8 * max(pixel)
     # At least two lattice periods and four pixels: fewer atoms under the window leave the phase noisy.
     period = 2 * math.pi / float(np.min(np.hypot(*np.asarray(bragg).T)))
     return max(sigma, 2 * period, 4 * max(pixel))
+
+
+def _other_layer_leakage(bragg, second, sigma_nm):
+    """Weight exp(-σ²Δk²/2) with which a drift lock-in of width σ at ``bragg`` passes the nearest
+    Bragg peak of the other layer ``second`` (0 without a second layer; docs/methods.md §1)."""
+    if second is None:
+        return 0.0
+    others = np.vstack([second, -second])
+    dk = min(float(np.min(np.hypot(*(others - g).T))) for g in np.asarray(bragg, float))
+    return float(math.exp(-0.5 * (sigma_nm * dk) ** 2))
 
 
 def _choose_sigma(config, order_q, lattice_q, moire_q, shape, pixel):
