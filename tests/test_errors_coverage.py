@@ -206,7 +206,6 @@ def test_wall_phase_jump_errors_cover_the_truth(realisations):
 
 
 @pytest.mark.slow
-@pytest.mark.slow
 def test_unresolved_wall_is_reported_by_an_upper_limit_that_covers_the_truth():
     # A narrow wall: w = 0.1 nm against sigma ~ 0.43 nm gives W = 1.03 sigma, a broadening of the
     # order of its own error (derived), so the fit often cannot tell it from a sharp step.
@@ -266,4 +265,5 @@ def test_headline_gives_an_upper_limit_when_no_wall_is_resolved():
     summary["domains"] = measure.domain_summary([{"area_nm2": 10.0, "touches_edge": False}], resolved)
     text = _headline(summary)["walls"]
     # derived: one resolved wall gives its own width and fit error; the two others stay a limit
-    assert "0.6 ± 0.05 nm (1 resolved)" in text and "below 0.31 nm" in text
+    # (the value to the last digit of the error's two significant ones)
+    assert "0.600 ± 0.050 nm (1 resolved)" in text and "below 0.31 nm" in text
