@@ -928,11 +928,17 @@ def write_analysis(analysis: Analysis, out, *, command_line, inputs, overwrite=F
 
 
 def _pm(value, error, unit="", digits=4):
+    """'v ± e unit': e to two significant digits and v to the same last decimal (``digits``
+    significant digits without an error), so the printed v is no coarser than its error."""
     if value is None or not np.isfinite(value):
         return "–"
-    if error is None or not np.isfinite(error):
+    if error is None or not np.isfinite(error) or error <= 0:
         return f"{value:.{digits}g} {unit}".strip()
-    return f"{value:.{digits}g} ± {error:.2g} {unit}".strip()
+    places = 1 - int(math.floor(math.log10(error)))  # decimals of e's second significant digit (< 0: tens ...)
+    v, e = round(value, places) or 0.0, round(error, places)  # 'or 0.0': no negative zero
+    if places <= 0:
+        return f"{v:.0f} ± {e:.0f} {unit}".strip()
+    return f"{v:.{places}f} ± {e:.{places}f} {unit}".strip()
 
 
 def _headline(summary):
@@ -953,7 +959,7 @@ def _headline(summary):
     if domains:
         rows["domains"] = (f"{domains['count']} ({domains['count_touching_edge']} cut by the frame), mean area "
                            f"{_pm(domains['area_nm2_mean'], domains['area_nm2_mean_err'], 'nm²')}")
-        width = _pm(domains['wall_width_nm_mean'], domains['wall_width_nm_mean_err'], 'nm', 2)
+        width = _pm(domains['wall_width_nm_mean'], domains['wall_width_nm_mean_err'], 'nm')
         limit = domains.get("wall_width_nm_upper_limit")
         if limit is not None and np.isfinite(limit) and domains.get("wall_width_count_unresolved"):
             width = (f"{width} ({domains['wall_width_count_resolved']} resolved); " if domains.get("wall_width_count_resolved")

@@ -846,7 +846,7 @@ def conductance_figure(contrast, *, colours=None, types=None, as_figure=False):
 
 
 _WORDS = {"None": "–", "none": "–", "nan": "–", "NaN": "–", "True": "yes", "False": "no", "true": "yes",
-          "false": "no", "": ""}
+          "false": "no", "": "–"}
 
 
 def _number(value: float) -> str:
@@ -877,14 +877,14 @@ def _text(value: str) -> str:
 def format_cell(value) -> str:
     """One table cell in human words (plain text, not yet HTML-escaped).
 
-    None and NaN become "–", booleans "yes"/"no", floats 4 significant digits
-    without a negative zero, lists "a, b, c"; strings packing numbers with ";"
-    are shown as "a, b, c" too.
+    None, NaN and the empty string become "–", booleans "yes"/"no", floats 4
+    significant digits without a negative zero, lists "a, b, c"; strings packing
+    numbers with ";" are shown as "a, b, c" too.
 
     Examples
     --------
-    >>> [format_cell(v) for v in (None, True, False, -0.0, 1.23456, [1.8, -1.6, None], "1.8;-1.6;-0.4", "-0.0000")]
-    ['–', 'yes', 'no', '0', '1.235', '1.8, -1.6, –', '1.8, -1.6, -0.4', '0']
+    >>> [format_cell(v) for v in (None, True, False, -0.0, 1.23456, [1.8, -1.6, None], "1.8;-1.6;-0.4", "-0.0000", "")]
+    ['–', 'yes', 'no', '0', '1.235', '1.8, -1.6, –', '1.8, -1.6, -0.4', '0', '–']
     """
     if value is None:
         return "–"
