@@ -964,7 +964,10 @@ def _headline(summary):
         if limit is not None and np.isfinite(limit) and domains.get("wall_width_count_unresolved"):
             width = (f"{width} ({domains['wall_width_count_resolved']} resolved); " if domains.get("wall_width_count_resolved")
                      else "") + f"below {limit:.2g} nm ({domains['wall_width_count_unresolved']} narrower than the lock-in resolves)"
-        rows["walls"] = f"{domains['wall_count']} segments, {domains['wall_length_nm']:.4g} nm in all, width {width}"
+        n_walls = domains["wall_count"]
+        text = f"{n_walls} segment{'' if n_walls == 1 else 's'}, {domains['wall_length_nm']:.4g} nm in all"
+        # Walls between twist domains are not fitted (their width is the maps' resolution): no width then.
+        rows["walls"] = text + (f", width {width}" if width != "–" else ", width not measured")
     defects = summary.get("defects")
     if defects:
         rows["defects"] = f"{defects['count']} ({defects['positive']} with winding +1, {defects['negative']} with -1)"

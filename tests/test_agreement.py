@@ -162,7 +162,7 @@ def test_domain_count_and_cut_by_frame_agree_with_domains_csv(bundle):
 def test_wall_count_length_and_widths_agree_with_walls_csv(bundle):
     walls, summary = bundle["walls"], bundle["summary"]["domains"]
     text = bundle["headline"]["walls"]
-    m = re.fullmatch(rf"(\d+) segments, ({NUMBER}) nm in all, width (.*)", text)
+    m = re.fullmatch(rf"(\d+) segments?, ({NUMBER}) nm in all, width (.*)", text)
     assert m, text
     assert int(m.group(1)) == summary["wall_count"] == len(walls)
     lengths = [_cell(w["length_nm"]) for w in walls]
