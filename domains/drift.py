@@ -1586,6 +1586,10 @@ def correct_channels(images, drift, *, pixel_size_nm=None, order=3):
             raise InputError(f"{name}: frame {tuple(data.shape[-2:])} differs from the drift result's {drift.shape}")
         if data.dtype.kind not in "biuf":
             raise InputError(f"{name} must hold real numbers, got dtype {data.dtype}")
+        if _is_dask(data):
+            # Chunk by chunk, each chunk reading its halo (no whole planes in memory).
+            return _apply_chunked(data, field.window, field.largest_shift(drift.pixel_size_nm), drift.pixel_size_nm,
+                                  order, _out_dtype(data.dtype))
         return _apply(data, field.rows, drift.pixel_size_nm, order)[0]
 
     if isinstance(images, dict):
