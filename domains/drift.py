@@ -976,6 +976,11 @@ class DriftResult:
     access, and :func:`straighten_rows` resamples any block of rows of any
     channel without the full-resolution field.
 
+    For a dask frame, ``corrected``, ``outside``, ``mask`` and ``trusted`` are
+    dask arrays, and ``u_nm`` and ``residual_phase_rad`` are read-only arrays
+    that evaluate the grid's spline only at the pixels indexed (slices, or
+    two integer arrays of points); ``np.asarray`` gives the whole of them.
+
     Attributes
     ----------
     corrected : ndarray
@@ -1222,8 +1227,14 @@ def correct_drift(
     Parameters
     ----------
     image : (row, col) array_like
-        Topograph showing the lattice (read into memory). float32 is kept;
-        anything else is resampled in float64.
+        Topograph showing the lattice. float32 is kept; anything else is
+        resampled in float64. A dask array (e.g. from a zarr store larger than
+        memory) is corrected chunk by chunk with no full-size array in memory:
+        each pass reads it once, the lock-ins decimated per chunk and the
+        resampling a :func:`dask.array.map_overlap` whose halo is the largest
+        displacement plus the spline support and 24 prefilter pixels; the
+        result then holds dask arrays (see :class:`DriftResult`) and equals
+        the in-memory one to float32 precision.
     bragg_q : (k, 2) array_like
         Ideal Bragg wavevectors (qx, qy) in rad/nm, k >= 2 non-collinear.
     sigma_nm : float
@@ -1310,6 +1321,10 @@ def correct_drift(
     (True, True)
     >>> result.step, result.u_coarse_nm.shape, result.u_nm.shape
     (3, (2, 22, 22), (2, 64, 64))
+    >>> import dask.array as da
+    >>> lazy = correct_drift(da.from_array(image, chunks=(40, 24)), q, sigma_nm=6.0, pixel_size_nm=1.0)
+    >>> type(lazy.corrected).__name__, bool(np.allclose(lazy.corrected.compute(), result.corrected, atol=1e-5, equal_nan=True))
+    ('Array', True)
     """
     _check_translation(translation)
     lazy = _is_dask(image)
@@ -1512,7 +1527,9 @@ def correct_channels(images, drift, *, pixel_size_nm=None, order=3):
     Every channel and bias of one scan shares the drift, so the field found on
     the topograph straightens them all [1]_. The field comes from the drift
     result's decimated grid block of rows by block of rows (see
-    :func:`straighten_rows`); only the outputs are full size.
+    :func:`straighten_rows`); only the outputs are full size. Dask channels
+    stay lazy and are resampled chunk by chunk (each chunk with a halo of the
+    largest displacement plus the spline support).
 
     Parameters
     ----------
