@@ -250,8 +250,18 @@ class _Grid:
         return fine[..., :: self.step, :: self.step]
 
     def coefficients(self, values):
-        """B-spline coefficients (..., rows, cols) of real samples (..., rows, cols)."""
-        return self.axes[1].solve(self.axes[0].solve(values, -2), -1)
+        """B-spline coefficients (..., rows, cols) of real samples (..., rows, cols).
+
+        One plane at a time, so the temporaries are a plane's (the banded solver treats each
+        right-hand side on its own: the same numbers as all planes at once).
+        """
+        values = np.asarray(values, dtype=float)
+        out = np.empty(values.shape)
+        planes_in = values.reshape((-1,) + values.shape[-2:])
+        planes_out = out.reshape(planes_in.shape)
+        for v, c in zip(planes_in, planes_out):
+            c[...] = self.axes[1].solve(self.axes[0].solve(v, -2), -1)
+        return out
 
     def rows(self, coef, first, stop, dtype=np.float64):
         """The spline at every pixel of rows first ... stop - 1: shape (..., stop - first, cols).
@@ -473,25 +483,40 @@ def _resample_window(plane, coords, order, top, bottom, left=True, right=True):
     mode "nearest" pads it exactly as :func:`scipy.ndimage.map_coordinates` does; elsewhere the
     window holds ``_PREFILTER_ROWS`` real rows (columns) beyond the support.
     """
+    return _evaluate(_prefilter(plane, order, top, bottom, left, right), coords, order)
+
+
+def _prefilter(plane, order, top, bottom, left=True, right=True):
+    """The spline coefficients of one window (see :func:`_resample_window`): (coefficients or None when
+    every pixel is NaN, the pixel offset of the window in them, the NaN pixels or None)."""
     plane = np.array(plane, dtype=float)
     bad = ~np.isfinite(plane)
     if bad.all():
-        return np.full(coords.shape[1:], np.nan)
-    if bad.any():
+        return None, None, None
+    if not bad.any():
+        bad = None
+    else:
         # The spline prefilter is recursive: a NaN would spread along its row and column. The nearest
         # valid pixel stands in (local, so the result does not depend on how the rows were blocked).
         index = ndimage.distance_transform_edt(bad, return_distances=False, return_indices=True)
         plane = plane[tuple(index)]
-    if order > 1:
-        pad_top, pad_bottom = (_EDGE_PAD if top else 0), (_EDGE_PAD if bottom else 0)
-        pad_left, pad_right = (_EDGE_PAD if left else 0), (_EDGE_PAD if right else 0)
-        padded = np.pad(plane, ((pad_top, pad_bottom), (pad_left, pad_right)), mode="edge")
-        spline = ndimage.spline_filter(padded, order, output=np.float64, mode="nearest")
-        shifted = coords + np.array([pad_top, pad_left], dtype=float)[:, None, None]
-        out = ndimage.map_coordinates(spline, shifted, order=order, mode="nearest", prefilter=False)
-    else:
-        out = ndimage.map_coordinates(plane, coords, order=order, mode="nearest", prefilter=False)
-    if bad.any():
+    if order <= 1:
+        return plane, np.zeros(2), bad
+    pad_top, pad_bottom = (_EDGE_PAD if top else 0), (_EDGE_PAD if bottom else 0)
+    pad_left, pad_right = (_EDGE_PAD if left else 0), (_EDGE_PAD if right else 0)
+    padded = np.pad(plane, ((pad_top, pad_bottom), (pad_left, pad_right)), mode="edge")
+    spline = ndimage.spline_filter(padded, order, output=np.float64, mode="nearest")
+    return spline, np.array([pad_top, pad_left], dtype=float), bad
+
+
+def _evaluate(prefiltered, coords, order):
+    """The spline of :func:`_prefilter` at ``coords`` (window pixels); NaN next to NaN sources."""
+    spline, offset, bad = prefiltered
+    if spline is None:
+        return np.full(coords.shape[1:], np.nan)
+    out = ndimage.map_coordinates(spline, coords + offset[:, None, None], order=order, mode="nearest",
+                                  prefilter=False)
+    if bad is not None:
         reach = ndimage.map_coordinates(bad.astype(float), coords, order=1, mode="nearest", prefilter=False)
         out[reach > 1e-9] = np.nan
     return out
@@ -607,26 +632,37 @@ def _apply_chunked(data, window_of_u, shift_px, pixel_size, order, out_dtype, *,
         r1, c1 = r0 + chunks[-2][i], c0 + chunks[-1][j]
         wy, wx = r0 - (halo[0] if i > 0 else 0), c0 - (halo[1] if j > 0 else 0)
         h, w = x.shape[-2:]
-        u = window_of_u(r0, r1, c0, c1)
-        rows = np.arange(r0, r1, dtype=float)[:, None] - u[1] / dy
-        cols = np.arange(c0, c1, dtype=float)[None, :] - u[0] / dx
-        tol = 1e-6
-        with np.errstate(invalid="ignore"):
-            outside = ~(np.isfinite(rows) & np.isfinite(cols))
-            outside |= (rows < -tol) | (rows > ny - 1 + tol) | (cols < -tol) | (cols > nx - 1 + tol)
-        out = np.full(x.shape[:-2] + (r1 - r0, c1 - c0), np.nan, dtype=out_dtype)
-        if outside.all():
-            return out
-        coords = np.stack([np.where(outside, wy, rows) - wy, np.where(outside, wx, cols) - wx])
         edges = dict(top=wy == 0, bottom=wy + h == ny, left=wx == 0, right=wx + w == nx)
-        flat, planes = x.reshape((-1, h, w)), out.reshape((-1,) + out.shape[-2:])
-        for k, plane in enumerate(flat):
-            planes[k] = _resample_window(plane, coords, order, **edges)
-        out[..., outside] = np.nan
-        if nan_carried:
-            weight = ndimage.map_coordinates(np.asarray(carried[wy : wy + h, wx : wx + w], dtype=float), coords,
-                                             order=1, mode="nearest", prefilter=False)
-            out[..., ~(weight < 1e-9)] = np.nan
+        out = np.full(x.shape[:-2] + (r1 - r0, c1 - c0), np.nan, dtype=out_dtype)
+        planes = out.reshape((-1,) + out.shape[-2:])
+        flat = x.reshape((-1, h, w))
+        # The window's spline coefficients once per plane; the output rows in blocks (small temporaries).
+        splines = [None] * len(flat)
+        carried_window = np.asarray(carried[wy : wy + h, wx : wx + w], dtype=float) if nan_carried else None
+        band = max(1, _BLOCK_PIXELS // (c1 - c0))
+        for b0 in range(r0, r1, band):
+            b1 = min(r1, b0 + band)
+            u = window_of_u(b0, b1, c0, c1)
+            rows = np.arange(b0, b1, dtype=float)[:, None] - u[1] / dy
+            cols = np.arange(c0, c1, dtype=float)[None, :] - u[0] / dx
+            del u
+            tol = 1e-6
+            with np.errstate(invalid="ignore"):
+                outside = ~(np.isfinite(rows) & np.isfinite(cols))
+                outside |= (rows < -tol) | (rows > ny - 1 + tol) | (cols < -tol) | (cols > nx - 1 + tol)
+            if outside.all():
+                continue
+            coords = np.stack([np.where(outside, wy, rows) - wy, np.where(outside, wx, cols) - wx])
+            del rows, cols
+            for k, plane in enumerate(flat):
+                if splines[k] is None:
+                    splines[k] = _prefilter(plane, order, **edges)
+                values = _evaluate(splines[k], coords, order)
+                values[outside] = np.nan
+                planes[k, b0 - r0 : b1 - r0] = values
+            if nan_carried:
+                weight = ndimage.map_coordinates(carried_window, coords, order=1, mode="nearest", prefilter=False)
+                planes[:, b0 - r0 : b1 - r0][:, ~(weight < 1e-9)] = np.nan
         return out
 
     depth = {**{a: 0 for a in range(lead)}, lead: halo[0], lead + 1: halo[1]}
@@ -718,8 +754,12 @@ def _rotated_samples(a, target):
     """The lock-in samples turned by their target phases, as real and imaginary planes (2k, rows, cols),
     NaN samples replaced by their nearest valid neighbour, and the mask of those samples."""
     invalid = ~np.all(np.isfinite(a), axis=0)
-    rotated = a.astype(np.complex128) * np.exp(-1j * np.asarray(target))[:, None, None]
-    planes = np.concatenate([rotated.real, rotated.imag])
+    k = len(a)
+    planes = np.empty((2 * k,) + a.shape[1:])
+    for j, turn in enumerate(np.exp(-1j * np.asarray(target))):
+        rotated = a[j].astype(np.complex128) * turn  # one component at a time (small temporaries)
+        planes[j], planes[k + j] = rotated.real, rotated.imag
+    del rotated
     if invalid.all():
         return np.zeros_like(planes), invalid
     return _fill_nearest(planes, invalid), invalid
@@ -765,6 +805,7 @@ def _residual_stats_region(grid, a, target, trusted):
     planes, invalid = _rotated_samples(a, target)
     k = len(a)
     coef = grid.coefficients(planes)
+    del planes
     total, largest, count = np.zeros(k), np.zeros(k), 0
     coarse = np.zeros(grid.coarse_shape, dtype=bool)
     for r0, r1, where in trusted.blocks(grid.block_rows()):
@@ -1427,7 +1468,10 @@ def _next_field(grid, a, target, trusted_c, field, q, pixel_size):
     valid = np.all(np.isfinite(a), axis=0)
     residual = _wrap(np.angle(a).astype(float) - target[:, None, None])
     # Residuals are small after the first pass, but unwrap anyway: a pass can overshoot.
-    unwrapped = np.stack([_unwrap(r, valid) for r in residual])
+    unwrapped = np.empty_like(residual)
+    for j, r in enumerate(residual):
+        unwrapped[j] = _unwrap(r, valid)
+    del residual
     trusted_c = trusted_c & valid
     for j, r in enumerate(unwrapped):
         if trusted_c.any():
@@ -1478,6 +1522,7 @@ def _correct_drift_lazy(image, q, grid, sigma_nm, pixel_size, mask, max_iter, to
                        else (lambda a, b: ~input_bad[a:b]))
     field, theta0, trusted0, target = _measure_from(a0, q, grid, trusted_region(in_bad), fallback, translation)
     sum_mean, sum_rms = _phase_sum(theta0, q, trusted0 & np.all(np.isfinite(theta0), axis=0))
+    del a0, theta0, trusted0  # the grid's arrays are the memory of a lazy run: keep only the field
 
     def one_pass(field):
         shift = field.largest_shift(pixel_size)
