@@ -249,14 +249,15 @@ class _Grid:
         """The pixels of a full-resolution array that lie on the grid."""
         return fine[..., :: self.step, :: self.step]
 
-    def coefficients(self, values):
+    def coefficients(self, values, out=None):
         """B-spline coefficients (..., rows, cols) of real samples (..., rows, cols).
 
         One plane at a time, so the temporaries are a plane's (the banded solver treats each
-        right-hand side on its own: the same numbers as all planes at once).
+        right-hand side on its own: the same numbers as all planes at once). ``out`` may be
+        ``values`` itself (float64): the coefficients then replace the samples.
         """
         values = np.asarray(values, dtype=float)
-        out = np.empty(values.shape)
+        out = np.empty(values.shape) if out is None else out
         planes_in = values.reshape((-1,) + values.shape[-2:])
         planes_out = out.reshape(planes_in.shape)
         for v, c in zip(planes_in, planes_out):
@@ -804,8 +805,7 @@ def _residual_stats_region(grid, a, target, trusted):
     pass over its rows: (rms, max, the region on the grid's samples, its pixel count)."""
     planes, invalid = _rotated_samples(a, target)
     k = len(a)
-    coef = grid.coefficients(planes)
-    del planes
+    coef = grid.coefficients(planes, out=planes)  # in place: one set of grid-sized planes
     total, largest, count = np.zeros(k), np.zeros(k), 0
     coarse = np.zeros(grid.coarse_shape, dtype=bool)
     for r0, r1, where in trusted.blocks(grid.block_rows()):
