@@ -100,6 +100,15 @@ def test_chunked_equals_in_memory_float32(plain):
     assert lazy.corrected.chunks == CHUNKS and lazy.corrected.dtype == np.float32
 
 
+def test_chunks_thinner_than_the_halo_are_merged(plain):
+    image, memory, _ = plain
+    thin = ((20, 300, 193), (13, 57, 400))  # 20 and 13 px: less than the halo (24 prefilter pixels alone)
+    lazy = correct_drift(da.from_array(image, chunks=thin), Q_NM, sigma_nm=SIGMA, pixel_size_nm=PIX)
+    compare(lazy, memory)
+    # derived: a chunk thinner than the halo joins its neighbour; the others keep their borders
+    assert lazy.corrected.chunks == ((320, 193), (70, 400))
+
+
 def test_chunked_equals_in_memory_with_nan_mask_lattice():
     image = drifted_lattice()
     image[200:210, 100:140] = np.nan  # a hole across a chunk border
