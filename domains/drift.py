@@ -249,21 +249,41 @@ class _Grid:
         """The pixels of a full-resolution array that lie on the grid."""
         return fine[..., :: self.step, :: self.step]
 
-    def coefficients(self, values):
-        """B-spline coefficients (..., rows, cols) of real samples (..., rows, cols)."""
-        return self.axes[1].solve(self.axes[0].solve(values, -2), -1)
+    def coefficients(self, values, out=None):
+        """B-spline coefficients (..., rows, cols) of real samples (..., rows, cols).
+
+        One plane at a time, so the temporaries are a plane's (the banded solver treats each
+        right-hand side on its own: the same numbers as all planes at once). ``out`` may be
+        ``values`` itself (float64): the coefficients then replace the samples.
+        """
+        values = np.asarray(values, dtype=float)
+        out = np.empty(values.shape) if out is None else out
+        planes_in = values.reshape((-1,) + values.shape[-2:])
+        planes_out = out.reshape(planes_in.shape)
+        for v, c in zip(planes_in, planes_out):
+            c[...] = self.axes[1].solve(self.axes[0].solve(v, -2), -1)
+        return out
 
     def rows(self, coef, first, stop, dtype=np.float64):
         """The spline at every pixel of rows first ... stop - 1: shape (..., stop - first, cols).
 
         float32 halves the work where its precision (1e-7 of the values) is enough.
         """
+        return self.outer(coef, slice(first, stop), slice(None), dtype)
+
+    def outer(self, coef, rows, cols, dtype=np.float64):
+        """The spline at the pixels rows x cols (each a slice or an index array): (..., len(rows), len(cols)).
+
+        The same sums as :meth:`rows` (a pixel's value does not depend on which others are asked for).
+        """
         single = np.dtype(dtype) == np.float32
         axis_y, axis_x = self.axes
-        by = (axis_y.basis32 if single else axis_y.basis)[first:stop]
+        by = (axis_y.basis32 if single else axis_y.basis)[rows]
         bx = axis_x.basis32 if single else axis_x.basis
+        if not (isinstance(cols, slice) and cols == slice(None)):
+            bx = bx[cols]
         flat = coef.reshape((-1,) + coef.shape[-2:]).astype(dtype, copy=False)
-        out = np.empty((len(flat), stop - first, self.shape[1]), dtype=dtype)
+        out = np.empty((len(flat), by.shape[0], bx.shape[0]), dtype=dtype)
         for i, c in enumerate(flat):
             out[i] = (bx @ (by @ c).T).T
         return out.reshape(coef.shape[:-2] + out.shape[1:])
@@ -275,9 +295,11 @@ class _Grid:
         degree = (self.axes[0].k, self.axes[1].k)
         return np.stack([NdBSpline(knots, c, degree, extrapolate=True)(points) for c in coef])
 
-    def nearest_invalid(self, invalid, first, stop):
-        """Pixels of rows first ... stop - 1 whose nearest grid sample is flagged in ``invalid``."""
-        return invalid[np.ix_(self.axes[0].nearest(first, stop), self.axes[1].nearest(0, self.shape[1]))]
+    def nearest_invalid(self, invalid, first, stop, col_first=0, col_stop=None):
+        """Pixels of rows first ... stop - 1 (columns col_first ... col_stop - 1) whose nearest grid
+        sample is flagged in ``invalid``."""
+        col_stop = self.shape[1] if col_stop is None else col_stop
+        return invalid[np.ix_(self.axes[0].nearest(first, stop), self.axes[1].nearest(col_first, col_stop))]
 
     def block_rows(self):
         return max(1, _BLOCK_PIXELS // self.shape[1])
@@ -287,16 +309,63 @@ class _Grid:
 
         The spline is linear in its samples: with S the collocation matrices and B the
         pixel bases of the two axes, the mean is <v, S_y^-T (B_y^T R B_x) S_x^-1> / |R|.
+        ``region`` is a full-resolution boolean array or a :class:`_Region` (read block by block).
         """
+        moment, count = self.moment(_Region.of(region))[:2]
+        return self.weights_of(moment, count)
+
+    def moment(self, region):
+        """(B_y^T R B_x, |R|, R on the grid's samples) of a :class:`_Region`, in one pass over its rows."""
         moment = np.zeros(self.coarse_shape)
+        coarse = np.zeros(self.coarse_shape, dtype=bool)
+        count = 0
         by, bx_t = self.axes[0].basis, self.axes[1].basis_t
-        block = self.block_rows()
-        for r0 in range(0, self.shape[0], block):
-            part = region[r0 : r0 + block]
+        for r0, r1, part in region.blocks(self.block_rows()):
             if part.any():
-                moment += (by[r0 : r0 + block].T @ (bx_t @ part.T.astype(float)).T)
-        moment /= np.count_nonzero(region)
-        return self.axes[1].solve(self.axes[0].solve(moment, -2, trans="T"), -1, trans="T")
+                moment += (by[r0:r1].T @ (bx_t @ part.T.astype(float)).T)
+                count += int(np.count_nonzero(part))
+            self._sample_into(coarse, r0, r1, part)
+        return moment, count, coarse
+
+    def weights_of(self, moment, count):
+        """The mean weights of :meth:`mean_weights` from a region's moment and pixel count."""
+        return self.axes[1].solve(self.axes[0].solve(moment / count, -2, trans="T"), -1, trans="T")
+
+    def _sample_into(self, coarse, r0, r1, part):
+        """Copy the grid's samples that lie in rows r0 ... r1 - 1 of a full-resolution block into ``coarse``."""
+        s = self.step
+        first = -(-r0 // s) * s
+        if first < r1:
+            coarse[first // s : -(-r1 // s)] = part[first - r0 :: s, ::s]
+
+
+class _Region:
+    """A full-resolution boolean region of a frame, handed out block of rows by block of rows.
+
+    Either a boolean array, or a function rows(r0, r1) -> (r1 - r0, cols) that computes its rows
+    on demand (a lazy frame keeps no full-size array); ``min_block`` is the fewest rows worth
+    computing at a time (a function that reads a halo around each block prefers large blocks).
+    """
+
+    def __init__(self, shape, rows, min_block=1):
+        self.shape, self._rows, self.min_block = tuple(shape), rows, int(min_block)
+
+    @classmethod
+    def of(cls, region):
+        if isinstance(region, _Region):
+            return region
+        region = np.asarray(region, dtype=bool)
+        return cls(region.shape, lambda r0, r1: region[r0:r1])
+
+    def rows(self, r0, r1):
+        return self._rows(r0, r1)
+
+    def blocks(self, block):
+        """(r0, r1, rows) over the whole frame, blocks of at least ``block`` rows."""
+        block = max(int(block), self.min_block)
+        for r0 in range(0, self.shape[0], block):
+            r1 = min(self.shape[0], r0 + block)
+            yield r0, r1, self._rows(r0, r1)
 
 
 def _fill_nearest(values, invalid):
@@ -326,14 +395,25 @@ class _Field:
     def at(self, rows_px, cols_px):
         return self.grid.at(self.coef, rows_px, cols_px)
 
+    def window(self, r0, r1, c0, c1):
+        """u at rows r0 ... r1 - 1 and columns c0 ... c1 - 1 (2, rows, cols) in nm, the same values as :meth:`rows`."""
+        u = self.grid.outer(self.coef, slice(r0, r1), slice(c0, c1))
+        if self.invalid.any():
+            u[:, self.grid.nearest_invalid(self.invalid, r0, r1, c0, c1)] = np.nan
+        return u
+
     def largest_row_shift(self, pixel_size):
         """max |u_y| / dy over every pixel of the frame (finite ones), in rows."""
-        largest = 0.0
+        return self.largest_shift(pixel_size)[0]
+
+    def largest_shift(self, pixel_size):
+        """(max |u_y| / dy, max |u_x| / dx) over every pixel of the frame, in pixels, block of rows by block of rows."""
+        largest = np.zeros(2)
         block = self.grid.block_rows()
         for r0 in range(0, self.grid.shape[0], block):
-            uy = self.grid.rows(self.coef[1:], r0, min(self.grid.shape[0], r0 + block))
-            largest = max(largest, float(np.max(np.abs(uy))))
-        return largest / pixel_size[0]
+            u = self.grid.rows(self.coef, r0, min(self.grid.shape[0], r0 + block))
+            largest = np.maximum(largest, np.max(np.abs(u), axis=(1, 2)))
+        return float(largest[1] / pixel_size[0]), float(largest[0] / pixel_size[1])
 
 
 def _trusted(bad, shape, sigma_nm, pixel_size, margin_sigma=2.5):
@@ -343,67 +423,101 @@ def _trusted(bad, shape, sigma_nm, pixel_size, margin_sigma=2.5):
     edge sits half a pixel outside the outermost row or column) and from every
     pixel of ``bad``. The frame part is closed form; the distance to ``bad`` is
     computed by :func:`scipy.ndimage.distance_transform_edt` on row blocks
-    with a halo of the margin, and only on the column ranges that have a bad
-    pixel within the margin, which gives the same answer: a bad pixel closer
-    than the margin always lies in the window.
+    with a halo of the margin (:func:`_trusted_rows`), and only on the column
+    ranges that have a bad pixel within the margin, which gives the same answer:
+    a bad pixel closer than the margin always lies in the window.
     """
-    dy, dx = pixel_size
     ny, nx = shape
-    limit, half = margin_sigma * float(sigma_nm), 0.5 * min(dy, dx)
-    rows_ok = np.minimum(np.arange(1, ny + 1), np.arange(ny, 0, -1)) * dy - half >= limit
-    cols_ok = np.minimum(np.arange(1, nx + 1), np.arange(nx, 0, -1)) * dx - half >= limit
-    out = rows_ok[:, None] & cols_ok[None, :]
-    if bad is None or not out.any():
-        return out
-    out &= ~bad
-    hy = int(math.ceil((limit + half) / dy)) + 1
-    hx = int(math.ceil((limit + half) / dx)) + 1
+    bad_rows = None if bad is None else (lambda a, b: bad[a:b])
+    hy = _trusted_halo(sigma_nm, pixel_size, margin_sigma)[0]
+    out = np.empty((ny, nx), dtype=bool)
     block = max(hy, 64)
     for r0 in range(0, ny, block):
         r1 = min(ny, r0 + block)
-        if not rows_ok[r0:r1].any():
-            continue
-        a, b = max(0, r0 - hy), min(ny, r1 + hy)
-        window = bad[a:b]
-        columns = window.any(axis=0)
-        if not columns.any():
-            continue
-        near = np.convolve(columns, np.ones(2 * hx + 1), mode="same") > 0.5
-        edges = np.flatnonzero(np.diff(np.r_[0, near.astype(np.int8), 0]))
-        for c0, c1 in zip(edges[::2], edges[1::2]):
-            distance = ndimage.distance_transform_edt(~window[:, c0:c1], sampling=(dy, dx))
-            out[r0:r1, c0:c1] &= distance[r0 - a : r1 - a] - half >= limit
+        out[r0:r1] = _trusted_rows(bad_rows, shape, sigma_nm, pixel_size, r0, r1, margin_sigma)
+    return out
+
+
+def _trusted_halo(sigma_nm, pixel_size, margin_sigma=2.5):
+    """Rows and columns of ``bad`` beyond a block that can untrust a pixel of it."""
+    dy, dx = pixel_size
+    limit, half = margin_sigma * float(sigma_nm), 0.5 * min(dy, dx)
+    return int(math.ceil((limit + half) / dy)) + 1, int(math.ceil((limit + half) / dx)) + 1
+
+
+def _trusted_rows(bad_rows, shape, sigma_nm, pixel_size, r0, r1, margin_sigma=2.5):
+    """Rows r0 ... r1 - 1 of :func:`_trusted`; ``bad_rows(a, b)`` gives rows a ... b - 1 of the bad
+    pixels (or None when there are none there), ``bad_rows`` None: no bad pixels at all."""
+    dy, dx = pixel_size
+    ny, nx = shape
+    limit, half = margin_sigma * float(sigma_nm), 0.5 * min(dy, dx)
+    rows = np.arange(r0, r1)
+    rows_ok = np.minimum(rows + 1, ny - rows) * dy - half >= limit
+    cols_ok = np.minimum(np.arange(1, nx + 1), np.arange(nx, 0, -1)) * dx - half >= limit
+    out = rows_ok[:, None] & cols_ok[None, :]
+    if bad_rows is None or not out.any():
+        return out
+    hy, hx = _trusted_halo(sigma_nm, pixel_size, margin_sigma)
+    a, b = max(0, r0 - hy), min(ny, r1 + hy)
+    window = bad_rows(a, b)
+    if window is None:
+        return out
+    out &= ~window[r0 - a : r1 - a]
+    columns = window.any(axis=0)
+    if not columns.any():
+        return out
+    near = np.convolve(columns, np.ones(2 * hx + 1), mode="same") > 0.5
+    edges = np.flatnonzero(np.diff(np.r_[0, near.astype(np.int8), 0]))
+    for c0, c1 in zip(edges[::2], edges[1::2]):
+        distance = ndimage.distance_transform_edt(~window[:, c0:c1], sampling=(dy, dx))
+        out[:, c0:c1] &= distance[r0 - a : r1 - a] - half >= limit
     return out
 
 
 # --------------------------------------------------------------------------- resampling by blocks of rows
 
 
-def _resample_window(plane, coords, order, top, bottom):
+def _resample_window(plane, coords, order, top, bottom, left=True, right=True):
     """The spline of one window of source rows at ``coords`` (window pixels); NaN next to NaN sources.
 
-    ``top`` / ``bottom``: the window starts / ends at the frame edge, where mode "nearest" pads it
-    exactly as :func:`scipy.ndimage.map_coordinates` does; elsewhere the window holds
-    ``_PREFILTER_ROWS`` real rows beyond the support.
+    ``top`` / ``bottom`` (``left`` / ``right``): the window starts / ends at the frame edge, where
+    mode "nearest" pads it exactly as :func:`scipy.ndimage.map_coordinates` does; elsewhere the
+    window holds ``_PREFILTER_ROWS`` real rows (columns) beyond the support.
     """
+    return _evaluate(_prefilter(plane, order, top, bottom, left, right), coords, order)
+
+
+def _prefilter(plane, order, top, bottom, left=True, right=True):
+    """The spline coefficients of one window (see :func:`_resample_window`): (coefficients or None when
+    every pixel is NaN, the pixel offset of the window in them, the NaN pixels or None)."""
     plane = np.array(plane, dtype=float)
     bad = ~np.isfinite(plane)
     if bad.all():
-        return np.full(coords.shape[1:], np.nan)
-    if bad.any():
+        return None, None, None
+    if not bad.any():
+        bad = None
+    else:
         # The spline prefilter is recursive: a NaN would spread along its row and column. The nearest
         # valid pixel stands in (local, so the result does not depend on how the rows were blocked).
         index = ndimage.distance_transform_edt(bad, return_distances=False, return_indices=True)
         plane = plane[tuple(index)]
-    if order > 1:
-        pad_top, pad_bottom = (_EDGE_PAD if top else 0), (_EDGE_PAD if bottom else 0)
-        padded = np.pad(plane, ((pad_top, pad_bottom), (_EDGE_PAD, _EDGE_PAD)), mode="edge")
-        spline = ndimage.spline_filter(padded, order, output=np.float64, mode="nearest")
-        shifted = coords + np.array([pad_top, _EDGE_PAD], dtype=float)[:, None, None]
-        out = ndimage.map_coordinates(spline, shifted, order=order, mode="nearest", prefilter=False)
-    else:
-        out = ndimage.map_coordinates(plane, coords, order=order, mode="nearest", prefilter=False)
-    if bad.any():
+    if order <= 1:
+        return plane, np.zeros(2), bad
+    pad_top, pad_bottom = (_EDGE_PAD if top else 0), (_EDGE_PAD if bottom else 0)
+    pad_left, pad_right = (_EDGE_PAD if left else 0), (_EDGE_PAD if right else 0)
+    padded = np.pad(plane, ((pad_top, pad_bottom), (pad_left, pad_right)), mode="edge")
+    spline = ndimage.spline_filter(padded, order, output=np.float64, mode="nearest")
+    return spline, np.array([pad_top, pad_left], dtype=float), bad
+
+
+def _evaluate(prefiltered, coords, order):
+    """The spline of :func:`_prefilter` at ``coords`` (window pixels); NaN next to NaN sources."""
+    spline, offset, bad = prefiltered
+    if spline is None:
+        return np.full(coords.shape[1:], np.nan)
+    out = ndimage.map_coordinates(spline, coords + offset[:, None, None], order=order, mode="nearest",
+                                  prefilter=False)
+    if bad is not None:
         reach = ndimage.map_coordinates(bad.astype(float), coords, order=1, mode="nearest", prefilter=False)
         out[reach > 1e-9] = np.nan
     return out
@@ -475,6 +589,115 @@ def _straighten(source, rows_of_u, pixel_size, order, out_dtype, *, carried=None
     return planes, outside, moved
 
 
+def _halo(shift_px, order):
+    """Source pixels beyond an output chunk that its resampling reads: the largest displacement, the
+    spline support and, for order > 1, the pixels after which the prefilter forgets the cut."""
+    return int(math.ceil(shift_px)) + order + 2 + (_PREFILTER_ROWS if order > 1 else 0)
+
+
+def _apply_chunked(data, window_of_u, shift_px, pixel_size, order, out_dtype, *, carried=None, nan_carried=False):
+    """T(r - u(r)) of a dask array (..., row, col), chunk by chunk: :func:`dask.array.map_overlap`.
+
+    Each output chunk reads its source window, the chunk and a halo of :func:`_halo` pixels on the
+    sides that have a neighbour (``shift_px`` = (rows, cols) of the largest displacement); the
+    displacement of its pixels comes from ``window_of_u(r0, r1, c0, c1)`` (2, rows, cols) in nm,
+    here the cubic spline of the decimated grid, so no full-size field exists. The spline of the
+    window (:func:`_resample_window`) equals the whole frame's at the output pixels to 2e-14 of
+    the values (|sqrt 3 - 2|^24 of the prefilter, Unser 1999). Chunks thinner than the halo are
+    merged with their neighbours; the output keeps the (merged) chunks of the input.
+
+    ``carried`` (row, col) bool in memory, optional: with ``nan_carried`` the output is NaN
+    wherever a linear-interpolation weight falls on it (for a lock-in, which leaves NaN out).
+    """
+    import dask.array as da
+
+    from ._lockin import _dask_chunks
+
+    ny, nx = data.shape[-2:]
+    dy, dx = pixel_size
+    halo = [_halo(shift_px[0], order), _halo(shift_px[1], order)]
+    chunks = list(data.chunks[:-2])
+    for axis, (c, n) in enumerate(zip(data.chunks[-2:], (ny, nx))):
+        merged = _dask_chunks(c, halo[axis], 1, n)
+        chunks.append(merged)
+        if len(merged) == 1:
+            halo[axis] = 0  # a single chunk along this axis needs no neighbours
+    data = data.rechunk(tuple(chunks))
+    starts = [np.cumsum((0,) + c[:-1]) for c in chunks[-2:]]
+    lead = data.ndim - 2
+    nan_carried = nan_carried and carried is not None
+
+    def block(x, block_info=None):
+        i, j = block_info[0]["chunk-location"][-2:]
+        r0, c0 = int(starts[0][i]), int(starts[1][j])
+        r1, c1 = r0 + chunks[-2][i], c0 + chunks[-1][j]
+        wy, wx = r0 - (halo[0] if i > 0 else 0), c0 - (halo[1] if j > 0 else 0)
+        h, w = x.shape[-2:]
+        edges = dict(top=wy == 0, bottom=wy + h == ny, left=wx == 0, right=wx + w == nx)
+        out = np.full(x.shape[:-2] + (r1 - r0, c1 - c0), np.nan, dtype=out_dtype)
+        planes = out.reshape((-1,) + out.shape[-2:])
+        flat = x.reshape((-1, h, w))
+        # The window's spline coefficients once per plane; the output rows in blocks (small temporaries).
+        splines = [None] * len(flat)
+        carried_window = np.asarray(carried[wy : wy + h, wx : wx + w], dtype=float) if nan_carried else None
+        band = max(1, _BLOCK_PIXELS // (c1 - c0))
+        for b0 in range(r0, r1, band):
+            b1 = min(r1, b0 + band)
+            u = window_of_u(b0, b1, c0, c1)
+            rows = np.arange(b0, b1, dtype=float)[:, None] - u[1] / dy
+            cols = np.arange(c0, c1, dtype=float)[None, :] - u[0] / dx
+            del u
+            tol = 1e-6
+            with np.errstate(invalid="ignore"):
+                outside = ~(np.isfinite(rows) & np.isfinite(cols))
+                outside |= (rows < -tol) | (rows > ny - 1 + tol) | (cols < -tol) | (cols > nx - 1 + tol)
+            if outside.all():
+                continue
+            coords = np.stack([np.where(outside, wy, rows) - wy, np.where(outside, wx, cols) - wx])
+            del rows, cols
+            for k, plane in enumerate(flat):
+                if splines[k] is None:
+                    splines[k] = _prefilter(plane, order, **edges)
+                values = _evaluate(splines[k], coords, order)
+                values[outside] = np.nan
+                planes[k, b0 - r0 : b1 - r0] = values
+            if nan_carried:
+                weight = ndimage.map_coordinates(carried_window, coords, order=1, mode="nearest", prefilter=False)
+                planes[:, b0 - r0 : b1 - r0][:, ~(weight < 1e-9)] = np.nan
+        return out
+
+    depth = {**{a: 0 for a in range(lead)}, lead: halo[0], lead + 1: halo[1]}
+    return da.map_overlap(block, data, depth=depth, boundary="none", trim=False, allow_rechunk=False,
+                          dtype=out_dtype, meta=np.empty((0,) * data.ndim, out_dtype), chunks=tuple(chunks))
+
+
+def _bad_rows(field, carried, pixel_size, shape):
+    """rows(a, b) of the untrusted pixels of a corrected frame: where r - u(r) left the frame, and the
+    input's bad pixels (``carried``, or None) carried along, as :func:`correct_drift` marks them."""
+
+    def rows(a, b):
+        _, outside, moved = _straighten(None, field.rows, pixel_size, 1, np.float64, carried=carried,
+                                        first=a, stop=b, shape=shape)
+        return outside if moved is None else moved
+
+    return rows
+
+
+def _lazy_rows(rows, shape, row_chunks):
+    """A dask boolean array (row, col) whose bands of rows (full width) come from ``rows(r0, r1)``."""
+    import dask.array as da
+
+    starts = np.cumsum((0,) + tuple(row_chunks[:-1]))
+
+    def band(x, block_info=None):
+        i = block_info[0]["chunk-location"][0]
+        r0 = int(starts[i])
+        return np.asarray(rows(r0, r0 + x.shape[0]), dtype=bool)
+
+    template = da.zeros(shape, dtype=bool, chunks=(tuple(row_chunks), (shape[1],)))
+    return template.map_blocks(band, dtype=bool, meta=np.empty((0, 0), bool))
+
+
 def _out_dtype(dtype):
     return np.float32 if dtype == np.float32 else np.float64
 
@@ -493,6 +716,20 @@ def _measure(work, q, sigma_nm, pixel_size, mask, bad, grid, translation):
     phases on the grid, the full-resolution trusted pixels and the target phases.
     """
     a = lockin(work, q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=mask, step=grid.step)
+    trusted = _trusted(bad, grid.shape, sigma_nm, pixel_size)
+    field, theta, trusted_c, target = _measure_from(a, q, grid, _Region.of(trusted),
+                                                    _Region.of(np.ones(grid.shape, bool) if bad is None else ~bad),
+                                                    translation)
+    return field, theta, trusted_c, target
+
+
+def _measure_from(a, q, grid, trusted, fallback, translation):
+    """The first field from the lock-in ``a`` on the grid: unwrap, least squares.
+
+    ``trusted`` and ``fallback`` (the region used when nothing is trusted) are :class:`_Region`.
+    Returns the field, the wrapped phases on the grid, the trusted region on the grid's samples
+    and the target phases.
+    """
     theta = np.angle(a).astype(float)
     # Masked samples keep the lock-in's value there (the normalised convolution fills them from their
     # neighbours): the drift does not stop at a glitched line. Only samples with no valid neighbours
@@ -500,25 +737,30 @@ def _measure(work, q, sigma_nm, pixel_size, mask, bad, grid, translation):
     valid = np.all(np.isfinite(a), axis=0)
     if not valid.any():
         raise InputError("image: no valid pixels left for the lock-in (all NaN or masked)")
-    trusted = _trusted(bad, grid.shape, sigma_nm, pixel_size)
-    region = trusted if trusted.any() else (np.ones(grid.shape, bool) if bad is None else ~bad)
+    moment, count, trusted_c = grid.moment(trusted)
+    if count == 0:
+        moment, count = grid.moment(fallback)[:2]
     unwrapped = _fill_nearest(np.stack([_unwrap(t, valid) for t in theta]), ~valid)
     # The mean over the trusted *pixels* of the interpolated phases, so that "remove" leaves u with zero
     # mean there exactly (the spline is linear in its samples).
-    mean = np.einsum("kij,ij->k", unwrapped, grid.mean_weights(region))
+    mean = np.einsum("kij,ij->k", unwrapped, grid.weights_of(moment, count))
     u = _solve(unwrapped - mean[:, None, None], q)
     target = _target_phases(q, mean, translation)
     if translation == "lattice":
         u += _lattice_translation(q, mean, target)[:, None, None]
-    return _Field(grid, u, ~valid), theta, trusted, target
+    return _Field(grid, u, ~valid), theta, trusted_c, target
 
 
 def _rotated_samples(a, target):
     """The lock-in samples turned by their target phases, as real and imaginary planes (2k, rows, cols),
     NaN samples replaced by their nearest valid neighbour, and the mask of those samples."""
     invalid = ~np.all(np.isfinite(a), axis=0)
-    rotated = a.astype(np.complex128) * np.exp(-1j * np.asarray(target))[:, None, None]
-    planes = np.concatenate([rotated.real, rotated.imag])
+    k = len(a)
+    planes = np.empty((2 * k,) + a.shape[1:])
+    for j, turn in enumerate(np.exp(-1j * np.asarray(target))):
+        rotated = a[j].astype(np.complex128) * turn  # one component at a time (small temporaries)
+        planes[j], planes[k + j] = rotated.real, rotated.imag
+    del rotated
     if invalid.all():
         return np.zeros_like(planes), invalid
     return _fill_nearest(planes, invalid), invalid
@@ -543,26 +785,43 @@ def _residual_stats(grid, a, target, trusted):
     one block of rows at a time. Returns (rms, max, trusted) with ``trusted`` less
     the pixels whose nearest lock-in sample is NaN.
     """
+    invalid = ~np.all(np.isfinite(a), axis=0)
+    trusted = trusted & ~grid.nearest_invalid(invalid, 0, grid.shape[0]) if invalid.any() else trusted
+    rms, largest, _, _ = _residual_stats_region(grid, a, target, _Region.of(trusted))
+    return rms, largest, trusted
+
+
+def _trusted_less_invalid(grid, a, trusted):
+    """The :class:`_Region` ``trusted`` less the pixels whose nearest lock-in sample of ``a`` is NaN."""
+    invalid = ~np.all(np.isfinite(a), axis=0)
+    if not invalid.any():
+        return trusted
+    return _Region(trusted.shape, lambda r0, r1: trusted.rows(r0, r1) & ~grid.nearest_invalid(invalid, r0, r1),
+                   trusted.min_block)
+
+
+def _residual_stats_region(grid, a, target, trusted):
+    """:func:`_residual_stats` over a :class:`_Region` (already less the invalid samples), in one
+    pass over its rows: (rms, max, the region on the grid's samples, its pixel count)."""
     planes, invalid = _rotated_samples(a, target)
     k = len(a)
-    trusted = trusted & ~grid.nearest_invalid(invalid, 0, grid.shape[0]) if invalid.any() else trusted
-    if not trusted.any():
-        return np.full(k, np.nan), np.full(k, np.nan), trusted
-    coef = grid.coefficients(planes)
-    total, largest = np.zeros(k), np.zeros(k)
-    block = grid.block_rows()
-    for r0 in range(0, grid.shape[0], block):
-        r1 = min(grid.shape[0], r0 + block)
-        where = trusted[r0:r1]
+    coef = grid.coefficients(planes, out=planes)  # in place: one set of grid-sized planes
+    total, largest, count = np.zeros(k), np.zeros(k), 0
+    coarse = np.zeros(grid.coarse_shape, dtype=bool)
+    for r0, r1, where in trusted.blocks(grid.block_rows()):
+        grid._sample_into(coarse, r0, r1, where)
         if not where.any():
             continue
+        count += int(np.count_nonzero(where))
         residual = _residual_rows(grid, coef, invalid, r0, r1)
         np.abs(residual, out=residual)
         residual[:, ~where] = 0  # |residual| >= 0: zeros change neither the largest nor the sum of squares
         largest = np.maximum(largest, residual.max(axis=(1, 2)))
         np.square(residual, out=residual)
         total += residual.sum(axis=(1, 2), dtype=np.float64)
-    return np.sqrt(total / np.count_nonzero(trusted)), largest, trusted
+    if count == 0:
+        return np.full(k, np.nan), np.full(k, np.nan), coarse, 0
+    return np.sqrt(total / count), largest, coarse, count
 
 
 def _prepare(image, mask):
@@ -758,6 +1017,11 @@ class DriftResult:
     access, and :func:`straighten_rows` resamples any block of rows of any
     channel without the full-resolution field.
 
+    For a dask frame, ``corrected``, ``outside``, ``mask`` and ``trusted`` are
+    dask arrays, and ``u_nm`` and ``residual_phase_rad`` are read-only arrays
+    that evaluate the grid's spline only at the pixels indexed (slices, or
+    two integer arrays of points); ``np.asarray`` gives the whole of them.
+
     Attributes
     ----------
     corrected : ndarray
@@ -878,6 +1142,90 @@ class DriftResult:
         )
 
 
+class _SplineImage:
+    """A (k, row, col) array known through the cubic spline of its decimated grid (read only).
+
+    Indexing evaluates the spline at the pixels asked for only: slices (any step) on the last two
+    axes give their outer product, two integer arrays give those points; ``np.asarray`` gives the
+    whole array. ``phase``: the components are (real..., imaginary...) pairs and the value is
+    their angle (float32), as :attr:`DriftResult.residual_phase_rad`; otherwise the spline's values
+    (float64), as :attr:`DriftResult.u_nm`. NaN where the nearest sample is flagged ``invalid``.
+    """
+
+    def __init__(self, grid, coef, invalid, phase):
+        self.grid, self.coef, self.invalid, self.phase = grid, coef, np.asarray(invalid, bool), bool(phase)
+        k = len(coef) // 2 if phase else len(coef)
+        self.shape = (k,) + grid.shape
+        self.ndim = 3
+        self.dtype = np.dtype(np.float32 if phase else np.float64)
+
+    def __len__(self):
+        return self.shape[0]
+
+    def _finish(self, values, nearest_bad):
+        if self.phase:
+            k = self.shape[0]
+            values = np.arctan2(values[k:], values[:k]).astype(np.float32)
+        if nearest_bad is not None and nearest_bad.any():
+            values[:, nearest_bad] = np.nan
+        return values
+
+    def __getitem__(self, key):
+        key = key if isinstance(key, tuple) else (key,)
+        if any(k is Ellipsis for k in key):
+            at = next(i for i, k in enumerate(key) if k is Ellipsis)
+            key = key[:at] + (slice(None),) * (3 - len(key) + 1) + key[at + 1 :]
+        key = key + (slice(None),) * (3 - len(key))
+        if len(key) != 3:
+            raise IndexError(f"too many indices for an array of shape {self.shape}")
+        lead, rows, cols = key
+        grid, axes = self.grid, self.grid.axes
+        squeeze = []
+        if isinstance(rows, (int, np.integer)) and isinstance(cols, slice):
+            rows, squeeze = slice(int(rows) % self.shape[1], int(rows) % self.shape[1] + 1), [1]
+        if isinstance(cols, (int, np.integer)) and isinstance(rows, slice):
+            cols, squeeze = slice(int(cols) % self.shape[2], int(cols) % self.shape[2] + 1), squeeze + [2]
+        if isinstance(rows, slice) and isinstance(cols, slice):
+            r = np.arange(self.shape[1])[rows]
+            c = np.arange(self.shape[2])[cols]
+            values = grid.outer(self.coef, r, c, dtype=np.float32 if self.phase else np.float64)
+            bad = self.invalid[np.ix_(axes[0].nearest(0, self.shape[1])[r], axes[1].nearest(0, self.shape[2])[c])]
+        else:
+            r, c = np.broadcast_arrays(np.asarray(rows), np.asarray(cols))
+            r = np.where(r < 0, r + self.shape[1], r)
+            c = np.where(c < 0, c + self.shape[2], c)
+            values = grid.at(self.coef, r.astype(float), c.astype(float))
+            bad = self.invalid[axes[0].nearest(0, self.shape[1])[r], axes[1].nearest(0, self.shape[2])[c]]
+        values = self._finish(values, bad)
+        if squeeze:
+            values = values.squeeze(axis=tuple(squeeze))
+        return values[lead]
+
+    def __array__(self, dtype=None, copy=None):
+        out = self[:, :, :]
+        return out if dtype is None else out.astype(dtype)
+
+
+@dataclass
+class _LazyDriftResult(DriftResult):
+    """A :class:`DriftResult` of a dask frame: ``corrected``, ``outside``, ``mask`` and ``trusted`` are
+    dask arrays, and ``u_nm`` and ``residual_phase_rad`` evaluate the grid's spline only at the pixels
+    indexed (:class:`_SplineImage`); nothing full size is held."""
+
+    @cached_property
+    def u_nm(self):
+        """The displacement (2, row, col) in nm, evaluated from the grid's spline where indexed."""
+        field = self._field
+        return _SplineImage(field.grid, field.coef, field.invalid, phase=False)
+
+    @cached_property
+    def residual_phase_rad(self):
+        """The residual Bragg phases (k, row, col), evaluated from the grid's spline where indexed."""
+        grid = self._field.grid
+        planes, invalid = _rotated_samples(self.lockin_coarse, self.target_phase_rad)
+        return _SplineImage(grid, grid.coefficients(planes), invalid, phase=True)
+
+
 def _snap(q, shape, pixel_size):
     dy, dx = pixel_size
     step = np.array([2 * np.pi / (shape[1] * dx), 2 * np.pi / (shape[0] * dy)])
@@ -920,8 +1268,14 @@ def correct_drift(
     Parameters
     ----------
     image : (row, col) array_like
-        Topograph showing the lattice (read into memory). float32 is kept;
-        anything else is resampled in float64.
+        Topograph showing the lattice. float32 is kept; anything else is
+        resampled in float64. A dask array (e.g. from a zarr store larger than
+        memory) is corrected chunk by chunk with no full-size array in memory:
+        each pass reads it once, the lock-ins decimated per chunk and the
+        resampling a :func:`dask.array.map_overlap` whose halo is the largest
+        displacement plus the spline support and 24 prefilter pixels; the
+        result then holds dask arrays (see :class:`DriftResult`) and equals
+        the in-memory one to float32 precision.
     bragg_q : (k, 2) array_like
         Ideal Bragg wavevectors (qx, qy) in rad/nm, k >= 2 non-collinear.
     sigma_nm : float
@@ -1008,9 +1362,14 @@ def correct_drift(
     (True, True)
     >>> result.step, result.u_coarse_nm.shape, result.u_nm.shape
     (3, (2, 22, 22), (2, 64, 64))
+    >>> import dask.array as da
+    >>> lazy = correct_drift(da.from_array(image, chunks=(40, 24)), q, sigma_nm=6.0, pixel_size_nm=1.0)
+    >>> type(lazy.corrected).__name__, bool(np.allclose(lazy.corrected.compute(), result.corrected, atol=1e-5, equal_nan=True))
+    ('Array', True)
     """
     _check_translation(translation)
-    image = _check_image(image)
+    lazy = _is_dask(image)
+    image = _check_lazy_image(image) if lazy else _check_image(image)
     q = _check_bragg(bragg_q)
     pixel_size = pixel_size_pair(pixel_size_nm)
     mask = _check_mask(mask, image.shape)
@@ -1027,11 +1386,17 @@ def correct_drift(
         q = _snap(q, image.shape, pixel_size)
         _check_bragg(q)
     grid = _Grid(image.shape, _decimation_step(sigma_nm, pixel_size, image.shape))
+    settings = dict(bragg_q_rad_per_nm=q, snapped_to_pixels=bool(snap_to_pixels), sigma_nm=float(sigma_nm),
+                    pixel_size_nm=pixel_size, translation=translation, step=grid.step,
+                    target_phase_rad=None)
+    if lazy:
+        return _correct_drift_lazy(image, q, grid, sigma_nm, pixel_size, mask, max_iter, tol_rad, translation,
+                                   order, settings)
     out_dtype = _out_dtype(image.dtype)
     work, input_bad = _prepare(image, mask)
     field, theta0, trusted0, target = _measure(work, q, sigma_nm, pixel_size, mask, input_bad, grid, translation)
     del work
-    sum_mean, sum_rms = _phase_sum(theta0, q, grid.sample(trusted0) & np.all(np.isfinite(theta0), axis=0))
+    sum_mean, sum_rms = _phase_sum(theta0, q, trusted0 & np.all(np.isfinite(theta0), axis=0))
 
     def one_pass(field):
         corrected, outside, bad = _straighten(image, field.rows, pixel_size, order, out_dtype, carried=input_bad)
@@ -1045,58 +1410,154 @@ def correct_drift(
         trusted = _trusted(bad, image.shape, sigma_nm, pixel_size)
         rms, largest, trusted = _residual_stats(grid, a, target, trusted)
         worst = float(np.max(largest)) if trusted.any() else np.inf
-        return worst, rms, largest, a, corrected, outside, bad, trusted
+        return worst, rms, largest, a, grid.sample(trusted), (corrected, outside, bad, trusted)
 
-    best = None
-    for iteration in range(1, max_iter + 1):
-        worst, rms, largest, a, corrected, outside, bad, trusted = one_pass(field)
-        stalled = best is not None and worst > 0.9 * best[0]
-        if best is None or worst < best[0]:
-            best = (worst, iteration, field, a, rms, largest)
-        # Once noise sets the floor, further passes only fit the correction to the noise.
-        if worst < tol_rad or iteration == max_iter or stalled:
-            break
-        # The next field, on the decimated grid (as in the first pass, masked samples keep the lock-in's
-        # value from their neighbours, so the correction stays smooth across them).
-        valid = np.all(np.isfinite(a), axis=0)
-        residual = _wrap(np.angle(a).astype(float) - target[:, None, None])
-        # Residuals are small after the first pass, but unwrap anyway: a pass can overshoot.
-        unwrapped = np.stack([_unwrap(r, valid) for r in residual])
-        trusted_c = grid.sample(trusted) & valid
-        for j, r in enumerate(unwrapped):
-            if trusted_c.any():
-                unwrapped[j] = r - 2 * np.pi * np.round(np.mean(r[trusted_c]) / (2 * np.pi))
-        d = _solve(_fill_nearest(unwrapped, ~valid) if valid.any() else np.zeros_like(unwrapped), q)
-        # Compose: u_new(r) = d(r) + u(r - d(r)), at the samples.
-        rows_c = (grid.step * np.arange(grid.coarse_shape[0], dtype=float))[:, None] - d[1] / pixel_size[0]
-        cols_c = (grid.step * np.arange(grid.coarse_shape[1], dtype=float))[None, :] - d[0] / pixel_size[1]
-        field = _Field(grid, d + field.at(rows_c, cols_c), ~valid)
-        del corrected, outside, bad, trusted  # one full-size pass at a time
-
-    worst, best_iteration, field, a, rms, largest = best
-    if best_iteration != iteration:
-        # The last pass did worse (the noise floor): redo the best one rather than keep two full frames.
-        _, _, _, _, corrected, outside, bad, trusted = one_pass(field)
+    worst, iterations, field, a, rms, largest, kept = _iterate(field, one_pass, max_iter, tol_rad, grid, target, q,
+                                                               pixel_size)
+    corrected, outside, bad, trusted = kept
+    settings["target_phase_rad"] = np.asarray(target, dtype=float)
     return DriftResult(
         corrected=corrected,
         outside=outside,
         mask=bad,
         trusted=trusted,
         u_coarse_nm=field.samples,
-        step=grid.step,
         lockin_coarse=a,
-        target_phase_rad=np.asarray(target, dtype=float),
         residual_rms_rad=rms,
         residual_max_rad=largest,
         phase_sum_mean_rad=sum_mean,
         phase_sum_rms_rad=sum_rms,
-        bragg_q_rad_per_nm=q,
-        snapped_to_pixels=bool(snap_to_pixels),
-        iterations=best_iteration,
+        iterations=iterations,
         converged=bool(worst < tol_rad),
-        sigma_nm=float(sigma_nm),
-        pixel_size_nm=pixel_size,
-        translation=translation,
+        **settings,
+    )
+
+
+def _iterate(field, one_pass, max_iter, tol_rad, grid, target, q, pixel_size):
+    """The passes of :func:`correct_drift`: resample with ``field``, measure the residual, compose.
+
+    ``one_pass(field)`` returns (worst, rms, largest, lock-in on the grid, trusted samples, kept);
+    ``kept`` (the full-size outputs, or None) is let go before the next pass. Returns the best
+    pass: (worst, its number, field, lock-in, rms, largest, kept).
+    """
+    best = None
+    for iteration in range(1, max_iter + 1):
+        worst, rms, largest, a, trusted_c, kept = one_pass(field)
+        stalled = best is not None and worst > 0.9 * best[0]
+        if best is None or worst < best[0]:
+            best = (worst, iteration, field, a, rms, largest)
+        # Once noise sets the floor, further passes only fit the correction to the noise.
+        if worst < tol_rad or iteration == max_iter or stalled:
+            break
+        field = _next_field(grid, a, target, trusted_c, field, q, pixel_size)
+        del kept  # one full-size pass at a time
+    worst, best_iteration, field, a, rms, largest = best
+    if best_iteration != iteration:
+        # The last pass did worse (the noise floor): redo the best one rather than keep two full frames.
+        del kept
+        kept = one_pass(field)[-1]
+    return worst, best_iteration, field, a, rms, largest, kept
+
+
+def _next_field(grid, a, target, trusted_c, field, q, pixel_size):
+    """The field of the next pass from the lock-in ``a`` of the corrected image, on the decimated grid.
+
+    As in the first pass, masked samples keep the lock-in's value from their neighbours, so the
+    correction stays smooth across them. Compose: u_new(r) = d(r) + u(r - d(r)), at the samples.
+    """
+    valid = np.all(np.isfinite(a), axis=0)
+    residual = _wrap(np.angle(a).astype(float) - target[:, None, None])
+    # Residuals are small after the first pass, but unwrap anyway: a pass can overshoot.
+    unwrapped = np.empty_like(residual)
+    for j, r in enumerate(residual):
+        unwrapped[j] = _unwrap(r, valid)
+    del residual
+    trusted_c = trusted_c & valid
+    for j, r in enumerate(unwrapped):
+        if trusted_c.any():
+            unwrapped[j] = r - 2 * np.pi * np.round(np.mean(r[trusted_c]) / (2 * np.pi))
+    d = _solve(_fill_nearest(unwrapped, ~valid) if valid.any() else np.zeros_like(unwrapped), q)
+    rows_c = (grid.step * np.arange(grid.coarse_shape[0], dtype=float))[:, None] - d[1] / pixel_size[0]
+    cols_c = (grid.step * np.arange(grid.coarse_shape[1], dtype=float))[None, :] - d[0] / pixel_size[1]
+    return _Field(grid, d + field.at(rows_c, cols_c), ~valid)
+
+
+def _check_lazy_image(image, name="image"):
+    if image.ndim != 2 or min(image.shape) < 2:
+        raise InputError(f"{name} must be a 2-D image (row, col), got shape {tuple(image.shape)}")
+    if np.dtype(image.dtype).kind not in "biuf":
+        raise InputError(f"{name} must hold real numbers, got dtype {image.dtype}")
+    return image
+
+
+def _correct_drift_lazy(image, q, grid, sigma_nm, pixel_size, mask, max_iter, tol_rad, translation, order, settings):
+    """:func:`correct_drift` of a dask image, with no full-size array in memory.
+
+    Each pass reads the image once, chunk by chunk: the lock-ins are decimated to the grid's step
+    (lossless, :func:`domains.lossless_step`) as the chunks are read; the resampled chunks
+    (:func:`_apply_chunked`) go straight into them. What stays in memory is the grid: the lock-ins,
+    the field and its spline. The trusted pixels and the statistics over them are computed block of
+    rows by block of rows from the field (where r - u(r) leaves the frame) and, only when the image
+    has NaN or ``mask`` is given, from the input's bad pixels (one full-size boolean array then).
+    """
+    import dask
+    import dask.array as da
+
+    shape = tuple(int(n) for n in image.shape)
+    out_dtype = _out_dtype(image.dtype)
+    a0, any_bad = dask.compute(
+        lockin(image.astype(np.float32), q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=mask, step=grid.step),
+        da.any(~da.isfinite(image)))
+    input_bad = np.asarray((~da.isfinite(image)).compute()) if any_bad else None
+    if mask is not None and mask.any():
+        input_bad = mask.copy() if input_bad is None else (input_bad | mask)
+    halo_rows = _trusted_halo(sigma_nm, pixel_size)[0]
+    block = max(4 * halo_rows, grid.block_rows())
+
+    def trusted_region(bad_rows):
+        return _Region(shape, lambda r0, r1: _trusted_rows(bad_rows, shape, sigma_nm, pixel_size, r0, r1), block)
+
+    in_bad = None if input_bad is None else (lambda a, b: input_bad[a:b])
+    fallback = _Region(shape, (lambda a, b: np.ones((b - a, shape[1]), bool)) if input_bad is None
+                       else (lambda a, b: ~input_bad[a:b]))
+    field, theta0, trusted0, target = _measure_from(a0, q, grid, trusted_region(in_bad), fallback, translation)
+    sum_mean, sum_rms = _phase_sum(theta0, q, trusted0 & np.all(np.isfinite(theta0), axis=0))
+    del a0, theta0, trusted0  # the grid's arrays are the memory of a lazy run: keep only the field
+
+    def one_pass(field):
+        shift = field.largest_shift(pixel_size)
+        corrected = _apply_chunked(image, field.window, shift, pixel_size, order, out_dtype, carried=input_bad,
+                                   nan_carried=True)
+        # NaN where the in-memory pass masks (left the frame, input's bad pixels carried along): the
+        # lock-in leaves NaN out as it leaves masked pixels out.
+        a = np.asarray(lockin(corrected.astype(np.float32), q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size,
+                              step=grid.step).compute())
+        trusted = _trusted_less_invalid(grid, a, trusted_region(_bad_rows(field, input_bad, pixel_size, shape)))
+        rms, largest, trusted_c, count = _residual_stats_region(grid, a, target, trusted)
+        worst = float(np.max(largest)) if count else np.inf
+        return worst, rms, largest, a, trusted_c, None
+
+    worst, iterations, field, a, rms, largest, _ = _iterate(field, one_pass, max_iter, tol_rad, grid, target, q,
+                                                            pixel_size)
+    settings["target_phase_rad"] = np.asarray(target, dtype=float)
+    bad_rows = _bad_rows(field, input_bad, pixel_size, shape)
+    trusted = _trusted_less_invalid(grid, a, trusted_region(bad_rows))
+    row_chunks = image.chunks[0]
+    corrected = _apply_chunked(image, field.window, field.largest_shift(pixel_size), pixel_size, order, out_dtype)
+    return _LazyDriftResult(
+        corrected=corrected,
+        outside=_lazy_rows(_bad_rows(field, None, pixel_size, shape), shape, row_chunks),
+        mask=_lazy_rows(bad_rows, shape, row_chunks),
+        trusted=_lazy_rows(trusted.rows, shape, row_chunks),
+        u_coarse_nm=field.samples,
+        lockin_coarse=a,
+        residual_rms_rad=rms,
+        residual_max_rad=largest,
+        phase_sum_mean_rad=sum_mean,
+        phase_sum_rms_rad=sum_rms,
+        iterations=iterations,
+        converged=bool(worst < tol_rad),
+        **settings,
     )
 
 
@@ -1111,7 +1572,9 @@ def correct_channels(images, drift, *, pixel_size_nm=None, order=3):
     Every channel and bias of one scan shares the drift, so the field found on
     the topograph straightens them all [1]_. The field comes from the drift
     result's decimated grid block of rows by block of rows (see
-    :func:`straighten_rows`); only the outputs are full size.
+    :func:`straighten_rows`); only the outputs are full size. Dask channels
+    stay lazy and are resampled chunk by chunk (each chunk with a halo of the
+    largest displacement plus the spline support).
 
     Parameters
     ----------
@@ -1185,6 +1648,10 @@ def correct_channels(images, drift, *, pixel_size_nm=None, order=3):
             raise InputError(f"{name}: frame {tuple(data.shape[-2:])} differs from the drift result's {drift.shape}")
         if data.dtype.kind not in "biuf":
             raise InputError(f"{name} must hold real numbers, got dtype {data.dtype}")
+        if _is_dask(data):
+            # Chunk by chunk, each chunk reading its halo (no whole planes in memory).
+            return _apply_chunked(data, field.window, field.largest_shift(drift.pixel_size_nm), drift.pixel_size_nm,
+                                  order, _out_dtype(data.dtype))
         return _apply(data, field.rows, drift.pixel_size_nm, order)[0]
 
     if isinstance(images, dict):

@@ -273,8 +273,8 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None, 
     lazy : bool
         Keep a dask-backed topograph lazy (float64 blocks): the peaks, the lattice and the
         order are then read from its central crop of at most :data:`OVERVIEW_PX` squared
-        pixels, and ``image`` and ``corrected`` are dask arrays. A drift correction still
-        needs the whole image in memory (it is computed then, with a note). False: the
+        pixels, and ``image`` and ``corrected`` are dask arrays; the drift is corrected chunk by
+        chunk (:func:`domains.drift.correct_drift` of a dask image). False: the
         levelled image is computed first, as for an in-memory topograph.
 
     Returns
@@ -350,11 +350,6 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None, 
     if reading.lattice is not None and reading.source == "found":
         reading = _refine_lattice(view, pixel, view_mask, reading, peaks)
     step("drift and order")
-    if lazy and config.drift and reading.lattice is not None and reading.resolved:
-        # The drift correction is not lazy yet: the whole levelled image is computed here.
-        image, lazy = np.asarray(image.compute(), dtype=float), False
-        view, view_mask = image, mask
-        notes.append("Lazy run: the drift correction needs the whole image in memory (it was computed there).")
 
     # 3. Drift (Lawler–Fujita) from the Bragg peaks.
     drift_result = None
@@ -379,6 +374,11 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None, 
                                                    mask=mask, tol_rad=0.03)
             corrected = drift_result.corrected
             mask = drift_result.mask
+            if lazy:
+                # Corrected chunk by chunk (the field on its decimated grid); the lazy run keeps its mask in
+                # memory (booleans), and reads the order from the straightened central crop.
+                mask = np.asarray(mask, dtype=bool)
+                view, view_mask = _central_crop(corrected, mask)
             choices["drift"] = {"sigma_nm": drift_sigma, "iterations": drift_result.iterations,
                                 "converged": drift_result.converged, "note": drift_result.note}
             if second_q is not None:

@@ -50,8 +50,14 @@ def _bundle(path):
     return bundle.summary, maps, bundle.tables
 
 
-def test_analyze_on_a_local_cluster_runs_there_and_gives_the_local_bundle(cluster, store, tmp_path, capsys):
+def test_analyze_on_a_local_cluster_runs_there_and_gives_the_local_bundle(cluster, store, tmp_path, capsys,
+                                                                         monkeypatch):
+    from domains import io
+
+    # The local run opens the store lazily too (as every input is under a scheduler): the same graph.
+    monkeypatch.setattr(io, "LAZY_THRESHOLD_BYTES", 0)
     assert main(["analyze", str(store), "--out", str(tmp_path / "here")]) == 0
+    monkeypatch.undo()
     from distributed import get_task_stream
 
     address = cluster.scheduler.address
