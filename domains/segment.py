@@ -96,11 +96,15 @@ def segment_states(state, confidence, ordered, *, pixel_size_nm, min_area_nm2, c
     """
     dy, dx = pixel_size_pair(pixel_size_nm)
     state = np.asarray(state)
-    confidence = np.nan_to_num(np.asarray(confidence, dtype=float), nan=-np.inf)
+    # Memory: float32 confidence stays float32 (a copy, -inf where NaN), masks are bool, labels int32.
+    confidence = np.array(confidence, dtype=np.float32 if np.asarray(confidence).dtype == np.float32 else float)
+    np.nan_to_num(confidence, copy=False, nan=-np.inf)
     ordered = np.asarray(ordered, dtype=bool)
     if not (state.shape == confidence.shape == ordered.shape):
         raise InputError(f"state, confidence and ordered differ in shape: {state.shape}, {confidence.shape}, {ordered.shape}")
-    core = ordered & (state >= 0) & (confidence >= confidence_threshold)
+    core = state >= 0
+    core &= ordered
+    core &= confidence >= np.float64(confidence_threshold)   # compared in float64, as given
     if trusted is not None:
         core &= trusted
     min_pixels = max(1, int(math.ceil(min_area_nm2 / (dy * dx))))
@@ -108,36 +112,78 @@ def segment_states(state, confidence, ordered, *, pixel_size_nm, min_area_nm2, c
     seed_state = {}
     islands = 0
     next_label = 1
+    eight = np.ones((3, 3), bool)
     for s in np.unique(state[core]):
-        regions, count = ndimage.label(core & (state == s), structure=np.ones((3, 3)))
+        regions, count = ndimage.label(core & (state == s), structure=eight, output=np.int32)
         sizes = np.bincount(regions.ravel(), minlength=count + 1)
         keep = np.nonzero(sizes[1:] >= min_pixels)[0] + 1
         islands += count - keep.size
-        # One lookup relabels every kept region at once (a loop of full-frame masks costs N x regions).
+        # One lookup relabels every kept region at once (a loop of full-frame masks costs N x regions);
+        # the regions of different states are disjoint, so they add into the seeds.
         lut = np.zeros(count + 1, dtype=np.int32)
         lut[keep] = np.arange(next_label, next_label + keep.size, dtype=np.int32)
-        inside = regions > 0
-        seeds[inside] = lut[regions[inside]]
+        np.take(lut, regions, out=regions, mode="clip")
+        seeds += regions
         for label in range(next_label, next_label + keep.size):
             seed_state[label] = int(s)
         next_label += keep.size
-        del regions, inside
+        del regions
+    del core
     if next_label == 1:
         empty = np.zeros(state.shape, dtype=np.int32)
         return Segmentation(empty, empty, np.zeros(state.shape, bool), {}, islands,
                             {"min_area_nm2": min_area_nm2, "confidence_threshold": confidence_threshold})
-    finite = np.where(np.isfinite(confidence), confidence, confidence[np.isfinite(confidence)].min(initial=0.0))
+    # Flooding order: -confidence, with the lowest finite confidence where there is none (in place).
+    bad = ~np.isfinite(confidence)
+    confidence[bad] = confidence[~bad].min(initial=0.0)
+    del bad
+    np.negative(confidence, out=confidence)
     reach = ordered
     if bridge_nm > 0:
         radius = max(1, int(round(bridge_nm / min(dy, dx))))
         reach = ordered | disc_closing(ordered, radius)
-    grown = watershed(-finite, markers=seeds, mask=reach).astype(np.int32)
+    grown = watershed(confidence, markers=seeds, mask=reach).astype(np.int32, copy=False)
+    del seeds, confidence, reach
     walls = thin_walls(grown)
-    labels = np.where(walls, 0, grown).astype(np.int32)
+    labels = np.where(walls, np.int32(0), grown)
     params = {"min_area_nm2": float(min_area_nm2), "confidence_threshold": float(confidence_threshold),
               "bridge_nm": float(bridge_nm)}
     return Segmentation(labels, grown, walls, seed_state, islands, params)
 
+
+
+def _distance_compare(features_off, radius, *, greater=False, sampling=None):
+    """``distance_transform_edt(features_off, sampling) <= radius`` (``> radius`` with ``greater``).
+
+    The same float64 distances as scipy's (from the integer offsets of the feature transform,
+    times the sampling, squared, summed, square-rooted), computed in row blocks: the full-frame
+    float64 distances and index grids scipy builds (about 40 bytes per pixel) are never held,
+    only the int32 feature transform (8 bytes per pixel). ``features_off`` must hold a False pixel.
+    """
+    shape = features_off.shape
+    ft = np.empty((len(shape),) + shape, np.int32)
+    ndimage.distance_transform_edt(features_off, sampling=sampling, return_distances=False, return_indices=True,
+                                   indices=ft)
+    out = np.empty(shape, bool)
+    scale = None if sampling is None else np.broadcast_to(np.asarray(sampling, float), (2,))
+    cols = np.arange(shape[1])
+    block = max(1, (1 << 18) // max(1, shape[1]))
+    for r0 in range(0, shape[0], block):
+        r1 = min(r0 + block, shape[0])
+        d_row = (ft[0, r0:r1] - np.arange(r0, r1)[:, None]).astype(np.float64)
+        d_col = (ft[1, r0:r1] - cols).astype(np.float64)
+        if scale is not None:
+            d_row *= scale[0]
+            d_col *= scale[1]
+        np.multiply(d_row, d_row, out=d_row)
+        np.multiply(d_col, d_col, out=d_col)
+        d_row += d_col
+        np.sqrt(d_row, out=d_row)
+        if greater:
+            np.greater(d_row, radius, out=out[r0:r1])
+        else:
+            np.less_equal(d_row, radius, out=out[r0:r1])
+    return out
 
 
 def _disc_dilation(mask, radius_px):
@@ -145,7 +191,7 @@ def _disc_dilation(mask, radius_px):
     if not mask.any():
         return np.zeros(mask.shape, dtype=bool)
     # distance from every pixel to the nearest True pixel of the frame
-    return ndimage.distance_transform_edt(~mask) <= radius_px
+    return _distance_compare(~mask, radius_px)
 
 
 def _disc_erosion(mask, radius_px):
@@ -155,7 +201,7 @@ def _disc_erosion(mask, radius_px):
     # A one-pixel False frame makes the outside count: every outside pixel within the
     # radius has a frame pixel at least as close (clamp each coordinate to the frame).
     padded = np.pad(mask, 1, mode="constant", constant_values=False)
-    return (ndimage.distance_transform_edt(padded) > radius_px)[1:-1, 1:-1]
+    return _distance_compare(padded, radius_px, greater=True)[1:-1, 1:-1]
 
 
 def disc_closing(mask, radius_px, *, edge="replicate"):
@@ -523,7 +569,7 @@ def _profile_fit(fields, grown, a, b, segment, *, sigma_nm, dy, dx, reach_sigma,
     if trusted is not None:
         near &= trusted
     if segment is not None:
-        near &= ndimage.distance_transform_edt(~segment, sampling=(dy, dx)) <= reach_sigma * sigma_nm * 1.5
+        near &= _distance_compare(~segment, reach_sigma * sigma_nm * 1.5, sampling=(dy, dx))
     far = (np.abs(s) > 2.5 * sigma_nm) & near
     near_wall = near & (np.abs(s) <= reach_sigma * sigma_nm)
     core_a, core_b = far & in_a, far & in_b
@@ -595,6 +641,11 @@ def _profile_covariance(fields, used, s, s0, width, p, q, *, sigma_nm, dy, dx):
     covariance v R, Cov = v (J^T J)^-1 (J^T R J) (J^T J)^-1 (the sandwich form); R J is a Gaussian
     filter of each Jacobian column over the pixels used. The noise variance v is measured from the
     residuals, with the expectation E[RSS] = v (N - tr((J^T J)^-1 J^T R J)) of correlated data.
+
+    The Jacobian is sparse: the residual block of component j and part (real or imaginary) depends
+    on s0, log W and one part each of P_j and Q_j only. Each block's four columns are built,
+    filtered and reduced to J^T J and J^T R J in turn, so memory is a few values per pixel used,
+    not the (2k, pixels, 2 + 4k) Jacobian.
     """
     k = len(fields)
     rows, cols = np.nonzero(used)
@@ -603,38 +654,40 @@ def _profile_covariance(fields, used, s, s0, width, p, q, *, sigma_nm, dy, dx):
     bump = np.exp(-0.5 * u**2) / math.sqrt(2 * math.pi)
     n = rows.size
     n_par = 2 + 4 * k
-    # Residual entries: (component j, real/imag) blocks of n pixels. Columns: derivative of the model.
-    jac = np.zeros((2 * k, n, n_par))
-    resid = np.zeros((2 * k, n))
+    corr_px = (math.sqrt(2) * sigma_nm / dy, math.sqrt(2) * sigma_nm / dx)
+    # Sum over pixels of exp(-d^2 / (4 sigma^2)): the unit-sum Gaussian filter times 4 pi sigma^2 / (dy dx).
+    norm = 4 * math.pi * sigma_nm**2 / (dy * dx)
+    plane = np.zeros(used.shape)
+    jtj = np.zeros((n_par, n_par))
+    jrj = np.zeros((k, n_par, n_par))     # J^T R J of each component's two blocks
+    rss = np.zeros(k)
+    jac = np.empty((n, 4))
+    smoothed = np.empty((n, 4))
     for j in range(k):
         jump = q[j] - p[j]
         d_s0 = -bump / width * jump
         d_logw = -bump * u * jump
-        model = p[j] + step * jump
-        r = fields[j][rows, cols] - model
+        r = fields[j][rows, cols] - (p[j] + step * jump)
         for part, take in ((0, np.real), (1, np.imag)):
-            block = 2 * j + part
-            resid[block] = take(r)
-            jac[block, :, 0] = take(d_s0)
-            jac[block, :, 1] = take(d_logw)
-        jac[2 * j, :, 2 + j] = 1 - step                    # Re P_j -> real part
-        jac[2 * j + 1, :, 2 + k + j] = 1 - step            # Im P_j -> imaginary part
-        jac[2 * j, :, 2 + 2 * k + j] = step                # Re Q_j
-        jac[2 * j + 1, :, 2 + 3 * k + j] = step            # Im Q_j
-    corr_px = (math.sqrt(2) * sigma_nm / dy, math.sqrt(2) * sigma_nm / dx)
-    # Sum over pixels of exp(-d^2 / (4 sigma^2)): the unit-sum Gaussian filter times 4 pi sigma^2 / (dy dx).
-    norm = 4 * math.pi * sigma_nm**2 / (dy * dx)
-    smoothed = np.zeros_like(jac)
-    plane = np.zeros(used.shape)
-    for block in range(2 * k):
-        for c in range(n_par):
-            column = jac[block, :, c]
-            if not np.any(column):
-                continue
-            plane[rows, cols] = column
-            smoothed[block, :, c] = norm * ndimage.gaussian_filter(plane, corr_px, mode="constant")[rows, cols]
-            plane[rows, cols] = 0.0
-    jtj = np.einsum("bnc,bnd->cd", jac, jac)
+            # columns s0, log W, (Re or Im) P_j, (Re or Im) Q_j
+            where = [0, 1, 2 + part * k + j, 2 + 2 * k + part * k + j]
+            rss[j] += float(np.sum(take(r) ** 2))
+            jac[:, 0] = take(d_s0)
+            jac[:, 1] = take(d_logw)
+            jac[:, 2] = 1 - step
+            jac[:, 3] = step
+            for c in range(4):
+                column = jac[:, c]
+                if not np.any(column):
+                    smoothed[:, c] = 0.0
+                    continue
+                plane[rows, cols] = column
+                smoothed[:, c] = norm * ndimage.gaussian_filter(plane, corr_px, mode="constant")[rows, cols]
+                plane[rows, cols] = 0.0
+            index = np.ix_(where, where)
+            jtj[index] += jac.T @ jac
+            jrj[j][index] += jac.T @ smoothed
+        del d_s0, d_logw, r
     try:
         inv = np.linalg.inv(jtj)
     except np.linalg.LinAlgError:
@@ -644,12 +697,10 @@ def _profile_covariance(fields, used, s, s0, width, p, q, *, sigma_nm, dy, dx):
     # that is largest in a component that does not jump and must not inflate the others' errors.
     middle = np.zeros_like(jtj)
     for j in range(k):
-        blocks = slice(2 * j, 2 * j + 2)
-        jrj = np.einsum("bnc,bnd->cd", jac[blocks], smoothed[blocks])
-        dof = 2 * n - float(np.trace(inv @ jrj))
+        dof = 2 * n - float(np.trace(inv @ jrj[j]))
         if not dof > 0:
             return None
-        middle += float(np.sum(resid[blocks] ** 2)) / dof * jrj
+        middle += rss[j] / dof * jrj[j]
     return inv @ middle @ inv
 
 
@@ -771,7 +822,7 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
         # (r, c) -> (r, c+1) -> (r+1, c+1) -> (r+1, c): +x, +y, -x, -y.
         total = _wrap(phi[:-1, 1:] - phi[:-1, :-1]) + _wrap(phi[1:, 1:] - phi[:-1, 1:]) \
             + _wrap(phi[1:, :-1] - phi[1:, 1:]) + _wrap(phi[:-1, :-1] - phi[1:, :-1])
-        plaquette = np.rint(np.nan_to_num(total) / (2 * np.pi)).astype(int)
+        plaquette = np.rint(np.nan_to_num(total) / (2 * np.pi)).astype(np.int8)
         del total
         rows, cols = np.nonzero(plaquette)
         wind = plaquette[rows, cols]
