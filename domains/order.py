@@ -484,16 +484,13 @@ def _quantise(phi, amp, total, offset, templates, ordered, coefficients, variant
     del acc, tmp
     with np.errstate(invalid="ignore", divide="ignore"):
         weight = np.where(total > 0, total, real(np.nan))
-        score = best / weight
-        score[~np.isfinite(score)] = np.nan
         margin = None
         if full:
-            if len(t) > 1:
-                margin = np.nan_to_num((best - second) / weight)
-            else:
-                margin = np.ones_like(score)
-    del best, second
-    variant = np.where(ordered, index, -1).astype(np.int32)
+            margin = np.nan_to_num((best - second) / weight) if len(t) > 1 else np.ones(shape, phi.dtype)
+        score = np.divide(best, weight, out=best)
+        score[~np.isfinite(score)] = np.nan
+    del second, weight
+    variant = np.where(ordered, index, np.int32(-1))
     if not full:
         return CommensurateOrder(coefficients, variant, variants, offset, score, None, None, ordered, None, None)
     residual = np.empty(phi.shape, phi.dtype)
@@ -808,7 +805,6 @@ def family_order(a_components, groups, *, coefficients=None, bragg_phase=None, t
     state = np.full(shape, -1, np.int32)
     score = np.zeros(shape, real)
     ordered = np.zeros(shape, bool)
-    fields = np.empty(a.shape, np.result_type(a.dtype, np.complex64))
     names, offsets = [], []
     for gi, g in enumerate(groups):
         here = family == gi
@@ -816,9 +812,6 @@ def family_order(a_components, groups, *, coefficients=None, bragg_phase=None, t
             co = _commensurate(a[g], coef[g], bragg_phase=bragg_phase, threshold=threshold,
                                trusted=None if trusted is None else trusted & here & strong,
                                offset_rad=None if offsets_rad is None else offsets_rad[gi], full=False)
-            for i, j in enumerate(g):
-                # A_j exp(-i (drift_j + offset_j)): the drift-free relative field less the variant offset
-                fields[j] = _drift_free(a[j], coef[j], bragg_phase, float(co.offset_rad[i]))
             base = len(names)
             names += [f"{names_f[gi]} m=({m1},{m2})" for m1, m2 in co.variants]
             offsets.append(co.offset_rad)
@@ -829,7 +822,6 @@ def family_order(a_components, groups, *, coefficients=None, bragg_phase=None, t
             ordered |= here & fam_ordered
             del co, take
         else:
-            fields[g] = a[g]
             base = len(names)
             names.append(names_f[gi])
             offsets.append(np.zeros(len(g)))
@@ -845,6 +837,13 @@ def family_order(a_components, groups, *, coefficients=None, bragg_phase=None, t
             ordered |= here & fam_ordered
             del take
     family = np.where(ordered & clear, family, -1).astype(np.int32)
+    del clear, strong, factor
+    # The fields last, when the per-family work is freed: A_j exp(-i (drift_j + offset_j)) for a
+    # commensurate family (the drift-free relative field less the variant offset), A_j otherwise.
+    fields = np.empty(a.shape, np.result_type(a.dtype, np.complex64))
+    for g, offset in zip(groups, offsets):
+        for i, j in enumerate(g):
+            fields[j] = a[j] if coef is None else _drift_free(a[j], coef[j], bragg_phase, float(offset[i]))
     return FamilyOrder(state, score, ordered, names, fields, family, offsets)
 
 
