@@ -216,7 +216,9 @@ def relative_phase(a_cdw, coefficients, *, bragg_phase=None):
     # One component at a time, in the fields' precision: no (k, row, col) complex temporaries.
     out = np.empty(a_cdw.shape, _real_dtype(a_cdw))
     for j in range(len(a_cdw)):
-        out[j] = np.angle(_drift_free(a_cdw[j], coefficients[j], bragg_phase))
+        z = _drift_free(a_cdw[j], coefficients[j], bragg_phase)
+        np.arctan2(z.imag, z.real, out=out[j])   # np.angle, written in place
+        del z
     return out
 
 
@@ -225,19 +227,30 @@ def _real_dtype(a):
     return np.float32 if np.asarray(a).dtype in (np.complex64, np.float32) else np.float64
 
 
-def _drift_free(a_j, coefficient, bragg_phase, offset=0.0):
-    """One component's field A_j exp(-i (h_j theta_1 + k_j theta_2 + offset)), in the field's precision."""
+def _drift_free(a_j, coefficient, bragg_phase, offset=0.0, out=None):
+    """One component's field A_j exp(-i (h_j theta_1 + k_j theta_2 + offset)), in the field's precision.
+
+    Written into ``out`` (complex, shaped like ``a_j``) when given; the only temporary is the real
+    phase shift.
+    """
     real = _real_dtype(a_j)
     if bragg_phase is None and offset == 0.0:
-        return a_j
+        if out is None:
+            return a_j
+        out[...] = a_j
+        return out
     shift = np.full(a_j.shape, offset, real)
     if bragg_phase is not None:
         for c, theta in zip(coefficient, bragg_phase[:2]):
             if c != 0:
-                shift += real(c) * np.asarray(theta, real)
-    rotor = np.exp(-1j * shift)
+                shift += np.multiply(theta, real(c), dtype=real)
+    if out is None:
+        out = np.empty(a_j.shape, np.result_type(a_j.dtype, shift.dtype, np.complex64))
+    np.multiply(shift, -1j, out=out)
     del shift
-    return np.multiply(a_j, rotor, dtype=np.result_type(a_j.dtype, rotor.dtype))
+    np.exp(out, out=out)
+    out *= a_j
+    return out
 
 
 def variant_templates(coefficients):
@@ -399,7 +412,8 @@ def _commensurate(a_cdw, coefficients, *, bragg_phase=None, threshold=None, trus
         amp[j] = amplitude(a_cdw[j])
     total = amp.sum(axis=0)
     ordered = np.isfinite(total)
-    ordered &= amp.min(axis=0) > (threshold or 0.0)
+    for amp_j in amp:
+        ordered &= amp_j > (threshold or 0.0)
     use = ordered if trusted is None else ordered & trusted
     if not use.any():
         use = np.isfinite(total)
@@ -412,11 +426,12 @@ def _commensurate(a_cdw, coefficients, *, bragg_phase=None, threshold=None, trus
     for j, d in enumerate(steps):
         # sum over the used pixels of |A_j| exp(i d_j phi_j), summed in float64
         angle = phi[j] * phi.dtype.type(d)
-        re, im = np.cos(angle), np.sin(angle)
+        re = np.cos(angle)
+        im = np.sin(angle, out=angle)
         del angle
         for part in (re, im):
             part *= amp[j]
-            part[~use] = 0
+            np.copyto(part, 0, where=~use)
         offset[j] = np.angle(complex(np.sum(re, dtype=np.float64), np.sum(im, dtype=np.float64))) / d
         del re, im
     # The remaining choice (multiples of 2 pi / d_j per component): the one the variants explain best.
@@ -483,14 +498,16 @@ def _quantise(phi, amp, total, offset, templates, ordered, coefficients, variant
         del win
     del acc, tmp
     with np.errstate(invalid="ignore", divide="ignore"):
-        weight = np.where(total > 0, total, real(np.nan))
+        weight = total if not full else total.copy()    # the total amplitude, NaN where not > 0
+        weight[~(weight > 0)] = np.nan
         margin = None
         if full:
             margin = np.nan_to_num((best - second) / weight) if len(t) > 1 else np.ones(shape, phi.dtype)
         score = np.divide(best, weight, out=best)
         score[~np.isfinite(score)] = np.nan
     del second, weight
-    variant = np.where(ordered, index, np.int32(-1))
+    variant = index if not full else index.copy()
+    variant[~ordered] = -1
     if not full:
         return CommensurateOrder(coefficients, variant, variants, offset, score, None, None, ordered, None, None)
     residual = np.empty(phi.shape, phi.dtype)
@@ -809,7 +826,9 @@ def family_order(a_components, groups, *, coefficients=None, bragg_phase=None, t
     for gi, g in enumerate(groups):
         here = family == gi
         if coef is not None:
-            co = _commensurate(a[g], coef[g], bragg_phase=bragg_phase, threshold=threshold,
+            # a view for the usual contiguous group (fancy indexing would copy the family's fields)
+            a_g = a[g[0]: g[-1] + 1] if len(g) and list(g) == list(range(g[0], g[-1] + 1)) else a[g]
+            co = _commensurate(a_g, coef[g], bragg_phase=bragg_phase, threshold=threshold,
                                trusted=None if trusted is None else trusted & here & strong,
                                offset_rad=None if offsets_rad is None else offsets_rad[gi], full=False)
             base = len(names)
@@ -843,7 +862,10 @@ def family_order(a_components, groups, *, coefficients=None, bragg_phase=None, t
     fields = np.empty(a.shape, np.result_type(a.dtype, np.complex64))
     for g, offset in zip(groups, offsets):
         for i, j in enumerate(g):
-            fields[j] = a[j] if coef is None else _drift_free(a[j], coef[j], bragg_phase, float(offset[i]))
+            if coef is None:
+                fields[j] = a[j]
+            else:
+                _drift_free(a[j], coef[j], bragg_phase, float(offset[i]), out=fields[j])
     return FamilyOrder(state, score, ordered, names, fields, family, offsets)
 
 
