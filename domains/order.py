@@ -711,14 +711,16 @@ class FamilyOrder:
     state : (row, col) int32
         Index into ``names`` (-1 where no order or no clear winner).
     score : (row, col) float
-        Confidence of the state (the variant score times the dominance of the family).
+        Confidence of the state (the variant score times the dominance of the family); float32 for
+        complex64 fields, float64 otherwise.
     ordered : (row, col) bool
         Where the order's amplitude is above the noise threshold.
     names : list of str
         Name of each state: the family and the variant (lattice translation m = (m1, m2)).
     fields : (k, row, col) complex
         Per component, the lock-in field with the drift-free phase less the variant offset (commensurate
-        families) or the raw field (incommensurate ones): what walls and defects are measured on.
+        families) or the raw field (incommensurate ones): what walls and defects are measured on. In the
+        input's complex precision (complex64 stays complex64).
     family : (row, col) int32
         The dominant family (-1 where none).
     offsets_rad : list of ndarray
