@@ -562,6 +562,10 @@ def _signed_distance(in_a, in_b, dy, dx, smooth_nm, where=None):
     return s
 
 
+#: Largest log of the profile width (nm) tried by the wall fit: math.exp overflows above 709.78.
+_LOG_W_MAX = 700.0
+
+
 def _profile_fit(fields, grown, a, b, segment, *, sigma_nm, dy, dx, reach_sigma, trusted=None):
     in_a, in_b = grown == a, grown == b
     nan_fit = {"width_nm": math.nan, "width_nm_err": math.nan, "width_nm_upper_limit": math.nan, "resolved": False,
@@ -601,7 +605,8 @@ def _profile_fit(fields, grown, a, b, segment, *, sigma_nm, dy, dx, reach_sigma,
 
     def residual(params):
         s0, log_w, p, q = unpack(params)
-        step = 0.5 * (1 + special.erf((sv - s0) / (math.sqrt(2) * math.exp(log_w))))
+        # log W capped where exp overflows (a diverging trial step; the fit moves back from it)
+        step = 0.5 * (1 + special.erf((sv - s0) / (math.sqrt(2) * math.exp(min(log_w, _LOG_W_MAX)))))
         diff = (data - ((1 - step) * p[:, None] + step * q[:, None])).ravel()
         return np.concatenate([diff.real, diff.imag])
 
@@ -609,6 +614,9 @@ def _profile_fit(fields, grown, a, b, segment, *, sigma_nm, dy, dx, reach_sigma,
     start = np.concatenate([[0.0, math.log(sigma_nm * 1.1)], p0.real, p0.imag, q0.real, q0.imag])
     fit = optimize.least_squares(residual, x0=start, method="lm")
     s0, log_w, p, q = unpack(fit.x)
+    if not log_w < _LOG_W_MAX:
+        # the fit ran away to an infinitely wide profile: no wall to measure
+        return {**nan_fit, "n_pixels": int(near_wall.sum())}
     total = math.exp(log_w)
     cov = _profile_covariance(fields, near_wall, s, s0, total, p, q, sigma_nm=sigma_nm, dy=dy, dx=dx)
     total_err = total * math.sqrt(max(cov[1, 1], 0.0)) if cov is not None else math.nan
