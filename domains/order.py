@@ -209,13 +209,48 @@ def relative_phase(a_cdw, coefficients, *, bragg_phase=None):
     coefficients = _coefficients(coefficients)
     if len(coefficients) != len(a_cdw):
         raise InputError(f"{len(a_cdw)} CDW components but {len(coefficients)} coefficient pairs")
-    if bragg_phase is None:
-        return np.angle(a_cdw)
-    bragg_phase = np.asarray(bragg_phase, dtype=float)
-    if bragg_phase.ndim != 3 or bragg_phase.shape[0] < 2 or bragg_phase.shape[1:] != a_cdw.shape[1:]:
-        raise InputError(f"bragg_phase must be (2 or 3, row, col) like the CDW fields, got {bragg_phase.shape}")
-    drift = np.einsum("ji,irc->jrc", coefficients, bragg_phase[:2])
-    return np.angle(a_cdw * np.exp(-1j * drift))
+    if bragg_phase is not None:
+        bragg_phase = np.asarray(bragg_phase)
+        if bragg_phase.ndim != 3 or bragg_phase.shape[0] < 2 or bragg_phase.shape[1:] != a_cdw.shape[1:]:
+            raise InputError(f"bragg_phase must be (2 or 3, row, col) like the CDW fields, got {bragg_phase.shape}")
+    # One component at a time, in the fields' precision: no (k, row, col) complex temporaries.
+    out = np.empty(a_cdw.shape, _real_dtype(a_cdw))
+    for j in range(len(a_cdw)):
+        z = _drift_free(a_cdw[j], coefficients[j], bragg_phase)
+        np.arctan2(z.imag, z.real, out=out[j])   # np.angle, written in place
+        del z
+    return out
+
+
+def _real_dtype(a):
+    """float32 for complex64 (or float32) fields, float64 otherwise: the precision the fields carry."""
+    return np.float32 if np.asarray(a).dtype in (np.complex64, np.float32) else np.float64
+
+
+def _drift_free(a_j, coefficient, bragg_phase, offset=0.0, out=None):
+    """One component's field A_j exp(-i (h_j theta_1 + k_j theta_2 + offset)), in the field's precision.
+
+    Written into ``out`` (complex, shaped like ``a_j``) when given; the only temporary is the real
+    phase shift.
+    """
+    real = _real_dtype(a_j)
+    if bragg_phase is None and offset == 0.0:
+        if out is None:
+            return a_j
+        out[...] = a_j
+        return out
+    shift = np.full(a_j.shape, offset, real)
+    if bragg_phase is not None:
+        for c, theta in zip(coefficient, bragg_phase[:2]):
+            if c != 0:
+                shift += np.multiply(theta, real(c), dtype=real)
+    if out is None:
+        out = np.empty(a_j.shape, np.result_type(a_j.dtype, shift.dtype, np.complex64))
+    np.multiply(shift, -1j, out=out)
+    del shift
+    np.exp(out, out=out)
+    out *= a_j
+    return out
 
 
 def variant_templates(coefficients):
@@ -352,6 +387,19 @@ def commensurate_order(a_cdw, coefficients, *, bragg_phase=None, threshold=None,
     >>> len(np.unique(order.variant)), round(float(order.score.min()), 6)
     (1, 1.0)
     """
+    return _commensurate(a_cdw, coefficients, bragg_phase=bragg_phase, threshold=threshold, trusted=trusted, rng=rng,
+                         offset_rad=offset_rad, full=True)
+
+
+def _commensurate(a_cdw, coefficients, *, bragg_phase=None, threshold=None, trusted=None, rng=0, offset_rad=None,
+                  full=True):
+    """:func:`commensurate_order`; with ``full=False`` only the variant, score, ordered mask and offset are
+    computed (the margin, residual, amplitude and phase sum are None): what :func:`family_order` needs.
+
+    Memory: the per-pixel work runs in the fields' precision (float32 for complex64 fields) and one
+    component or one variant at a time, so the peak is a few (row, col) planes per component, never a
+    (variants, components, row, col) stack.
+    """
     a_cdw = np.asarray(a_cdw)
     coefficients = _coefficients(coefficients)
     if a_cdw.ndim != 3 or a_cdw.shape[0] != len(coefficients):
@@ -359,23 +407,40 @@ def commensurate_order(a_cdw, coefficients, *, bragg_phase=None, threshold=None,
                          f"got shape {a_cdw.shape}")
     variants, templates = variant_templates(coefficients)
     phi = relative_phase(a_cdw, coefficients, bragg_phase=bragg_phase)
-    amp = amplitude(a_cdw)
+    amp = np.empty(a_cdw.shape, phi.dtype)
+    for j in range(len(a_cdw)):
+        amp[j] = amplitude(a_cdw[j])
     total = amp.sum(axis=0)
-    ordered = np.isfinite(total) & (amp.min(axis=0) > (threshold or 0.0))
+    ordered = np.isfinite(total)
+    for amp_j in amp:
+        ordered &= amp_j > (threshold or 0.0)
     use = ordered if trusted is None else ordered & trusted
     if not use.any():
         use = np.isfinite(total)
     if offset_rad is not None:
-        return _quantise(phi, amp, np.asarray(offset_rad, float), templates, ordered, coefficients, variants)
+        return _quantise(phi, amp, total, np.asarray(offset_rad, float), templates, ordered, coefficients, variants,
+                         full)
     # Per component, modulo its phase step 2 pi / d_j: the mean of exp(i d_j phi) is blind to the variant.
     steps = np.array([np.lcm.reduce([_denominator(c) for c in row]) for row in coefficients])
-    weights = np.where(use, amp, 0.0)
-    offset = np.angle(np.nansum(weights * np.exp(1j * steps[:, None, None] * phi), axis=(1, 2))) / steps
+    offset = np.empty(len(steps))
+    for j, d in enumerate(steps):
+        # sum over the used pixels of |A_j| exp(i d_j phi_j), summed in float64
+        angle = phi[j] * phi.dtype.type(d)
+        re = np.cos(angle)
+        im = np.sin(angle, out=angle)
+        del angle
+        for part in (re, im):
+            part *= amp[j]
+            np.copyto(part, 0, where=~use)
+        offset[j] = np.angle(complex(np.sum(re, dtype=np.float64), np.sum(im, dtype=np.float64))) / d
+        del re, im
     # The remaining choice (multiples of 2 pi / d_j per component): the one the variants explain best.
     rng = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(rng)
     where = np.flatnonzero(use)
     sample = rng.choice(where, size=min(where.size, 4000), replace=False) if where.size else where
-    phi_s, amp_s = phi.reshape(len(phi), -1)[:, sample], amp.reshape(len(amp), -1)[:, sample]
+    del where
+    phi_s = phi.reshape(len(phi), -1)[:, sample].astype(float)
+    amp_s = amp.reshape(len(amp), -1)[:, sample].astype(float)
     best_shift, best_score = np.zeros(len(steps)), -np.inf
     # Shifts that differ by a variant's template relabel the variants without changing the fit: where
     # the templates take every value of a component, that component's shift can be fixed at 0 (a
@@ -397,23 +462,61 @@ def commensurate_order(a_cdw, coefficients, *, bragg_phase=None, threshold=None,
         if score > best_score + 1e-12:
             best_shift, best_score = np.array(shift), score
     offset = np.angle(np.exp(1j * (offset + 2 * np.pi * best_shift / steps)))
-    return _quantise(phi, amp, offset, templates, ordered, coefficients, variants)
+    return _quantise(phi, amp, total, offset, templates, ordered, coefficients, variants, full)
 
 
-def _quantise(phi, amp, offset, templates, ordered, coefficients, variants):
-    """Each pixel's best variant, its score and margin, once the global offset is fixed."""
-    centred = phi - offset[:, None, None]
-    scores = _scores(amp, centred, templates)
-    best = np.argmax(scores, axis=0)
-    ranked = np.sort(scores, axis=0)
-    score = np.take_along_axis(scores, best[None], 0)[0]
-    with np.errstate(invalid="ignore"):
-        margin = np.nan_to_num(ranked[-1] - ranked[-2]) if len(templates) > 1 else np.ones_like(score)
-    residual = np.angle(np.exp(1j * (centred - templates[best].transpose(2, 0, 1))))
-    variant = np.where(ordered, best, -1).astype(np.int32)
-    phase_sum = np.angle(np.exp(1j * phi.sum(axis=0)))
-    return CommensurateOrder(coefficients, variant, variants, offset, np.where(np.isfinite(score), score, np.nan),
-                             margin, residual, ordered, amp, phase_sum)
+def _quantise(phi, amp, total, offset, templates, ordered, coefficients, variants, full=True):
+    """Each pixel's best variant, its score and margin, once the global offset is fixed.
+
+    score_v = sum_j |A_j| cos(phi_j - offset_j - template_vj) / sum_j |A_j|, kept as a running
+    best and second best over the variants (the first of equal bests wins, as ``np.argmax``).
+    ``phi`` is overwritten with the centred phases phi - offset.
+    """
+    real = phi.dtype.type
+    centred = phi
+    centred -= offset.astype(phi.dtype)[:, None, None]
+    t = templates.astype(phi.dtype)
+    shape = phi.shape[1:]
+    best = np.full(shape, -np.inf, phi.dtype)
+    second = np.full(shape, -np.inf, phi.dtype) if full else None
+    index = np.zeros(shape, np.int32)
+    acc = np.empty(shape, phi.dtype)
+    tmp = np.empty(shape, phi.dtype)
+    for v in range(len(t)):
+        acc.fill(0)
+        for j in range(len(phi)):
+            np.subtract(centred[j], t[v, j], out=tmp)
+            np.cos(tmp, out=tmp)
+            tmp *= amp[j]
+            acc += tmp
+        if full:
+            # second best: the old best where v wins, else v where it beats the second best
+            np.maximum(second, np.minimum(acc, best), out=second)
+        win = acc > best
+        index[win] = v
+        np.copyto(best, acc, where=win)
+        del win
+    del acc, tmp
+    with np.errstate(invalid="ignore", divide="ignore"):
+        weight = total if not full else total.copy()    # the total amplitude, NaN where not > 0
+        weight[~(weight > 0)] = np.nan
+        margin = None
+        if full:
+            margin = np.nan_to_num((best - second) / weight) if len(t) > 1 else np.ones(shape, phi.dtype)
+        score = np.divide(best, weight, out=best)
+        score[~np.isfinite(score)] = np.nan
+    del second, weight
+    variant = index if not full else index.copy()
+    variant[~ordered] = -1
+    if not full:
+        return CommensurateOrder(coefficients, variant, variants, offset, score, None, None, ordered, None, None)
+    residual = np.empty(phi.shape, phi.dtype)
+    for j in range(len(phi)):
+        residual[j] = np.angle(np.exp(1j * (centred[j] - t[:, j][index])))
+    # centred = phi - offset: the sum of phi is that of the centred phases plus the sum of offsets
+    phase_sum = np.angle(np.exp(1j * (centred.sum(axis=0) + real(offset.sum()))))
+    return CommensurateOrder(coefficients, variant, variants, offset, score, margin, residual, ordered, amp,
+                             phase_sum)
 
 
 @dataclass
@@ -608,14 +711,16 @@ class FamilyOrder:
     state : (row, col) int32
         Index into ``names`` (-1 where no order or no clear winner).
     score : (row, col) float
-        Confidence of the state (the variant score times the dominance of the family).
+        Confidence of the state (the variant score times the dominance of the family); float32 for
+        complex64 fields, float64 otherwise.
     ordered : (row, col) bool
         Where the order's amplitude is above the noise threshold.
     names : list of str
         Name of each state: the family and the variant (lattice translation m = (m1, m2)).
     fields : (k, row, col) complex
         Per component, the lock-in field with the drift-free phase less the variant offset (commensurate
-        families) or the raw field (incommensurate ones): what walls and defects are measured on.
+        families) or the raw field (incommensurate ones): what walls and defects are measured on. In the
+        input's complex precision (complex64 stays complex64).
     family : (row, col) int32
         The dominant family (-1 where none).
     offsets_rad : list of ndarray
@@ -686,53 +791,83 @@ def family_order(a_components, groups, *, coefficients=None, bragg_phase=None, t
         raise InputError(f"groups must cover the {k} components once each, got {groups}")
     coef = None if coefficients is None else _coefficients(coefficients)
     names_f = family_names or [f"q{g + 1}" for g in range(len(groups))]
-    amp = amplitude(a)
+    # Memory: per-pixel work in the fields' precision (float32 for complex64 fields), one family
+    # and one component at a time; the fields come back in the input's complex precision.
+    real = _real_dtype(a)
+    shape = a.shape[1:]
     thr = threshold or 0.0
-    power = np.stack([np.mean(amp[g] ** 2, axis=0) for g in groups])
     if len(groups) > 1:
-        ranked = np.sort(power, axis=0)
-        first, second = ranked[-1], ranked[-2]
+        # mean |A|^2 of each family, 2|A| = amplitude
+        power = np.empty((len(groups),) + shape, real)
+        for gi, g in enumerate(groups):
+            power[gi] = 0
+            for j in g:
+                power[gi] += np.square(amplitude(a[j]))
+            power[gi] /= len(g)
+        family = np.argmax(np.nan_to_num(power, nan=-1.0), axis=0).astype(np.int8 if len(groups) < 128 else np.int32)
+        power.sort(axis=0)
+        first, second = power[-1], power[-2]
         with np.errstate(invalid="ignore", divide="ignore"):
-            dominance = np.where(first + second > 0, (first - second) / (first + second), 0.0)
-        family = np.argmax(np.nan_to_num(power, nan=-1.0), axis=0)
+            dominance = np.where(first + second > 0, (first - second) / (first + second), real(0))
         strong = np.sqrt(np.nan_to_num(first)) > thr
+        del power, first, second
         clear = dominance >= anisotropy_threshold
+        # the dominance of the family as a factor of the score, min(1, dominance / threshold)
+        dominance /= real(max(anisotropy_threshold, 1e-9))
+        np.minimum(dominance, 1, out=dominance)
+        factor = dominance
     else:
-        family = np.zeros(a.shape[1:], int)
-        dominance = np.ones(a.shape[1:])
-        strong = np.ones(a.shape[1:], bool)
+        family = np.zeros(shape, np.int8)
+        factor = None
+        strong = np.ones(shape, bool)
         clear = strong
-    state = np.full(a.shape[1:], -1, np.int32)
-    score = np.zeros(a.shape[1:])
-    ordered = np.zeros(a.shape[1:], bool)
-    fields = a.astype(complex).copy()
+    state = np.full(shape, -1, np.int32)
+    score = np.zeros(shape, real)
+    ordered = np.zeros(shape, bool)
     names, offsets = [], []
     for gi, g in enumerate(groups):
         here = family == gi
         if coef is not None:
-            co = commensurate_order(a[g], coef[g], bragg_phase=bragg_phase, threshold=threshold,
-                                    trusted=None if trusted is None else trusted & here & strong,
-                                    offset_rad=None if offsets_rad is None else offsets_rad[gi])
-            rel = relative_phase(a[g], coef[g], bragg_phase=bragg_phase)
-            fields[g] = amp[g] / 2 * np.exp(1j * (rel - co.offset_rad[:, None, None]))
+            # a view for the usual contiguous group (fancy indexing would copy the family's fields)
+            a_g = a[g[0]: g[-1] + 1] if len(g) and list(g) == list(range(g[0], g[-1] + 1)) else a[g]
+            co = _commensurate(a_g, coef[g], bragg_phase=bragg_phase, threshold=threshold,
+                               trusted=None if trusted is None else trusted & here & strong,
+                               offset_rad=None if offsets_rad is None else offsets_rad[gi], full=False)
             base = len(names)
             names += [f"{names_f[gi]} m=({m1},{m2})" for m1, m2 in co.variants]
             offsets.append(co.offset_rad)
             fam_ordered = co.ordered if len(groups) == 1 else strong
             take = here & fam_ordered & clear & (co.variant >= 0)
             state[take] = base + co.variant[take]
-            score[take] = (co.score * np.minimum(1.0, dominance / max(anisotropy_threshold, 1e-9)))[take]
+            score[take] = co.score[take] if factor is None else co.score[take] * factor[take]
             ordered |= here & fam_ordered
+            del co, take
         else:
             base = len(names)
             names.append(names_f[gi])
             offsets.append(np.zeros(len(g)))
-            fam_ordered = (amp[g].min(axis=0) > thr) if len(groups) == 1 else strong
+            if len(groups) == 1:
+                fam_ordered = np.ones(shape, bool)
+                for j in g:
+                    fam_ordered &= amplitude(a[j]) > thr
+            else:
+                fam_ordered = strong
             take = here & fam_ordered & clear
             state[take] = base
-            score[take] = np.minimum(1.0, dominance / max(anisotropy_threshold, 1e-9))[take] if len(groups) > 1 else 1.0
+            score[take] = factor[take] if factor is not None else 1.0
             ordered |= here & fam_ordered
+            del take
     family = np.where(ordered & clear, family, -1).astype(np.int32)
+    del clear, strong, factor
+    # The fields last, when the per-family work is freed: A_j exp(-i (drift_j + offset_j)) for a
+    # commensurate family (the drift-free relative field less the variant offset), A_j otherwise.
+    fields = np.empty(a.shape, np.result_type(a.dtype, np.complex64))
+    for g, offset in zip(groups, offsets):
+        for i, j in enumerate(g):
+            if coef is None:
+                fields[j] = a[j]
+            else:
+                _drift_free(a[j], coef[j], bragg_phase, float(offset[i]), out=fields[j])
     return FamilyOrder(state, score, ordered, names, fields, family, offsets)
 
 

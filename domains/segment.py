@@ -96,11 +96,15 @@ def segment_states(state, confidence, ordered, *, pixel_size_nm, min_area_nm2, c
     """
     dy, dx = pixel_size_pair(pixel_size_nm)
     state = np.asarray(state)
-    confidence = np.nan_to_num(np.asarray(confidence, dtype=float), nan=-np.inf)
+    # Memory: float32 confidence stays float32 (a copy, -inf where NaN), masks are bool, labels int32.
+    confidence = np.array(confidence, dtype=np.float32 if np.asarray(confidence).dtype == np.float32 else float)
+    np.nan_to_num(confidence, copy=False, nan=-np.inf)
     ordered = np.asarray(ordered, dtype=bool)
     if not (state.shape == confidence.shape == ordered.shape):
         raise InputError(f"state, confidence and ordered differ in shape: {state.shape}, {confidence.shape}, {ordered.shape}")
-    core = ordered & (state >= 0) & (confidence >= confidence_threshold)
+    core = state >= 0
+    core &= ordered
+    core &= confidence >= np.float64(confidence_threshold)   # compared in float64, as given
     if trusted is not None:
         core &= trusted
     min_pixels = max(1, int(math.ceil(min_area_nm2 / (dy * dx))))
@@ -108,36 +112,78 @@ def segment_states(state, confidence, ordered, *, pixel_size_nm, min_area_nm2, c
     seed_state = {}
     islands = 0
     next_label = 1
+    eight = np.ones((3, 3), bool)
     for s in np.unique(state[core]):
-        regions, count = ndimage.label(core & (state == s), structure=np.ones((3, 3)))
+        regions, count = ndimage.label(core & (state == s), structure=eight, output=np.int32)
         sizes = np.bincount(regions.ravel(), minlength=count + 1)
         keep = np.nonzero(sizes[1:] >= min_pixels)[0] + 1
         islands += count - keep.size
-        # One lookup relabels every kept region at once (a loop of full-frame masks costs N x regions).
+        # One lookup relabels every kept region at once (a loop of full-frame masks costs N x regions);
+        # the regions of different states are disjoint, so they add into the seeds.
         lut = np.zeros(count + 1, dtype=np.int32)
         lut[keep] = np.arange(next_label, next_label + keep.size, dtype=np.int32)
-        inside = regions > 0
-        seeds[inside] = lut[regions[inside]]
+        np.take(lut, regions, out=regions, mode="clip")
+        seeds += regions
         for label in range(next_label, next_label + keep.size):
             seed_state[label] = int(s)
         next_label += keep.size
-        del regions, inside
+        del regions
+    del core
     if next_label == 1:
         empty = np.zeros(state.shape, dtype=np.int32)
         return Segmentation(empty, empty, np.zeros(state.shape, bool), {}, islands,
                             {"min_area_nm2": min_area_nm2, "confidence_threshold": confidence_threshold})
-    finite = np.where(np.isfinite(confidence), confidence, confidence[np.isfinite(confidence)].min(initial=0.0))
+    # Flooding order: -confidence, with the lowest finite confidence where there is none (in place).
+    bad = ~np.isfinite(confidence)
+    confidence[bad] = confidence[~bad].min(initial=0.0)
+    del bad
+    np.negative(confidence, out=confidence)
     reach = ordered
     if bridge_nm > 0:
         radius = max(1, int(round(bridge_nm / min(dy, dx))))
         reach = ordered | disc_closing(ordered, radius)
-    grown = watershed(-finite, markers=seeds, mask=reach).astype(np.int32)
+    grown = watershed(confidence, markers=seeds, mask=reach).astype(np.int32, copy=False)
+    del seeds, confidence, reach
     walls = thin_walls(grown)
-    labels = np.where(walls, 0, grown).astype(np.int32)
+    labels = np.where(walls, np.int32(0), grown)
     params = {"min_area_nm2": float(min_area_nm2), "confidence_threshold": float(confidence_threshold),
               "bridge_nm": float(bridge_nm)}
     return Segmentation(labels, grown, walls, seed_state, islands, params)
 
+
+
+def _distance_compare(features_off, radius, *, greater=False, sampling=None):
+    """``distance_transform_edt(features_off, sampling) <= radius`` (``> radius`` with ``greater``).
+
+    The same float64 distances as scipy's (from the integer offsets of the feature transform,
+    times the sampling, squared, summed, square-rooted), computed in row blocks: the full-frame
+    float64 distances and index grids scipy builds (about 40 bytes per pixel) are never held,
+    only the int32 feature transform (8 bytes per pixel). ``features_off`` must hold a False pixel.
+    """
+    shape = features_off.shape
+    ft = np.empty((len(shape),) + shape, np.int32)
+    ndimage.distance_transform_edt(features_off, sampling=sampling, return_distances=False, return_indices=True,
+                                   indices=ft)
+    out = np.empty(shape, bool)
+    scale = None if sampling is None else np.broadcast_to(np.asarray(sampling, float), (2,))
+    cols = np.arange(shape[1])
+    block = max(1, (1 << 18) // max(1, shape[1]))
+    for r0 in range(0, shape[0], block):
+        r1 = min(r0 + block, shape[0])
+        d_row = (ft[0, r0:r1] - np.arange(r0, r1)[:, None]).astype(np.float64)
+        d_col = (ft[1, r0:r1] - cols).astype(np.float64)
+        if scale is not None:
+            d_row *= scale[0]
+            d_col *= scale[1]
+        np.multiply(d_row, d_row, out=d_row)
+        np.multiply(d_col, d_col, out=d_col)
+        d_row += d_col
+        np.sqrt(d_row, out=d_row)
+        if greater:
+            np.greater(d_row, radius, out=out[r0:r1])
+        else:
+            np.less_equal(d_row, radius, out=out[r0:r1])
+    return out
 
 
 def _disc_dilation(mask, radius_px):
@@ -145,7 +191,7 @@ def _disc_dilation(mask, radius_px):
     if not mask.any():
         return np.zeros(mask.shape, dtype=bool)
     # distance from every pixel to the nearest True pixel of the frame
-    return ndimage.distance_transform_edt(~mask) <= radius_px
+    return _distance_compare(~mask, radius_px)
 
 
 def _disc_erosion(mask, radius_px):
@@ -155,7 +201,7 @@ def _disc_erosion(mask, radius_px):
     # A one-pixel False frame makes the outside count: every outside pixel within the
     # radius has a frame pixel at least as close (clamp each coordinate to the frame).
     padded = np.pad(mask, 1, mode="constant", constant_values=False)
-    return (ndimage.distance_transform_edt(padded) > radius_px)[1:-1, 1:-1]
+    return _distance_compare(padded, radius_px, greater=True)[1:-1, 1:-1]
 
 
 def disc_closing(mask, radius_px, *, edge="replicate"):
@@ -473,7 +519,7 @@ def _profile_fit_near(fields, grown, a, b, crop, corner, *, sigma_nm, dy, dx, re
 WALL_LINE_SMOOTHING_SIGMA = 1.0
 
 
-def _signed_distance(in_a, in_b, dy, dx, smooth_nm, max_nm=np.inf):
+def _signed_distance(in_a, in_b, dy, dx, smooth_nm, where=None, max_nm=np.inf):
     """Signed distance (nm) to the a|b boundary drawn at sub-pixel precision, negative in a.
 
     Pixels farther than ``max_nm`` from the boundary get NaN: the nearest-sample search is then
@@ -484,16 +530,20 @@ def _signed_distance(in_a, in_b, dy, dx, smooth_nm, max_nm=np.inf):
     squares), sampled every tenth of a pixel; a pixel's distance is to the nearest sample. A distance
     taken to the nearest pixel of the other domain instead (Euclidean distance transform) follows the
     staircase of a tilted wall: it compresses s by up to 7 % near the wall (measured at 17 to 30
-    degrees), and the fitted width with it.
+    degrees), and the fitted width with it. Computed at the a and b pixels of ``where`` (default:
+    all of them), NaN elsewhere.
     """
     from skimage.measure import find_contours
 
     sigma_px = (max(smooth_nm / dy, 1.5), max(smooth_nm / dx, 1.5))
     either = in_a | in_b
-    num = ndimage.gaussian_filter(in_b.astype(float), sigma_px, mode="constant")
-    den = ndimage.gaussian_filter(either.astype(float), sigma_px, mode="constant")
+    # Filtered straight from the masks into float64 (no float copies of them); the same values.
+    frac = ndimage.gaussian_filter(in_b, sigma_px, output=np.float64, mode="constant")
+    den = ndimage.gaussian_filter(either, sigma_px, output=np.float64, mode="constant")
     with np.errstate(invalid="ignore", divide="ignore"):
-        frac = np.where(either & (den > 0), num / den, np.nan)
+        np.divide(frac, den, out=frac)
+    frac[~(either & (den > 0))] = np.nan
+    del den
     points = []
     for line in find_contours(frac, 0.5):
         if len(line) < 2:
@@ -505,17 +555,18 @@ def _signed_distance(in_a, in_b, dy, dx, smooth_nm, max_nm=np.inf):
         start = np.repeat(line[:-1], count, axis=0)
         points.append(start + t[:, None] * np.repeat(seg, count, axis=0))
         points.append(line[-1:])
+    del frac
     if not points:
         return None
     points = np.vstack(points) * (dy, dx)
-    query = either
+    query = either if where is None else either & where
     if np.isfinite(max_nm):
         # Only pixels near the boundary are asked (a Euclidean distance transform from the a|b pixel
         # edges, exact to a pixel; the smoothed boundary lies within the smoothing width of them).
         edge = (in_a & ndimage.binary_dilation(in_b)) | (in_b & ndimage.binary_dilation(in_a))
         if edge.any():
             reach = max_nm + 2 * smooth_nm + 2 * max(dy, dx)
-            query = either & (ndimage.distance_transform_edt(~edge, sampling=(dy, dx)) <= reach)
+            query &= _distance_compare(~edge, reach, sampling=(dy, dx))
     rows, cols = np.nonzero(query)
     dist, _ = cKDTree(points).query(np.stack([rows * dy, cols * dx], axis=1), distance_upper_bound=max_nm)
     s = np.full(in_a.shape, np.nan)
@@ -523,24 +574,32 @@ def _signed_distance(in_a, in_b, dy, dx, smooth_nm, max_nm=np.inf):
     return s
 
 
+#: Largest log of the profile width (nm) tried by the wall fit: math.exp overflows above 709.78.
+_LOG_W_MAX = 700.0
+
+
 def _profile_fit(fields, grown, a, b, segment, *, sigma_nm, dy, dx, reach_sigma, trusted=None):
     in_a, in_b = grown == a, grown == b
     nan_fit = {"width_nm": math.nan, "width_nm_err": math.nan, "width_nm_upper_limit": math.nan, "resolved": False,
                "total_width_nm": math.nan, "total_width_nm_err": math.nan, "offset_nm": math.nan,
                "phase_jump_deg": [], "phase_jump_deg_err": [], "n_pixels": 0}
+    # The pixels that can enter the fit, before the distances: those are then computed there only.
+    near = in_a | in_b
+    for f in fields:
+        near &= np.isfinite(f)
+    if trusted is not None:
+        near &= trusted
+    if segment is not None:
+        near &= _distance_compare(~segment, reach_sigma * sigma_nm * 1.5, sampling=(dy, dx))
     # Only pixels within the fit's reach need a distance: the wall pixels (|s| <= reach sigma) and the
     # domains' cores next to them, all within 1.5 reach sigma of the segment; twice that, plus the
     # smoothing and two pixels, bounds the distance from those pixels to the drawn boundary.
     smooth = WALL_LINE_SMOOTHING_SIGMA * sigma_nm
-    s = _signed_distance(in_a, in_b, dy, dx, smooth,
+    s = _signed_distance(in_a, in_b, dy, dx, smooth, where=near,
                          max_nm=3 * reach_sigma * sigma_nm + 3 * smooth + 2 * max(dy, dx))
     if s is None:
         return nan_fit
-    near = (in_a | in_b) & np.all(np.isfinite(fields), axis=0) & np.isfinite(s)
-    if trusted is not None:
-        near &= trusted
-    if segment is not None:
-        near &= ndimage.distance_transform_edt(~segment, sampling=(dy, dx)) <= reach_sigma * sigma_nm * 1.5
+    near &= np.isfinite(s)
     far = (np.abs(s) > 2.5 * sigma_nm) & near
     near_wall = near & (np.abs(s) <= reach_sigma * sigma_nm)
     core_a, core_b = far & in_a, far & in_b
@@ -563,7 +622,8 @@ def _profile_fit(fields, grown, a, b, segment, *, sigma_nm, dy, dx, reach_sigma,
 
     def residual(params):
         s0, log_w, p, q = unpack(params)
-        step = 0.5 * (1 + special.erf((sv - s0) / (math.sqrt(2) * math.exp(log_w))))
+        # log W capped where exp overflows (a diverging trial step; the fit moves back from it)
+        step = 0.5 * (1 + special.erf((sv - s0) / (math.sqrt(2) * math.exp(min(log_w, _LOG_W_MAX)))))
         diff = (data - ((1 - step) * p[:, None] + step * q[:, None])).ravel()
         return np.concatenate([diff.real, diff.imag])
 
@@ -571,6 +631,9 @@ def _profile_fit(fields, grown, a, b, segment, *, sigma_nm, dy, dx, reach_sigma,
     start = np.concatenate([[0.0, math.log(sigma_nm * 1.1)], p0.real, p0.imag, q0.real, q0.imag])
     fit = optimize.least_squares(residual, x0=start, method="lm")
     s0, log_w, p, q = unpack(fit.x)
+    if not log_w < _LOG_W_MAX:
+        # the fit ran away to an infinitely wide profile: no wall to measure
+        return {**nan_fit, "n_pixels": int(near_wall.sum())}
     total = math.exp(log_w)
     cov = _profile_covariance(fields, near_wall, s, s0, total, p, q, sigma_nm=sigma_nm, dy=dy, dx=dx)
     total_err = total * math.sqrt(max(cov[1, 1], 0.0)) if cov is not None else math.nan
@@ -612,6 +675,11 @@ def _profile_covariance(fields, used, s, s0, width, p, q, *, sigma_nm, dy, dx):
     covariance v R, Cov = v (J^T J)^-1 (J^T R J) (J^T J)^-1 (the sandwich form); R J is a Gaussian
     filter of each Jacobian column over the pixels used. The noise variance v is measured from the
     residuals, with the expectation E[RSS] = v (N - tr((J^T J)^-1 J^T R J)) of correlated data.
+
+    The Jacobian is sparse: the residual block of component j and part (real or imaginary) depends
+    on s0, log W and one part each of P_j and Q_j only. Each block's four columns are built,
+    filtered and reduced to J^T J and J^T R J in turn, so memory is a few values per pixel used,
+    not the (2k, pixels, 2 + 4k) Jacobian.
     """
     k = len(fields)
     rows, cols = np.nonzero(used)
@@ -620,38 +688,40 @@ def _profile_covariance(fields, used, s, s0, width, p, q, *, sigma_nm, dy, dx):
     bump = np.exp(-0.5 * u**2) / math.sqrt(2 * math.pi)
     n = rows.size
     n_par = 2 + 4 * k
-    # Residual entries: (component j, real/imag) blocks of n pixels. Columns: derivative of the model.
-    jac = np.zeros((2 * k, n, n_par))
-    resid = np.zeros((2 * k, n))
+    corr_px = (math.sqrt(2) * sigma_nm / dy, math.sqrt(2) * sigma_nm / dx)
+    # Sum over pixels of exp(-d^2 / (4 sigma^2)): the unit-sum Gaussian filter times 4 pi sigma^2 / (dy dx).
+    norm = 4 * math.pi * sigma_nm**2 / (dy * dx)
+    plane = np.zeros(used.shape)
+    jtj = np.zeros((n_par, n_par))
+    jrj = np.zeros((k, n_par, n_par))     # J^T R J of each component's two blocks
+    rss = np.zeros(k)
+    jac = np.empty((n, 4))
+    smoothed = np.empty((n, 4))
     for j in range(k):
         jump = q[j] - p[j]
         d_s0 = -bump / width * jump
         d_logw = -bump * u * jump
-        model = p[j] + step * jump
-        r = fields[j][rows, cols] - model
+        r = fields[j][rows, cols] - (p[j] + step * jump)
         for part, take in ((0, np.real), (1, np.imag)):
-            block = 2 * j + part
-            resid[block] = take(r)
-            jac[block, :, 0] = take(d_s0)
-            jac[block, :, 1] = take(d_logw)
-        jac[2 * j, :, 2 + j] = 1 - step                    # Re P_j -> real part
-        jac[2 * j + 1, :, 2 + k + j] = 1 - step            # Im P_j -> imaginary part
-        jac[2 * j, :, 2 + 2 * k + j] = step                # Re Q_j
-        jac[2 * j + 1, :, 2 + 3 * k + j] = step            # Im Q_j
-    corr_px = (math.sqrt(2) * sigma_nm / dy, math.sqrt(2) * sigma_nm / dx)
-    # Sum over pixels of exp(-d^2 / (4 sigma^2)): the unit-sum Gaussian filter times 4 pi sigma^2 / (dy dx).
-    norm = 4 * math.pi * sigma_nm**2 / (dy * dx)
-    smoothed = np.zeros_like(jac)
-    plane = np.zeros(used.shape)
-    for block in range(2 * k):
-        for c in range(n_par):
-            column = jac[block, :, c]
-            if not np.any(column):
-                continue
-            plane[rows, cols] = column
-            smoothed[block, :, c] = norm * ndimage.gaussian_filter(plane, corr_px, mode="constant")[rows, cols]
-            plane[rows, cols] = 0.0
-    jtj = np.einsum("bnc,bnd->cd", jac, jac)
+            # columns s0, log W, (Re or Im) P_j, (Re or Im) Q_j
+            where = [0, 1, 2 + part * k + j, 2 + 2 * k + part * k + j]
+            rss[j] += float(np.sum(take(r) ** 2))
+            jac[:, 0] = take(d_s0)
+            jac[:, 1] = take(d_logw)
+            jac[:, 2] = 1 - step
+            jac[:, 3] = step
+            for c in range(4):
+                column = jac[:, c]
+                if not np.any(column):
+                    smoothed[:, c] = 0.0
+                    continue
+                plane[rows, cols] = column
+                smoothed[:, c] = norm * ndimage.gaussian_filter(plane, corr_px, mode="constant")[rows, cols]
+                plane[rows, cols] = 0.0
+            index = np.ix_(where, where)
+            jtj[index] += jac.T @ jac
+            jrj[j][index] += jac.T @ smoothed
+        del d_s0, d_logw, r
     try:
         inv = np.linalg.inv(jtj)
     except np.linalg.LinAlgError:
@@ -661,12 +731,10 @@ def _profile_covariance(fields, used, s, s0, width, p, q, *, sigma_nm, dy, dx):
     # that is largest in a component that does not jump and must not inflate the others' errors.
     middle = np.zeros_like(jtj)
     for j in range(k):
-        blocks = slice(2 * j, 2 * j + 2)
-        jrj = np.einsum("bnc,bnd->cd", jac[blocks], smoothed[blocks])
-        dof = 2 * n - float(np.trace(inv @ jrj))
+        dof = 2 * n - float(np.trace(inv @ jrj[j]))
         if not dof > 0:
             return None
-        middle += float(np.sum(resid[blocks] ** 2)) / dof * jrj
+        middle += rss[j] / dof * jrj[j]
     return inv @ middle @ inv
 
 
@@ -788,7 +856,7 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
         # (r, c) -> (r, c+1) -> (r+1, c+1) -> (r+1, c): +x, +y, -x, -y.
         total = _wrap(phi[:-1, 1:] - phi[:-1, :-1]) + _wrap(phi[1:, 1:] - phi[:-1, 1:]) \
             + _wrap(phi[1:, :-1] - phi[1:, 1:]) + _wrap(phi[:-1, :-1] - phi[1:, :-1])
-        plaquette = np.rint(np.nan_to_num(total) / (2 * np.pi)).astype(int)
+        plaquette = np.rint(np.nan_to_num(total) / (2 * np.pi)).astype(np.int8)
         del total
         rows, cols = np.nonzero(plaquette)
         wind = plaquette[rows, cols]

@@ -213,3 +213,36 @@ def test_bad_inputs():
         variant_templates(1)
     with pytest.raises(domains.InputError, match="at least two components"):
         orientation_order(np.ones((1, 4, 4), complex))
+
+
+@pytest.mark.parametrize("dtype", [np.complex128, np.complex64])
+def test_variant_choice_equals_the_argmax_over_all_variant_scores(dtype):
+    # reference: numpy argmax and sort over the stacked scores of the documented formula
+    # score_v = sum_j |A_j| cos(phi_j - offset_j - template_vj) / sum_j |A_j| (docs/methods.md §5),
+    # built here for every variant at once; the running best must pick the same variant (the first of
+    # equal bests), the same score and the same margin to the second best
+    rng = np.random.default_rng(5)
+    _, templates = variant_templates(3)
+    a = (rng.normal(size=(3, 40, 50)) + 1j * rng.normal(size=(3, 40, 50))).astype(dtype)
+    a[:, 0, 0] = np.nan          # a pixel without a field: no score
+    a[:, 0, 1] = 0               # a pixel without order: no score
+    order = commensurate_order(a, 3, offset_rad=[0.1, -0.2, 0.3])
+    amp = 2 * np.abs(a.astype(np.complex128))
+    centred = np.angle(a.astype(np.complex128)) - np.array([0.1, -0.2, 0.3])[:, None, None]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scores = np.einsum("jrc,vjrc->vrc", amp, np.cos(centred[None] - templates[:, :, None, None])) / amp.sum(0)
+        scores = np.nan_to_num(scores, nan=-np.inf)
+        ranked = np.sort(scores, axis=0)
+        margin = np.nan_to_num(ranked[-1] - ranked[-2])
+    best = np.argmax(scores, axis=0)
+    finite = np.isfinite(ranked[-1])
+    tol = 1e-12 if dtype == np.complex128 else 1e-5   # float32 rounding of the phases
+    assert not finite[0, 0] and not finite[0, 1] and finite.sum() == finite.size - 2
+    # a clear winner (not tied within the rounding): the same variant as argmax
+    clear = finite & (margin > 10 * tol)
+    assert clear.sum() > 0.99 * finite.sum()
+    assert np.array_equal(order.variant[clear], best[clear])
+    assert np.all(order.variant[~finite] == -1)
+    assert_allclose(order.score[finite], ranked[-1][finite], atol=tol)
+    assert np.all(np.isnan(order.score[~finite]))
+    assert_allclose(order.margin, margin, atol=tol)

@@ -323,3 +323,18 @@ def test_defect_optional_ordered_fraction_rule():
     assert (len(kept), len(dropped)) == (1, 0)  # derived: see above
     # derived: without the extra rule only the loop matters, and the loop is ordered
     assert len(phase_defects(field, pixel_size_nm=1.0, ordered=ordered, sigma_nm=5.0)) == 1
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_distance_threshold_equals_scipy_edt(seed):
+    # reference library: scipy.ndimage.distance_transform_edt, thresholded; the blockwise version
+    # must give the same pixels, with square and with non-square pixels
+    from domains.segment import _distance_compare
+
+    rng = np.random.default_rng(seed)
+    mask = rng.random((301, 77)) < 0.97
+    for sampling in (None, (0.13, 0.07)):
+        reference = ndimage.distance_transform_edt(mask, sampling=sampling)
+        for radius in (1.0, 2.5, 0.3 if sampling else 4.0):
+            assert_array_equal(_distance_compare(mask, radius, sampling=sampling), reference <= radius)
+            assert_array_equal(_distance_compare(mask, radius, greater=True, sampling=sampling), reference > radius)
