@@ -282,8 +282,9 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None, 
     dict
         ``image`` (levelled), ``mask``, ``spec`` (the indexing, with peak roles),
         ``drift`` (a :class:`domains.drift.DriftResult` or None), ``corrected`` (the
-        straightened image), ``notes``, ``choices`` and ``lazy`` (whether ``image`` and
-        ``corrected`` are dask arrays).
+        straightened image), ``notes``, ``choices``, ``lazy`` (whether ``image`` and
+        ``corrected`` are dask arrays) and ``scratch`` (for a lazy run, the
+        :class:`domains._scratch.Scratch` folder the levelled image was computed into, else None).
 
     Examples
     --------
@@ -349,6 +350,14 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None, 
     choices["level"] = {"order": config.level_order, "line_method": line_method}
     if reading.lattice is not None and reading.source == "found":
         reading = _refine_lattice(view, pixel, view_mask, reading, peaks)
+    scratch = None
+    if lazy:
+        # The levelled image is read by every drift pass, the crops and the lock-ins: computed once into
+        # a scratch store (domains._scratch), not recomputed from the input on every read.
+        from ._scratch import Scratch, checkpoint
+
+        scratch = Scratch()
+        image = checkpoint(image, scratch, "levelled")
     step("drift and order")
 
     # 3. Drift (Lawler–Fujita) from the Bragg peaks.
@@ -423,7 +432,7 @@ def find_order(topography: Scan, config: Config | None = None, *, on_step=None, 
     fourier._CELLS_CACHE.clear()
     step("lock-in")
     return {"image": image, "mask": mask, "spec": spec, "drift": drift_result, "corrected": corrected,
-            "notes": notes, "choices": choices, "lazy": lazy}
+            "notes": notes, "choices": choices, "lazy": lazy, "scratch": scratch}
 
 
 def index_image(image, *, pixel_size_nm, mask=None, config=None):
@@ -499,7 +508,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         trusted_c, trusted_fraction = _refine.trusted_on_grid(grid_, sigma_nm, pixel, _thick(mask))
         # The straightened image is read by every lock-in, the noise floor and the bundle: computed once
         # into a scratch store, not recomputed from the input store on every read.
-        scratch = Scratch()
+        scratch = found["scratch"] or Scratch()
         corrected = checkpoint(corrected, scratch, "corrected")
         finite_mean = float(da.nanmean(corrected).compute())
         fill = da.where(da.isfinite(corrected), corrected, finite_mean)

@@ -25,7 +25,8 @@ TILE = 160
 def runs():
     scene = cdw_scene(shape=(512, 512), n_domains=4, rng=3)
     topo = scene.topography
-    config = pipeline.Config(drift=False)
+    # The default analysis, drift correction included (chunk by chunk in the lazy run).
+    config = pipeline.Config()
     saved = _refine.TILE_PX
     _refine.TILE_PX = TILE
     try:
