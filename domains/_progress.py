@@ -43,6 +43,8 @@ class Progress:
     enabled : bool
         Draw the bar (to stderr) and follow dask computations. When False nothing is
         drawn and nothing is registered with dask.
+    first : str
+        Name of the first step. A ``with`` block closes the bar at its end, also on an error.
 
     Examples
     --------
@@ -54,14 +56,14 @@ class Progress:
     (['level', 'lock-in'], {})
     """
 
-    def __init__(self, total, enabled):
+    def __init__(self, total, enabled, first="level"):
         import time
 
         from tqdm.auto import tqdm
 
         self._clock = time.perf_counter
-        self._name, self._start, self.times, self.tasks = "level", self._clock(), {}, {}
-        self.bar = tqdm(total=total, desc="domains: level", unit="step", disable=not enabled, leave=False)
+        self._name, self._start, self.times, self.tasks = first, self._clock(), {}, {}
+        self.bar = tqdm(total=total, desc=f"domains: {first}", unit="step", disable=not enabled, leave=False)
         self._drawn = 0.0
         self._closed = False
         self._stop = []  # what close() undoes: a callback to unregister, a thread to stop
@@ -79,6 +81,12 @@ class Progress:
             self.bar.set_description(f"domains: {next_step}", refresh=False)
             self.bar.set_postfix_str("", refresh=False)
         self.bar.update(n)
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
 
     def close(self):
         """Close the bar and stop following dask computations (safe to call twice)."""
@@ -253,7 +261,7 @@ def _scheduler_count_function():
     return count
 
 
-def progress(total, enabled):
+def progress(total, enabled, first="level"):
     """A :class:`Progress` of ``total`` steps (hidden when not ``enabled``).
 
     Parameters
@@ -262,6 +270,8 @@ def progress(total, enabled):
         Number of steps.
     enabled : bool
         Draw it.
+    first : str
+        Name of the first step.
 
     Returns
     -------
@@ -273,5 +283,7 @@ def progress(total, enabled):
     >>> bar("drift"); bar.close()
     >>> list(bar.times)
     ['level']
+    >>> with progress(1, enabled=False, first="writing the bundle") as bar:
+    ...     pass
     """
-    return Progress(total, enabled)
+    return Progress(total, enabled, first)

@@ -41,8 +41,8 @@ def _keep_bars(monkeypatch):
     made = []
     original = _progress.progress
 
-    def keep(total, enabled):
-        bar = original(total, enabled)
+    def keep(total, enabled, **kwargs):
+        bar = original(total, enabled, **kwargs)
         made.append(bar)
         return bar
 
@@ -176,3 +176,21 @@ def test_distributed_counts_come_from_the_scheduler(client):
     assert _CALLS["n"] == 16
     assert done == total >= _CALLS["n"]
     del held
+
+
+def test_writing_a_lazy_bundle_is_followed_too(monkeypatch, tmp_path):
+    from domains import io
+
+    made = _keep_bars(monkeypatch)
+    scene = cdw_scene(shape=(256, 256), n_domains=2, rng=3)
+    path = tmp_path / "topo.npy"
+    np.save(path, np.asarray(scene.topography.data, np.float32))
+    (tmp_path / "topo.json").write_text(json.dumps({"pixel_size_nm": list(scene.topography.pixel_size_nm)}))
+    monkeypatch.setattr(io, "LAZY_THRESHOLD_BYTES", 1024)  # this small file is opened lazily
+    pipeline.analyze_files(str(path), config=pipeline.Config(drift=False), out=tmp_path / "bundle", progress=True)
+    names = [bar._name for bar in made]
+    # reference: the flow of analyze_files (analysis, then the bundle; docs of pipeline.analyze_files)
+    assert names == ["done", "writing the bundle"], names
+    # the lazy maps (labels, walls, topograph) are computed while the bundle is written
+    done, total = made[1].tasks["writing the bundle"]
+    assert done == total > 0
