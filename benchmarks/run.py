@@ -345,6 +345,7 @@ def markdown(data):
         workers = r.get("worker_peak_bytes") or []
         lines += ["", f"`domains analyze` of the {n}² store with `--scheduler local:2` (two worker processes "
                       "started for the run): " + _cell(r.get("status", "?"))
+                  + (f" (in: {r['last_step']})" if r.get("status") != "finished" and r.get("last_step") else "")
                   + f", wall {_s(r.get('wall_s'))} s; peak resident memory (each process's own high-water mark): "
                   + ", ".join(f"worker {i + 1} {w / 2**30:.2f} GiB" for i, w in enumerate(workers))
                   + f"; main process {r.get('main_peak_bytes', 0) / 2**30:.2f} GiB; the largest sum at one "
