@@ -148,8 +148,8 @@ def _plus_one_counted(b):
     return b + 1
 
 
-@pytest.fixture(scope="module")
-def client():
+@pytest.fixture
+def client():  # closed after its test: a client left open would take the later tests' computations
     import distributed
 
     with distributed.Client(processes=False, n_workers=1, threads_per_worker=2, dashboard_address=None) as c:
