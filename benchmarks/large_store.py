@@ -6,13 +6,25 @@ domains of the three translational variants (phases from
 block with dask (global coordinates, so blocks join without seams): generating it never needs
 the whole image in memory. It is cached under bench-output/cache.
 
-The analysis is the command a user runs, ``domains analyze STORE --pixel-size 0.1``, in a
+The analysis is the command a user runs, ``domains analyze STORE --pixel-size 0.1 --config
+lazy.toml`` with ``drift = false`` in lazy.toml (the scene has no drift; the drift correction is
+not chunk-wise yet and would compute the whole image in memory; ``--drift`` keeps it), in a
 child process watched every 0.2 s: its resident memory (summed over its own children) is
 sampled, and it is stopped when it passes ``--memory-limit`` or ``--timeout`` (the row then
 says where it was: the last step its progress bar named). A child that finishes also writes
 its own high-water mark (``VmHWM``) at exit, which catches a peak shorter than the sampling.
+The last task count the bar drew (``37/120 tasks``) is kept as well: where a stopped run was
+inside its step.
 
-Used by ``benchmarks/run.py --only store``; alone: ``python benchmarks/large_store.py --size 16384``.
+With ``--scheduler local:N`` the dask work runs in N worker processes started by the run; the
+high-water mark (``VmHWM``) of every process under the child is read at each sample, so the
+peak of each worker is known as well as the sum.
+
+A store below the lazy threshold (4096^2 float32 is 64 MiB) is read whole: the same command
+on it is the in-memory reference for the time per pixel.
+
+Used by ``benchmarks/run.py --only store`` (and ``--only cluster``); alone:
+``python benchmarks/large_store.py --size 16384 [--scheduler local:2]``.
 """
 
 from __future__ import annotations
@@ -93,6 +105,18 @@ def make_store(size, cache):
     return path
 
 
+def _children(pid):
+    """Child processes of ``pid``, started from any of its threads (a local cluster starts its
+    workers from its event-loop thread, so the main thread's list alone misses them)."""
+    found = []
+    for task in Path(f"/proc/{pid}/task").glob("*"):
+        try:
+            found.extend(int(c) for c in (task / "children").read_text().split())
+        except OSError:
+            continue
+    return found
+
+
 def _tree_rss(pid):
     """Resident bytes of a process and its descendants (Linux /proc)."""
     total, todo = 0, [pid]
@@ -103,11 +127,30 @@ def _tree_rss(pid):
                 for line in handle:
                     if line.startswith("VmRSS:"):
                         total += int(line.split()[1]) * 1024
-            with open(f"/proc/{p}/task/{p}/children") as handle:
-                todo.extend(int(c) for c in handle.read().split())
+            todo.extend(_children(p))
         except (FileNotFoundError, ProcessLookupError, PermissionError):
             continue
     return total
+
+
+def _tree_peaks(pid, peaks):
+    """Update ``peaks[pid] = (name, VmHWM bytes)`` for each process under ``pid`` (``pid`` itself included)."""
+    todo = [pid]
+    while todo:
+        p = todo.pop()
+        try:
+            with open(f"/proc/{p}/status") as handle:
+                hwm = next((int(line.split()[1]) * 1024 for line in handle if line.startswith("VmHWM:")), 0)
+            with open(f"/proc/{p}/cmdline", "rb") as handle:
+                name = handle.read().replace(b"\0", b" ").decode(errors="replace")[:120]
+            todo.extend(_children(p))
+        except (FileNotFoundError, ProcessLookupError, PermissionError):
+            continue
+        peaks[p] = (name, max(hwm, peaks.get(p, ("", 0))[1]))
+
+
+#: The configuration of the store runs: the drift correction (not chunk-wise yet) off.
+LAZY_CONFIG = "drift = false\n"
 
 
 def analyse_store(path, size, memory_limit, timeout, work, extra=()):
@@ -120,6 +163,9 @@ def analyse_store(path, size, memory_limit, timeout, work, extra=()):
     shutil.rmtree(out, ignore_errors=True)
     out.mkdir(parents=True)
     hwm = out / "hwm.txt"
+    if "--config" not in extra:
+        (out / "lazy.toml").write_text(LAZY_CONFIG)
+        extra = [*extra, "--config", str(out / "lazy.toml")]
     # The command a user runs, plus an exit hook that writes this process's VmHWM line.
     code = ("import atexit, sys\n"
             f"def _hwm(path={str(hwm)!r}):\n"
@@ -131,11 +177,12 @@ def analyse_store(path, size, memory_limit, timeout, work, extra=()):
                "analyze", str(path), "--pixel-size", str(PIXEL_NM), "--out", str(out / "bundle"), *extra]
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     log = out / "stderr.txt"
-    peak, status, start = 0, "finished", time.perf_counter()
+    peak, status, start, peaks = 0, "finished", time.perf_counter(), {}
     with open(log, "wb") as err:
         child = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=err, env=env, start_new_session=True)
         while child.poll() is None:
             peak = max(peak, _tree_rss(child.pid))
+            _tree_peaks(child.pid, peaks)
             elapsed = time.perf_counter() - start
             if peak > memory_limit or elapsed > timeout:
                 status = (f"stopped at {peak / 2**30:.2f} GiB resident" if peak > memory_limit
@@ -150,10 +197,17 @@ def analyse_store(path, size, memory_limit, timeout, work, extra=()):
         peak = max(peak, int(hwm.read_text().split()[1]) * 1024)
     text = log.read_text(errors="replace")
     steps = re.findall(r"domains: ([^:\r\n]+):", text)
+    counts = re.findall(r"(\d+/\d+ tasks)\]", text)
+    # Processes under the child other than the child itself: dask.distributed workers (a local
+    # cluster's worker processes and their helpers), by their own high-water mark.
+    others = sorted(((hwm, name) for p, (name, hwm) in peaks.items() if p != child.pid), reverse=True)
     if status == "finished" and child.returncode != 0:
         status = f"failed (exit {child.returncode}): {text.strip().splitlines()[-1] if text.strip() else ''}"
     return {"size": size, "status": status, "wall_s": wall, "peak_bytes": peak,
-            "last_step": steps[-1] if steps else None, "log": str(log)}
+            "last_step": steps[-1] if steps else None, "last_tasks": counts[-1] if counts else None,
+            "main_peak_bytes": peaks.get(child.pid, ("", 0))[1],
+            "worker_peak_bytes": [hwm for hwm, name in others if "spawn_main" in name],
+            "others": [[name, hwm] for hwm, name in others][:8], "extra": list(extra), "log": str(log)}
 
 
 def main():
@@ -162,10 +216,17 @@ def main():
     parser.add_argument("--cache", default=str(ROOT / "bench-output" / "cache"))
     parser.add_argument("--memory-limit-gib", type=float, default=6.0)
     parser.add_argument("--timeout", type=float, default=1800)
+    parser.add_argument("--scheduler", default=None, help="passed to domains analyze (e.g. local:2)")
+    parser.add_argument("--drift", action="store_true", help="keep the drift correction (whole image in memory)")
     args = parser.parse_args()
     path = make_store(args.size, args.cache)
-    work = Path(args.cache).parent / f"store-run-{args.size}"
-    print(json.dumps(analyse_store(path, args.size, args.memory_limit_gib * 2**30, args.timeout, work)))
+    extra = ["--scheduler", args.scheduler] if args.scheduler else []
+    if args.drift:
+        extra += ["--config", str(Path(args.cache).parent / "drift-on.toml")]
+        Path(args.cache).parent.joinpath("drift-on.toml").write_text("drift = true\n")
+    tag = f"-{args.scheduler.replace(':', '')}" if args.scheduler else ""
+    work = Path(args.cache).parent / f"store-run-{args.size}{tag}"
+    print(json.dumps(analyse_store(path, args.size, args.memory_limit_gib * 2**30, args.timeout, work, extra)))
 
 
 if __name__ == "__main__":

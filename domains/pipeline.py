@@ -1079,7 +1079,8 @@ def analyze_files(topo, *, maps=(), grid=None, pixel_size_nm=None, config=None, 
                     message = f"{topo}: {message} (found during the analysis; no bundle was written)"
                 raise InputError(message) from err
             inputs = [topo, *maps] + ([grid] if grid else [])
-            return write_analysis(result, out, command_line=list(command_line), inputs=inputs, overwrite=overwrite)
+            with _progress(1, progress, first="writing the bundle"):  # a lazy run's maps are computed here
+                return write_analysis(result, out, command_line=list(command_line), inputs=inputs, overwrite=overwrite)
 
 
 def make_scene(kind, *, seed=7):
