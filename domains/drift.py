@@ -1105,6 +1105,14 @@ class DriftResult:
         return self._field.rows(0, self.shape[0])
 
     @cached_property
+    def residual_phase_points(self):
+        """:attr:`residual_phase_rad` evaluated from the grid's spline only at the pixels indexed
+        (``[..., ::s, ::s]`` or ``[:, rows, cols]``): no full-size array (:class:`_SplineImage`)."""
+        grid = self._field.grid
+        planes, invalid = _rotated_samples(self.lockin_coarse, self.target_phase_rad)
+        return _SplineImage(grid, grid.coefficients(planes), invalid, phase=True)
+
+    @cached_property
     def residual_phase_rad(self) -> np.ndarray:
         """Bragg phases of the corrected image less their targets, wrapped, (k, row, col) float32: the
         spline of the grid's lock-in (real and imaginary parts), its phase at every pixel."""

@@ -479,7 +479,11 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     scratch = None  # a lazy run's scratch folder (domains._scratch)
     lattice_q = spec["bragg_q"]
     # The same drift field straightens every map of the scan.
-    corrected_maps, u = [np.asarray(m.data, float) for m in maps], None
+    # Maps keep their float32 (a float32 map stays float32 through the drift correction; 7 digits are far
+    # beyond the precision of a conductance map); other types become float64.
+    corrected_maps = [np.asarray(m.data, np.float32 if np.asarray(m.data).dtype == np.float32 else float)
+                      for m in maps]
+    u = None
     if drift_result is not None:
         # The drift field on its own decimated grid (it is smooth on the scale of its sigma): no full-size copy.
         u = drift_result.u_coarse_nm
@@ -589,7 +593,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         bragg_phase = None
         if drift_result is not None and commensurate:
             # After correction the Bragg phase is a small residual: safe to scale by the coefficients.
-            bragg_phase = np.nan_to_num(grid_.sample(drift_result.residual_phase_rad))
+            bragg_phase = np.nan_to_num(grid_.sample(drift_result.residual_phase_points))
         state = order.family_order(a_order, groups, coefficients=coefficients, bragg_phase=bragg_phase,
                                    threshold=floor.threshold, trusted=trusted_c,
                                    anisotropy_threshold=config.anisotropy_threshold, family_names=family_names)
@@ -641,7 +645,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
             a_at = np.stack([ndimage.map_coordinates(c.real, where, order=3, mode="nearest")
                              + 1j * ndimage.map_coordinates(c.imag, where, order=3, mode="nearest")
                              for c in a_order])[:, None, :]
-            bp = None if bragg_phase is None else np.nan_to_num(drift_result.residual_phase_rad[:, rows, cols])[:, None, :]
+            bp = None if bragg_phase is None else np.nan_to_num(drift_result.residual_phase_points[:, rows, cols])[:, None, :]
             at = order.family_order(a_at, groups, coefficients=coefficients, bragg_phase=bp, threshold=floor.threshold,
                                     anisotropy_threshold=config.anisotropy_threshold, family_names=family_names,
                                     offsets_rad=state.offsets_rad)
@@ -692,6 +696,8 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         # `fill` is the straightened topograph with its NaN filled, as the bias comparison needs it.
         _bias_step(summary, tables, views, fill, corrected_maps, maps, labels, order_q, sigma_nm,
                    pixel, lattice_q, mask)
+        # After the bias step has freed its filled copies of the maps.
+        _electronic_types_step(summary, tables, views, maps, corrected_maps, labels, order_q, sigma_nm, pixel, mask)
     if grid is not None and kind in ("commensurate", "stripes", "incommensurate"):
         _grid_step(summary, tables, views, grid, labels, order_q, sigma_nm, pixel, mask)
     if kind in ("moire", "none"):
@@ -1241,7 +1247,6 @@ def _bias_step(summary, tables, views, topo, corrected_maps, map_scans, labels, 
     tables["contrast"] = (columns, rows)
     views["bias"] = {"n_components": len(order_q), "unit_token": token,
                      "units": (map_scans[0].metadata or {}).get("units")}
-    _electronic_types_step(summary, tables, views, map_scans, corrected_maps, labels, order_q, sigma_nm, pixel, mask)
 
 
 def _electronic_types_step(summary, tables, views, map_scans, corrected_maps, labels, order_q, sigma_nm, pixel,
