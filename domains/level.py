@@ -649,7 +649,7 @@ TIP_T_MIN = 10.0
 TIP_MIN_RATIO = 1.25
 
 _EDGE_SCALES_PX = (1.0, 2.0)  # smoothing before the gradient: sharp and tip-blurred edges (fixed kernels)
-_WINDOW_ROWS = 8  # rows on each side for the local typical line-to-line roughness
+_WINDOW_ROWS = 8  # steps on each side of an end line for its typical line-to-line roughness
 # Rows on each side, and rank from the top, of the running order statistic that gives the typical
 # value of a glitch statistic (:func:`_local_typical`).
 _TYPICAL_ROWS = 64
@@ -771,18 +771,6 @@ def _row_median(a, sampled=False):
     return out
 
 
-def _local_median(values, half):
-    """Running median over ``2 * half + 1`` entries (mirrored at the ends); NaN entries take the global median."""
-    from scipy.ndimage import median_filter
-
-    v = np.asarray(values, dtype=float)
-    finite = np.isfinite(v)
-    if not finite.any():
-        return v
-    v = np.where(finite, v, np.median(v[finite]))
-    return median_filter(v, size=2 * half + 1, mode="mirror")
-
-
 def _local_typical(values, half=_TYPICAL_ROWS, rank=_TYPICAL_RANK):
     """Running ``rank``-th largest value over ``2 * half + 1`` entries (mirrored at the ends); NaN entries
     take the global median.
@@ -838,10 +826,12 @@ def _glitch_rows(x, floor):
 
     ``x`` holds NaN on masked pixels. A line is glitched when the mean over the line
     of :func:`_sticking_out` exceeds :data:`GLITCH_RATIO` times its typical value
-    within 8 lines, or when more than 2 % of its pixels (and at least 4) stick out
-    by 8 robust standard deviations of the line-to-line differences nearby, and 3
-    times as many as typical. The first and last lines,
-    with one neighbour each, are compared with their neighbour alone.
+    (:func:`_local_typical`: the 4th largest within 64 lines), or when more than 2 % of its
+    pixels (and at least 4) stick out by 8 typical robust standard deviations of the
+    line-to-line differences, and 3 times as many as typical. The first and last lines,
+    with one neighbour each, are compared with their neighbour alone (and with the 4th
+    largest one-sided step among the next 16). Lines found are left out of the typical
+    values and the search repeated (:func:`_glitch_rounds`).
     """
     n, m = x.shape
     if n < 3 or m < 8:
@@ -936,7 +926,7 @@ def _end_counts(row, n, spike_at, exclude=None):
 
 
 def _glitch_thresholds(mean, spread, one_sided, floor):
-    """The typical sticking-out of each line (within 8 lines) and the height above which a pixel is a spike."""
+    """The typical sticking-out of each line (:func:`_local_typical`) and the height above which a pixel is a spike."""
     typical = _local_typical(np.concatenate([[np.nan], mean[1:-1], [np.nan]]))
     typical[0], typical[-1] = one_sided
     typical = np.where(np.isfinite(typical), typical, floor)
@@ -2021,9 +2011,14 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0, terraces=
        line offsets cancel); it *sticks out* by the smaller of the two
        differences when both have one sign, else by 0. A line is glitched when
        its pixels stick out on average :data:`GLITCH_RATIO` times more than
-       typical within 8 lines, or when more than 2 % of them (and 3 times the
-       typical count) stick out by 8 robust standard deviations of the line
-       differences. A step edge or a tip change alters a pixel against one
+       typical, or when more than 2 % of them (and 3 times the typical count)
+       stick out by 8 typical robust standard deviations of the line
+       differences. *Typical* is the 4th largest value within 64 lines, not the
+       median: on a lattice, CDW or moiré the structure itself makes some lines
+       stick out (a line through a row of atoms), and such lines recur within
+       every period shorter than the window, while up to 3 glitched lines in it
+       are still seen; lines found are left out of the typical values and the
+       search repeated. A step edge or a tip change alters a pixel against one
        neighbouring line only, so neither counts; a single spike does not make
        a glitched line.
     2. *Tip changes.* The offset jumps of :func:`line_offsets` ("difference", on
