@@ -653,7 +653,7 @@ _WINDOW_ROWS = 8  # steps on each side of an end line for its typical line-to-li
 # Rows on each side, and rank from the top, of the running order statistic that gives the typical
 # value of a glitch statistic (:func:`_local_typical`).
 _TYPICAL_ROWS = 64
-_TYPICAL_RANK = 4
+_TYPICAL_RANK = 6
 _SPIKE_SIGMAS = 8.0  # a pixel deviating this much (robust sigmas) from its neighbour line is a spike
 _MIN_SPIKE_FRACTION = 0.02  # a spiky line has at least this fraction of its columns spiked
 _MIN_TERRACE_PIXELS = 64
@@ -826,10 +826,10 @@ def _glitch_rows(x, floor):
 
     ``x`` holds NaN on masked pixels. A line is glitched when the mean over the line
     of :func:`_sticking_out` exceeds :data:`GLITCH_RATIO` times its typical value
-    (:func:`_local_typical`: the 4th largest within 64 lines), or when more than 2 % of its
+    (:func:`_local_typical`: the 6th largest within 64 lines), or when more than 2 % of its
     pixels (and at least 4) stick out by 8 typical robust standard deviations of the
     line-to-line differences, and 3 times as many as typical. The first and last lines,
-    with one neighbour each, are compared with their neighbour alone (and with the 4th
+    with one neighbour each, are compared with their neighbour alone (and with the 6th
     largest one-sided step among the next 16). Lines found are left out of the typical
     values and the search repeated (:func:`_glitch_rounds`).
     """
@@ -2013,10 +2013,10 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0, terraces=
        its pixels stick out on average :data:`GLITCH_RATIO` times more than
        typical, or when more than 2 % of them (and 3 times the typical count)
        stick out by 8 typical robust standard deviations of the line
-       differences. *Typical* is the 4th largest value within 64 lines, not the
+       differences. *Typical* is the 6th largest value within 64 lines, not the
        median: on a lattice, CDW or moiré the structure itself makes some lines
        stick out (a line through a row of atoms), and such lines recur within
-       every period shorter than the window, while up to 3 glitched lines in it
+       every period shorter than the window, while up to 5 glitched lines in it
        are still seen; lines found are left out of the typical values and the
        search repeated. A step edge or a tip change alters a pixel against one
        neighbouring line only, so neither counts; a single spike does not make
