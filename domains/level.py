@@ -649,7 +649,11 @@ TIP_T_MIN = 10.0
 TIP_MIN_RATIO = 1.25
 
 _EDGE_SCALES_PX = (1.0, 2.0)  # smoothing before the gradient: sharp and tip-blurred edges (fixed kernels)
-_WINDOW_ROWS = 8  # rows on each side for the local typical line-to-line roughness
+_WINDOW_ROWS = 8  # steps on each side of an end line for its typical line-to-line roughness
+# Rows on each side, and rank from the top, of the running order statistic that gives the typical
+# value of a glitch statistic (:func:`_local_typical`).
+_TYPICAL_ROWS = 64
+_TYPICAL_RANK = 6
 _SPIKE_SIGMAS = 8.0  # a pixel deviating this much (robust sigmas) from its neighbour line is a spike
 _MIN_SPIKE_FRACTION = 0.02  # a spiky line has at least this fraction of its columns spiked
 _MIN_TERRACE_PIXELS = 64
@@ -767,16 +771,27 @@ def _row_median(a, sampled=False):
     return out
 
 
-def _local_median(values, half):
-    """Running median over ``2 * half + 1`` entries (mirrored at the ends); NaN entries take the global median."""
-    from scipy.ndimage import median_filter
+def _local_typical(values, half=_TYPICAL_ROWS, rank=_TYPICAL_RANK):
+    """Running ``rank``-th largest value over ``2 * half + 1`` entries (mirrored at the ends); NaN entries
+    take the global median.
+
+    The typical value of a line statistic for the glitch finder. On a noise-dominated
+    image every line has about the same value and this is close to the running median;
+    on an image with structure along the slow-scan axis (a lattice, a CDW, a moiré) the
+    statistic varies from line to line with the structure itself (a line through a row
+    of atoms sticks out of both neighbours, the line between does not), and the lines
+    that the structure makes roughest recur within every period shorter than ``half``:
+    a clean line is then never rougher than the ``rank``-th roughest line near it, while
+    up to ``rank - 1`` glitched lines within the window are still seen.
+    """
+    from scipy.ndimage import rank_filter
 
     v = np.asarray(values, dtype=float)
     finite = np.isfinite(v)
     if not finite.any():
         return v
     v = np.where(finite, v, np.median(v[finite]))
-    return median_filter(v, size=2 * half + 1, mode="mirror")
+    return rank_filter(v, rank=-min(rank, v.size), size=2 * half + 1, mode="mirror")
 
 
 def _row_mean(a):
@@ -811,10 +826,12 @@ def _glitch_rows(x, floor):
 
     ``x`` holds NaN on masked pixels. A line is glitched when the mean over the line
     of :func:`_sticking_out` exceeds :data:`GLITCH_RATIO` times its typical value
-    within 8 lines, or when more than 2 % of its pixels (and at least 4) stick out
-    by 8 robust standard deviations of the line-to-line differences nearby, and 3
-    times as many as typical. The first and last lines,
-    with one neighbour each, are compared with their neighbour alone.
+    (:func:`_local_typical`: the 6th largest within 64 lines), or when more than 2 % of its
+    pixels (and at least 4) stick out by 8 typical robust standard deviations of the
+    line-to-line differences, and 3 times as many as typical. The first and last lines,
+    with one neighbour each, are compared with their neighbour alone (and with the 6th
+    largest one-sided step among the next 16). Lines found are left out of the typical
+    values and the search repeated (:func:`_glitch_rounds`).
     """
     n, m = x.shape
     if n < 3 or m < 8:
@@ -828,18 +845,50 @@ def _glitch_rows(x, floor):
         s, spread[start:stop] = _sticking_out(x[start:stop], x[start - 1 : stop - 1], x[start + 1 : stop + 1])
         mean[start:stop] = _row_mean(s)
         out[start:stop] = s
-    (mean[0], out[0], top), (mean[-1], out[-1], bottom) = _glitch_ends(lambda r: x[r], n)
-    typical, spike_at = _glitch_thresholds(mean, spread, (top, bottom), floor)
-    count = np.sum(out > spike_at[:, None].astype(np.float32), axis=1).astype(float)
-    del out
-    return _glitch_verdict(mean, typical, count, m, floor)
+    (mean[0], out[0], _), (mean[-1], out[-1], _) = _glitch_ends(lambda r: x[r], n)
+
+    def counts(spike_at):
+        return np.sum(out > spike_at[:, None].astype(np.float32), axis=1).astype(float)
+
+    return _glitch_rounds(mean, spread, lambda r: x[r], counts, m, floor)
+
+
+#: Rounds of :func:`_glitch_rounds` at most.
+_GLITCH_ROUNDS = 4
+
+
+def _glitch_rounds(mean, spread, row, counts, m, floor):
+    """Glitched lines, found in rounds: the typical values of each round leave out the lines found so far.
+
+    ``mean`` and ``spread`` are the per-line sticking-out and difference spread (the end
+    lines' means from :func:`_glitch_ends`), ``row(r)`` gives line r (only the
+    :data:`_END_ROWS` lines at either end are asked for) and ``counts(spike_at)`` the
+    per-line spike counts. A glitched line is left out of the typical values (with the
+    line above it, whose difference to it is garbage), so that several glitched lines
+    within the window of :func:`_local_typical` do not raise it for one another.
+    """
+    n = mean.size
+    glitch = np.zeros(n, bool)
+    for _ in range(_GLITCH_ROUNDS):
+        above = np.zeros(n, bool)
+        above[:-1] = glitch[1:]
+        (_, _, top), (_, _, bottom) = _glitch_ends(row, n, glitch)
+        typical, spike_at = _glitch_thresholds(np.where(glitch, np.nan, mean),
+                                               np.where(glitch | above, np.nan, spread), (top, bottom), floor)
+        count = counts(spike_at)
+        found = glitch | _glitch_verdict(mean, typical, count, m, floor, _end_counts(row, n, spike_at, glitch),
+                                         np.where(glitch, np.nan, count))
+        if (found == glitch).all():
+            break
+        glitch = found
+    return glitch
 
 
 #: Rows at each end of an image that :func:`_glitch_ends` reads.
 _END_ROWS = 2 * _WINDOW_ROWS + 2
 
 
-def _glitch_ends(row, n):
+def _glitch_ends(row, n, exclude=None):
     """The first and last lines, with one neighbour each: (mean, sticking-out values, typical value) of each.
 
     ``row(r)`` returns line r of the image (NaN on masked pixels); only the
@@ -850,26 +899,52 @@ def _glitch_ends(row, n):
         d = row(r) - row(other)
         d = np.abs(d - np.nanmedian(d)) if np.isfinite(d).any() else d
         mean = np.nanmean(d) if np.isfinite(d).any() else np.nan
-        near = range(1, min(n - 1, 2 * _WINDOW_ROWS + 1)) if r == 0 else range(max(0, n - 2 * _WINDOW_ROWS - 2), n - 2)
-        steps = [row(k + 1) - row(k) for k in near]
-        typical_step = [np.nanmean(np.abs(v - np.nanmedian(v))) for v in steps if np.isfinite(v).any()]
-        ends.append((mean, d, np.median(typical_step) if typical_step else np.nan))
+        typical_step = sorted(np.nanmean(v) for v in _near_end_steps(row, n, r, exclude))
+        ends.append((mean, d, typical_step[-min(_TYPICAL_RANK, len(typical_step))] if typical_step else np.nan))
     return ends
 
 
+def _near_end_steps(row, n, r, exclude=None):
+    """|d - median(d)| of the one-sided steps between the lines near end line ``r`` (0 or n - 1),
+    leaving out steps to a line in ``exclude`` (bool per line)."""
+    near = range(1, min(n - 1, 2 * _WINDOW_ROWS + 1)) if r == 0 else range(max(0, n - 2 * _WINDOW_ROWS - 2), n - 2)
+    if exclude is not None:
+        near = [k for k in near if not (exclude[k] or exclude[k + 1])]
+    steps = (row(k + 1) - row(k) for k in near)
+    return [np.abs(v - np.nanmedian(v)) for v in steps if np.isfinite(v).any()]
+
+
+def _end_counts(row, n, spike_at, exclude=None):
+    """Typical spike counts of the first and last lines: the :data:`_TYPICAL_RANK`-th largest count of
+    one-sided steps above ``spike_at`` among the lines near each end (an end line has one neighbour,
+    so its count is compared with one-sided counts, not with the two-sided ones inside)."""
+    out = []
+    for r in (0, n - 1):
+        counts = sorted(float(np.sum(v > spike_at[r])) for v in _near_end_steps(row, n, r, exclude))
+        out.append(counts[-min(_TYPICAL_RANK, len(counts))] if counts else np.nan)
+    return out
+
+
 def _glitch_thresholds(mean, spread, one_sided, floor):
-    """The typical sticking-out of each line (within 8 lines) and the height above which a pixel is a spike."""
-    typical = _local_median(np.concatenate([[np.nan], mean[1:-1], [np.nan]]), _WINDOW_ROWS)
+    """The typical sticking-out of each line (:func:`_local_typical`) and the height above which a pixel is a spike."""
+    typical = _local_typical(np.concatenate([[np.nan], mean[1:-1], [np.nan]]))
     typical[0], typical[-1] = one_sided
     typical = np.where(np.isfinite(typical), typical, floor)
     typical = np.maximum(typical, floor)
-    spike_at = np.maximum(_SPIKE_SIGMAS * _local_median(spread, _WINDOW_ROWS), floor)
+    spike_at = np.maximum(_SPIKE_SIGMAS * _local_typical(spread), floor)
     return typical, spike_at
 
 
-def _glitch_verdict(mean, typical, count, m, floor):
-    """Glitched lines from their mean sticking-out and their count of spikes (see :func:`_glitch_rows`)."""
-    typical_count = _local_median(count, _WINDOW_ROWS)
+def _glitch_verdict(mean, typical, count, m, floor, end_counts=None, others=None):
+    """Glitched lines from their mean sticking-out and their count of spikes (see :func:`_glitch_rows`).
+
+    ``end_counts``: typical counts of the first and last lines (:func:`_end_counts`);
+    ``others``: the counts the typical count is taken from (default ``count``)."""
+    others = count if others is None else others
+    typical_count = _local_typical(np.concatenate([[np.nan], others[1:-1], [np.nan]]))
+    if end_counts is not None:
+        typical_count[0] = end_counts[0] if np.isfinite(end_counts[0]) else typical_count[0]
+        typical_count[-1] = end_counts[1] if np.isfinite(end_counts[1]) else typical_count[-1]
     min_spikes = max(4.0, _MIN_SPIKE_FRACTION * m)
     rough = np.where(np.isfinite(mean), mean > GLITCH_RATIO * typical + floor, False)
     spiky = count > np.maximum(GLITCH_RATIO * typical_count, typical_count + min_spikes)
@@ -1718,12 +1793,15 @@ def _level_lazy(image, mask, order, lines, jump_threshold, terraces=False, glitc
         ends = np.unique(np.r_[0:min(n, _END_ROWS), max(0, n - _END_ROWS):n])
         end_rows = dict(zip(ends.tolist(), _row_numbers(x0, ends)))
         mean, spread = stats[:, 5].copy(), stats[:, 6].copy()
-        (mean[0], d0, top), (mean[-1], d1, bottom) = _glitch_ends(end_rows.__getitem__, n)
-        typical, spike_at = _glitch_thresholds(mean, spread, (top, bottom), floor)
-        count = _row_pass(_spike_pass, img, user, {"dtype": dtype, "n": n, "spike_at": spike_at}, 1, halo=1)[:, 0]
-        count[0] = np.sum(np.asarray(d0, np.float32) > np.float32(spike_at[0]))
-        count[-1] = np.sum(np.asarray(d1, np.float32) > np.float32(spike_at[-1]))
-        glitch = _glitch_verdict(mean, typical, count, m, floor)
+        (mean[0], d0, _), (mean[-1], d1, _) = _glitch_ends(end_rows.__getitem__, n)
+
+        def counts(spike_at):  # one more read of the image per round
+            count = _row_pass(_spike_pass, img, user, {"dtype": dtype, "n": n, "spike_at": spike_at}, 1, halo=1)[:, 0]
+            count[0] = np.sum(np.asarray(d0, np.float32) > np.float32(spike_at[0]))
+            count[-1] = np.sum(np.asarray(d1, np.float32) > np.float32(spike_at[-1]))
+            return count
+
+        glitch = _glitch_rounds(mean, spread, end_rows.__getitem__, counts, m, floor)
     valid_rows = has & ~glitch
 
     # 3. Tip changes, from the roughness of the lines and the steps between consecutive trusted ones.
@@ -1933,9 +2011,14 @@ def level(scan, *, order=1, lines=None, warn=True, jump_threshold=5.0, terraces=
        line offsets cancel); it *sticks out* by the smaller of the two
        differences when both have one sign, else by 0. A line is glitched when
        its pixels stick out on average :data:`GLITCH_RATIO` times more than
-       typical within 8 lines, or when more than 2 % of them (and 3 times the
-       typical count) stick out by 8 robust standard deviations of the line
-       differences. A step edge or a tip change alters a pixel against one
+       typical, or when more than 2 % of them (and 3 times the typical count)
+       stick out by 8 typical robust standard deviations of the line
+       differences. *Typical* is the 6th largest value within 64 lines, not the
+       median: on a lattice, CDW or moiré the structure itself makes some lines
+       stick out (a line through a row of atoms), and such lines recur within
+       every period shorter than the window, while up to 5 glitched lines in it
+       are still seen; lines found are left out of the typical values and the
+       search repeated. A step edge or a tip change alters a pixel against one
        neighbouring line only, so neither counts; a single spike does not make
        a glitched line.
     2. *Tip changes.* The offset jumps of :func:`line_offsets` ("difference", on
