@@ -6,10 +6,9 @@ domains of the three translational variants (phases from
 block with dask (global coordinates, so blocks join without seams): generating it never needs
 the whole image in memory. It is cached under bench-output/cache.
 
-The analysis is the command a user runs, ``domains analyze STORE --pixel-size 0.1 --config
-lazy.toml`` with ``drift = false`` in lazy.toml (the scene has no drift; the drift correction is
-not chunk-wise yet and would compute the whole image in memory; ``--drift`` keeps it), in a
-child process watched every 0.2 s: its resident memory (summed over its own children) is
+The analysis is the command a user runs, ``domains analyze STORE --pixel-size 0.1`` (default
+configuration: the drift correction runs chunk by chunk too; ``--no-drift`` adds a configuration
+with ``drift = false``), in a child process watched every 0.2 s: its resident memory (summed over its own children) is
 sampled, and it is stopped when it passes ``--memory-limit`` or ``--timeout`` (the row then
 says where it was: the last step its progress bar named). A child that finishes also writes
 its own high-water mark (``VmHWM``) at exit, which catches a peak shorter than the sampling.
@@ -149,8 +148,8 @@ def _tree_peaks(pid, peaks):
         peaks[p] = (name, max(hwm, peaks.get(p, ("", 0))[1]))
 
 
-#: The configuration of the store runs: the drift correction (not chunk-wise yet) off.
-LAZY_CONFIG = "drift = false\n"
+#: The configuration of the store runs with ``--no-drift``.
+NO_DRIFT_CONFIG = "drift = false\n"
 
 
 def analyse_store(path, size, memory_limit, timeout, work, extra=()):
@@ -163,9 +162,6 @@ def analyse_store(path, size, memory_limit, timeout, work, extra=()):
     shutil.rmtree(out, ignore_errors=True)
     out.mkdir(parents=True)
     hwm = out / "hwm.txt"
-    if "--config" not in extra:
-        (out / "lazy.toml").write_text(LAZY_CONFIG)
-        extra = [*extra, "--config", str(out / "lazy.toml")]
     # The command a user runs, plus an exit hook that writes this process's VmHWM line.
     code = ("import atexit, sys\n"
             f"def _hwm(path={str(hwm)!r}):\n"
@@ -217,13 +213,13 @@ def main():
     parser.add_argument("--memory-limit-gib", type=float, default=6.0)
     parser.add_argument("--timeout", type=float, default=1800)
     parser.add_argument("--scheduler", default=None, help="passed to domains analyze (e.g. local:2)")
-    parser.add_argument("--drift", action="store_true", help="keep the drift correction (whole image in memory)")
+    parser.add_argument("--no-drift", action="store_true", help="run with drift = false")
     args = parser.parse_args()
     path = make_store(args.size, args.cache)
     extra = ["--scheduler", args.scheduler] if args.scheduler else []
-    if args.drift:
-        extra += ["--config", str(Path(args.cache).parent / "drift-on.toml")]
-        Path(args.cache).parent.joinpath("drift-on.toml").write_text("drift = true\n")
+    if args.no_drift:
+        extra += ["--config", str(Path(args.cache).parent / "no-drift.toml")]
+        Path(args.cache).parent.joinpath("no-drift.toml").write_text(NO_DRIFT_CONFIG)
     tag = f"-{args.scheduler.replace(':', '')}" if args.scheduler else ""
     work = Path(args.cache).parent / f"store-run-{args.size}{tag}"
     print(json.dumps(analyse_store(path, args.size, args.memory_limit_gib * 2**30, args.timeout, work, extra)))

@@ -20,7 +20,7 @@ scaling  the same whole run for each of ``--sizes`` (default 512,1024,2048,4096)
          fresh process: time and peak memory versus N, and the exponent p of CPU time ~ pixels^p
          (N log N gives p just above 1).
 store    16384^2 and 32768^2 float32 zarr stores (1 and 4 GiB) through ``domains analyze``
-         with ``drift = false`` (the drift correction is not chunk-wise yet), watched: peak
+         (default configuration, drift corrected chunk by chunk), watched: peak
          resident memory (targets 1.5 and 2 GiB) and time per pixel against the same command
          on a 4096^2 store of the same scene, which is read whole (in memory) (target <= 2x)
          (benchmarks/large_store.py). The 32768^2 run is stopped at the memory limit today
@@ -315,8 +315,8 @@ def markdown(data):
     stores = data.get("store") or {}
     reference = data.get("store_reference")
     if stores or reference:
-        lines += ["", "Larger than memory: `domains analyze STORE.zarr` with `drift = false` (float32 3×3 CDW "
-                      "scene without drift; the drift correction is not chunk-wise yet), watched; the "
+        lines += ["", "Larger than memory: `domains analyze STORE.zarr` (default configuration; float32 3×3 CDW "
+                      "scene, drift corrected chunk by chunk), watched; the "
                       f"{STORE_REFERENCE_SIZE}² store of the same scene is read whole (in memory) and is the "
                       "reference of the time per pixel:", "",
                   "| N | store | status | wall (s) | µs per pixel | peak resident (GiB) | target (GiB) | "
