@@ -507,12 +507,12 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
     if lazy:
         import dask.array as da
 
-        from ._scratch import Scratch, checkpoint
+        from ._scratch import checkpoint
 
         trusted_c, trusted_fraction = _refine.trusted_on_grid(grid_, sigma_nm, pixel, _thick(mask))
         # The straightened image is read by every lock-in, the noise floor and the bundle: computed once
         # into a scratch store, not recomputed from the input store on every read.
-        scratch = found["scratch"] or Scratch()
+        scratch = found["scratch"]  # made by find_order for every lazy run
         corrected = checkpoint(corrected, scratch, "corrected")
         finite_mean = float(da.nanmean(corrected).compute())
         fill = da.where(da.isfinite(corrected), corrected, finite_mean)
