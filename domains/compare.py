@@ -2020,21 +2020,29 @@ def _contrast_geometry(labels, bad, *, sigma_nm, pixel, margin_sigma, band_sigma
 
 
 def _upsample(coarse, shape, step):
-    """Linear interpolation from the samples at (s m, s n) to every pixel (constant beyond the last sample)."""
+    """Linear interpolation from the samples at (s m, s n) to every pixel (constant beyond the last sample).
+
+    Separable: along the columns, then along the rows, each output value from its two
+    neighbouring samples (two gathers and a weighted sum per axis, no interpolation matrix).
+    """
     if step == 1:
         return coarse
 
-    def matrix(n, m):
+    def weights(n, m):
         x = np.arange(n) / step
         i0 = np.minimum(np.floor(x).astype(np.int64), m - 1)
         i1 = np.minimum(i0 + 1, m - 1)
         t = np.clip(x - i0, 0.0, 1.0).astype(coarse.dtype)
-        R = np.zeros((n, m), dtype=coarse.dtype)
-        np.add.at(R, (np.arange(n), i0), 1 - t)
-        np.add.at(R, (np.arange(n), i1), t)
-        return R
+        return i0, i1, t
 
-    return matrix(shape[0], coarse.shape[0]) @ (coarse @ matrix(shape[1], coarse.shape[1]).T)
+    r0, r1, tr = weights(shape[0], coarse.shape[0])
+    c0, c1, tc = weights(shape[1], coarse.shape[1])
+    cols = coarse[:, c0] * (1 - tc)
+    cols += coarse[:, c1] * tc
+    out = cols[r0]
+    out *= (1 - tr)[:, None]
+    out += cols[r1] * tr[:, None]
+    return out
 
 
 def _electronic_fields(image, scale, bad, *, sigma_nm, pixel, step, q):
