@@ -3063,12 +3063,18 @@ def electronic_types(contrast, *, alpha=TYPES_ALPHA, gain_tolerance=GAIN_TOLERAN
         u[idx] = area[idx] / area[idx].sum()
         return u
 
+    V = np.array(values).reshape(nf, nd)
+    Cs = np.array(covs).reshape(nf, nd, nd)
+
     def max_z(g, h):
+        # Every feature at once (a grid has hundreds): |u.v| / sqrt(u C u + (tol max(|ug.v|, |uh.v|))^2).
+        if not nf:
+            return 0.0
         ug, uh = weights(g), weights(h)
         u = ug - uh
-        zs = [abs(u @ v) / math.sqrt(max(u @ C @ u + (tol * max(abs(ug @ v), abs(uh @ v))) ** 2, 1e-300))
-              for v, C in zip(values, covs)]
-        return max(zs) if zs else 0.0
+        var = np.matmul(u, Cs) @ u
+        gain = tol * np.maximum(np.abs(V @ ug), np.abs(V @ uh))
+        return float(np.max(np.abs(V @ u) / np.sqrt(np.maximum(var + gain**2, 1e-300))))
 
     groups = [[i] for i in range(nd)]
     if p_hom >= alpha or nf == 0:
