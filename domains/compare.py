@@ -1230,7 +1230,13 @@ def _check_grid(grid, energies_V, labels, mask):
     energies = np.asarray(energies_V, dtype=float).reshape(-1)
     if energies.size != grid.shape[0] or not np.all(np.isfinite(energies)):
         raise InputError(f"energies_V must hold {grid.shape[0]} finite values (one per slice), got {energies.size}")
-    return grid, energies, _labels(labels, grid.shape[1:]), _mask(mask, grid.shape[1:])
+    shape = grid.shape[1:]
+    given = np.asarray(labels)
+    if given.dtype == np.int32 and given.shape == tuple(shape) and (given.size == 0 or given.min() >= 0):
+        # int32 labels (what the pipeline writes) are used as they are: an int64 copy would be two float32
+        # slices of memory for nothing (every count and index below is taken in int64 or intp).
+        return grid, energies, given, _mask(mask, shape)
+    return grid, energies, _labels(labels, shape), _mask(mask, shape)
 
 
 def _fingerprint_geometry(labels, bad, *, sigma_nm, pixel, margin_sigma):
@@ -2146,7 +2152,9 @@ def _upsample(coarse, shape, step):
     cols += coarse[:, c1] * tc
     out = cols[r0]
     out *= (1 - tr)[:, None]
-    out += cols[r1] * tr[:, None]
+    far = cols[r1]  # two full-size arrays at most
+    far *= tr[:, None]
+    out += far
     return out
 
 
