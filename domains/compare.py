@@ -1220,7 +1220,8 @@ _GRID_BLOCK_BYTES = 256 * 2**20
 
 
 def _check_grid(grid, energies_V, labels, mask):
-    """The grid (numpy, or dask kept lazy), its energies (float, one per slice), labels (int64) and mask, checked."""
+    """The grid (numpy, or dask kept lazy), its energies (float, one per slice), labels (int32 kept, other integer
+    types as int64) and mask, checked."""
     if not _is_dask(grid):
         grid = np.asarray(grid)
     if grid.ndim != 3:
