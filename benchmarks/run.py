@@ -27,6 +27,11 @@ store    16384^2 and 32768^2 float32 zarr stores (1 and 4 GiB) through ``domains
          (and would take hours on 2 cores): BENCH_SKIP_32768=1 in the environment leaves it out.
 cluster  (not in the default set) an 8192^2 store through ``domains analyze --scheduler local:2``:
          the peak resident memory of each worker process and of the main process.
+grid     the grid step (``pipeline._grid_step``: fingerprints, electronic contrast, types) on a
+         zarr grid of ``--grid-energies`` float32 slices of each of ``--grid-sizes``, per slice,
+         against the per-map work of the bias comparison on one image of the same size, in one
+         fresh process per size: CPU ratio (target <= 1.5) and the peak memory of the step in
+         slices (benchmarks/grid_slices.py).
 
 Writes bench-output/bench.md (and bench.json) and prints the table; ``--update-readme``
 also puts it in the "Benchmarks" section of README.md. Examples::
@@ -37,6 +42,7 @@ also puts it in the "Benchmarks" section of README.md. Examples::
     python benchmarks/run.py --only run,scaling --sizes 512,1024 --run-size 1024
     python benchmarks/run.py --only store --store-sizes 16384
     python benchmarks/run.py --only cluster
+    python benchmarks/run.py --only grid --grid-sizes 512,1024 --grid-energies 32
 """
 
 from __future__ import annotations
@@ -56,8 +62,8 @@ HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 sys.path.insert(0, str(ROOT))  # measure this checkout (benchmarks/ itself is sys.path[0])
 
-CASES = ("startup", "kernel", "run", "scaling", "store", "cluster")
-DEFAULT_CASES = ("startup", "kernel", "run", "scaling", "store")
+CASES = ("startup", "kernel", "run", "scaling", "store", "cluster", "grid")
+DEFAULT_CASES = ("startup", "kernel", "run", "scaling", "store", "grid")
 #: The in-memory reference of the store case: a store of the same scene small enough to be read whole.
 STORE_REFERENCE_SIZE = 4096
 #: Set (to anything but "" or "0") to leave the 32768^2 store out of the store case.
@@ -234,6 +240,32 @@ def store(sizes, cache, memory_limit_gib, timeout, scheduler=None):
     return results
 
 
+# ------------------------------------------------------------------------------------------ grid
+
+
+def grid_slices(sizes, energies, cache, repeat=3):
+    """The grid step per slice against one image's per-map work, one fresh process per size
+    (benchmarks/grid_slices.py); table rows and notes."""
+    rows, notes, results = [], [], {}
+    for size in sizes:
+        _say(f"grid: {energies} slices of {size}^2 (zarr, written once) in a fresh process")
+        command = [sys.executable, str(HERE / "grid_slices.py"), "--size", str(size), "--energies", str(energies),
+                   "--cache", str(cache), "--repeat", str(repeat)]
+        done = subprocess.run(command, capture_output=True, text=True, env=_env())
+        if done.returncode != 0:
+            notes.append(f"grid {size}²: error: " + (done.stderr.strip().splitlines() or ["?"])[-1])
+            continue
+        r = json.loads(done.stdout.strip().splitlines()[-1])
+        results[size] = r
+        rows.append((f"grid step per slice, {energies} × {size}² float32 zarr grid (chunks of {r['chunk']} "
+                     f"energies), CPU vs the bias comparison's per-map work on one {size}² image",
+                     r["per_slice_cpu_s"], r["one_image_cpu_s"], 1.5))
+        notes.append(f"grid {size}²: peak memory of the grid step {r['grid_peak_bytes'] / MIB:.0f} MiB = "
+                     f"{r['grid_peak_slices']:.1f} float32 slices (the grid holds {energies}); one image's work "
+                     f"{r['one_image_peak_slices']:.1f} slices (tracemalloc)")
+    return rows, notes, results
+
+
 # ------------------------------------------------------------------------------------------ report
 
 
@@ -406,6 +438,9 @@ def main(argv=None):
     parser.add_argument("--store-memory-limit-gib", type=float, default=8.0,
                         help="stop a store run above this resident memory (default 8)")
     parser.add_argument("--repeat", type=int, default=3, help="best of this many runs for the kernel (default 3)")
+    parser.add_argument("--grid-sizes", type=_sizes, default=[512, 1024], metavar="N,N,...",
+                        help="slice sizes of the grid case (default 512,1024)")
+    parser.add_argument("--grid-energies", type=int, default=32, help="slices of the grid case (default 32)")
     parser.add_argument("--timeout", type=float, default=1500, help="seconds allowed to one whole run (default 1500)")
     parser.add_argument("--memory-limit-gib", type=float, default=None,
                         help="stop a whole run above this resident memory (default 60%% of the machine's)")
@@ -475,6 +510,10 @@ def main(argv=None):
         reference = store([STORE_REFERENCE_SIZE], cache, args.store_memory_limit_gib, args.store_timeout)
         data["store_reference"] = reference[STORE_REFERENCE_SIZE]
         data["store"] = store(args.store_sizes, cache, args.store_memory_limit_gib, args.store_timeout)
+    if "grid" in args.only:
+        rows, notes, data["grid"] = grid_slices(args.grid_sizes, args.grid_energies, cache, repeat=args.repeat)
+        data["rows"] += rows
+        data["notes"] += notes
     if "cluster" in args.only:
         data["cluster"] = store([args.cluster_size], cache, args.store_memory_limit_gib, args.store_timeout,
                                 scheduler="local:2")

@@ -1149,11 +1149,13 @@ def grid_fingerprints(grid, energies_V, labels, q, *, sigma_nm, pixel_size_nm, m
                       progress=False):
     """Per-domain order amplitude and phase at every energy of a grid (energy, row, col).
 
-    Each energy slice is demodulated on its own (spatial lock-in [1]_, float
-    precision kept) and averaged over each domain's interior at every s-th pixel,
+    Each energy slice is demodulated on its own (spatial lock-in [1]_, in float32)
+    and averaged over each domain's interior at every s-th pixel,
     s = :func:`domains.lossless_step` (about 0.6 sigma: the lock-in field is smooth
-    on the scale sigma and exact there); a dask grid is read one chunk of energies
-    at a time and never held whole in memory.
+    on the scale sigma and exact there). The interiors are computed once for
+    every slice. A dask grid is computed a few slices at a time (its energy chunks,
+    cut to at most 4 slices and 256 MiB) and never held whole in memory; each slice
+    is reduced to a few numbers per domain and dropped.
 
     Parameters
     ----------
@@ -1204,8 +1206,23 @@ def grid_fingerprints(grid, energies_V, labels, q, *, sigma_nm, pixel_size_nm, m
     pixel_size = pixel_size_pair(pixel_size_nm)
     sigma_nm = positive(sigma_nm, "sigma_nm")
     q = _q(q)
-    lazy = _is_dask(grid)
-    if not lazy:
+    grid, energies, labels, bad = _check_grid(grid, energies_V, labels, mask)
+    fg = _fingerprint_geometry(labels, bad, sigma_nm=sigma_nm, pixel=pixel_size, margin_sigma=margin_sigma)
+    amp, ph, _, _ = _grid_pass(grid, energies.size, bad, q=q, sigma_nm=sigma_nm, pixel=pixel_size, fingerprint=fg,
+                               progress=progress)
+    return Fingerprints(energies, fg["ids"], amp, ph, fg["counts"])
+
+
+#: A dask grid is computed at most this many slices at a time, and at most _GRID_BLOCK_BYTES (but at least one
+#: slice): the memory of a block stays that of a few slices whatever the grid's length or its stored chunks.
+_GRID_BLOCK_SLICES = 4
+_GRID_BLOCK_BYTES = 256 * 2**20
+
+
+def _check_grid(grid, energies_V, labels, mask):
+    """The grid (numpy, or dask kept lazy), its energies (float, one per slice), labels (int32 kept, other integer
+    types as int64) and mask, checked."""
+    if not _is_dask(grid):
         grid = np.asarray(grid)
     if grid.ndim != 3:
         raise InputError(f"grid must be 3-D (energy, row, col), got shape {tuple(grid.shape)}")
@@ -1214,52 +1231,147 @@ def grid_fingerprints(grid, energies_V, labels, q, *, sigma_nm, pixel_size_nm, m
     energies = np.asarray(energies_V, dtype=float).reshape(-1)
     if energies.size != grid.shape[0] or not np.all(np.isfinite(energies)):
         raise InputError(f"energies_V must hold {grid.shape[0]} finite values (one per slice), got {energies.size}")
-    labels = _labels(labels, grid.shape[1:])
-    bad = _mask(mask, grid.shape[1:])
-    step = _working_step(sigma_nm, pixel_size)
+    shape = grid.shape[1:]
+    given = np.asarray(labels)
+    if given.dtype == np.int32 and given.shape == tuple(shape) and (given.size == 0 or given.min() >= 0):
+        # int32 labels (what the pipeline writes) are used as they are: an int64 copy would be two float32
+        # slices of memory for nothing (every count and index below is taken in int64 or intp).
+        return grid, energies, given, _mask(mask, shape)
+    return grid, energies, _labels(labels, shape), _mask(mask, shape)
+
+
+def _fingerprint_geometry(labels, bad, *, sigma_nm, pixel, margin_sigma):
+    """What every slice's fingerprint needs, computed once: the interior pixels on the working grid, their
+    labels, the domains and their interior pixel counts (in input pixels)."""
+    step = _working_step(sigma_nm, pixel)
     labels_c, bad_c = _decimate(labels, bad, step)
-    pc = (pixel_size[0] * step, pixel_size[1] * step)
+    pc = (pixel[0] * step, pixel[1] * step)
     interior = _interior_labels(labels_c, sigma_nm=sigma_nm, pixel_size=pc, mask=bad_c, margin_sigma=margin_sigma)
     ids = _label_ids(labels)
-    n = int(labels.max()) + 1
+    n = int(labels.max()) + 1 if labels.size else 1
     flat = interior.ravel()
-    sel = flat > 0
+    sel = np.flatnonzero(flat > 0)
     idx = flat[sel]
-    k = q.shape[0]
-    amp = np.full((ids.size, energies.size, k), np.nan)
-    ph = np.full((ids.size, energies.size, k), np.nan)
-    for e, image in _grid_slices(grid, energies.size, progress):
-        a = lockin(image, q, sigma_nm=sigma_nm, pixel_size_nm=pixel_size, mask=bad, step=step)
-        for j in range(k):
-            z = a[j].ravel()[sel]
-            ok = np.isfinite(z)
-            c = np.bincount(idx[ok], minlength=n)
-            with np.errstate(invalid="ignore", divide="ignore"):
-                amp[:, e, j] = (2 * _sums(idx[ok], np.abs(z[ok]), n) / c)[ids]
-            s = _sums(idx[ok], z[ok].real, n) + 1j * _sums(idx[ok], z[ok].imag, n)
-            ph[:, e, j] = np.where(c[ids] > 0, np.angle(s[ids]), np.nan)
-    counts = np.bincount(idx, minlength=n)[ids] * step * step
-    return Fingerprints(energies, ids, amp, ph, counts)
+    return {"ids": ids, "n": n, "sel": sel, "idx": idx, "counts": np.bincount(idx, minlength=n)[ids] * step * step}
+
+
+def _fingerprint_row(a, fg):
+    """Per domain and component, the mean amplitude 2|A_j| over the interior and the phase of sum A_j: (N, k) each."""
+    n, ids, sel, idx = fg["n"], fg["ids"], fg["sel"], fg["idx"]
+    k = a.shape[0]
+    amp = np.full((ids.size, k), np.nan)
+    ph = np.full((ids.size, k), np.nan)
+    for j in range(k):
+        z = a[j].ravel()[sel]
+        ok = np.isfinite(z)
+        c = np.bincount(idx[ok], minlength=n)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            amp[:, j] = (2 * _sums(idx[ok], np.abs(z[ok]), n) / c)[ids]
+        s = _sums(idx[ok], z[ok].real, n) + 1j * _sums(idx[ok], z[ok].imag, n)
+        ph[:, j] = np.where(c[ids] > 0, np.angle(s[ids]), np.nan)
+    return amp, ph
+
+
+def _grid_pass(grid, n_energies, bad, *, q, sigma_nm, pixel, fingerprint=None, geo=None, amplitude=False,
+               progress=False):
+    """One pass over the slices of a grid, each read once, demodulated once and reduced at once.
+
+    Every slice gives its smoothed map and lock-in fields on the working grid
+    (:func:`_slice_fields`); they are reduced to the fingerprint
+    (with ``fingerprint``, :func:`_fingerprint_geometry`) and to the rows of the conductance
+    and, with ``amplitude``, order-amplitude contrast sets (with ``geo``,
+    :func:`_contrast_geometry`), and dropped: what is held across the slices is a few numbers
+    per domain, wall and slice. The geometries are computed once by the caller.
+
+    Returns
+    -------
+    amp, ph : (N, E, k) arrays or None
+        The fingerprint's amplitudes and phases.
+    cond, amps : lists of dict
+        :func:`_field_stats` of each slice's smoothed map and order amplitude (empty without ``geo``).
+    """
+    step = _working_step(sigma_nm, pixel)
+    amp = ph = None
+    if fingerprint is not None:
+        amp = np.full((fingerprint["ids"].size, n_energies, q.shape[0]), np.nan)
+        ph = np.full_like(amp, np.nan)
+    cond, amps = [], []
+    for e, image in _grid_slices(grid, n_energies, progress):
+        smooth, raw, detrended = _slice_fields(image, bad, sigma_nm=sigma_nm, pixel=pixel, step=step,
+                                               fingerprint_q=q if fingerprint is not None else None,
+                                               amplitude_q=q if amplitude else None)
+        del image
+        if fingerprint is not None:
+            amp[:, e], ph[:, e] = _fingerprint_row(raw, fingerprint)
+        if geo is not None:
+            cond.append(_field_stats(smooth, geo))
+            if amplitude:
+                amps.append(_field_stats(_total_amplitude(detrended), geo))
+    return amp, ph, cond, amps
+
+
+def _slice_fields(image, bad, *, sigma_nm, pixel, step, fingerprint_q=None, amplitude_q=None):
+    """One slice's fields on the working grid, in float32: the smoothed map, the lock-in fields at
+    ``fingerprint_q`` of the slice as it is (the fingerprints), and at ``amplitude_q`` of the slice less
+    its smoothed map (the electronic contrast's order amplitude, as :func:`_electronic_fields`).
+
+    The smoothed map (the lock-in at q = 0) and the fingerprint's lock-in share one forward FFT
+    (one call at every wavevector; each wavevector's result is the one it has alone).
+    """
+    img = np.array(image, dtype=np.float32)
+    mask = bad if bad.any() else None
+    kw = dict(sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask, step=step)
+    if fingerprint_q is None:
+        a = lockin(img, (0.0, 0.0), **kw)[None]
+    else:
+        a = lockin(img, np.vstack([np.zeros((1, 2)), fingerprint_q]), **kw)
+    smooth = np.asarray(a[0].real, dtype=float)
+    raw = a[1:] if fingerprint_q is not None else None
+    del a
+    if amplitude_q is None:
+        return smooth, raw, None
+    finite = np.isfinite(smooth)
+    filled = np.where(finite, smooth, smooth[finite].mean() if finite.any() else 0.0).astype(np.float32)
+    img -= _upsample(filled, img.shape, step)
+    return smooth, raw, lockin(img, amplitude_q, **kw)
+
+
+def _grid_blocks(chunks, slice_bytes):
+    """(start, stop) of the energy blocks read at once: the grid's energy chunks, cut into blocks of at most
+    _GRID_BLOCK_SLICES slices and _GRID_BLOCK_BYTES (at least one slice)."""
+    most = max(1, min(_GRID_BLOCK_SLICES, _GRID_BLOCK_BYTES // max(slice_bytes, 1)))
+    out, start = [], 0
+    for size in chunks:
+        for b in range(start, start + size, most):
+            out.append((b, min(b + most, start + size)))
+        start += size
+    return out
 
 
 def _grid_slices(grid, n_energies, progress):
-    """(index, slice) of a grid, in order; a dask grid is read one chunk of energies at a time
-    (a chunk holds a few slices), so each stored chunk is read once and the whole grid never
-    sits in memory."""
+    """(index, slice) of a grid, in order. A dask grid is computed one block of energies at a time: its
+    own energy chunks, cut to at most a few slices (:func:`_grid_blocks`), so each stored chunk is read
+    once when it is that small, and the whole grid never sits in memory; a block is dropped before the
+    next is read."""
     from tqdm import tqdm
 
-    lazy = _is_dask(grid)
-    bounds = np.cumsum((0,) + tuple(grid.chunks[0])) if lazy else None
-    block, block_start = None, None
-    for e in tqdm(range(n_energies), disable=(not progress) if progress is not None else None,
-                  desc="energies", unit="slice"):
-        if not lazy:
-            yield e, np.asarray(grid[e])
-            continue
-        c = int(np.searchsorted(bounds, e, side="right")) - 1
-        if block_start != bounds[c]:
-            block, block_start = np.asarray(grid[bounds[c]:bounds[c + 1]].compute()), bounds[c]
-        yield e, block[e - block_start]
+    bar = tqdm(total=n_energies, disable=(not progress) if progress is not None else None, desc="energies",
+               unit="slice")
+    try:
+        if not _is_dask(grid):
+            for e in range(n_energies):
+                yield e, np.asarray(grid[e])
+                bar.update()
+            return
+        slice_bytes = int(np.prod(grid.shape[1:])) * grid.dtype.itemsize
+        for b0, b1 in _grid_blocks(grid.chunks[0], slice_bytes):
+            block = np.asarray(grid[b0:b1].compute())
+            for e in range(b0, b1):
+                yield e, block[e - b0]
+                bar.update()
+            del block
+    finally:
+        bar.close()
 
 
 def fingerprint_peaks(fingerprints, *, component=None):
@@ -2020,21 +2132,31 @@ def _contrast_geometry(labels, bad, *, sigma_nm, pixel, margin_sigma, band_sigma
 
 
 def _upsample(coarse, shape, step):
-    """Linear interpolation from the samples at (s m, s n) to every pixel (constant beyond the last sample)."""
+    """Linear interpolation from the samples at (s m, s n) to every pixel (constant beyond the last sample).
+
+    Separable: along the columns, then along the rows, each output value from its two
+    neighbouring samples (two gathers and a weighted sum per axis, no interpolation matrix).
+    """
     if step == 1:
         return coarse
 
-    def matrix(n, m):
+    def weights(n, m):
         x = np.arange(n) / step
         i0 = np.minimum(np.floor(x).astype(np.int64), m - 1)
         i1 = np.minimum(i0 + 1, m - 1)
         t = np.clip(x - i0, 0.0, 1.0).astype(coarse.dtype)
-        R = np.zeros((n, m), dtype=coarse.dtype)
-        np.add.at(R, (np.arange(n), i0), 1 - t)
-        np.add.at(R, (np.arange(n), i1), t)
-        return R
+        return i0, i1, t
 
-    return matrix(shape[0], coarse.shape[0]) @ (coarse @ matrix(shape[1], coarse.shape[1]).T)
+    r0, r1, tr = weights(shape[0], coarse.shape[0])
+    c0, c1, tc = weights(shape[1], coarse.shape[1])
+    cols = coarse[:, c0] * (1 - tc)
+    cols += coarse[:, c1] * tc
+    out = cols[r0]
+    out *= (1 - tr)[:, None]
+    far = cols[r1]  # two full-size arrays at most
+    far *= tr[:, None]
+    out += far
+    return out
 
 
 def _electronic_fields(image, scale, bad, *, sigma_nm, pixel, step, q):
@@ -2060,55 +2182,73 @@ def _electronic_fields(image, scale, bad, *, sigma_nm, pixel, step, q):
     return smooth, np.sqrt(np.sum(amp**2, axis=0))
 
 
-def _contrast_set(quantity, fields, geo):
-    interior, ids, area, pairs = geo.interior, geo.ids, geo.area, geo.pairs
-    nb, nd, nw = len(fields), len(ids), len(pairs)
-    out = {k: np.full((nb, nd), np.nan) for k in ("mean", "mean_se", "frame", "frame_se", "contrast", "contrast_se")}
-    cov = np.full((nb, nd, nd), np.nan)
-    noise = np.full(nb, np.nan)
-    wd, ws = np.full((nb, nw), np.nan), np.full((nb, nw), np.nan)
+def _total_amplitude(a):
+    """sqrt(sum_j (2 |A_j|)^2) of lock-in fields (k, ...), float64 (as :func:`_electronic_fields` has it)."""
+    amp = 2 * np.abs(a).astype(float)
+    return np.sqrt(np.sum(amp**2, axis=0))
+
+
+def _field_stats(f, geo):
+    """One field's row of a :class:`ContrastSet`: per-domain means, frame and model contrasts with their
+    covariance, wall differences and the noise, from the field ``f`` on the working grid of ``geo``."""
+    interior, area, pairs = geo.interior, geo.area, geo.pairs
     frac = area / area.sum()
     model = geo.model
     rows, cols, dom = model["rows"], model["cols"], model["dom"]
-    for k, f in enumerate(fields):
-        noise[k] = _field_noise(f, interior, geo.lag_px)
-        mean = np.array([float(np.sum(f[r, c] * w)) for r, c, w in geo.domain_w])
-        mean_se = noise[k] * np.sqrt(geo.dom_norm2)
-        frame_mean = float(np.sum(frac * mean))
-        fr = mean - frame_mean
-        var = mean_se**2
-        fr_var = var * (1 - frac) ** 2 + (np.sum(frac**2 * var) - frac**2 * var)
-        delta = np.array([float(np.sum(f[r, c] * w)) for r, c, w in geo.wall_w])
-        dse = noise[k] * np.sqrt(geo.wall_norm2)
-        values = f[rows, cols]
-        mu = _model_contrasts(model, values)
-        cv = noise[k] ** 2 * model["S"]
-        if model["ncomp"] > 1:
-            # Line offsets seen inside the groups: a wall between groups may straddle such a change. Each
-            # scan line holds domains of one group only; the groups' offsets relative to each other are
-            # what the walls measure, so the range is taken within each group.
-            n_r = np.bincount(rows, minlength=f.shape[0])
-            used = np.flatnonzero(n_r)
-            a_r = np.bincount(rows, values - mu[dom], f.shape[0])[used] / n_r[used]
-            group_of_row = np.zeros(f.shape[0], np.int64)
-            group_of_row[rows] = model["comp"][dom]
-            size = max(3, int(2 * math.sqrt(math.pi) * geo.sigma_px[0]) | 1)
-            step = 0.0
-            for g in range(model["ncomp"]):
-                mine = a_r[group_of_row[used] == g]
-                if mine.size:
-                    mine = ndimage.median_filter(mine, size=size)
-                    step = max(step, float(mine.max() - mine.min()))
-            mu, cv = _link_groups(mu, cv, model["comp"], model["ncomp"], frac, fr, fr_var, pairs, delta,
-                                  np.hypot(dse, step))
-        out["mean"][k], out["mean_se"][k] = mean, mean_se
-        out["frame"][k], out["frame_se"][k] = fr, np.sqrt(fr_var)
-        out["contrast"][k], out["contrast_se"][k] = mu, np.sqrt(np.clip(np.diag(cv), 0, None))
-        cov[k] = cv
-        wd[k], ws[k] = delta, dse
+    noise = _field_noise(f, interior, geo.lag_px)
+    mean = np.array([float(np.sum(f[r, c] * w)) for r, c, w in geo.domain_w])
+    mean_se = noise * np.sqrt(geo.dom_norm2)
+    frame_mean = float(np.sum(frac * mean))
+    fr = mean - frame_mean
+    var = mean_se**2
+    fr_var = var * (1 - frac) ** 2 + (np.sum(frac**2 * var) - frac**2 * var)
+    delta = np.array([float(np.sum(f[r, c] * w)) for r, c, w in geo.wall_w])
+    dse = noise * np.sqrt(geo.wall_norm2)
+    values = f[rows, cols]
+    mu = _model_contrasts(model, values)
+    cv = noise**2 * model["S"]
+    if model["ncomp"] > 1:
+        # Line offsets seen inside the groups: a wall between groups may straddle such a change. Each
+        # scan line holds domains of one group only; the groups' offsets relative to each other are
+        # what the walls measure, so the range is taken within each group.
+        n_r = np.bincount(rows, minlength=f.shape[0])
+        used = np.flatnonzero(n_r)
+        a_r = np.bincount(rows, values - mu[dom], f.shape[0])[used] / n_r[used]
+        group_of_row = np.zeros(f.shape[0], np.int64)
+        group_of_row[rows] = model["comp"][dom]
+        size = max(3, int(2 * math.sqrt(math.pi) * geo.sigma_px[0]) | 1)
+        step = 0.0
+        for g in range(model["ncomp"]):
+            mine = a_r[group_of_row[used] == g]
+            if mine.size:
+                mine = ndimage.median_filter(mine, size=size)
+                step = max(step, float(mine.max() - mine.min()))
+        mu, cv = _link_groups(mu, cv, model["comp"], model["ncomp"], frac, fr, fr_var, pairs, delta,
+                              np.hypot(dse, step))
+    return {"mean": mean, "mean_se": mean_se, "frame": fr, "frame_se": np.sqrt(fr_var), "contrast": mu,
+            "contrast_se": np.sqrt(np.clip(np.diag(cv), 0, None)), "cov": cv, "noise": noise,
+            "wall_delta": delta, "wall_se": dse}
+
+
+def _stats_set(quantity, rows, geo):
+    """A :class:`ContrastSet` from the rows of :func:`_field_stats`, one per bias in order."""
+    ids, pairs = geo.ids, geo.pairs
+    nb, nd, nw = len(rows), len(ids), len(pairs)
+    shapes = {"mean": (nd,), "mean_se": (nd,), "frame": (nd,), "frame_se": (nd,), "contrast": (nd,),
+              "contrast_se": (nd,), "cov": (nd, nd), "noise": (), "wall_delta": (nw,), "wall_se": (nw,)}
+    out = {k: np.full((nb,) + shape, np.nan) for k, shape in shapes.items()}
+    for k, row in enumerate(rows):
+        for key in shapes:
+            out[key][k] = row[key]
     return ContrastSet(quantity, out["mean"], out["mean_se"], out["frame"], out["frame_se"], out["contrast"],
-                       out["contrast_se"], cov, noise,
-                       tuple((int(ids[a]), int(ids[b])) for a, b in pairs), wd, ws, np.asarray(geo.row_matched, bool))
+                       out["contrast_se"], out["cov"], out["noise"],
+                       tuple((int(ids[a]), int(ids[b])) for a, b in pairs), out["wall_delta"], out["wall_se"],
+                       np.asarray(geo.row_matched, bool))
+
+
+def _contrast_set(quantity, fields, geo):
+    """A :class:`ContrastSet` of the fields (one per bias, on the working grid of ``geo``)."""
+    return _stats_set(quantity, [_field_stats(f, geo) for f in fields], geo)
 
 
 def default_normalisation(setpoints_A):
@@ -2323,9 +2463,12 @@ def grid_electronic_contrast(grid, energies_V, labels, *, pixel_size_nm, sigma_n
     (:func:`domain_electronic_contrast`: interior means, row-matched differences across
     the walls, contrasts free of scan-line offsets, errors from the independent
     sigma-patches), without normalisation: every spectrum of a grid is taken at one
-    setpoint. A dask grid is read one chunk of energies at a time and never held whole;
-    only the smoothed slices on the working grid (every s-th pixel, about 0.6 sigma) are
-    kept. Pass the result to :func:`electronic_types` for the types, their mean spectra
+    setpoint. The geometry (interiors, wall bands, the line-offset model and its
+    covariance) depends on the labels alone and is computed once for every slice. A
+    dask grid is computed a few slices at a time (its energy chunks, cut to at most 4
+    slices and 256 MiB) and never held whole; each slice is smoothed and demodulated on
+    the working grid (every s-th pixel, about 0.6 sigma), reduced to its per-domain and
+    per-wall statistics and dropped. Pass the result to :func:`electronic_types` for the types, their mean spectra
     (:meth:`ElectronicTypes.spectra`) and the energies where they differ.
 
     Parameters
@@ -2379,31 +2522,78 @@ def grid_electronic_contrast(grid, energies_V, labels, *, pixel_size_nm, sigma_n
     """
     pixel = pixel_size_pair(pixel_size_nm)
     sigma_nm = positive(sigma_nm, "sigma_nm")
+    grid, energies, labels, bad = _check_grid(grid, energies_V, labels, mask)
+    if q is not None:
+        q = _q(q)
+    geo = _grid_contrast_geometry(energies, labels, bad, units=units, sigma_nm=sigma_nm, pixel=pixel,
+                                  margin_sigma=margin_sigma, band_sigma=band_sigma)
+    amplitude = q is not None and _resolved(q, pixel)
+    _, _, cond, amps = _grid_pass(grid, energies.size, bad, q=q, sigma_nm=sigma_nm, pixel=pixel, geo=geo,
+                                  amplitude=amplitude, progress=progress)
+    return _grid_contrast(energies, cond, amps if amplitude else None, geo, units=units, sigma_nm=sigma_nm,
+                          pixel=pixel, q=q)
+
+
+def _grid_contrast_geometry(energies, labels, bad, *, units, sigma_nm, pixel, margin_sigma, band_sigma):
+    """The checks of a grid's electronic contrast that do not read the grid, and its geometry
+    (:func:`_contrast_geometry`), once for every slice."""
     margin_sigma = positive(margin_sigma, "margin_sigma")
     band_sigma = positive(band_sigma, "band_sigma")
     if not isinstance(units, str) or not units.strip():
         raise InputError(f"units must be a non-empty string (the grid's units, e.g. 'nS'), got {units!r}")
-    if not _is_dask(grid):
-        grid = np.asarray(grid)
-    if grid.ndim != 3:
-        raise InputError(f"grid must be 3-D (energy, row, col), got shape {tuple(grid.shape)}")
-    if grid.dtype.kind not in "biuf":
-        raise InputError(f"grid must hold real numbers, got dtype {grid.dtype}")
-    energies = np.asarray(energies_V, dtype=float).reshape(-1)
-    if energies.size != grid.shape[0] or not np.all(np.isfinite(energies)):
-        raise InputError(f"energies_V must hold {grid.shape[0]} finite values (one per slice), got {energies.size}")
     if np.unique(energies).size != energies.size:
         raise InputError(f"energies_V must be distinct, got {energies.tolist()}")
-    labels = _labels(labels, grid.shape[1:])
-    bad = _mask(mask, grid.shape[1:])
-    if q is not None:
-        q = _q(q)
+    return _contrast_geometry(labels, bad, sigma_nm=sigma_nm, pixel=pixel, margin_sigma=margin_sigma,
+                              band_sigma=band_sigma)
+
+
+def _grid_contrast(energies, cond, amps, geo, *, units, sigma_nm, pixel, q):
+    """The :class:`ElectronicContrast` of a grid from its slices' rows (:func:`_field_stats`), energies ascending."""
+    note = "a grid: every spectrum taken at one setpoint, used as recorded"
+    if q is not None and amps is None:
+        note += (f"; order amplitude not measured: q reaches beyond the Nyquist limit of the "
+                 f"{pixel[0]:g} x {pixel[1]:g} nm pixels")
+    order = np.argsort(energies, kind="stable")
     token = "".join(ch if ch.isalnum() else "_" for ch in units).strip("_") or "value"
-    slices = ((energies[e], image) for e, image in _grid_slices(grid, energies.size, progress))
-    return _electronic_contrast(slices, [1.0] * energies.size, labels, bad, sigma_nm=sigma_nm, pixel=pixel, q=q,
-                                margin_sigma=margin_sigma, band_sigma=band_sigma, units=units, token=token,
-                                normalisation="none",
-                                note="a grid: every spectrum taken at one setpoint, used as recorded", source="grid")
+    conductance = _stats_set("conductance", [cond[i] for i in order], geo)
+    amplitude = None if amps is None else _stats_set("amplitude", [amps[i] for i in order], geo)
+    return ElectronicContrast(tuple(float(energies[i]) for i in order), tuple(int(d) for d in geo.ids), geo.area,
+                              units, token, "none", note, (1.0,) * energies.size, sigma_nm, conductance, amplitude,
+                              geo.step, "grid")
+
+
+def _grid_analysis(grid, energies_V, labels, q, *, sigma_nm, pixel_size_nm, mask=None, units="nS",
+                   fingerprint_margin_sigma=2.5, margin_sigma=3.5, band_sigma=3.0, progress=False):
+    """:func:`grid_fingerprints` and :func:`grid_electronic_contrast` (with ``q``) in one pass over the grid.
+
+    Each slice is read, demodulated and reduced once for both; the labels' geometries (interiors,
+    wall bands, the line-offset model, correlation kernels) are computed once before the pass.
+    The results equal those of the two functions called one after the other.
+
+    Returns
+    -------
+    fingerprints : Fingerprints
+    contrast : ElectronicContrast or InputError
+        The error when the contrast cannot be measured (e.g. no domain has an interior
+        ``margin_sigma`` sigma from its walls); the fingerprints are measured anyway.
+    """
+    pixel = pixel_size_pair(pixel_size_nm)
+    sigma_nm = positive(sigma_nm, "sigma_nm")
+    q = _q(q)
+    grid, energies, labels, bad = _check_grid(grid, energies_V, labels, mask)
+    fg = _fingerprint_geometry(labels, bad, sigma_nm=sigma_nm, pixel=pixel, margin_sigma=fingerprint_margin_sigma)
+    try:
+        geo = _grid_contrast_geometry(energies, labels, bad, units=units, sigma_nm=sigma_nm, pixel=pixel,
+                                      margin_sigma=margin_sigma, band_sigma=band_sigma)
+    except InputError as err:
+        geo, contrast = None, err
+    amplitude = geo is not None and _resolved(q, pixel)
+    amp, ph, cond, amps = _grid_pass(grid, energies.size, bad, q=q, sigma_nm=sigma_nm, pixel=pixel, fingerprint=fg,
+                                     geo=geo, amplitude=amplitude, progress=progress)
+    if geo is not None:
+        contrast = _grid_contrast(energies, cond, amps if amplitude else None, geo, units=units, sigma_nm=sigma_nm,
+                                  pixel=pixel, q=q)
+    return Fingerprints(energies, fg["ids"], amp, ph, fg["counts"]), contrast
 
 
 def _resolved(q, pixel):
@@ -2882,12 +3072,18 @@ def electronic_types(contrast, *, alpha=TYPES_ALPHA, gain_tolerance=GAIN_TOLERAN
         u[idx] = area[idx] / area[idx].sum()
         return u
 
+    V = np.array(values).reshape(nf, nd)
+    Cs = np.array(covs).reshape(nf, nd, nd)
+
     def max_z(g, h):
+        # Every feature at once (a grid has hundreds): |u.v| / sqrt(u C u + (tol max(|ug.v|, |uh.v|))^2).
+        if not nf:
+            return 0.0
         ug, uh = weights(g), weights(h)
         u = ug - uh
-        zs = [abs(u @ v) / math.sqrt(max(u @ C @ u + (tol * max(abs(ug @ v), abs(uh @ v))) ** 2, 1e-300))
-              for v, C in zip(values, covs)]
-        return max(zs) if zs else 0.0
+        var = np.matmul(u, Cs) @ u
+        gain = tol * np.maximum(np.abs(V @ ug), np.abs(V @ uh))
+        return float(np.max(np.abs(V @ u) / np.sqrt(np.maximum(var + gain**2, 1e-300))))
 
     groups = [[i] for i in range(nd)]
     if p_hom >= alpha or nf == 0:

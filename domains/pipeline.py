@@ -1295,21 +1295,23 @@ def _electronic_types_step(summary, tables, views, map_scans, corrected_maps, la
 
 def _grid_step(summary, tables, views, grid, labels, order_q, sigma_nm, pixel, mask):
     """Per-domain order amplitude across the grid's energies, and the domains' electronic types with their mean
-    spectra and the energies where the types differ (domains.compare.grid_electronic_contrast, electronic_types)."""
+    spectra and the energies where the types differ (domains.compare.grid_fingerprints, grid_electronic_contrast,
+    electronic_types). One pass over the grid serves both: a dask grid is computed a few slices at a time, each
+    slice reduced and dropped; the labels' geometry is computed once for every slice."""
     from . import compare
 
-    fp = compare.grid_fingerprints(grid.data, grid.energies_V, labels, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel,
-                                   mask=mask, progress=True)
+    units = (grid.metadata or {}).get("units", "arb. units")
+    fp, ec = compare._grid_analysis(grid.data, grid.energies_V, labels, order_q, sigma_nm=sigma_nm,
+                                    pixel_size_nm=pixel, mask=mask, units=units, progress=True)
     rows = fp.rows()
     tables["fingerprint"] = (list(rows[0]) if rows else ["domain", "energy_V"], rows)
     peaks = compare.fingerprint_peaks(fp)
     summary["grid"] = {"source": grid.source, "energies_V": [float(e) for e in grid.energies_V],
                        "peak_energy_V": peaks if isinstance(peaks, (dict, list)) else str(peaks)}
-    units = (grid.metadata or {}).get("units", "arb. units")
     views["grid"] = {"fingerprints": fp, "types": None, "units": units}
     try:
-        ec = compare.grid_electronic_contrast(grid.data, grid.energies_V, labels, pixel_size_nm=pixel,
-                                              sigma_nm=sigma_nm, units=units, mask=mask, q=order_q)
+        if isinstance(ec, InputError):
+            raise ec
         types = compare.electronic_types(ec)
     except InputError as err:
         summary["grid"]["electronic_types"] = {"note": f"not measured: {err}"}
