@@ -293,8 +293,8 @@ def _band_halo(step):
     width of the pixels they reach, so :data:`HALO_SAMPLES` samples hold them, plus the one pixel thin
     walls need. Measured against one whole-frame flood (the labels of a single tile) on the scenes of
     :func:`domains.synth.real_scene` (seed 0) cut in small tiles: at 4 samples no pixel differs
-    (discommensurate, √13, √3, 2×1 stripes at 1024^2 in 256-px tiles; discommensurate and √13 at
-    2048^2 in 512-px tiles; the √13 benchmark scene at 4096^2 in 2048-px tiles against 32 samples),
+    (discommensurate, √13, √3, 2×1 stripes at 1024^2 in 256-px tiles and at 2048^2 in 512-px tiles;
+    the √13 benchmark scene at 4096^2 in 2048-px tiles against 32 samples),
     at 1 sample 3 pixels (discommensurate, 128-px tiles), with no halo 85 (√13). A flood can still
     follow a wall further where the score ties exactly (a plateau, or pixels mirrored across a
     straight wall): there the order of arrival decides, and a wall can move by a pixel near a tile's edge.
