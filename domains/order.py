@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -281,6 +282,16 @@ def variant_templates(coefficients):
     3
     """
     coefficients = _coefficients(coefficients)
+    # The same coefficients come back for every piece of pixels scored (domains._refine.order_score_at):
+    # the search over the translations runs once per set of coefficients.
+    variants, phases = _variant_templates(tuple(float(c) for c in coefficients.ravel()), coefficients.shape)
+    return variants.copy(), phases.copy()
+
+
+@functools.lru_cache(maxsize=64)
+def _variant_templates(flat, shape):
+    """:func:`variant_templates` of the coefficients ``np.reshape(flat, shape)`` (cached; read-only arrays)."""
+    coefficients = np.reshape(np.array(flat, float), shape)
     period = int(np.lcm.reduce([_denominator(c) for c in coefficients.ravel()]))
     seen, variants, phases = set(), [], []
     for m1 in range(period):
@@ -292,7 +303,9 @@ def variant_templates(coefficients):
                 seen.add(key)
                 variants.append((m1, m2))
                 phases.append(wrapped)
-    return np.array(variants), np.array(phases)
+    variants, phases = np.array(variants), np.array(phases)
+    variants.flags.writeable = phases.flags.writeable = False
+    return variants, phases
 
 
 @dataclass

@@ -637,26 +637,11 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         wall_rows = measure.wall_table(seg.grown, walls_c, pixel_size_nm=pc, fields=fields_used, sigma_nm=sigma_nm,
                                        trusted=trusted_c)
 
-        def score_at(rows, cols):
-            # The state's score at input pixels from the fields interpolated between samples (band-limited).
-            from scipy import ndimage
-
-            where = np.array([rows / step_, cols / step_])
-            a_at = np.stack([ndimage.map_coordinates(c.real, where, order=3, mode="nearest")
-                             + 1j * ndimage.map_coordinates(c.imag, where, order=3, mode="nearest")
-                             for c in a_order])[:, None, :]
-            bp = None
-            if bragg_phase is not None:
-                # The residual Bragg phase over the pixels' bounding box (a separable evaluation of its
-                # spline: matrix products), then at the pixels; scattered-point evaluation costs 30x more.
-                r0, c0 = int(rows.min()), int(cols.min())
-                box = drift_result.residual_phase_points[:, r0:int(rows.max()) + 1, c0:int(cols.max()) + 1]
-                bp = np.nan_to_num(box[:, rows - r0, cols - c0])[:, None, :]
-            at = order.family_order(a_at, groups, coefficients=coefficients, bragg_phase=bp, threshold=floor.threshold,
-                                    anisotropy_threshold=config.anisotropy_threshold, family_names=family_names,
-                                    offsets_rad=state.offsets_rad)
-            return at.score[0], at.state[0]
-
+        # The state's score at input pixels from the fields interpolated between samples (band-limited).
+        score_at = _refine.order_score_at(
+            a_order, step_, groups=groups, coefficients=coefficients, threshold=floor.threshold,
+            anisotropy_threshold=config.anisotropy_threshold, family_names=family_names, offsets_rad=state.offsets_rad,
+            bragg_residual=drift_result.residual_phase_points if bragg_phase is not None else None)
         labels, walls = _refine.to_input_grid(grid_, seg, score_at, confidence, lazy=lazy)
         if lazy:
             # The refined labels (walls as -1) are read by the measurement and the bundle: computed once.
