@@ -348,8 +348,11 @@ def segment_states_chunked(state, confidence, ordered, *, pixel_size_nm, min_are
         radius = max(1, int(round(bridge_nm / min(dy, dx))))
         reach = ordered | _closing(ordered, radius, chunks)
     halo = default_halo_px(radius) if halo is None else halo
-    grown = _overlap_map(_watershed_block, [flood, seeds, reach], halo, np.int32, chunks) if halo > 0 else \
-        da.map_blocks(_watershed_block, flood, seeds, reach, dtype=np.int32)
+    if halo > 0:
+        depth = {0: min(halo, n_rows), 1: min(halo, n_cols)}    # dask refuses an overlap beyond the frame
+        grown = _overlap_map(_watershed_block, [flood, seeds, reach], depth, np.int32, chunks)
+    else:
+        grown = da.map_blocks(_watershed_block, flood, seeds, reach, dtype=np.int32)
     walls = _overlap_map(thin_walls, [grown], 1, bool, chunks)
     labels = da.where(walls, np.int32(0), grown).astype(np.int32)
     params = {"min_area_nm2": float(min_area_nm2), "confidence_threshold": float(confidence_threshold),
