@@ -55,16 +55,16 @@ def default_halo_px(bridge_radius_px):
     return max(MIN_HALO_PX, 4 * int(bridge_radius_px))
 
 
-def _as_dask(array, chunks, name):
+def _as_dask(array, chunks):
+    """``array`` as a dask array with ``chunks`` (a numpy array is wrapped, not copied)."""
     import dask.array as da
 
     if isinstance(array, da.Array):
         return array.rechunk(chunks) if array.chunks != chunks else array
-    array = np.asarray(array)
-    return da.from_array(array, chunks=chunks, name=False) if chunks is not None else da.from_array(array)
+    return da.from_array(np.asarray(array), chunks=chunks)
 
 
-def _classes(state, confidence, ordered, trusted, threshold):
+def _classes(state, confidence, ordered, trusted=None, *, threshold):
     """The state of each core pixel, -1 elsewhere (int32): cores as :func:`segment.segment_states` makes them."""
     core = state >= 0
     core &= ordered.astype(bool, copy=False)
@@ -255,11 +255,11 @@ def segment_states_chunked(state, confidence, ordered, *, pixel_size_nm, min_are
         raise InputError(f"state, confidence and ordered differ in shape: {shapes[0]}, {shapes[1]}, {shapes[2]}")
     if trusted is not None and np.shape(trusted) != shapes[0]:
         raise InputError(f"trusted has shape {np.shape(trusted)}, state {shapes[0]}")
-    confidence = _as_dask(confidence, chunks, "confidence")
+    confidence = _as_dask(confidence, chunks)
     # As in memory: float32 confidence stays float32, anything else is float64.
     confidence = confidence.astype(np.float32 if confidence.dtype == np.float32 else np.float64)
-    ordered = _as_dask(ordered, chunks, "ordered").astype(bool)
-    trusted = None if trusted is None else _as_dask(trusted, chunks, "trusted").astype(bool)
+    ordered = _as_dask(ordered, chunks).astype(bool)
+    trusted = None if trusted is None else _as_dask(trusted, chunks).astype(bool)
     n_rows, n_cols = state.shape
     min_pixels = max(1, int(math.ceil(min_area_nm2 / (dy * dx))))
     halo = None if halo_px is None else int(halo_px)
@@ -267,8 +267,7 @@ def segment_states_chunked(state, confidence, ordered, *, pixel_size_nm, min_are
         raise InputError(f"halo_px must be >= 0, got {halo_px!r}")
 
     args = (state, confidence, ordered) + (() if trusted is None else (trusted,))
-    classes = da.map_blocks(lambda s, c, o, *t: _classes(s, c, o, t[0] if t else None, confidence_threshold),
-                            *args, dtype=np.int32)
+    classes = da.map_blocks(_classes, *args, threshold=confidence_threshold, dtype=np.int32)
     starts = [np.r_[0, np.cumsum(c)[:-1]] for c in chunks]
     blocks = classes.to_delayed()
     conf_blocks = confidence.to_delayed()
