@@ -940,3 +940,12 @@ def _merge_windings(accepted, component, radius_nm, dy, dx):
                         "x_nm": c * dx, "y_nm": r * dy, "row": r, "col": c,
                         "loop_radius_nm": float(radius_nm), "loop_min_amplitude": float(low[g])})
     return defects
+
+
+def __getattr__(name):
+    # The chunk-by-chunk (dask) versions live in domains._chunkseg, imported on first use.
+    if name in ("segment_states_chunked", "phase_defects_chunked"):
+        from . import _chunkseg
+
+        return getattr(_chunkseg, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
