@@ -20,6 +20,7 @@ pixels 0, s, 2s, ... (Poisson summation: sampling every s-th pixel folds the spe
 
 from __future__ import annotations
 
+import functools
 import math
 import os
 import threading
@@ -52,13 +53,18 @@ _BLOCK_ELEMENTS = 1 << 22
 
 # Elements handled at a time by the element-wise stages and the row transforms: a tile stays in
 # the processor's cache between the steps that touch it (copy, transform, transposed write).
-_TILE_ELEMENTS = 1 << 18
+_TILE_ELEMENTS = 1 << 16
+_ROW_TILE = 1 << 18
 
 # Below this many pixels the work is done in the calling thread (threads cost more than they save).
 _THREADED_PIXELS = 1 << 20
 
 _POOL = None
 _POOL_LOCK = threading.Lock()
+
+
+class _NotFinite(Exception):
+    """The image holds NaN or inf (found on the way, by the row sums the real FFT gives for free)."""
 
 
 def _threads():
@@ -88,8 +94,11 @@ def _parallel(fn, tasks, threaded=True):
         if _POOL is None:
             _POOL = ThreadPoolExecutor(_threads(), thread_name_prefix="domains-lockin")
         pool = _POOL
-    for future in [pool.submit(fn, task) for task in tasks]:
-        future.result()
+    futures = [pool.submit(fn, task) for task in tasks]
+    errors = [future.exception() for future in futures]  # waits for every task before raising
+    for error in errors:
+        if error is not None:
+            raise error
 
 
 def _spans(n, parts, unit=1):
@@ -184,6 +193,15 @@ class _Axis:
         return self.transfer * np.exp(2j * np.pi * j * first / self.length)
 
 
+@functools.lru_cache(maxsize=64)
+def _axis(q_px, sigma_px, length, eps):
+    """The cached :class:`_Axis` (its transfer is the same on every call with these numbers)."""
+    ax = _Axis(q_px, sigma_px, length, eps)
+    ax.index.setflags(write=False)
+    ax.transfer.setflags(write=False)
+    return ax
+
+
 def _fold(block, length, axis):
     """Sum the spectrum window modulo ``length`` bins (sampling every step-th pixel folds it).
 
@@ -204,16 +222,19 @@ def _fold(block, length, axis):
     return block[take(0, length)]
 
 
+@functools.lru_cache(maxsize=64)
 def _smooth_1d(n, sigma_px, length, step, first, count, eps, dtype):
     """(g * 1_[0, n))(r) at r = first + step m: one axis of the separable normaliser, same truncated filter."""
-    ax = _Axis(0.0, sigma_px, length, eps)
+    ax = _axis(0.0, sigma_px, length, eps)
     spectrum = sfft.fft(np.ones(n, dtype), n=length)
     block = _fold(spectrum[ax.index] * ax.first_twist(step, first), length // step, 0)
     values = sfft.ifft(block, n=length // step)[:count]
-    return (values * ax.sample_factor(step, first, count, 0.0)).real
+    values = (values * ax.sample_factor(step, first, count, 0.0)).real
+    values.setflags(write=False)  # cached: the same normaliser serves every call with these numbers
+    return values
 
 
-def _column_spectrum(data, valid, lengths, need, rtype, ctype):
+def _column_spectrum(data, valid, lengths, need, rtype, ctype, check_finite=False):
     """The 2-D spectrum of ``data`` (zero where not ``valid``, zero padded to ``lengths``) at the
     half-spectrum columns ``need`` and every frequency row, stored transposed: shape (need.size, P_y).
 
@@ -221,6 +242,9 @@ def _column_spectrum(data, valid, lengths, need, rtype, ctype):
     zero-padded tile that stays in cache, transformed, and the columns some q needs written
     transposed into the buffer of the column transform, which is the only full-size temporary (as
     wide as those columns). The column transform then runs over contiguous memory.
+
+    ``check_finite``: raise ``_NotFinite`` if a row sum (the zero-frequency bin of the row
+    transform) is not finite, i.e. if the row holds NaN or inf.
     """
     ny, nx = data.shape
     py, px = lengths
@@ -228,8 +252,9 @@ def _column_spectrum(data, valid, lengths, need, rtype, ctype):
     contiguous = hi - lo == need.size
     buffer = np.empty((need.size, py), dtype=ctype)
     buffer[:, ny:] = 0
-    tile_rows = max(1, _TILE_ELEMENTS // px)
+    tile_rows = max(1, _ROW_TILE // px)
     threaded = ny * nx >= _THREADED_PIXELS
+    bad = []
 
     def rows(span):
         r0, r1 = span
@@ -239,9 +264,14 @@ def _column_spectrum(data, valid, lengths, need, rtype, ctype):
             part = tile[: b - a]
             part[:, :nx] = data[a:b] if valid is None else np.where(valid[a:b], data[a:b], 0)
             spectrum = sfft.rfft(part, axis=1, workers=1 if threaded else -1)
+            if check_finite and not np.isfinite(spectrum[:, 0]).all():
+                bad.append(a)
+                return
             buffer[:, a:b] = (spectrum[:, lo:hi] if contiguous else spectrum[:, need]).T
 
     _parallel(rows, _spans(ny, _threads() if threaded else 1, tile_rows), threaded)
+    if bad:
+        raise _NotFinite
     return sfft.fft(buffer, axis=1, workers=-1, overwrite_x=True)
 
 
@@ -266,23 +296,24 @@ def _runs(u, values):
 
 
 def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps, rtype,
-                  valid=None, inverse_norm=None, out=None):
+                  valid=None, inverse_norm=None, out=None, check_finite=False):
     """G_sigma * [data exp(-i q.r)] for every q, sampled at rows/cols first + step m.
 
     ``data`` is real (set to zero where ``valid`` is False); ``lengths`` (P_y, P_x) are the FFT
     lengths (zero padding beyond the data makes the convolution linear); ``origin`` is the global
     pixel of data[0, 0] for the reference wave. ``inverse_norm`` is either a pair of 1-D factors
-    (separable normaliser) or a 2-D array on the output grid, or None.
+    (separable normaliser) or a 2-D array on the output grid, or None. ``check_finite``: raise
+    ``_NotFinite`` if ``data`` holds NaN or inf.
     """
     ctype = np.complex64 if rtype == np.float32 else np.complex128
     py, px = lengths
     ly, lx = py // step, px // step
     half = px // 2
-    axes = [(_Axis(qj[0], sigma_px[0], py, eps), _Axis(qj[1], sigma_px[1], px, eps)) for qj in q_px]
+    axes = [(_axis(float(qj[0]), sigma_px[0], py, eps), _axis(float(qj[1]), sigma_px[1], px, eps)) for qj in q_px]
     # Frequency columns each q needs, as columns of the half spectrum (negative ones by conjugation).
     cols = [np.where(ax.index <= half, ax.index, px - ax.index) for _, ax in axes]
     need = np.unique(np.concatenate(cols))
-    spectrum = _column_spectrum(data, valid, lengths, need, rtype, ctype)  # (columns, P_y)
+    spectrum = _column_spectrum(data, valid, lengths, need, rtype, ctype, check_finite)  # (columns, P_y)
     if out is None:
         out = np.empty((len(q_px),) + tuple(count), dtype=ctype)
     if step > 1:
@@ -372,7 +403,7 @@ def _decimated_inverse(spectrum, need, axes, lengths, step, first, count, origin
     if wx < lx:
         stack[:, :, wx:] = 0  # the zero padding of the transform along k_x
     factors, pieces = [], []
-    tile = max(4, _TILE_ELEMENTS // (2 * max(wy, ly)))  # k_x bins per tile
+    tile = max(4, _TILE_ELEMENTS // max(wy, ly))  # k_x bins per tile
     every = np.arange(wy)
     for j, (ay, ax) in enumerate(axes):
         tx, ty = ax.first_twist(step, first[1]), ay.first_twist(step, first[0])
@@ -415,7 +446,7 @@ def _decimated_inverse(spectrum, need, axes, lengths, step, first, count, origin
             done = sfft.ifft(_fold(window, ly, 1), axis=1, workers=1, overwrite_x=True)
             np.multiply(done[:, : count[0]].T, fy, out=stack[j, :, u0:u1])  # the transpose stays in cache
 
-    rows = max(1, _TILE_ELEMENTS // (2 * max(wx, lx)))
+    rows = max(1, _TILE_ELEMENTS // max(wx, lx))
 
     def finish(task):
         j, r0, r1 = task
@@ -459,9 +490,11 @@ def _masked_inverse_norm(valid, sigma_px, lengths, step, first, count, eps, rtyp
     return inverse
 
 
-def _lockin_memory(image, valid, q_px, sigma_px, *, step, boundary, pad, origin=(0, 0), first=(0, 0), count=None):
+def _lockin_memory(image, valid, q_px, sigma_px, *, step, boundary, pad, origin=(0, 0), first=(0, 0), count=None,
+                   check_finite=False):
     """The lock-in of one in-memory array. ``image`` is float32 or float64 (it sets the precision);
-    ``valid`` is a boolean array (False = masked or NaN) or None when every pixel counts."""
+    ``valid`` is a boolean array (False = masked or NaN) or None when every pixel counts;
+    ``check_finite`` (with ``valid`` None): raise ``_NotFinite`` if the image holds NaN or inf."""
     rtype = image.dtype
     eps = TRANSFER_EPS[np.dtype(rtype)]
     ny, nx = image.shape
@@ -470,9 +503,11 @@ def _lockin_memory(image, valid, q_px, sigma_px, *, step, boundary, pad, origin=
     if boundary == "periodic":
         if ny % step or nx % step:
             # Folding needs whole periods of step pixels: compute on the full grid and sample it.
-            full = _filter_stack(image, q_px, sigma_px, (ny, nx), 1, (0, 0), (ny, nx), origin, eps, rtype)
+            full = _filter_stack(image, q_px, sigma_px, (ny, nx), 1, (0, 0), (ny, nx), origin, eps, rtype,
+                                 check_finite=check_finite)
             return np.ascontiguousarray(full[:, first[0] :: step, first[1] :: step][:, : count[0], : count[1]])
-        return _filter_stack(image, q_px, sigma_px, (ny, nx), step, first, count, origin, eps, rtype)
+        return _filter_stack(image, q_px, sigma_px, (ny, nx), step, first, count, origin, eps, rtype,
+                             check_finite=check_finite)
     lengths = (_fft_length(ny, pad[0], step), _fft_length(nx, pad[1], step, real=True))
     if valid is None:
         # Nothing masked: the normaliser G * 1_frame is separable, two 1-D filters.
@@ -480,7 +515,7 @@ def _lockin_memory(image, valid, q_px, sigma_px, *, step, boundary, pad, origin=
         norm_x = _smooth_1d(nx, sigma_px[1], lengths[1], step, first[1], count[1], eps, rtype)
         inverse = tuple(np.where(n > MIN_WEIGHT, 1 / np.where(n > MIN_WEIGHT, n, 1), np.nan) for n in (norm_y, norm_x))
         return _filter_stack(image, q_px, sigma_px, lengths, step, first, count, origin, eps, rtype,
-                             inverse_norm=inverse)
+                             inverse_norm=inverse, check_finite=check_finite)
     inverse = _masked_inverse_norm(valid, sigma_px, lengths, step, first, count, eps, rtype)
     return _filter_stack(image, q_px, sigma_px, lengths, step, first, count, origin, eps, rtype,
                          valid=valid, inverse_norm=inverse)
@@ -608,17 +643,23 @@ def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized
         result = _lockin_dask(image.astype(rtype), q_px, sigma_px, mask, boundary, pad, step)
     else:
         image = np.asarray(image, dtype=rtype)
-        if (mask is None or not mask.any()) and np.isfinite(np.sum(image)):
-            valid = None  # a finite sum: no NaN or inf anywhere (an overflow only takes the long way)
-        else:
+        result = None
+        if mask is None or not mask.any():
+            try:
+                # Every pixel counts unless the row sums met on the way say otherwise.
+                result = _lockin_memory(image, None, q_px, sigma_px, step=step, boundary=boundary, pad=pad,
+                                        check_finite=True)
+            except _NotFinite:
+                pass
+        if result is None:
             valid = np.isfinite(image)
             if mask is not None:
                 valid &= ~mask
             if valid.all():
-                valid = None
-        if valid is not None and boundary == "periodic":
-            raise InputError("boundary='periodic' needs a complete image with no masked or NaN pixels")
-        result = _lockin_memory(image, valid, q_px, sigma_px, step=step, boundary=boundary, pad=pad)
+                valid = None  # a row sum overflowed: every pixel is finite after all
+            if valid is not None and boundary == "periodic":
+                raise InputError("boundary='periodic' needs a complete image with no masked or NaN pixels")
+            result = _lockin_memory(image, valid, q_px, sigma_px, step=step, boundary=boundary, pad=pad)
     return result[0] if single else result
 
 
