@@ -16,6 +16,12 @@ spectrum where the Gaussian transfer exp(-sigma^2 |k - q|^2 / 2) is not negligib
 Decimated output (``step`` = s): the spectrum window is folded modulo L = P/s bins (P the FFT
 length) and inverse-transformed on L points, which gives the same truncated filter exactly at the
 pixels 0, s, 2s, ... (Poisson summation: sampling every s-th pixel folds the spectrum modulo P/s).
+There the per-q work runs on tiles that stay in cache (a few k_x bins at a time: gather, fold,
+inverse FFT along k_y; then a few rows at a time: fold, inverse FFT along k_x, output factors).
+
+On a large image (``_THREADED_PIXELS``) the row transforms and the tiles are shared among as many
+threads as ``scipy.fft`` uses with ``workers=-1``: numpy's copies and arithmetic release the GIL,
+so the work that is not an FFT no longer runs on one core while the FFTs use them all.
 """
 
 from __future__ import annotations
@@ -58,6 +64,9 @@ _ROW_TILE = 1 << 18
 
 # Below this many pixels the work is done in the calling thread (threads cost more than they save).
 _THREADED_PIXELS = 1 << 20
+
+# Tasks per thread in each threaded stage: a thread that finishes early takes the next one.
+_TASKS_PER_THREAD = 4
 
 _POOL = None
 _POOL_LOCK = threading.Lock()
@@ -269,7 +278,7 @@ def _column_spectrum(data, valid, lengths, need, rtype, ctype, check_finite=Fals
                 return
             buffer[:, a:b] = (spectrum[:, lo:hi] if contiguous else spectrum[:, need]).T
 
-    _parallel(rows, _spans(ny, _threads() if threaded else 1, tile_rows), threaded)
+    _parallel(rows, _spans(ny, _TASKS_PER_THREAD * _threads() if threaded else 1, tile_rows), threaded)
     if bad:
         raise _NotFinite
     return sfft.fft(buffer, axis=1, workers=-1, overwrite_x=True)
@@ -459,7 +468,7 @@ def _decimated_inverse(spectrum, need, axes, lengths, step, first, count, origin
             if isinstance(inverse_norm, np.ndarray):
                 target *= inverse_norm[a:b]
 
-    parts = 2 * _threads() if threaded else 1
+    parts = _TASKS_PER_THREAD * _threads() if threaded else 1
     _parallel(columns, [pieces[a:b] for a, b in _spans(len(pieces), parts)], threaded)
     _parallel(finish, [(j, a, b) for j in range(k) for a, b in _spans(count[0], parts, rows)], threaded)
     return out
