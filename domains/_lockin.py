@@ -322,13 +322,14 @@ def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps
     # Frequency columns each q needs, as columns of the half spectrum (negative ones by conjugation).
     cols = [np.where(ax.index <= half, ax.index, px - ax.index) for _, ax in axes]
     need = np.unique(np.concatenate(cols))
-    spectrum = _column_spectrum(data, valid, lengths, need, rtype, ctype, check_finite)  # (columns, P_y)
     if out is None:
         out = np.empty((len(q_px),) + tuple(count), dtype=ctype)
     if step > 1:
+        # The spectrum is passed on without a name here, so that it is freed once the tiles are done.
         threaded = data.shape[0] * data.shape[1] >= _THREADED_PIXELS
-        return _decimated_inverse(spectrum, need, axes, lengths, step, first, count, origin, rtype,
-                                  inverse_norm, out, threaded)
+        return _decimated_inverse(_column_spectrum(data, valid, lengths, need, rtype, ctype, check_finite),
+                                  need, axes, lengths, step, first, count, origin, rtype, inverse_norm, out, threaded)
+    spectrum = _column_spectrum(data, valid, lengths, need, rtype, ctype, check_finite)  # (columns, P_y)
     block_rows = max(1, _BLOCK_ELEMENTS // lx)
     # One zero-padded buffer, reused for every block of rows of every q (transformed in place).
     buffer = np.zeros((min(block_rows, count[0]), lx), dtype=ctype)
@@ -470,6 +471,7 @@ def _decimated_inverse(spectrum, need, axes, lengths, step, first, count, origin
 
     parts = _TASKS_PER_THREAD * _threads() if threaded else 1
     _parallel(columns, [pieces[a:b] for a, b in _spans(len(pieces), parts)], threaded)
+    spectrum = None  # the tiles hold all of it that is needed: free it before the output is written
     _parallel(finish, [(j, a, b) for j in range(k) for a, b in _spans(count[0], parts, rows)], threaded)
     return out
 
