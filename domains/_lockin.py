@@ -423,7 +423,7 @@ def _decimated_inverse(spectrum, need, axes, lengths, step, first, count, origin
         fx = ax.sample_factor(step, first[1], count[1], origin[1])
         if isinstance(inverse_norm, tuple):
             fy, fx = fy * inverse_norm[0], fx * inverse_norm[1]
-        factors.append((tx.astype(kind)[:, None], ty.astype(kind), real, fy.astype(ctype)[:, None], fx.astype(ctype)))
+        factors.append((tx.astype(kind)[:, None], ty.astype(kind), real, fy.astype(ctype), fx.astype(ctype)))
         # Negative k_x from I~(ky, -kx) = conj(I~(-ky, kx)); the window is contiguous modulo P_y
         # along k_y (one or two slices of the spectrum's rows).
         negative = ax.index > half
@@ -454,7 +454,9 @@ def _decimated_inverse(spectrum, need, axes, lengths, step, first, count, origin
                     np.conjugate(dst, out=dst)  # conj(I~) t = conj(I~ t) for a real transfer
             # Sampling every step-th row folds the spectrum modulo P_y / step bins (Poisson summation).
             done = sfft.ifft(_fold(window, ly, 1), axis=1, workers=1, overwrite_x=True)
-            np.multiply(done[:, : count[0]].T, fy, out=stack[j, :, u0:u1])  # the transpose stays in cache
+            kept = done[:, : count[0]]
+            kept *= fy
+            stack[j, :, u0:u1] = kept.T  # numpy's transposing copy is faster than a transposing multiply
 
     rows = max(1, _TILE_ELEMENTS // max(wx, lx))
 
