@@ -82,8 +82,8 @@ def _threads():
 
 
 def _forget_pool():
-    global _POOL
-    _POOL = None  # a forked child has none of the parent's threads
+    global _POOL, _POOL_LOCK
+    _POOL, _POOL_LOCK = None, threading.Lock()  # a forked child has none of the parent's threads
 
 
 if hasattr(os, "register_at_fork"):
