@@ -260,13 +260,15 @@ def _column_spectrum(data, valid, lengths, need, rtype, ctype, check_finite=Fals
     lo, hi = int(need[0]), int(need[-1]) + 1
     contiguous = hi - lo == need.size
     buffer = np.empty((need.size, py), dtype=ctype)
-    buffer[:, ny:] = 0
     tile_rows = max(1, _ROW_TILE // px)
     threaded = ny * nx >= _THREADED_PIXELS
     bad = []
 
     def rows(span):
         r0, r1 = span
+        if r0 >= ny:
+            buffer[:, r0:r1] = 0  # the zero padding of the column transform (its pages are touched here too)
+            return
         tile = np.zeros((min(tile_rows, r1 - r0), px), dtype=rtype)  # the zero padding, written once
         for a in range(r0, r1, tile_rows):
             b = min(r1, a + tile_rows)
@@ -278,7 +280,8 @@ def _column_spectrum(data, valid, lengths, need, rtype, ctype, check_finite=Fals
                 return
             buffer[:, a:b] = (spectrum[:, lo:hi] if contiguous else spectrum[:, need]).T
 
-    _parallel(rows, _spans(ny, _TASKS_PER_THREAD * _threads() if threaded else 1, tile_rows), threaded)
+    spans = _spans(ny, _TASKS_PER_THREAD * _threads() if threaded else 1, tile_rows) + [(ny, py)] * (py > ny)
+    _parallel(rows, spans, threaded)
     if bad:
         raise _NotFinite
     return sfft.fft(buffer, axis=1, workers=-1, overwrite_x=True)
