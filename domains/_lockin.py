@@ -16,11 +16,21 @@ spectrum where the Gaussian transfer exp(-sigma^2 |k - q|^2 / 2) is not negligib
 Decimated output (``step`` = s): the spectrum window is folded modulo L = P/s bins (P the FFT
 length) and inverse-transformed on L points, which gives the same truncated filter exactly at the
 pixels 0, s, 2s, ... (Poisson summation: sampling every s-th pixel folds the spectrum modulo P/s).
+There the per-q work runs on tiles that stay in cache (a few k_x bins at a time: gather, fold,
+inverse FFT along k_y; then a few rows at a time: fold, inverse FFT along k_x, output factors).
+
+On a large image (``_THREADED_PIXELS``) the row transforms and the tiles are shared among as many
+threads as ``scipy.fft`` uses with ``workers=-1``: numpy's copies and arithmetic release the GIL,
+so the work that is not an FFT no longer runs on one core while the FFTs use them all.
 """
 
 from __future__ import annotations
 
+import functools
 import math
+import os
+import threading
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 from scipy import fft as sfft
@@ -46,6 +56,65 @@ BOUNDARIES = ("normalized", "periodic")
 
 # Rows of the last inverse FFT handled at a time (keeps temporaries small next to the output).
 _BLOCK_ELEMENTS = 1 << 22
+
+# Elements handled at a time by the element-wise stages and the row transforms: a tile stays in
+# the processor's cache between the steps that touch it (copy, transform, transposed write).
+_TILE_ELEMENTS = 1 << 16
+_ROW_TILE = 1 << 18
+
+# Below this many pixels the work is done in the calling thread (threads cost more than they save).
+_THREADED_PIXELS = 1 << 20
+
+# Tasks per thread in each threaded stage: a thread that finishes early takes the next one.
+_TASKS_PER_THREAD = 4
+
+_POOL = None
+_POOL_LOCK = threading.Lock()
+
+
+class _NotFinite(Exception):
+    """The image holds NaN or inf (found on the way, by the row sums the real FFT gives for free)."""
+
+
+def _threads():
+    """Threads for the element-wise stages: as many as ``scipy.fft`` uses with ``workers=-1``."""
+    return os.cpu_count() or 1
+
+
+def _forget_pool():
+    global _POOL, _POOL_LOCK
+    _POOL, _POOL_LOCK = None, threading.Lock()  # a forked child has none of the parent's threads
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_forget_pool)
+
+
+def _parallel(fn, tasks, threaded=True):
+    """Call ``fn`` on every task, on the module's threads when ``threaded`` (numpy's copies and
+    arithmetic and the FFTs release the GIL, so the stages that are not FFTs use every core too)."""
+    tasks = list(tasks)
+    if not threaded or _threads() == 1 or len(tasks) < 2:
+        for task in tasks:
+            fn(task)
+        return
+    global _POOL
+    with _POOL_LOCK:
+        if _POOL is None:
+            _POOL = ThreadPoolExecutor(_threads(), thread_name_prefix="domains-lockin")
+        pool = _POOL
+    futures = [pool.submit(fn, task) for task in tasks]
+    errors = [future.exception() for future in futures]  # waits for every task before raising
+    for error in errors:
+        if error is not None:
+            raise error
+
+
+def _spans(n, parts, unit=1):
+    """Split range(n) into at most ``parts`` contiguous (start, stop) spans, borders on multiples of ``unit``."""
+    per = -(-n // max(1, parts))
+    size = max(unit, -(-per // unit) * unit)
+    return [(a, min(n, a + size)) for a in range(0, n, size)]
 
 
 def _as_q_array(q) -> tuple[np.ndarray, bool]:
@@ -85,9 +154,13 @@ def _transfer_cut(eps):
     return math.sqrt(2 * math.log(1 / eps))
 
 
-def _fft_length(n, pad, step):
-    """Smallest fast FFT length >= n + pad that is a multiple of ``step``."""
-    return step * sfft.next_fast_len(-(-(n + pad) // step))
+def _fft_length(n, pad, step, real=False):
+    """Smallest fast FFT length >= n + pad that is a multiple of ``step``.
+
+    ``real``: the length of a real transform, whose fast lengths have no factor above 5 (the real
+    FFT of ``scipy.fft`` has no special pass for 7 or 11: 4200 points cost 15 % more than 4320).
+    """
+    return step * sfft.next_fast_len(-(-(n + pad) // step), real=real)
 
 
 class _Axis:
@@ -129,6 +202,15 @@ class _Axis:
         return self.transfer * np.exp(2j * np.pi * j * first / self.length)
 
 
+@functools.lru_cache(maxsize=64)
+def _axis(q_px, sigma_px, length, eps):
+    """The cached :class:`_Axis` (its transfer is the same on every call with these numbers)."""
+    ax = _Axis(q_px, sigma_px, length, eps)
+    ax.index.setflags(write=False)
+    ax.transfer.setflags(write=False)
+    return ax
+
+
 def _fold(block, length, axis):
     """Sum the spectrum window modulo ``length`` bins (sampling every step-th pixel folds it).
 
@@ -137,44 +219,71 @@ def _fold(block, length, axis):
     width = block.shape[axis]
     if width <= length:
         return block
-    moved = np.moveaxis(block, axis, 0)
+    index = [slice(None)] * block.ndim
+
+    def take(a, b):
+        index[axis] = slice(a, b)
+        return tuple(index)
+
     for start in range(length, width, length):
-        part = moved[start : start + length]
-        moved[: part.shape[0]] += part
-    return np.moveaxis(moved[:length], 0, axis)
+        stop = min(width, start + length)
+        block[take(0, stop - start)] += block[take(start, stop)]
+    return block[take(0, length)]
 
 
+@functools.lru_cache(maxsize=64)
 def _smooth_1d(n, sigma_px, length, step, first, count, eps, dtype):
     """(g * 1_[0, n))(r) at r = first + step m: one axis of the separable normaliser, same truncated filter."""
-    ax = _Axis(0.0, sigma_px, length, eps)
+    ax = _axis(0.0, sigma_px, length, eps)
     spectrum = sfft.fft(np.ones(n, dtype), n=length)
     block = _fold(spectrum[ax.index] * ax.first_twist(step, first), length // step, 0)
     values = sfft.ifft(block, n=length // step)[:count]
-    return (values * ax.sample_factor(step, first, count, 0.0)).real
+    values = (values * ax.sample_factor(step, first, count, 0.0)).real
+    values.setflags(write=False)  # cached: the same normaliser serves every call with these numbers
+    return values
 
 
-def _column_spectrum(data, valid, lengths, need, rtype, ctype):
+def _column_spectrum(data, valid, lengths, need, rtype, ctype, check_finite=False):
     """The 2-D spectrum of ``data`` (zero where not ``valid``, zero padded to ``lengths``) at the
     half-spectrum columns ``need`` and every frequency row, stored transposed: shape (need.size, P_y).
 
-    Rows are transformed in blocks straight into the padded buffer of the column transform, so the
-    only full-size temporary is that buffer (as wide as the columns some q needs); it is transposed
-    so that the column transform runs over contiguous memory.
+    The rows are transformed a few at a time (each thread its own span of rows): copied into a
+    zero-padded tile that stays in cache, transformed, and the columns some q needs written
+    transposed into the buffer of the column transform, which is the only full-size temporary (as
+    wide as those columns). The column transform then runs over contiguous memory.
+
+    ``check_finite``: raise ``_NotFinite`` if a row sum (the zero-frequency bin of the row
+    transform) is not finite, i.e. if the row holds NaN or inf.
     """
-    ny = data.shape[0]
+    ny, nx = data.shape
     py, px = lengths
     lo, hi = int(need[0]), int(need[-1]) + 1
     contiguous = hi - lo == need.size
     buffer = np.empty((need.size, py), dtype=ctype)
-    buffer[:, ny:] = 0
-    block_rows = max(1, _BLOCK_ELEMENTS // px)
-    for r0 in range(0, ny, block_rows):
-        r1 = min(ny, r0 + block_rows)
-        block = data[r0:r1]
-        if valid is not None:
-            block = np.where(valid[r0:r1], block, 0)
-        rows = sfft.rfft(block.astype(rtype, copy=False), n=px, axis=1, workers=-1)
-        buffer[:, r0:r1] = (rows[:, lo:hi] if contiguous else rows[:, need]).T
+    tile_rows = max(1, _ROW_TILE // px)
+    threaded = ny * nx >= _THREADED_PIXELS
+    bad = []
+
+    def rows(span):
+        r0, r1 = span
+        if r0 >= ny:
+            buffer[:, r0:r1] = 0  # the zero padding of the column transform (its pages are touched here too)
+            return
+        tile = np.zeros((min(tile_rows, r1 - r0), px), dtype=rtype)  # the zero padding, written once
+        for a in range(r0, r1, tile_rows):
+            b = min(r1, a + tile_rows)
+            part = tile[: b - a]
+            part[:, :nx] = data[a:b] if valid is None else np.where(valid[a:b], data[a:b], 0)
+            spectrum = sfft.rfft(part, axis=1, workers=1 if threaded else -1)
+            if check_finite and not np.isfinite(spectrum[:, 0]).all():
+                bad.append(a)
+                return
+            buffer[:, a:b] = (spectrum[:, lo:hi] if contiguous else spectrum[:, need]).T
+
+    spans = _spans(ny, _TASKS_PER_THREAD * _threads() if threaded else 1, tile_rows) + [(ny, py)] * (py > ny)
+    _parallel(rows, spans, threaded)
+    if bad:
+        raise _NotFinite
     return sfft.fft(buffer, axis=1, workers=-1, overwrite_x=True)
 
 
@@ -199,25 +308,31 @@ def _runs(u, values):
 
 
 def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps, rtype,
-                  valid=None, inverse_norm=None, out=None):
+                  valid=None, inverse_norm=None, out=None, check_finite=False):
     """G_sigma * [data exp(-i q.r)] for every q, sampled at rows/cols first + step m.
 
     ``data`` is real (set to zero where ``valid`` is False); ``lengths`` (P_y, P_x) are the FFT
     lengths (zero padding beyond the data makes the convolution linear); ``origin`` is the global
     pixel of data[0, 0] for the reference wave. ``inverse_norm`` is either a pair of 1-D factors
-    (separable normaliser) or a 2-D array on the output grid, or None.
+    (separable normaliser) or a 2-D array on the output grid, or None. ``check_finite``: raise
+    ``_NotFinite`` if ``data`` holds NaN or inf.
     """
     ctype = np.complex64 if rtype == np.float32 else np.complex128
     py, px = lengths
     ly, lx = py // step, px // step
     half = px // 2
-    axes = [(_Axis(qj[0], sigma_px[0], py, eps), _Axis(qj[1], sigma_px[1], px, eps)) for qj in q_px]
+    axes = [(_axis(float(qj[0]), sigma_px[0], py, eps), _axis(float(qj[1]), sigma_px[1], px, eps)) for qj in q_px]
     # Frequency columns each q needs, as columns of the half spectrum (negative ones by conjugation).
     cols = [np.where(ax.index <= half, ax.index, px - ax.index) for _, ax in axes]
     need = np.unique(np.concatenate(cols))
-    spectrum = _column_spectrum(data, valid, lengths, need, rtype, ctype)  # (columns, P_y)
     if out is None:
         out = np.empty((len(q_px),) + tuple(count), dtype=ctype)
+    if step > 1:
+        # The spectrum is passed on without a name here, so that it is freed once the tiles are done.
+        threaded = data.shape[0] * data.shape[1] >= _THREADED_PIXELS
+        return _decimated_inverse(_column_spectrum(data, valid, lengths, need, rtype, ctype, check_finite),
+                                  need, axes, lengths, step, first, count, origin, rtype, inverse_norm, out, threaded)
+    spectrum = _column_spectrum(data, valid, lengths, need, rtype, ctype, check_finite)  # (columns, P_y)
     block_rows = max(1, _BLOCK_ELEMENTS // lx)
     # One zero-padded buffer, reused for every block of rows of every q (transformed in place).
     buffer = np.zeros((min(block_rows, count[0]), lx), dtype=ctype)
@@ -270,6 +385,102 @@ def _filter_stack(data, q_px, sigma_px, lengths, step, first, count, origin, eps
     return out
 
 
+def _split_run(u0, u1, sl, size):
+    """Cut a run (positions u0..u1, source slice ``sl`` of step +1 or -1) into pieces of at most ``size``."""
+    direction = sl.step or 1
+    for a in range(u0, u1, size):
+        b = min(u1, a + size)
+        s0 = sl.start + (a - u0) * direction
+        s1 = s0 + (b - a) * direction
+        yield a, b, slice(s0, s1 if s1 >= 0 else None, direction)
+
+
+def _decimated_inverse(spectrum, need, axes, lengths, step, first, count, origin, rtype,
+                       inverse_norm, out, threaded):
+    """The per-q half of :func:`_filter_stack` on a decimated grid (step > 1).
+
+    Two passes over memory per q, each on tiles that stay in cache: (1) a tile of k_x bins of the
+    window, all its k_y bins, is gathered from the transposed spectrum times the transfer, folded
+    modulo L_y = P_y / step, inverse transformed along k_y and written, times the row factor, into
+    a (row, k_x) stack; (2) a block of rows of the stack is folded modulo L_x = P_x / step, inverse
+    transformed along k_x and written, times the column factor (and the normaliser), to ``out``.
+    The tiles and the blocks are shared among the threads.
+    """
+    ctype = out.dtype
+    py, px = lengths
+    ly, lx = py // step, px // step
+    half = px // 2
+    k = len(axes)
+    wy, wx = axes[0][0].index.size, axes[0][1].index.size  # the same for every q (sigma and P set them)
+    stack = np.empty((k, count[0], max(wx, lx)), dtype=ctype)
+    if wx < lx:
+        stack[:, :, wx:] = 0  # the zero padding of the transform along k_x
+    factors, pieces = [], []
+    tile = max(4, _TILE_ELEMENTS // max(wy, ly))  # k_x bins per tile
+    every = np.arange(wy)
+    for j, (ay, ax) in enumerate(axes):
+        tx, ty = ax.first_twist(step, first[1]), ay.first_twist(step, first[0])
+        real = np.isrealobj(tx) and np.isrealobj(ty)
+        kind = rtype if real else ctype
+        fy = ay.sample_factor(step, first[0], count[0], origin[0])
+        fx = ax.sample_factor(step, first[1], count[1], origin[1])
+        if isinstance(inverse_norm, tuple):
+            fy, fx = fy * inverse_norm[0], fx * inverse_norm[1]
+        factors.append((tx.astype(kind)[:, None], ty.astype(kind), real, fy.astype(ctype), fx.astype(ctype)))
+        # Negative k_x from I~(ky, -kx) = conj(I~(-ky, kx)); the window is contiguous modulo P_y
+        # along k_y (one or two slices of the spectrum's rows).
+        negative = ax.index > half
+        pos = np.searchsorted(need, np.where(negative, px - ax.index, ax.index))
+        for part, src_rows, conj in ((~negative, ay.index, False), (negative, (-ay.index) % py, True)):
+            u = np.flatnonzero(part)
+            row_runs = _runs(every, src_rows)
+            for u0, u1, sl in _runs(u, pos[u]):
+                for piece in _split_run(u0, u1, sl, tile):
+                    pieces.append((j, piece, row_runs, conj))
+
+    def columns(chunk):
+        buffer = np.empty((tile, max(wy, ly)), dtype=ctype)  # (k_x, k_y), as the spectrum is stored
+        for j, (u0, u1, sl), row_runs, conj in chunk:
+            tx, ty, real, fy, _ = factors[j]
+            window = buffer[: u1 - u0]
+            window[:, wy:] = 0  # the zero padding of the transform along k_y (when the window is short)
+            for v0, v1, sr in row_runs:
+                src = spectrum[sl, sr]
+                dst = window[:, v0:v1]
+                if conj and not real:
+                    np.conjugate(src, out=dst)
+                    dst *= ty[v0:v1]
+                else:
+                    np.multiply(src, ty[v0:v1], out=dst)
+                dst *= tx[u0:u1]
+                if conj and real:
+                    np.conjugate(dst, out=dst)  # conj(I~) t = conj(I~ t) for a real transfer
+            # Sampling every step-th row folds the spectrum modulo P_y / step bins (Poisson summation).
+            done = sfft.ifft(_fold(window, ly, 1), axis=1, workers=1, overwrite_x=True)
+            kept = done[:, : count[0]]
+            kept *= fy
+            stack[j, :, u0:u1] = kept.T  # numpy's transposing copy is faster than a transposing multiply
+
+    rows = max(1, _TILE_ELEMENTS // max(wx, lx))
+
+    def finish(task):
+        j, r0, r1 = task
+        fx = factors[j][4]
+        for a in range(r0, r1, rows):
+            b = min(r1, a + rows)
+            done = sfft.ifft(_fold(stack[j, a:b], lx, 1), axis=1, workers=1, overwrite_x=True)
+            target = out[j, a:b]
+            np.multiply(done[:, : count[1]], fx, out=target)
+            if isinstance(inverse_norm, np.ndarray):
+                target *= inverse_norm[a:b]
+
+    parts = _TASKS_PER_THREAD * _threads() if threaded else 1
+    _parallel(columns, [pieces[a:b] for a, b in _spans(len(pieces), parts)], threaded)
+    spectrum = None  # the tiles hold all of it that is needed: free it before the output is written
+    _parallel(finish, [(j, a, b) for j in range(k) for a, b in _spans(count[0], parts, rows)], threaded)
+    return out
+
+
 _NORM_CACHE: dict = {}
 
 
@@ -295,9 +506,11 @@ def _masked_inverse_norm(valid, sigma_px, lengths, step, first, count, eps, rtyp
     return inverse
 
 
-def _lockin_memory(image, valid, q_px, sigma_px, *, step, boundary, pad, origin=(0, 0), first=(0, 0), count=None):
+def _lockin_memory(image, valid, q_px, sigma_px, *, step, boundary, pad, origin=(0, 0), first=(0, 0), count=None,
+                   check_finite=False):
     """The lock-in of one in-memory array. ``image`` is float32 or float64 (it sets the precision);
-    ``valid`` is a boolean array (False = masked or NaN) or None when every pixel counts."""
+    ``valid`` is a boolean array (False = masked or NaN) or None when every pixel counts;
+    ``check_finite`` (with ``valid`` None): raise ``_NotFinite`` if the image holds NaN or inf."""
     rtype = image.dtype
     eps = TRANSFER_EPS[np.dtype(rtype)]
     ny, nx = image.shape
@@ -306,17 +519,19 @@ def _lockin_memory(image, valid, q_px, sigma_px, *, step, boundary, pad, origin=
     if boundary == "periodic":
         if ny % step or nx % step:
             # Folding needs whole periods of step pixels: compute on the full grid and sample it.
-            full = _filter_stack(image, q_px, sigma_px, (ny, nx), 1, (0, 0), (ny, nx), origin, eps, rtype)
+            full = _filter_stack(image, q_px, sigma_px, (ny, nx), 1, (0, 0), (ny, nx), origin, eps, rtype,
+                                 check_finite=check_finite)
             return np.ascontiguousarray(full[:, first[0] :: step, first[1] :: step][:, : count[0], : count[1]])
-        return _filter_stack(image, q_px, sigma_px, (ny, nx), step, first, count, origin, eps, rtype)
-    lengths = (_fft_length(ny, pad[0], step), _fft_length(nx, pad[1], step))
+        return _filter_stack(image, q_px, sigma_px, (ny, nx), step, first, count, origin, eps, rtype,
+                             check_finite=check_finite)
+    lengths = (_fft_length(ny, pad[0], step), _fft_length(nx, pad[1], step, real=True))
     if valid is None:
         # Nothing masked: the normaliser G * 1_frame is separable, two 1-D filters.
         norm_y = _smooth_1d(ny, sigma_px[0], lengths[0], step, first[0], count[0], eps, rtype)
         norm_x = _smooth_1d(nx, sigma_px[1], lengths[1], step, first[1], count[1], eps, rtype)
         inverse = tuple(np.where(n > MIN_WEIGHT, 1 / np.where(n > MIN_WEIGHT, n, 1), np.nan) for n in (norm_y, norm_x))
         return _filter_stack(image, q_px, sigma_px, lengths, step, first, count, origin, eps, rtype,
-                             inverse_norm=inverse)
+                             inverse_norm=inverse, check_finite=check_finite)
     inverse = _masked_inverse_norm(valid, sigma_px, lengths, step, first, count, eps, rtype)
     return _filter_stack(image, q_px, sigma_px, lengths, step, first, count, origin, eps, rtype,
                          valid=valid, inverse_norm=inverse)
@@ -444,17 +659,23 @@ def lockin(image, q, *, sigma_nm, pixel_size_nm, mask=None, boundary="normalized
         result = _lockin_dask(image.astype(rtype), q_px, sigma_px, mask, boundary, pad, step)
     else:
         image = np.asarray(image, dtype=rtype)
-        if (mask is None or not mask.any()) and np.isfinite(np.sum(image, dtype=np.float64)):
-            valid = None  # a finite sum: no NaN or inf anywhere
-        else:
+        result = None
+        if mask is None or not mask.any():
+            try:
+                # Every pixel counts unless the row sums met on the way say otherwise.
+                result = _lockin_memory(image, None, q_px, sigma_px, step=step, boundary=boundary, pad=pad,
+                                        check_finite=True)
+            except _NotFinite:
+                pass
+        if result is None:
             valid = np.isfinite(image)
             if mask is not None:
                 valid &= ~mask
             if valid.all():
-                valid = None
-        if valid is not None and boundary == "periodic":
-            raise InputError("boundary='periodic' needs a complete image with no masked or NaN pixels")
-        result = _lockin_memory(image, valid, q_px, sigma_px, step=step, boundary=boundary, pad=pad)
+                valid = None  # a row sum overflowed: every pixel is finite after all
+            if valid is not None and boundary == "periodic":
+                raise InputError("boundary='periodic' needs a complete image with no masked or NaN pixels")
+            result = _lockin_memory(image, valid, q_px, sigma_px, step=step, boundary=boundary, pad=pad)
     return result[0] if single else result
 
 

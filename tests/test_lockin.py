@@ -472,3 +472,58 @@ def test_bad_step():
     for bad in (0, -2, 1.5, True, "4"):
         with pytest.raises(InputError, match="step"):
             lockin(image, [1.0, 0.0], sigma_nm=2, pixel_size_nm=1, step=bad)
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_threaded_tiles_equal_full_resolution_and_analytic_wave(dtype, monkeypatch):
+    # The threaded path (tiles of rows and of k_x bins shared among threads) on a small image: the threshold is
+    # lowered so it runs here; with two threads at least, the tasks really interleave.
+    monkeypatch.setattr(domains._lockin, "_THREADED_PIXELS", 0)
+    monkeypatch.setattr(domains._lockin, "_threads", lambda: 3)
+    monkeypatch.setattr(domains._lockin, "_TILE_ELEMENTS", 1 << 11)  # many small tiles and row blocks
+    monkeypatch.setattr(domains._lockin, "_ROW_TILE", 1 << 12)
+    shape, sigma, step = (203, 190), 6.0, 3
+    q = 2 * np.pi * np.array([[0.15, 0.04], [-0.04, 0.17], [0.2, -0.22]])
+    image = sum(wave(qj, 1.0 + j, 0.4 * j, shape) for j, qj in enumerate(q)).astype(dtype)
+    full = lockin(image, q, sigma_nm=sigma, pixel_size_nm=1.0)
+    coarse = lockin(image, q, sigma_nm=sigma, pixel_size_nm=1.0, step=step)
+    # derived (Poisson summation): the decimated result is the full one at the sampled pixels, up to the Gaussian
+    # tail wrapping round the zero padding, erfc(6 / sqrt 2) / 2 = 1e-9 of the image scale per edge over the
+    # corner weight 0.25, and rounding (float32: ~1e-6 of the scale after the FFTs, derived).
+    scale = np.abs(image).max()
+    rounding = 2e-6 if dtype == np.float32 else 1e-12
+    assert_allclose(coarse, full[:, ::step, ::step], rtol=0, atol=(rounding + math.erfc(6 / math.sqrt(2))) * scale / 0.25)
+    # docs/methods.md §1 [derived]: for I = sum_j A_j cos(q_j.r + phi_j), 2|A| = A_j and arg A = phi_j at q_j,
+    # up to the leakage of the other waves and their mirror images, exp(-sigma^2 dk^2 / 2) = 4e-8 of an amplitude
+    # <= 3 here (nearest dk = 0.975 rad/px), >= 6 sigma from the edges.
+    m = -(-36 // step)
+    tol = rounding * scale + 2 * 3 * math.exp(-((sigma * 0.975) ** 2) / 2)
+    for j in range(len(q)):
+        a = coarse[j, m:-m, m:-m]
+        assert_allclose(amplitude(a), 1.0 + j, rtol=0, atol=tol)
+        assert_allclose(phase(a), 0.4 * j, rtol=0, atol=tol / (1.0 + j))
+
+
+@pytest.mark.parametrize("threaded", [False, True])
+@pytest.mark.parametrize("step", [None, 4])
+def test_nan_and_inf_pixels_count_as_masked(step, threaded, monkeypatch):
+    # The kernel looks for NaN and inf in the row sums its real FFT gives (no pass of its own over the image);
+    # lockin's docstring: NaN pixels count as masked. inf pixels too: a non-finite pixel has no value to average.
+    if threaded:
+        monkeypatch.setattr(domains._lockin, "_THREADED_PIXELS", 0)
+        monkeypatch.setattr(domains._lockin, "_ROW_TILE", 1 << 12)
+    rng = np.random.default_rng(5)
+    shape = (150, 170)
+    q = 2 * np.pi * np.array([[0.13, 0.05], [-0.07, 0.17]])
+    image = sum(wave(qj, 1.0 + j, j, shape) for j, qj in enumerate(q)) + rng.normal(scale=0.3, size=shape)
+    bad = np.zeros(shape, bool)
+    bad[149, 3] = bad[70, 90] = bad[0, 169] = True  # the last row, the middle, the first row
+    broken = image.copy()
+    broken[149, 3], broken[70, 90], broken[0, 169] = np.nan, np.inf, -np.inf
+    a = lockin(broken, q, sigma_nm=3.0, pixel_size_nm=1.0, step=step)
+    expected = lockin(np.where(bad, 0.0, image), q, sigma_nm=3.0, pixel_size_nm=1.0, mask=bad, step=step)
+    # Same arithmetic on the same finite pixels: equal to rounding (derived).
+    assert np.isfinite(a).all()
+    assert_allclose(a, expected, rtol=0, atol=1e-12 * np.abs(image).max())
+    with pytest.raises(InputError, match="periodic"):
+        lockin(broken, q, sigma_nm=3.0, pixel_size_nm=1.0, boundary="periodic", step=step)
