@@ -373,11 +373,11 @@ def trusted_on_grid(grid_, sigma_nm, pixel, mask):
     Without a mask, :func:`domains.trusted_mask` is the product of a row and a column condition (the
     nearest untrusted pixel is the padding ring, straight above, below or beside): computed so, on the
     samples only. With a mask, the same answer from distance transforms run only next to the masked
-    pixels (:func:`domains.drift._trusted`): one full-size boolean array, no full-size distances.
+    pixels (:func:`domains._lockin._trusted`): one full-size boolean array, no full-size distances.
     """
     ny, nx = grid_.shape
     if mask is not None:
-        from .drift import _trusted
+        from ._lockin import _trusted
 
         trusted = _trusted(np.asarray(mask, bool), (ny, nx), sigma_nm, pixel)
         return grid_.sample(trusted), float(trusted.mean())

@@ -34,7 +34,7 @@ from scipy.linalg import solve_banded
 from skimage.restoration import unwrap_phase
 
 from ._errors import InputError
-from ._lockin import _as_q_array, lockin, lossless_step
+from ._lockin import _as_q_array, _trusted, _trusted_halo, _trusted_rows, lockin, lossless_step
 from ._scan import Scan, _is_dask, pixel_size_pair
 
 __all__ = ["DriftResult", "apply_displacement", "correct_channels", "correct_drift", "displacement_field",
@@ -414,64 +414,6 @@ class _Field:
             u = self.grid.rows(self.coef, r0, min(self.grid.shape[0], r0 + block))
             largest = np.maximum(largest, np.max(np.abs(u), axis=(1, 2)))
         return float(largest[1] / pixel_size[0]), float(largest[0] / pixel_size[1])
-
-
-def _trusted(bad, shape, sigma_nm, pixel_size, margin_sigma=2.5):
-    """``trusted_mask(shape, mask=bad)``, with the distance transform run only next to the bad pixels.
-
-    A pixel is trusted at least ``margin_sigma`` sigma from the frame edge (the
-    edge sits half a pixel outside the outermost row or column) and from every
-    pixel of ``bad``. The frame part is closed form; the distance to ``bad`` is
-    computed by :func:`scipy.ndimage.distance_transform_edt` on row blocks
-    with a halo of the margin (:func:`_trusted_rows`), and only on the column
-    ranges that have a bad pixel within the margin, which gives the same answer:
-    a bad pixel closer than the margin always lies in the window.
-    """
-    ny, nx = shape
-    bad_rows = None if bad is None else (lambda a, b: bad[a:b])
-    hy = _trusted_halo(sigma_nm, pixel_size, margin_sigma)[0]
-    out = np.empty((ny, nx), dtype=bool)
-    block = max(hy, 64)
-    for r0 in range(0, ny, block):
-        r1 = min(ny, r0 + block)
-        out[r0:r1] = _trusted_rows(bad_rows, shape, sigma_nm, pixel_size, r0, r1, margin_sigma)
-    return out
-
-
-def _trusted_halo(sigma_nm, pixel_size, margin_sigma=2.5):
-    """Rows and columns of ``bad`` beyond a block that can untrust a pixel of it."""
-    dy, dx = pixel_size
-    limit, half = margin_sigma * float(sigma_nm), 0.5 * min(dy, dx)
-    return int(math.ceil((limit + half) / dy)) + 1, int(math.ceil((limit + half) / dx)) + 1
-
-
-def _trusted_rows(bad_rows, shape, sigma_nm, pixel_size, r0, r1, margin_sigma=2.5):
-    """Rows r0 ... r1 - 1 of :func:`_trusted`; ``bad_rows(a, b)`` gives rows a ... b - 1 of the bad
-    pixels (or None when there are none there), ``bad_rows`` None: no bad pixels at all."""
-    dy, dx = pixel_size
-    ny, nx = shape
-    limit, half = margin_sigma * float(sigma_nm), 0.5 * min(dy, dx)
-    rows = np.arange(r0, r1)
-    rows_ok = np.minimum(rows + 1, ny - rows) * dy - half >= limit
-    cols_ok = np.minimum(np.arange(1, nx + 1), np.arange(nx, 0, -1)) * dx - half >= limit
-    out = rows_ok[:, None] & cols_ok[None, :]
-    if bad_rows is None or not out.any():
-        return out
-    hy, hx = _trusted_halo(sigma_nm, pixel_size, margin_sigma)
-    a, b = max(0, r0 - hy), min(ny, r1 + hy)
-    window = bad_rows(a, b)
-    if window is None:
-        return out
-    out &= ~window[r0 - a : r1 - a]
-    columns = window.any(axis=0)
-    if not columns.any():
-        return out
-    near = np.convolve(columns, np.ones(2 * hx + 1), mode="same") > 0.5
-    edges = np.flatnonzero(np.diff(np.r_[0, near.astype(np.int8), 0]))
-    for c0, c1 in zip(edges[::2], edges[1::2]):
-        distance = ndimage.distance_transform_edt(~window[:, c0:c1], sampling=(dy, dx))
-        out[:, c0:c1] &= distance[r0 - a : r1 - a] - half >= limit
-    return out
 
 
 # --------------------------------------------------------------------------- resampling by blocks of rows
