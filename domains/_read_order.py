@@ -779,6 +779,42 @@ def _trimmed_centre_error(region, sigma_nm, pixel, spread):
     return float(np.sqrt(np.mean(np.square(dev))) * scale)
 
 
+def _mean_gradient_error(weights, spread, sigma_nm, pixel):
+    """1 sigma error, per Cartesian component (the root mean square of the two), of the weighted mean
+    of a phase gradient field sampled at ``pixel`` = (dy, dx), each axis's samples spread by ``spread``.
+
+    The lock-in's phase noise is correlated as rho(r) = exp(-r^2 / 4 sigma^2) (the autocorrelation of
+    its Gaussian, derived), so the x-derivative's noise is correlated as
+    (1 - x^2 / 2 sigma^2) rho(r) (minus the second derivative of rho, normalised to 1 at r = 0;
+    derived), and var(sum w g / sum w) = s^2 sum_{p,p'} w_p w_p' k(p - p') / (sum w)^2 with s the
+    samples' spread. That kernel integrates to zero along its axis: a mean of gradients telescopes to
+    the phase at the region's edges, and its error falls faster than 1 / sqrt(number of patches).
+    The spread counts all of the gradients' scatter as noise (real structure too): an upper bound where
+    the order has walls. Evaluated with separable filters on the samples (as domains.compare's
+    variances are).
+    """
+    from scipy import ndimage
+
+    w = np.asarray(weights, dtype=float)
+    total = float(w.sum())
+    if total <= 0:
+        return math.nan
+    out = []
+    for axis, s_axis in zip((1, 0), (spread[0], spread[1])):  # x along columns, y along rows
+        kernels = []
+        for ax, d in ((0, pixel[0]), (1, pixel[1])):
+            half = int(math.ceil(8 * sigma_nm / d))
+            m = np.arange(-half, half + 1) * d
+            k = np.exp(-(m**2) / (4 * sigma_nm**2))
+            if ax == axis:
+                k = k * (1 - m**2 / (2 * sigma_nm**2))
+            kernels.append(k)
+        f = ndimage.correlate1d(w, kernels[0], axis=0, mode="constant")
+        f = ndimage.correlate1d(f, kernels[1], axis=1, mode="constant")
+        out.append(s_axis**2 * max(float(np.sum(w * f)), 0.0) / total**2)
+    return float(math.sqrt(np.mean(out)))
+
+
 def _wavevector_stats(image, q, *, sigma_nm, pixel, mask, threshold, basis=None):
     """Per wavevector: the local wavevector inside ordered regions and the frame mean, with standard errors.
 
@@ -787,9 +823,10 @@ def _wavevector_stats(image, q, *, sigma_nm, pixel, mask, threshold, basis=None)
     creep cancel, so the local wavevector is measured in units of the local lattice (Lawler et al. 2010).
     The local value is the centre of the gradient cloud over ordered pixels (walls excluded by trimming);
     its standard error is simulated on the lock-in's noise model (:func:`_trimmed_centre_error`). The
-    frame mean (|A|^2-weighted, walls included) is the mean wavevector, phase slips counted; its error
-    is the spread over the square root of the number of sigma-patches (one per 4 pi sigma^2, derived;
-    an overstatement, as for the centre: a plain mean of gradients telescopes, measured on a tone).
+    frame mean (|A|^2-weighted, walls included) is the mean wavevector, phase slips counted; its error,
+    per Cartesian component, is that of a weighted mean of gradients whose noise is correlated as the
+    derivative of the lock-in's phase noise (:func:`_mean_gradient_error`): such a mean telescopes, so
+    the spread over the number of sigma-patches (used before) made it about three times too large.
 
     Returns (local (k,2), local_err (k,), mean (k,2), mean_err (k,), presence (k,), amplitude (k,)).
     """
@@ -814,7 +851,6 @@ def _wavevector_stats(image, q, *, sigma_nm, pixel, mask, threshold, basis=None)
     local, local_err = np.full((k, 2), np.nan), np.full(k, np.nan)
     mean, mean_err = np.full((k, 2), np.nan), np.full(k, np.nan)
     presence, amp_med = np.zeros(k), np.zeros(k)
-    patch = 4 * math.pi * sigma_nm**2 / (dx * dy)  # pixels per independent lock-in sample (derived)
     for j in range(k):
         ok = trusted & np.isfinite(amp[j]) & np.all(np.isfinite(grad[:, j]), axis=0)
         where = ok & (amp[j] > threshold)
@@ -837,7 +873,7 @@ def _wavevector_stats(image, q, *, sigma_nm, pixel, mask, threshold, basis=None)
         mg = np.array([np.sum(w * gx), np.sum(w * gy)]) / w.sum()
         sd = np.array([math.sqrt(np.sum(w * (v - m_) ** 2) / w.sum()) for v, m_ in ((gx, mg[0]), (gy, mg[1]))])
         mean[j] = q[j] + mg
-        mean_err[j] = float(np.hypot(*sd)) / math.sqrt(max(where.sum() / patch, 1.0))
+        mean_err[j] = _mean_gradient_error(np.where(where, amp[j] ** 2, 0.0), sd, sigma_nm, (dy, dx))
     return local, local_err, mean, mean_err, presence, amp_med
 
 
@@ -1353,6 +1389,9 @@ def read_order(image, *, pixel_size_nm, lattice_reading, mask=None, peaks=None, 
             if not same:
                 unique.append(v)
         verdicts = unique
+        # Members added by the orbit's symmetry (after these) were not measured: they have no mean
+        # wavevector of their own (their candidate index is the measured member's).
+        n_measured = len(verdicts)
         if lat.kind == "hexagonal":
             verdicts = _complete_orbits(verdicts, basis, bin_q)
         vq = np.array([v[2] for v in verdicts]).reshape(-1, 2)
@@ -1399,11 +1438,14 @@ def read_order(image, *, pixel_size_nm, lattice_reading, mask=None, peaks=None, 
             if kinds == {"commensurate"}:
                 coef = np.array([s * verdicts[i][3] for i, s in zip(idx, signs)])
                 m_mat, name, nvar, chir = supercell_name(coef, lat)
-                det_mean = np.array([s * (mean[j] - verdicts[i][2]) for i, j, s in zip(idx, js, signs)])
-                det_err = np.array([mean_err[j] for j in js])
-                dq = float(np.mean(np.hypot(*det_mean.T)))
-                sig = np.hypot(*det_mean.T) > N_SIGMA * np.hypot(det_err, SYSTEMATIC_FRACTION * np.hypot(*qs.T))
-                spacing = float(2 * math.pi / dq) if sig.all() and dq > 0 else None
+                det_mean = np.array([s * (mean[j] - verdicts[i][2]) if i < n_measured else (math.nan, math.nan)
+                                     for i, j, s in zip(idx, js, signs)])
+                det_err = np.array([mean_err[j] if i < n_measured else math.nan for i, j in zip(idx, js)])
+                ok = np.isfinite(det_err)
+                dq = float(np.mean(np.hypot(*det_mean[ok].T))) if ok.any() else 0.0
+                sig = (np.hypot(*det_mean[ok].T)
+                       > N_SIGMA * np.hypot(det_err[ok], SYSTEMATIC_FRACTION * np.hypot(*qs[ok].T)))
+                spacing = float(2 * math.pi / dq) if ok.any() and sig.all() and dq > 0 else None
                 # Exact in units of the lattice: the absolute error is the basis's, propagated.
                 errs = _order_q_err(coef, lattice_reading)
                 families.append(OrderFamily("commensurate", qs, errs, coef, m_mat, name, nvar, chir, det_mean, det_err,

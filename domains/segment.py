@@ -770,7 +770,9 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
     1. every pixel of the closed loop of radius ``loop_radius_nm`` (a circle in
        nm, default 2 sigma) around the plaquette centre lies in the frame, is
        ``ordered``, has a finite field and, when ``amplitude_threshold`` is given,
-       |field| >= ``amplitude_threshold`` on every loop pixel;
+       |field| >= ``amplitude_threshold`` on every loop pixel and on the straight
+       segments joining their values (a sign flip of the order between two loop
+       pixels, a pi phase slip, passes through zero there);
     2. the phase winds along that loop, (1/2 pi) sum of the wrapped differences
        between successive loop pixels, by a nonzero integer of the candidate's sign
        (a noise-made +-1 pair inside the loop cancels and is not counted);
@@ -877,11 +879,22 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
             if min_ordered_fraction is not None:
                 ok &= (fraction[r, c] >= min_ordered_fraction) & (fraction[r + 1, c + 1] >= min_ordered_fraction)
             lr, lc, r, c, w = lr[ok], lc[ok], r[ok], c[ok], w[ok]
+            # Between two loop pixels the field runs along the straight segment joining their values (it is
+            # smooth on the scale sigma, many pixels): its smallest modulus there is the loop's between them.
+            # A wall where the order flips sign (a pi phase slip) crosses the loop through |field| = 0
+            # between pixels whose own amplitudes pass the threshold, and the noise then decides the sign of
+            # each pi step: a line of +-1 "windings" along every such wall unless this is checked.
+            z = f[lr, lc]
+            step = np.roll(z, -1, axis=1) - z
+            t = np.clip(-np.real(z * np.conj(step)) / np.maximum(np.abs(step) ** 2, np.finfo(float).tiny), 0.0, 1.0)
+            segment_min = np.abs(z + t * step).min(axis=1)
+            ok = segment_min >= thresholds[j]
+            lr, lc, r, c, w, segment_min = lr[ok], lc[ok], r[ok], c[ok], w[ok], segment_min[ok]
             loop_phase = phi[lr, lc]
             loop_wind = np.rint(_wrap(np.roll(loop_phase, -1, axis=1) - loop_phase).sum(axis=1) / (2 * np.pi))
             loop_wind = loop_wind.astype(int)
             keep = (loop_wind != 0) & (np.sign(loop_wind) == np.sign(w))
-            loop_min = np.abs(f[lr[keep], lc[keep]]).min(axis=1) if keep.any() else np.zeros(0)
+            loop_min = segment_min[keep]
             accepted.extend(zip(r[keep], c[keep], loop_wind[keep], loop_min))
         defects.extend(_merge_windings(accepted, j, radius_nm, dy, dx))
     return defects

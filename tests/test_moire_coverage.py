@@ -87,9 +87,9 @@ def test_frame_errors_cover_the_truth_over_100_noise_realisations():
 def test_per_domain_errors_cover_the_truth_in_a_two_twist_scene():
     # Two twist bands (1.05 and 1.30 deg, 0.1 % heterostrain along 20 deg) in a 96 x 96 nm frame,
     # 40 noise realisations: each twist domain's own twist and heterostrain, fitted 2 sigma from the
-    # wall, against its band's truth. 80 domain values; 90-99 % within 2 sigma (issue 12).
+    # wall, and its period, against its band's truth. 80 domain values; 90-99 % within 2 sigma (issue 12).
     regions, eps = (1.05, 1.30), 0.1
-    z_twist, z_eps, counts = [], [], []
+    z_twist, z_eps, z_period, counts = [], [], [], []
     for seed in range(40):
         image, truth = twisted_bilayer(shape=(320, 320), pixel_size_nm=0.3, a_nm=A_NM, regions=list(regions),
                                        heterostrain_percent=eps, heterostrain_angle_deg=20.0, noise=0.5,
@@ -103,7 +103,10 @@ def test_per_domain_errors_cover_the_truth_in_a_two_twist_scene():
             band = truth["regions"][int(row["centroid_y_nm"] / 0.3), int(row["centroid_x_nm"] / 0.3)]
             z_twist.append((row["twist_deg"] - regions[band - 1]) / row["twist_deg_err"])
             z_eps.append((row["heterostrain_percent"] - eps) / row["heterostrain_percent_err"])
+            # the band's period from the analytic wavevectors (derived above, independent of the code)
+            period = analytic_period_nm(regions[band - 1], eps, 20.0)
+            z_period.append((row["period_nm"] - period) / row["period_nm_err"])
     assert counts == [2] * 40  # the scene's two bands, every time
-    for z in (z_twist, z_eps):
+    for z in (z_twist, z_eps, z_period):
         frac = float(np.mean(np.abs(z) <= 2))
         assert 0.90 <= frac <= 0.99, frac  # issue 12: 90-99 % (95.45 % for a calibrated normal error, derived)
