@@ -73,9 +73,9 @@ def test_stripe_orientation_domains_match_the_truth():
     scene = stripe_scene(shape=(448, 448), n_domains=4, rng=7)
     result = analyze(scene.topography, progress=False)
     assert result.summary["order_kind"] == "stripes"
-    # The scene gives every Voronoi cell its own uniformly random stripe phase, so two cells of one
-    # orientation that touch are separated by a phase-slip wall: the true domains are the cells
-    # (orientational and translational domains), not the regions of one orientation.
+    # The scene gives every Voronoi cell one of the stripe's translational variants (phase 2 pi m / 4), so
+    # two touching cells of one orientation and different variants meet at a phase-slip wall: the true
+    # domains are the regions of one orientation and one variant, not the regions of one orientation.
     truth = scene.truth_maps["labels"]
     labels = result.maps["labels"][0]
     where = (labels > 0) & _outside_walls(truth, result.summary["sigma_nm"], scene.topography.pixel_size_nm[0])

@@ -414,6 +414,8 @@ def stripe_scene(
     -------
     Scene
         ``truth_maps["orientation"]`` holds 0 (stripes along q of G_x) or 1 per pixel;
+        ``truth_maps["labels"]`` the domains (connected regions of one orientation and one translational
+        variant, ``truth["n_domains"]`` of them), ``truth_maps["cells"]`` the Voronoi cells;
         ``truth["q_stripe_rad_per_nm"]`` the two stripe wavevectors.
 
     Examples
@@ -433,7 +435,11 @@ def stripe_scene(
     if len(set(orientation_of.tolist())) < 2 and n_domains > 1:
         orientation_of[-1] = 1 - orientation_of[0]
     weights = smooth_partition(labels, wall_width_nm / pixel_size[0])
-    phases = rng.uniform(-np.pi, np.pi, n_domains)
+    # A commensurate stripe of period p has p translational variants, phases 2 pi m / p: each cell draws
+    # one, so a phase slip between cells of one orientation is a multiple of 2 pi / p (a continuous slip
+    # below pi / p would not be a domain wall of a commensurate order at all).
+    variant_of = rng.integers(0, period_a, n_domains)
+    phases = 2 * np.pi * variant_of / period_a
     stripes = np.zeros(shape)
     for d in range(n_domains):
         q = q_stripe[orientation_of[d]]
@@ -459,6 +465,17 @@ def stripe_scene(
     # the connected regions of one orientation.
     regions = sum(ndimage.label(orientation == o)[1] for o in (0, 1))
     truth["n_orientation_domains"] = int(regions)
-    truth_maps = {"labels": labels, "orientation": orientation, "displacement": np.zeros((2,) + shape)}
+    # The domains: connected regions of one orientation and one translational variant (two touching cells
+    # that drew the same variant are one domain).
+    state = (orientation_of * period_a + variant_of)[labels - 1]
+    domain_map = np.zeros(shape, np.int32)
+    for s in np.unique(state):
+        found, _ = ndimage.label(state == s)
+        domain_map[found > 0] = found[found > 0] + domain_map.max()
+    truth["n_domains"] = int(domain_map.max())
+    truth["domains"] = [{"label": d + 1, "orientation": int(orientation_of[d]), "variant": int(variant_of[d])}
+                        for d in range(n_domains)]
+    truth_maps = {"labels": domain_map, "cells": labels, "orientation": orientation,
+                  "displacement": np.zeros((2,) + shape)}
     return Scene("stripes", topography, [], truth, truth_maps)
 
