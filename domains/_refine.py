@@ -221,7 +221,9 @@ def domain_table_chunked(labels, walls, *, pixel_size_nm, state_names, amplitude
 
     dy, dx = pixel_size_pair(pixel_size_nm)
     ny, nx = labels.shape
-    n = int(max(np.max(sample_labels, initial=0), 0)) + 1
+    # the largest sample label (dask's max takes no ``initial``)
+    top = int(sample_labels.max()) if hasattr(sample_labels, "dask") else int(np.max(sample_labels, initial=0))
+    n = max(top, 0) + 1
     starts = [np.cumsum((0,) + c[:-1]) for c in labels.chunks]
 
     def sums(block, r0, c0):
@@ -249,7 +251,7 @@ def domain_table_chunked(labels, walls, *, pixel_size_nm, state_names, amplitude
     # Amplitudes and phases from the samples, as measure.domain_table reads them.
     from .measure import _label_means
 
-    m = max(size, int(np.max(sample_labels, initial=0)) + 1)
+    m = max(size, top + 1)
     mean_amp, phases = _label_means(sample_labels, m, amplitude, fields)
     rows = []
     for lab in range(1, size):

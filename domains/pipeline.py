@@ -466,8 +466,10 @@ def index_image(image, *, pixel_size_nm, mask=None, config=None):
 
 
 def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analysis:
+    from dataclasses import replace as _replace
+
+    from . import _coarse, measure, order, segment
     from . import drift as drift_mod
-    from . import measure, order, segment
 
     pixel = topography.pixel_size_nm
     bar = _progress(8, progress)
@@ -564,11 +566,16 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                        "why": "given" if config.grid_step else "the lock-in's lossless step, at most sigma / 2"}
     if kind in ("commensurate", "stripes", "incommensurate"):
         names = _component_names("cdw" if kind != "stripes" else "stripe", len(order_q))
-        # Coarse fields in memory (a dask input is demodulated chunk by chunk).
-        a_order = np.asarray(lockin(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask, step=step_))
+        if lazy:
+            # The coarse fields of a lazy run stay on dask (complex64), stored once in the scratch folder;
+            # everything up to the input-grid labels is computed from them chunk by chunk (domains._coarse).
+            a_order = _coarse.order_fields(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask,
+                                           step=step_, scratch=scratch)
+        else:
+            a_order = np.asarray(lockin(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask, step=step_))
         floor = order.noise_floor(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel,
                                   avoid_q=lattice_q if lattice_q is not None else (), mask=mask, trusted=trusted_c,
-                                  false_alarm=config.false_alarm, step=step_)
+                                  false_alarm=config.false_alarm, step=step_, scratch=scratch)
         choices["order_threshold"] = {"value": floor.threshold, "rayleigh_scale": floor.rayleigh_scale,
                                       "false_alarm_per_pixel": floor.false_alarm,
                                       "why": "Rayleigh tail of the lock-in amplitude measured at empty wavevectors"}
@@ -593,14 +600,23 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         bragg_phase = None
         if drift_result is not None and commensurate:
             # After correction the Bragg phase is a small residual: safe to scale by the coefficients.
-            bragg_phase = np.nan_to_num(grid_.sample(drift_result.residual_phase_points))
-        state = order.family_order(a_order, groups, coefficients=coefficients, bragg_phase=bragg_phase,
-                                   threshold=floor.threshold, trusted=trusted_c,
-                                   anisotropy_threshold=config.anisotropy_threshold, family_names=family_names)
+            # (A lazy run samples its spline chunk by chunk.)
+            bragg_phase = (drift_result.residual_phase_points if lazy
+                           else np.nan_to_num(grid_.sample(drift_result.residual_phase_points)))
+        if lazy:
+            state = _coarse.family_order_chunked(a_order, groups, step=step_, coefficients=coefficients,
+                                                 bragg_phase=bragg_phase, threshold=floor.threshold, trusted=trusted_c,
+                                                 anisotropy_threshold=config.anisotropy_threshold,
+                                                 family_names=family_names, scratch=scratch)
+        else:
+            state = order.family_order(a_order, groups, coefficients=coefficients, bragg_phase=bragg_phase,
+                                       threshold=floor.threshold, trusted=trusted_c,
+                                       anisotropy_threshold=config.anisotropy_threshold, family_names=family_names)
         confidence = config.confidence or (order.variant_confidence(coefficients) if commensurate else 0.5)
-        seg = segment.segment_states(state.state, state.score, state.ordered, pixel_size_nm=pc,
-                                     min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted_c,
-                                     bridge_nm=2 * sigma_nm)
+        segment_states = _coarse.segment_states_chunked if lazy else segment.segment_states
+        seg = segment_states(state.state, state.score, state.ordered, pixel_size_nm=pc,
+                             min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted_c,
+                             bridge_nm=2 * sigma_nm)
         fields_used = state.fields
         state_names = {lab: state.names[v] for lab, v in seg.state.items()}
         choices["variant_offset_rad"] = [o.tolist() for o in state.offsets_rad]
@@ -612,7 +628,15 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
             notes.append("Incommensurate order: no translational variants; regions show where order is present.")
         tip_rows = (choices.get("level_findings") or {}).get("tip_change_rows") or []
         if tip_rows and drift_result is not None:
+            if lazy:
+                # TEMPORARY (not chunked yet): the coarse labels in memory for the merge, then back on dask.
+                chunks = seg.labels.chunks
+                seg = _replace(seg, labels=np.asarray(seg.labels), grown=np.asarray(seg.grown),
+                               walls=np.asarray(seg.walls))
             seg, merged = _merge_across_tip_changes(seg, grid_.coarse_rows(tip_rows), sigma_nm / pc[0], state.names)
+            if lazy:
+                seg = _replace(seg, **{k: da.from_array(getattr(seg, k), chunks=chunks)
+                                       for k in ("labels", "grown", "walls")})
             if merged:
                 notes.append(f"{merged} domain boundary(ies) lying along a tip-change row were merged: a lateral "
                              "jump of the tip shifts the lattice by a vector the drift correction can only know "
@@ -625,17 +649,20 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         amp = amplitude(a_order)
         # A winding counts only where its own component carries order (stripes: not where it is absent).
         defects = []
+        phase_defects = _coarse.phase_defects_chunked if lazy else segment.phase_defects
+        confirms = _coarse.loop_confirms_lazy if lazy else _refine.loop_confirms
         for j in range(len(a_order)):
             # |fields_used| is |A| = amplitude / 2: the same threshold on that scale.
-            found_j = segment.phase_defects(fields_used[j:j + 1], pixel_size_nm=pc,
-                                            ordered=(amp[j] > floor.threshold) & trusted_c, sigma_nm=sigma_nm,
-                                            amplitude_threshold=floor.threshold / 2)
+            found_j = phase_defects(fields_used[j:j + 1], pixel_size_nm=pc,
+                                    ordered=(amp[j] > floor.threshold) & trusted_c, sigma_nm=sigma_nm,
+                                    amplitude_threshold=floor.threshold / 2)
             if step_ > 1:
-                found_j = [d for d in found_j if _refine.loop_confirms(fields_used[j], d, pc, floor.threshold / 2)]
+                found_j = [d for d in found_j if confirms(fields_used[j], d, pc, floor.threshold / 2)]
             # Rows and columns on the input grid (positions in nm are the same on both grids).
             defects += [{**d, "component": j, "row": d["row"] * step_, "col": d["col"] * step_} for d in found_j]
-        wall_rows = measure.wall_table(seg.grown, walls_c, pixel_size_nm=pc, fields=fields_used, sigma_nm=sigma_nm,
-                                       trusted=trusted_c)
+        wall_table = measure.wall_table_chunked if lazy else measure.wall_table
+        wall_rows = wall_table(seg.grown, walls_c, pixel_size_nm=pc, fields=fields_used, sigma_nm=sigma_nm,
+                               trusted=trusted_c)
 
         def score_at(rows, cols):
             # The state's score at input pixels from the fields interpolated between samples (band-limited).
@@ -657,11 +684,21 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                                     offsets_rad=state.offsets_rad)
             return at.score[0], at.state[0]
 
-        labels, walls = _refine.to_input_grid(grid_, seg, score_at, confidence, lazy=lazy)
+        seg_refine = seg
+        if lazy:
+            # TEMPORARY, until to_input_grid and score_at read windows of dask coarse arrays (branch scale):
+            # the coarse segmentation and fields in memory for this call only.
+            seg_refine = _replace(seg, labels=np.asarray(seg.labels), grown=np.asarray(seg.grown),
+                                  walls=np.asarray(seg.walls))
+            a_lazy, a_order = a_order, np.asarray(a_order)
+        labels, walls = _refine.to_input_grid(grid_, seg_refine, score_at, confidence, lazy=lazy)
         if lazy:
             # The refined labels (walls as -1) are read by the measurement and the bundle: computed once.
             code = checkpoint(da.where(walls, -1, labels), scratch, "labels")
             labels, walls = da.maximum(code, 0), code < 0
+            a_order = a_lazy
+            del a_lazy
+        del seg_refine
         # Areas, centroids and edge contact from the input-grid labels; amplitudes and phases from the samples.
         if lazy:
             domain_rows, shown_labels, shown_walls = _refine.domain_table_chunked(
@@ -683,9 +720,10 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
             out_maps[f"amplitude/{name}"] = (amplitude(a_j).astype(np.float32), {**attrs, "pixel_size_nm": list(pc), "units": topography.metadata.get("units", "image units")})
             out_maps[f"phase/{name}"] = (np.angle(a_j).astype(np.float32), {**attrs, "pixel_size_nm": list(pc), "units": "rad"})
         bar("bias comparison and moiré")
+        small = _coarse.small_lazy if lazy else _small
         views["order"] = {"names": names, "units": topography.metadata.get("units", ""),
-                          "amplitude": _small(amp.mean(axis=0), pc),
-                          "phase": _small(np.angle(fields_used[0]), pc, how="phase")}
+                          "amplitude": small(amp.mean(axis=0), pc),
+                          "phase": small(np.angle(fields_used[0]), pc, how="phase")}
         views["domains"] = _domain_view(background, shown_labels, shown_walls, shown_pixel)
     else:
         bar("bias comparison and moiré", n=3)
