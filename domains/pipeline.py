@@ -628,15 +628,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
             notes.append("Incommensurate order: no translational variants; regions show where order is present.")
         tip_rows = (choices.get("level_findings") or {}).get("tip_change_rows") or []
         if tip_rows and drift_result is not None:
-            if lazy:
-                # TEMPORARY (not chunked yet): the coarse labels in memory for the merge, then back on dask.
-                chunks = seg.labels.chunks
-                seg = _replace(seg, labels=np.asarray(seg.labels), grown=np.asarray(seg.grown),
-                               walls=np.asarray(seg.walls))
             seg, merged = _merge_across_tip_changes(seg, grid_.coarse_rows(tip_rows), sigma_nm / pc[0], state.names)
-            if lazy:
-                seg = _replace(seg, **{k: da.from_array(getattr(seg, k), chunks=chunks)
-                                       for k in ("labels", "grown", "walls")})
             if merged:
                 notes.append(f"{merged} domain boundary(ies) lying along a tip-change row were merged: a lateral "
                              "jump of the tip shifts the lattice by a vector the drift correction can only know "
@@ -806,20 +798,25 @@ def _merge_across_tip_changes(seg, tip_rows, sigma_px, names):
     A lateral tip jump moves everything below the row by the same lattice translation, so every
     false boundary along the row shows the same change of variant; a true wall that happens to lie
     along the row has its own. Only pairs with the most common change (by boundary length) merge.
+
+    The merges are collected as a relabelling table read from two rows per tip change, so a lazy
+    segmentation (dask labels, grown and walls) is merged chunk by chunk and stays lazy.
     """
     from dataclasses import replace as _replace
 
     from . import segment
 
-    grown = seg.grown.copy()
-    ny = grown.shape[0]
+    lazy = hasattr(seg.grown, "dask")
+    ny = seg.grown.shape[0]
+    # lut[original label] = label after the merges so far (grown[grown == lb] = la, as a table)
+    lut = np.arange(int(seg.grown.max()) + 1, dtype=np.asarray(seg.grown[:1, :1]).dtype)
     reach = int(math.ceil(3 * sigma_px)) + 1
     merged = 0
     for r in tip_rows:
         above, below = r - reach - 1, r + reach
         if above < 0 or below >= ny:
             continue
-        a, b = grown[above], grown[below]
+        a, b = lut[np.asarray(seg.grown[above])], lut[np.asarray(seg.grown[below])]
         pairs = {}
         for la, lb in zip(a, b):
             if la > 0 and lb > 0 and la != lb:
@@ -844,19 +841,34 @@ def _merge_across_tip_changes(seg, tip_rows, sigma_px, names):
             continue  # no jump shared by two boundaries: a wall that happens to lie along the row
         for la, lb, n, jump in candidates:
             if jump == common:
-                grown[grown == lb] = la
+                lut[lut == lb] = la
                 merged += 1
     if not merged:
         return seg, 0
-    walls = segment.thin_walls(grown)
-    labels = np.where(walls, 0, grown)
-    labels = np.where(seg.labels > 0, labels, 0)
+    if lazy:
+        import dask.array as da
+
+        grown = seg.grown.map_blocks(lambda g: lut[g], dtype=lut.dtype)
+        walls = da.map_overlap(segment.thin_walls, grown, depth=1, boundary="none", dtype=bool)
+        labels = da.where(walls, 0, grown)
+        labels = da.where(seg.labels > 0, labels, 0)
+        present = np.unique(da.unique(labels).compute())
+    else:
+        grown = lut[seg.grown]
+        walls = segment.thin_walls(grown)
+        labels = np.where(walls, 0, grown)
+        labels = np.where(seg.labels > 0, labels, 0)
+        present = np.unique(labels)
     # Renumber 1..N in the order of first appearance.
-    ids = [int(v) for v in np.unique(labels) if v > 0]
-    remap = np.zeros(int(grown.max()) + 1, np.int32)
+    ids = [int(v) for v in present if v > 0]
+    remap = np.zeros(len(lut), np.int32)
     for new, old in enumerate(ids, start=1):
         remap[old] = new
     state = {int(remap[old]): seg.state[old] for old in ids if old in seg.state}
+    if lazy:
+        return _replace(seg, labels=labels.map_blocks(lambda x: remap[x], dtype=np.int32),
+                        grown=grown.map_blocks(lambda x: remap[x], dtype=np.int32),
+                        walls=walls & (seg.grown > 0), state=state), merged
     return _replace(seg, labels=remap[labels], grown=remap[grown], walls=walls & (seg.grown > 0),
                     state=state), merged
 

@@ -180,3 +180,28 @@ def test_loop_confirms_lazy_equals_whole_field():
     for d in (defect, {**defect, "winding": -1}):
         assert _coarse.loop_confirms_lazy(lazy, d, (0.1, 0.1), 1.0) == loop_confirms(field, d, (0.1, 0.1), 1.0)
     assert _coarse.loop_confirms_lazy(lazy, defect, (0.1, 0.1), 1.0)
+
+
+def test_tip_change_merge_of_a_lazy_segmentation_equals_in_memory():
+    from domains import pipeline
+    from domains.segment import Segmentation
+
+    # Four domains: left and right of a vertical wall, above and below a tip-change row at 40. Both
+    # boundaries along the row show the same change of variant, (1, 1): a tip jump; they merge.
+    grown = np.ones((80, 60), np.int32)
+    grown[:, 30:] = 2
+    grown[40:, :30], grown[40:, 30:] = 3, 4
+    walls = thin_walls(grown)
+    names = ["3x3 m=(0,0)", "3x3 m=(1,0)", "3x3 m=(1,1)", "3x3 m=(2,1)"]
+    seg = Segmentation(np.where(walls, 0, grown), grown, walls, {1: 0, 2: 1, 3: 2, 4: 3}, 0)
+    memory, n_memory = pipeline._merge_across_tip_changes(seg, [40], 2.0, names)
+    chunks = ((17, 30, 33), (25, 35))
+    lazy_seg = Segmentation(*(dask_array.from_array(x, chunks=chunks) for x in (seg.labels, grown, walls)),
+                            seg.state, 0)
+    lazy, n_lazy = pipeline._merge_across_tip_changes(lazy_seg, [40], 2.0, names)
+    # truth (set above): two merges, two domains left (the vertical wall stays)
+    assert n_memory == n_lazy == 2 and sorted(memory.state) == [1, 2]
+    # reference: the in-memory merge; exactly the same arrays and states
+    assert lazy.state == memory.state
+    for key in ("labels", "grown", "walls"):
+        np.testing.assert_array_equal(np.asarray(getattr(lazy, key)), getattr(memory, key), err_msg=key)
