@@ -20,7 +20,8 @@ from skimage.segmentation import watershed
 from ._checks import positive
 from ._errors import InputError
 from ._scan import pixel_size_pair
-from .segment import Segmentation, _disc_dilation, _disc_erosion, _loop_offsets, _merge_windings, _wrap, thin_walls
+from .segment import (Segmentation, _disc_dilation, _disc_erosion, _loop_offsets, _loop_test, _merge_windings,
+                      _plaquette_windings, thin_walls)
 
 __all__ = ["default_halo_px", "phase_defects_chunked", "segment_states_chunked"]
 
@@ -366,7 +367,7 @@ def segment_states_chunked(state, confidence, ordered, *, pixel_size_nm, min_are
     return Segmentation(labels, grown, walls, seed_state, islands, params)
 
 
-def _accepted_in_block(f, good, fraction, offsets, owned, origin, frame, min_ordered_fraction):
+def _accepted_in_block(f, good, fraction, offsets, owned, origin, frame, min_ordered_fraction, threshold):
     """The plaquettes of one chunk that pass :func:`segment.phase_defects`' loop test (global coordinates).
 
     ``f``, ``good`` and ``fraction`` cover the chunk with its overlap, whose first sample is the frame's
@@ -376,10 +377,7 @@ def _accepted_in_block(f, good, fraction, offsets, owned, origin, frame, min_ord
     n_rows, n_cols = frame
     (r0, r1), (c0, c1) = owned
     phi = np.angle(f)
-    total = _wrap(phi[:-1, 1:] - phi[:-1, :-1]) + _wrap(phi[1:, 1:] - phi[:-1, 1:]) \
-        + _wrap(phi[1:, :-1] - phi[1:, 1:]) + _wrap(phi[:-1, :-1] - phi[1:, :-1])
-    plaquette = np.rint(np.nan_to_num(total) / (2 * np.pi)).astype(np.int8)
-    del total
+    plaquette = _plaquette_windings(phi)
     rows, cols = np.nonzero(plaquette)
     wind = plaquette[rows, cols]
     rows, cols = rows + origin[0], cols + origin[1]
@@ -390,15 +388,8 @@ def _accepted_in_block(f, good, fraction, offsets, owned, origin, frame, min_ord
     inside = np.all((lr >= 0) & (lr < n_rows) & (lc >= 0) & (lc < n_cols), axis=1)
     lr, lc = lr[inside] - origin[0], lc[inside] - origin[1]
     r, c, w = rows[inside] - origin[0], cols[inside] - origin[1], wind[inside]
-    ok = np.all(good[lr, lc], axis=1)
-    if min_ordered_fraction is not None:
-        ok &= (fraction[r, c] >= min_ordered_fraction) & (fraction[r + 1, c + 1] >= min_ordered_fraction)
-    lr, lc, r, c, w = lr[ok], lc[ok], r[ok], c[ok], w[ok]
-    loop_phase = phi[lr, lc]
-    loop_wind = np.rint(_wrap(np.roll(loop_phase, -1, axis=1) - loop_phase).sum(axis=1) / (2 * np.pi)).astype(int)
-    keep = (loop_wind != 0) & (np.sign(loop_wind) == np.sign(w))
-    loop_min = np.abs(f[lr[keep], lc[keep]]).min(axis=1) if keep.any() else np.zeros(0)
-    return r[keep] + origin[0], c[keep] + origin[1], loop_wind[keep], loop_min
+    r, c, loop_wind, loop_min = _loop_test(f, phi, good, fraction, lr, lc, r, c, w, min_ordered_fraction, threshold)
+    return r + origin[0], c + origin[1], loop_wind, loop_min
 
 
 def _defect_block(f, ordered, threshold, offsets, owned, origin, frame, min_ordered_fraction, disc_radius):
@@ -409,7 +400,7 @@ def _defect_block(f, ordered, threshold, offsets, owned, origin, frame, min_orde
         r = disc_radius
         disc = (np.hypot(*np.mgrid[-r: r + 1, -r: r + 1]) <= r).astype(float)
         fraction = np.rint(fftconvolve(ordered.astype(float), disc, mode="same")) / disc.sum()
-    return _accepted_in_block(f, good, fraction, offsets, owned, origin, frame, min_ordered_fraction)
+    return _accepted_in_block(f, good, fraction, offsets, owned, origin, frame, min_ordered_fraction, threshold)
 
 
 def phase_defects_chunked(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fraction=None,

@@ -15,7 +15,7 @@ import numpy as np
 
 from ._scan import pixel_size_pair
 
-__all__ = ["TILE_PX", "domain_table_chunked", "loop_confirms", "order_score_at", "tile_chunks", "to_input_grid",
+__all__ = ["TILE_PX", "WindowedScore", "domain_table_chunked", "loop_confirms", "order_score_at", "tile_chunks", "to_input_grid",
            "trusted_on_grid"]
 
 
@@ -138,19 +138,35 @@ def to_input_grid(grid_, seg, score_at, confidence, lazy=False):
         a, b, c, d = max(0, r0 - halo), min(ny, r1 + halo), max(0, c0 - halo), min(nx, c1 + halo)
         return (a, b, c, d), (_coarse_span(grid_, 0, a, b), _coarse_span(grid_, 1, c, d))
 
-    def code_of(coarse, r0, r1, c0, c1):
-        # Labels (walls as -1) of input rows r0:r1 and columns c0:c1 from their window.
+    windowed = isinstance(score_at, WindowedScore)
+    nyc, nxc = grid_.coarse_shape
+
+    def code_of(coarse, r0, r1, c0, c1, fields=None):
+        # Labels (walls as -1) of input rows r0:r1 and columns c0:c1 from their window; with a windowed
+        # score, ``fields`` is (i_off, j_off, the fields' samples around the window).
         (a, b, c, d), spans = window(r0, r1, c0, c1)
-        code = _refine_window(grid_, *coarse, spans, own, score_at, confidence, a, b, c, d)
+        scorer = score_at if fields is None else score_at.local(fields[2], fields[0], fields[1])
+        code = _refine_window(grid_, *coarse, spans, own, scorer, confidence, a, b, c, d)
         return code[r0 - a:r1 - a, c0 - c:c1 - c]
 
     def slab(spans):
         (i0, i1), (j0, j1) = spans
         return tuple(x[i0:i1, j0:j1] for x in (seg.grown, seg.labels, seg.walls))
 
+    def fields_slab(spans):
+        # The samples of the fields a tile's spline needs: its coarse window and SPLINE_MARGIN more.
+        (i0, i1), (j0, j1) = spans
+        a0, b0 = max(0, i0 - SPLINE_MARGIN), max(0, j0 - SPLINE_MARGIN)
+        return a0, b0, score_at.fields[:, a0:min(nyc, i1 + SPLINE_MARGIN), b0:min(nxc, j1 + SPLINE_MARGIN)]
+
     if not lazy:
         def run(r0, r1, c0, c1):
-            return code_of(_computed(slab(window(r0, r1, c0, c1)[1])), r0, r1, c0, c1)
+            spans = window(r0, r1, c0, c1)[1]
+            fields = None
+            if windowed:
+                i_off, j_off, part = fields_slab(spans)
+                fields = (i_off, j_off, np.asarray(part))
+            return code_of(_computed(slab(spans)), r0, r1, c0, c1, fields)
 
         if len(tiles) == 1 and len(tiles[0]) == 1:
             code = run(0, ny, 0, nx)  # one tile: no second frame-sized copy
@@ -166,10 +182,17 @@ def to_input_grid(grid_, seg, score_at, confidence, lazy=False):
 
     def lazy_tile(r0, r1, c0, c1):
         # The coarse slices are arguments of the task: a dask coarse array is computed there, slice only.
-        task = dask.delayed(lambda g, l, w: code_of((np.asarray(g), np.asarray(l), np.asarray(w)), r0, r1, c0, c1),
-                            pure=False)
-        return da.from_delayed(task(*slab(window(r0, r1, c0, c1)[1])), shape=(r1 - r0, c1 - c0), dtype=np.int32,
-                               meta=np.empty((0, 0), np.int32))
+        spans = window(r0, r1, c0, c1)[1]
+        if windowed:
+            i_off, j_off, part = fields_slab(spans)
+            task = dask.delayed(lambda g, l, w, f: code_of((np.asarray(g), np.asarray(l), np.asarray(w)), r0, r1, c0,
+                                                           c1, (i_off, j_off, np.asarray(f))), pure=False)
+            out = task(*slab(spans), part)
+        else:
+            task = dask.delayed(lambda g, l, w: code_of((np.asarray(g), np.asarray(l), np.asarray(w)), r0, r1, c0, c1),
+                                pure=False)
+            out = task(*slab(spans))
+        return da.from_delayed(out, shape=(r1 - r0, c1 - c0), dtype=np.int32, meta=np.empty((0, 0), np.int32))
 
     code = da.block([[lazy_tile(*t) for t in row] for row in tiles])
     return da.maximum(code, 0), code < 0
@@ -192,8 +215,10 @@ def order_score_at(fields, step, *, groups, coefficients=None, threshold=None, a
 
     Parameters
     ----------
-    fields : (k, row, col) complex ndarray
-        The lock-in fields on the decimated grid (sample (i, j) on input pixel (step i, step j)).
+    fields : (k, row, col) complex ndarray or dask array
+        The lock-in fields on the decimated grid (sample (i, j) on input pixel (step i, step j)). Dask
+        fields are never computed whole: the result is then a :class:`WindowedScore`, whose spline is
+        built per tile of :func:`to_input_grid` from the tile's samples and :data:`SPLINE_MARGIN` more.
     step : int
         Decimation step in input pixels.
     groups, coefficients, threshold, anisotropy_threshold, family_names, offsets_rad
@@ -204,8 +229,8 @@ def order_score_at(fields, step, *, groups, coefficients=None, threshold=None, a
 
     Returns
     -------
-    callable
-        ``score_at(rows, cols) -> (score, state)``, 1-D arrays like ``rows``.
+    callable or WindowedScore
+        ``score_at(rows, cols) -> (score, state)``, 1-D arrays like ``rows`` (for dask fields, per window).
 
     References
     ----------
@@ -224,31 +249,68 @@ def order_score_at(fields, step, *, groups, coefficients=None, threshold=None, a
 
     from . import order
 
-    fields = np.asarray(fields)
-    # Each part's spline coefficients once, as map_coordinates would compute them on every call.
-    splines = [ndimage.spline_filter(np.pad(part, SPLINE_PAD, mode="edge"), 3, output=np.float64, mode="nearest")
-               for c in fields for part in (c.real, c.imag)]
+    def make(part_fields, i_off, j_off):
+        # The spline of the fields on samples i_off.., j_off.. (the whole grid: 0, 0), evaluated at input pixels.
+        # Each part's spline coefficients once, as map_coordinates would compute them on every call.
+        splines = [ndimage.spline_filter(np.pad(part, SPLINE_PAD, mode="edge"), 3, output=np.float64, mode="nearest")
+                   for c in part_fields for part in (c.real, c.imag)]
 
-    def evaluate(spline, where):
-        return ndimage.map_coordinates(spline, where, order=3, mode="nearest", prefilter=False)
+        def evaluate(spline, where):
+            return ndimage.map_coordinates(spline, where, order=3, mode="nearest", prefilter=False)
 
-    def score_at(rows, cols):
-        where = np.array([rows / step, cols / step]) + SPLINE_PAD
-        a_at = np.stack([evaluate(splines[2 * j], where) + 1j * evaluate(splines[2 * j + 1], where)
-                         for j in range(len(fields))])[:, None, :]
-        bp = None
-        if bragg_residual is not None:
-            # The residual Bragg phase over the pixels' bounding box (a separable evaluation of its
-            # spline: matrix products), then at the pixels; scattered-point evaluation costs 30x more.
-            r0, c0 = int(rows.min()), int(cols.min())
-            box = bragg_residual[:, r0:int(rows.max()) + 1, c0:int(cols.max()) + 1]
-            bp = np.nan_to_num(box[:, rows - r0, cols - c0])[:, None, :]
-        at = order.family_order(a_at, groups, coefficients=coefficients, bragg_phase=bp, threshold=threshold,
-                                anisotropy_threshold=anisotropy_threshold, family_names=family_names,
-                                offsets_rad=offsets_rad)
-        return at.score[0], at.state[0]
+        def score_at(rows, cols):
+            where = np.array([rows / step - i_off, cols / step - j_off]) + SPLINE_PAD
+            a_at = np.stack([evaluate(splines[2 * j], where) + 1j * evaluate(splines[2 * j + 1], where)
+                             for j in range(len(part_fields))])[:, None, :]
+            bp = None
+            if bragg_residual is not None:
+                # The residual Bragg phase over the pixels' bounding box (a separable evaluation of its
+                # spline: matrix products), then at the pixels; scattered-point evaluation costs 30x more.
+                r0, c0 = int(rows.min()), int(cols.min())
+                box = bragg_residual[:, r0:int(rows.max()) + 1, c0:int(cols.max()) + 1]
+                bp = np.nan_to_num(box[:, rows - r0, cols - c0])[:, None, :]
+            at = order.family_order(a_at, groups, coefficients=coefficients, bragg_phase=bp, threshold=threshold,
+                                    anisotropy_threshold=anisotropy_threshold, family_names=family_names,
+                                    offsets_rad=offsets_rad)
+            return at.score[0], at.state[0]
 
-    return score_at
+        return score_at
+
+    if hasattr(fields, "dask"):
+        # Dask fields (a lazy run): never in memory whole; each tile of to_input_grid builds the spline of its
+        # own window of samples (WindowedScore.local).
+        return WindowedScore(fields, make)
+    return make(np.asarray(fields), 0, 0)
+
+
+#: Samples of fields beyond a tile's own coarse window in :meth:`WindowedScore.local`: the cubic spline's
+#: prefilter is recursive with pole 2 - sqrt(3) = -0.268, so what lies 16 samples away weighs at most
+#: 0.268^16 = 7e-10 of a sample (Unser 1999): the window's spline equals the whole grid's to float32 precision.
+SPLINE_MARGIN = 16
+
+
+class WindowedScore:
+    """:func:`order_score_at` of dask fields: ``local(window, i_off, j_off)`` gives the ``score_at`` of a window
+    of samples starting at sample (i_off, j_off), which :func:`to_input_grid` builds per tile.
+
+    Examples
+    --------
+    >>> import dask.array as da
+    >>> a = da.from_array(np.exp(1j * np.zeros((1, 8, 8))), chunks=(1, 4, 4))
+    >>> ws = order_score_at(a, 4, groups=[[0]], coefficients=[[0.5, 0.0]], offsets_rad=[np.zeros(1)])
+    >>> score, state = ws.local(np.asarray(a[:, 2:8, 3:8]), 2, 3)(np.array([9, 17]), np.array([13, 30]))
+    >>> np.round(score, 6).tolist(), state.tolist()
+    ([1.0, 1.0], [0, 0])
+    """
+
+    def __init__(self, fields, make):
+        self.fields, self._make = fields, make
+
+    def local(self, window, i_off, j_off):
+        return self._make(np.asarray(window), int(i_off), int(j_off))
+
+    def __call__(self, rows, cols):
+        raise TypeError("a windowed score is evaluated through local(window, i_off, j_off) (domains._refine.to_input_grid)")
 
 
 def _computed(arrays):
@@ -395,11 +457,12 @@ def domain_table_chunked(labels, walls, *, pixel_size_nm, state_names, amplitude
     (for the figure), in one pass over the labels.
     """
     import dask
-    import dask.array as da
 
     dy, dx = pixel_size_pair(pixel_size_nm)
     ny, nx = labels.shape
-    n = int(max(np.max(sample_labels, initial=0), 0)) + 1
+    # the largest sample label (dask's max takes no ``initial``)
+    top = int(sample_labels.max()) if hasattr(sample_labels, "dask") else int(np.max(sample_labels, initial=0))
+    n = max(top, 0) + 1
     starts = [np.cumsum((0,) + c[:-1]) for c in labels.chunks]
 
     def sums(block, r0, c0):
@@ -427,7 +490,7 @@ def domain_table_chunked(labels, walls, *, pixel_size_nm, state_names, amplitude
     # Amplitudes and phases from the samples, as measure.domain_table reads them.
     from .measure import _label_means
 
-    m = max(size, int(np.max(sample_labels, initial=0)) + 1)
+    m = max(size, top + 1)
     mean_amp, phases = _label_means(sample_labels, m, amplitude, fields)
     rows = []
     for lab in range(1, size):

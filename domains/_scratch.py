@@ -22,7 +22,7 @@ import tempfile
 import weakref
 from pathlib import Path
 
-__all__ = ["Scratch", "checkpoint"]
+__all__ = ["Scratch", "checkpoint", "checkpoint_many"]
 
 
 def _client():
@@ -103,14 +103,55 @@ def checkpoint(array, scratch, name):
     ...     y.chunks, int(y[3].compute())
     (((4, 4, 2),), 9)
     """
+    return checkpoint_many({name: array}, scratch)[name]
+
+
+def _regular(array):
+    """``array`` with regular chunks (zarr's: all equal but a shorter last one)."""
+    irregular = any(len(set(c[:-1])) > 1 or c[-1] > c[0] for c in array.chunks)
+    return array.rechunk(tuple(max(c) for c in array.chunks)) if irregular else array
+
+
+def checkpoint_many(arrays, scratch):
+    """:func:`checkpoint` of several dask arrays in one computation: what they share (one block
+    function with several outputs, the same input chunks) is computed once per chunk.
+
+    Parameters
+    ----------
+    arrays : dict of str to dask.array.Array
+        Store name (``name.zarr`` in the scratch folder) to the array to store.
+    scratch : Scratch
+        The run's scratch folder.
+
+    Returns
+    -------
+    dict of str to dask.array.Array
+        The same names, each a dask array of the same values, chunks and dtype reading its store.
+
+    References
+    ----------
+    Common practice, no source: dask computes the graphs of several ``to_zarr(compute=False)``
+    targets together, so keys they share are computed once.
+
+    Examples
+    --------
+    >>> import dask.array as da
+    >>> x = da.arange(12, chunks=5)
+    >>> with Scratch() as scratch:
+    ...     out = checkpoint_many({"double": 2 * x, "odd": x % 2 == 1}, scratch)
+    ...     int(out["double"].sum().compute()), int(out["odd"].sum().compute()), out["odd"].dtype.name
+    (132, 6, 'bool')
+    """
+    import dask
     import dask.array as da
 
     if _client() is not None and not scratch.explicit:
-        return array.persist()
-    path = scratch.path / f"{name}.zarr"
+        return dict(zip(arrays, dask.persist(*arrays.values())))
+    paths = {name: str(scratch.path / f"{name}.zarr") for name in arrays}
     # Regular chunks for zarr (its last chunk may be partial); the caller's chunks are restored on reading.
-    regular = array.rechunk(tuple(max(c) for c in array.chunks)) if any(len(set(c[:-1])) > 1 or c[-1] > c[0]
-                                                                         for c in array.chunks) else array
-    regular.to_zarr(str(path), overwrite=True)
-    stored = da.from_zarr(str(path))
-    return stored if stored.chunks == array.chunks else stored.rechunk(array.chunks)
+    dask.compute(*[_regular(a).to_zarr(paths[name], overwrite=True, compute=False) for name, a in arrays.items()])
+    out = {}
+    for name, array in arrays.items():
+        stored = da.from_zarr(paths[name])
+        out[name] = stored if stored.chunks == array.chunks else stored.rechunk(array.chunks)
+    return out

@@ -25,7 +25,10 @@ BOOTSTRAP_RESAMPLES = 2000
 
 def _label_means(labels, n, amplitude=None, fields=None):
     """Per label 0..n-1 (NaN ignored): the mean amplitude over pixels and components, and per field the
-    circular mean phase in degrees; (None, []) for what is not given. One bincount per quantity."""
+    circular mean phase in degrees; (None, []) for what is not given. One bincount per quantity.
+    Dask arrays are reduced chunk by chunk (:func:`_label_sums_chunked`)."""
+    if any(hasattr(x, "dask") for x in (labels, amplitude, fields)):
+        return _label_means_chunked(labels, n, amplitude, fields)
     flat = np.clip(np.asarray(labels), 0, None).ravel()
 
     def label_sum(values):
@@ -47,6 +50,61 @@ def _label_means(labels, n, amplitude=None, fields=None):
         im, _ = label_sum(unit.imag)
         with np.errstate(invalid="ignore", divide="ignore"):
             phases.append(np.degrees(np.angle((re + 1j * im) / cnt)))
+    return mean_amp, phases
+
+
+def _label_means_chunked(labels, n, amplitude=None, fields=None):
+    """:func:`_label_means` of dask arrays (labels (row, col); amplitude and fields (k, row, col) or
+    (row, col)) from per-chunk bincounts, summed (float64) over the chunks: the same sums in
+    another order."""
+    import dask
+    import dask.array as da
+
+    labels = labels if hasattr(labels, "dask") else da.from_array(np.asarray(labels))
+    amp = None if amplitude is None else (amplitude if hasattr(amplitude, "dask") else da.from_array(np.asarray(amplitude)))
+    if amp is not None and amp.ndim == 2:
+        amp = amp[None]
+    flds = None if fields is None else (fields if hasattr(fields, "dask") else da.from_array(np.asarray(fields)))
+    chunks = labels.chunks
+    parts = [x.rechunk((x.shape[0],) + chunks) for x in (amp, flds) if x is not None]
+    k_amp = 0 if amp is None else amp.shape[0]
+
+    def sums(lab, *stacks):
+        flat = np.clip(lab, 0, None).ravel()
+        size = max(n, int(flat.max(initial=0)) + 1)
+
+        def label_sum(values):
+            finite = np.isfinite(values)
+            return (np.bincount(flat, weights=np.where(finite, values, 0).ravel().astype(float), minlength=size),
+                    np.bincount(flat, weights=finite.ravel().astype(float), minlength=size))
+
+        out = []
+        stacks = list(stacks)
+        if k_amp:
+            for a in stacks.pop(0):
+                out += label_sum(np.asarray(a, dtype=float))
+        if stacks:
+            for f in stacks.pop(0):
+                unit = f / np.where(np.abs(f) > 0, np.abs(f), 1)
+                re, cnt = label_sum(unit.real)
+                im, _ = label_sum(unit.imag)
+                out += [re, cnt, im]
+        return np.stack(out) if out else np.zeros((0, size))
+
+    blocks = [labels.to_delayed()] + [p.to_delayed()[0] for p in parts]
+    tasks = [dask.delayed(sums)(*(b[i, j] for b in blocks))
+             for i in range(len(chunks[0])) for j in range(len(chunks[1]))]
+    found = dask.compute(*tasks)
+    total = np.zeros((found[0].shape[0], max(p.shape[1] for p in found)))
+    for p in found:
+        total[:, :p.shape[1]] += p
+    mean_amp = None
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if k_amp:
+            mean_amp = total[0:2 * k_amp:2].sum(axis=0) / total[1:2 * k_amp:2].sum(axis=0)
+        phases = [np.degrees(np.angle((total[2 * k_amp + 3 * j] + 1j * total[2 * k_amp + 3 * j + 2])
+                                      / total[2 * k_amp + 3 * j + 1]))
+                  for j in range(0 if flds is None else flds.shape[0])]
     return mean_amp, phases
 
 
@@ -149,22 +207,144 @@ def wall_table(grown, walls, *, pixel_size_nm, fields=None, sigma_nm=None, trust
     fields = None if fields is None else np.asarray(fields)
     # Each segment is handled in a window around it: no full-frame mask or distance map per wall.
     for number, (a, b, corner, pixels) in enumerate(_wall_segment_crops(grown, walls), start=1):
-        row = {"wall": number, "domain_a": a, "domain_b": b,
-               "length_nm": skeleton_length_nm(pixels, pixel_size_nm), "width_nm": math.nan,
-               "width_nm_err": math.nan, "width_nm_upper_limit": math.nan, "width_resolved": False,
-               "phase_jump_deg": "", "phase_jump_deg_err": "", "n_pixels": int(pixels.sum())}
+        fit = None
         if fields is not None and sigma_nm is not None:
             fit = _profile_fit_near(fields, grown, a, b, pixels, corner, sigma_nm=sigma_nm, dy=dy, dx=dx,
                                     reach_sigma=4.0, trusted=trusted)
-            row.update(width_resolved=fit["resolved"], phase_jump_deg=";".join(f"{j:.1f}" for j in fit["phase_jump_deg"]),
-                       phase_jump_deg_err=";".join(f"{e:.2g}" for e in fit["phase_jump_deg_err"]))
-            if fit["resolved"]:
-                row.update(width_nm=fit["width_nm"], width_nm_err=fit["width_nm_err"])
-            else:
-                # Narrower than the lock-in resolves: a limit, not a value with an error bar.
-                row.update(width_nm_upper_limit=fit["width_nm_upper_limit"])
-        rows.append(row)
+        rows.append(_wall_row(number, a, b, pixels, pixel_size_nm, fit))
     return rows
+
+
+def _wall_row(number, a, b, pixels, pixel_size_nm, fit=None):
+    """One row of :func:`wall_table`: the segment's length and pixels, and its profile fit when given."""
+    row = {"wall": number, "domain_a": a, "domain_b": b,
+           "length_nm": skeleton_length_nm(pixels, pixel_size_nm), "width_nm": math.nan,
+           "width_nm_err": math.nan, "width_nm_upper_limit": math.nan, "width_resolved": False,
+           "phase_jump_deg": "", "phase_jump_deg_err": "", "n_pixels": int(pixels.sum())}
+    if fit is not None:
+        row.update(width_resolved=fit["resolved"], phase_jump_deg=";".join(f"{j:.1f}" for j in fit["phase_jump_deg"]),
+                   phase_jump_deg_err=";".join(f"{e:.2g}" for e in fit["phase_jump_deg_err"]))
+        if fit["resolved"]:
+            row.update(width_nm=fit["width_nm"], width_nm_err=fit["width_nm_err"])
+        else:
+            # Narrower than the lock-in resolves: a limit, not a value with an error bar.
+            row.update(width_nm_upper_limit=fit["width_nm_upper_limit"])
+    return row
+
+
+def _wall_pairs(grown, walls):
+    """Each wall pixel's pair (its own label a, the smallest larger 4-neighbour label b) as in
+    :func:`domains.segment._wall_segment_crops`. ``grown`` carries a one-pixel ring around ``walls``'
+    window (0 outside the frame); returns the pixels' (row, col) in the window, a and b."""
+    inner = grown[1:-1, 1:-1]
+    other = np.zeros(inner.shape, np.int64)
+    for dr, dc in ((0, -1), (-1, 0), (0, 1), (1, 0)):
+        neighbour = grown[1 + dr:grown.shape[0] - 1 + dr, 1 + dc:grown.shape[1] - 1 + dc]
+        better = walls & (neighbour > inner) & ((other == 0) | (neighbour < other))
+        other[better] = neighbour[better]
+    rows, cols = np.nonzero(walls & (other > 0))
+    return rows, cols, inner[rows, cols].astype(np.int64), other[rows, cols]
+
+
+def wall_table_chunked(grown, walls, *, pixel_size_nm, fields=None, sigma_nm=None, trusted=None):
+    """:func:`wall_table` of dask labels, from small crops: the same rows.
+
+    A first pass over the chunks (with a one-pixel overlap) finds each pair of domains' wall
+    pixels and their bounding box (per-chunk partial boxes, combined by min/max); then, pair by
+    pair, only the box (and a one-pixel ring) is read, split into segments as
+    :func:`wall_table` does, and each segment's profile fit reads its own window of the labels,
+    the fields and ``trusted``.
+
+    Parameters
+    ----------
+    grown, walls : (row, col) dask arrays
+        As :func:`wall_table` (same chunks).
+    pixel_size_nm, sigma_nm
+        As :func:`wall_table`.
+    fields : (k, row, col) dask array, optional
+        As :func:`wall_table`.
+    trusted : (row, col) ndarray or dask array of bool, optional
+        As :func:`wall_table`.
+
+    Returns
+    -------
+    list of dict
+        Keys :data:`WALL_COLUMNS`, equal to :func:`wall_table` of the computed arrays.
+
+    References
+    ----------
+    :func:`wall_table`; partial reductions over chunks are common practice (no source).
+
+    Examples
+    --------
+    >>> import dask.array as da
+    >>> from domains.segment import thin_walls
+    >>> g = np.ones((40, 30), int); g[:, 15:] = 2; g[25:, :] = 3
+    >>> rows = wall_table_chunked(da.from_array(g, chunks=(17, 11)), da.from_array(thin_walls(g), chunks=(17, 11)),
+    ...                           pixel_size_nm=0.1)
+    >>> rows == wall_table(g, thin_walls(g), pixel_size_nm=0.1)
+    True
+    """
+    import dask
+    import dask.array as da
+    from scipy import ndimage
+
+    dy, dx = pixel_size_pair(pixel_size_nm)
+    ny, nx = grown.shape
+    walls = walls.rechunk(grown.chunks)
+    ringed = da.overlap.overlap(grown, depth={0: 1, 1: 1}, boundary={0: 0, 1: 0})
+    starts = [np.cumsum((0,) + c[:-1]) for c in grown.chunks]
+
+    def boxes(g, w, r0, c0):
+        rows, cols, a, b = _wall_pairs(np.asarray(g), np.asarray(w, bool))
+        if not a.size:
+            return np.zeros((0, 6), np.int64)
+        order = np.lexsort((b, a))
+        rows, cols, a, b = rows[order] + r0, cols[order] + c0, a[order], b[order]
+        first = np.flatnonzero(np.r_[True, (np.diff(a) != 0) | (np.diff(b) != 0)])
+        return np.column_stack([a[first], b[first], np.minimum.reduceat(rows, first), np.maximum.reduceat(rows, first),
+                                np.minimum.reduceat(cols, first), np.maximum.reduceat(cols, first)])
+
+    g_blocks, w_blocks = ringed.to_delayed(), walls.to_delayed()
+    parts = dask.compute(*[dask.delayed(boxes)(g_blocks[i, j], w_blocks[i, j], int(starts[0][i]), int(starts[1][j]))
+                           for i in range(g_blocks.shape[0]) for j in range(g_blocks.shape[1])])
+    found = {}
+    for part in parts:
+        for a, b, r0, r1, c0, c1 in part.tolist():
+            box = found.get((a, b))
+            found[(a, b)] = (r0, r1, c0, c1) if box is None else (min(box[0], r0), max(box[1], r1),
+                                                                  min(box[2], c0), max(box[3], c1))
+    reach = None
+    if fields is not None and sigma_nm is not None:
+        # the window of domains.segment._profile_fit_near
+        reach = int(math.ceil((2 * 1.5 * 4.0 * sigma_nm + max(dy, dx)) / min(dy, dx))) + 2
+    rows_out, number = [], 0
+    for (a, b), (r0, r1, c0, c1) in sorted(found.items()):
+        # The pair's box and a ring of one pixel (0 outside the frame).
+        ra, rb, ca, cb = max(r0 - 1, 0), min(r1 + 2, ny), max(c0 - 1, 0), min(c1 + 2, nx)
+        g, w = dask.compute(grown[ra:rb, ca:cb], walls[r0:r1 + 1, c0:c1 + 1])
+        g = np.pad(np.asarray(g), ((int(r0 == 0), int(r1 == ny - 1)), (int(c0 == 0), int(c1 == nx - 1))))
+        rows, cols, pa, pb = _wall_pairs(g, np.asarray(w, bool))
+        keep = (pa == a) & (pb == b)
+        box = np.zeros((r1 - r0 + 1, c1 - c0 + 1), dtype=bool)
+        box[rows[keep], cols[keep]] = True
+        del g, w
+        # Components are numbered in raster order, in the box as in the full frame.
+        regions, _ = ndimage.label(box, structure=np.ones((3, 3)))
+        for region, where in enumerate(ndimage.find_objects(regions), start=1):
+            crop = regions[where] == region
+            sr, sc = r0 + where[0].start, c0 + where[1].start
+            number += 1
+            fit = None
+            if reach is not None:
+                wa, wb = max(sr - reach, 0), min(sr + crop.shape[0] + reach, ny)
+                wc, wd = max(sc - reach, 0), min(sc + crop.shape[1] + reach, nx)
+                sub_grown, sub_fields = dask.compute(grown[wa:wb, wc:wd], fields[:, wa:wb, wc:wd])
+                sub_trusted = None if trusted is None else np.asarray(trusted[wa:wb, wc:wd], bool)
+                fit = _profile_fit_near(np.asarray(sub_fields), np.asarray(sub_grown), a, b, crop, (sr - wa, sc - wc),
+                                        sigma_nm=sigma_nm, dy=dy, dx=dx, reach_sigma=4.0, trusted=sub_trusted)
+            rows_out.append(_wall_row(number, a, b, crop, pixel_size_nm, fit))
+    return rows_out
 
 
 def bootstrap(values, statistic=np.mean, *, resamples=BOOTSTRAP_RESAMPLES, rng=0):

@@ -37,7 +37,7 @@ class NoiseFloor:
 
 
 def noise_floor(image, q, *, sigma_nm, pixel_size_nm, avoid_q=(), mask=None, trusted=None,
-                false_alarm=NOISE_FALSE_ALARM, n_probes=6, step=None):
+                false_alarm=NOISE_FALSE_ALARM, n_probes=6, step=None, scratch=None):
     """Noise floor of the lock-in amplitude, measured at empty wavevectors of the same length.
 
     The lock-in of noise is a complex Gaussian, so 2|A| follows a Rayleigh law;
@@ -70,6 +70,10 @@ def noise_floor(image, q, *, sigma_nm, pixel_size_nm, avoid_q=(), mask=None, tru
         Demodulate on the decimated grid (every ``step``-th row and column, see
         :func:`domains.lockin`); ``trusted`` is then on that grid. The samples are
         the full-resolution values, so the statistics are those of the full grid.
+    scratch : domains._scratch.Scratch, optional
+        For a dask image: the probes' amplitudes (float32) are stored there once and the median is
+        taken from per-chunk partial histograms (:func:`domains._coarse.median_chunked`, exact),
+        so no probe's amplitude is ever whole in memory.
 
     Returns
     -------
@@ -113,8 +117,21 @@ def noise_floor(image, q, *, sigma_nm, pixel_size_nm, avoid_q=(), mask=None, tru
         )
     pick = np.linspace(0, len(candidates) - 1, min(n_probes, len(candidates))).round().astype(int)
     probes = np.array([candidates[i] for i in pick])
+    amps = amplitude(lockin(image, probes, sigma_nm=sigma_nm, pixel_size_nm=pixel_size_nm, mask=mask, step=step))
+    if scratch is not None and hasattr(amps, "dask"):
+        # Chunk by chunk: the amplitudes stored once (float32), the exact median from two passes.
+        import dask.array as da
+
+        from ._coarse import median_chunked
+        from ._scratch import checkpoint
+
+        if trusted is None:
+            raise InputError("noise_floor: a dask image needs trusted (the samples to take)")
+        amps = checkpoint(amps.astype(np.float32), scratch, "noise_probes")
+        scale = median_chunked(amps, da.isfinite(amps[0]) & np.asarray(trusted, bool)) / np.sqrt(2 * np.log(2))
+        return NoiseFloor(scale, scale * float(np.sqrt(-2 * np.log(false_alarm))), false_alarm, probes)
     # np.asarray: a dask image gives a lazy lock-in; its samples are few enough to hold.
-    amps = np.asarray(amplitude(lockin(image, probes, sigma_nm=sigma_nm, pixel_size_nm=pixel_size_nm, mask=mask, step=step)))
+    amps = np.asarray(amps)
     if trusted is None:
         # Near edges and masks fewer pixels are averaged and the noise is larger: keep away.
         trusted = trusted_mask(np.shape(image), sigma_nm=sigma_nm, pixel_size_nm=pixel_size_nm, mask=mask)

@@ -466,8 +466,8 @@ def index_image(image, *, pixel_size_nm, mask=None, config=None):
 
 
 def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analysis:
+    from . import _chunkseg, _coarse, measure, order, segment
     from . import drift as drift_mod
-    from . import measure, order, segment
 
     pixel = topography.pixel_size_nm
     bar = _progress(8, progress)
@@ -564,11 +564,16 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                        "why": "given" if config.grid_step else "the lock-in's lossless step, at most sigma / 2"}
     if kind in ("commensurate", "stripes", "incommensurate"):
         names = _component_names("cdw" if kind != "stripes" else "stripe", len(order_q))
-        # Coarse fields in memory (a dask input is demodulated chunk by chunk).
-        a_order = np.asarray(lockin(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask, step=step_))
+        if lazy:
+            # The coarse fields of a lazy run stay on dask (complex64), stored once in the scratch folder;
+            # everything up to the input-grid labels is computed from them chunk by chunk (domains._coarse).
+            a_order = _coarse.order_fields(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask,
+                                           step=step_, scratch=scratch)
+        else:
+            a_order = np.asarray(lockin(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel, mask=mask, step=step_))
         floor = order.noise_floor(fill, order_q, sigma_nm=sigma_nm, pixel_size_nm=pixel,
                                   avoid_q=lattice_q if lattice_q is not None else (), mask=mask, trusted=trusted_c,
-                                  false_alarm=config.false_alarm, step=step_)
+                                  false_alarm=config.false_alarm, step=step_, scratch=scratch)
         choices["order_threshold"] = {"value": floor.threshold, "rayleigh_scale": floor.rayleigh_scale,
                                       "false_alarm_per_pixel": floor.false_alarm,
                                       "why": "Rayleigh tail of the lock-in amplitude measured at empty wavevectors"}
@@ -593,21 +598,29 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         bragg_phase = None
         if drift_result is not None and commensurate:
             # After correction the Bragg phase is a small residual: safe to scale by the coefficients.
-            bragg_phase = np.nan_to_num(grid_.sample(drift_result.residual_phase_points))
-        state = order.family_order(a_order, groups, coefficients=coefficients, bragg_phase=bragg_phase,
-                                   threshold=floor.threshold, trusted=trusted_c,
-                                   anisotropy_threshold=config.anisotropy_threshold, family_names=family_names)
+            # (A lazy run samples its spline chunk by chunk.)
+            bragg_phase = (drift_result.residual_phase_points if lazy
+                           else np.nan_to_num(grid_.sample(drift_result.residual_phase_points)))
+        if lazy:
+            state = _coarse.family_order_chunked(a_order, groups, step=step_, coefficients=coefficients,
+                                                 bragg_phase=bragg_phase, threshold=floor.threshold, trusted=trusted_c,
+                                                 anisotropy_threshold=config.anisotropy_threshold,
+                                                 family_names=family_names, scratch=scratch)
+        else:
+            state = order.family_order(a_order, groups, coefficients=coefficients, bragg_phase=bragg_phase,
+                                       threshold=floor.threshold, trusted=trusted_c,
+                                       anisotropy_threshold=config.anisotropy_threshold, family_names=family_names)
         confidence = config.confidence or (order.variant_confidence(coefficients) if commensurate else 0.5)
-        seg = segment.segment_states(state.state, state.score, state.ordered, pixel_size_nm=pc,
-                                     min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted_c,
-                                     bridge_nm=2 * sigma_nm)
+        segment_states = _chunkseg.segment_states_chunked if lazy else segment.segment_states
+        seg = segment_states(state.state, state.score, state.ordered, pixel_size_nm=pc,
+                             min_area_nm2=min_area, confidence_threshold=confidence, trusted=trusted_c,
+                             bridge_nm=2 * sigma_nm)
         fields_used = state.fields
         state_names = {lab: state.names[v] for lab, v in seg.state.items()}
         choices["variant_offset_rad"] = [o.tolist() for o in state.offsets_rad]
         choices["confidence"] = {"value": confidence, "why": "given" if config.confidence else (
             "halfway from a variant's template to the boundary with its nearest neighbour" if commensurate
             else "dominance of one family")}
-        ordered = state.ordered
         if kind == "incommensurate":
             notes.append("Incommensurate order: no translational variants; regions show where order is present.")
         tip_rows = (choices.get("level_findings") or {}).get("tip_change_rows") or []
@@ -625,17 +638,20 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         amp = amplitude(a_order)
         # A winding counts only where its own component carries order (stripes: not where it is absent).
         defects = []
+        phase_defects = _chunkseg.phase_defects_chunked if lazy else segment.phase_defects
+        confirms = _coarse.loop_confirms_lazy if lazy else _refine.loop_confirms
         for j in range(len(a_order)):
             # |fields_used| is |A| = amplitude / 2: the same threshold on that scale.
-            found_j = segment.phase_defects(fields_used[j:j + 1], pixel_size_nm=pc,
-                                            ordered=(amp[j] > floor.threshold) & trusted_c, sigma_nm=sigma_nm,
-                                            amplitude_threshold=floor.threshold / 2)
+            found_j = phase_defects(fields_used[j:j + 1], pixel_size_nm=pc,
+                                    ordered=(amp[j] > floor.threshold) & trusted_c, sigma_nm=sigma_nm,
+                                    amplitude_threshold=floor.threshold / 2)
             if step_ > 1:
-                found_j = [d for d in found_j if _refine.loop_confirms(fields_used[j], d, pc, floor.threshold / 2)]
+                found_j = [d for d in found_j if confirms(fields_used[j], d, pc, floor.threshold / 2)]
             # Rows and columns on the input grid (positions in nm are the same on both grids).
             defects += [{**d, "component": j, "row": d["row"] * step_, "col": d["col"] * step_} for d in found_j]
-        wall_rows = measure.wall_table(seg.grown, walls_c, pixel_size_nm=pc, fields=fields_used, sigma_nm=sigma_nm,
-                                       trusted=trusted_c)
+        wall_table = measure.wall_table_chunked if lazy else measure.wall_table
+        wall_rows = wall_table(seg.grown, walls_c, pixel_size_nm=pc, fields=fields_used, sigma_nm=sigma_nm,
+                               trusted=trusted_c)
 
         # The state's score at input pixels from the fields interpolated between samples (band-limited).
         score_at = _refine.order_score_at(
@@ -668,9 +684,10 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
             out_maps[f"amplitude/{name}"] = (amplitude(a_j).astype(np.float32), {**attrs, "pixel_size_nm": list(pc), "units": topography.metadata.get("units", "image units")})
             out_maps[f"phase/{name}"] = (np.angle(a_j).astype(np.float32), {**attrs, "pixel_size_nm": list(pc), "units": "rad"})
         bar("bias comparison and moiré")
+        small = _coarse.small_lazy if lazy else _small
         views["order"] = {"names": names, "units": topography.metadata.get("units", ""),
-                          "amplitude": _small(amp.mean(axis=0), pc),
-                          "phase": _small(np.angle(fields_used[0]), pc, how="phase")}
+                          "amplitude": small(amp.mean(axis=0), pc),
+                          "phase": small(np.angle(fields_used[0]), pc, how="phase")}
         views["domains"] = _domain_view(background, shown_labels, shown_walls, shown_pixel)
     else:
         bar("bias comparison and moiré", n=3)
@@ -753,20 +770,25 @@ def _merge_across_tip_changes(seg, tip_rows, sigma_px, names):
     A lateral tip jump moves everything below the row by the same lattice translation, so every
     false boundary along the row shows the same change of variant; a true wall that happens to lie
     along the row has its own. Only pairs with the most common change (by boundary length) merge.
+
+    The merges are collected as a relabelling table read from two rows per tip change, so a lazy
+    segmentation (dask labels, grown and walls) is merged chunk by chunk and stays lazy.
     """
     from dataclasses import replace as _replace
 
     from . import segment
 
-    grown = seg.grown.copy()
-    ny = grown.shape[0]
+    lazy = hasattr(seg.grown, "dask")
+    ny = seg.grown.shape[0]
+    # lut[original label] = label after the merges so far (grown[grown == lb] = la, as a table)
+    lut = np.arange(int(seg.grown.max()) + 1, dtype=np.asarray(seg.grown[:1, :1]).dtype)
     reach = int(math.ceil(3 * sigma_px)) + 1
     merged = 0
     for r in tip_rows:
         above, below = r - reach - 1, r + reach
         if above < 0 or below >= ny:
             continue
-        a, b = grown[above], grown[below]
+        a, b = lut[np.asarray(seg.grown[above])], lut[np.asarray(seg.grown[below])]
         pairs = {}
         for la, lb in zip(a, b):
             if la > 0 and lb > 0 and la != lb:
@@ -791,19 +813,34 @@ def _merge_across_tip_changes(seg, tip_rows, sigma_px, names):
             continue  # no jump shared by two boundaries: a wall that happens to lie along the row
         for la, lb, n, jump in candidates:
             if jump == common:
-                grown[grown == lb] = la
+                lut[lut == lb] = la
                 merged += 1
     if not merged:
         return seg, 0
-    walls = segment.thin_walls(grown)
-    labels = np.where(walls, 0, grown)
-    labels = np.where(seg.labels > 0, labels, 0)
+    if lazy:
+        import dask.array as da
+
+        grown = seg.grown.map_blocks(lambda g: lut[g], dtype=lut.dtype)
+        walls = da.map_overlap(segment.thin_walls, grown, depth=1, boundary="none", dtype=bool)
+        labels = da.where(walls, 0, grown)
+        labels = da.where(seg.labels > 0, labels, 0)
+        present = np.unique(da.unique(labels).compute())
+    else:
+        grown = lut[seg.grown]
+        walls = segment.thin_walls(grown)
+        labels = np.where(walls, 0, grown)
+        labels = np.where(seg.labels > 0, labels, 0)
+        present = np.unique(labels)
     # Renumber 1..N in the order of first appearance.
-    ids = [int(v) for v in np.unique(labels) if v > 0]
-    remap = np.zeros(int(grown.max()) + 1, np.int32)
+    ids = [int(v) for v in present if v > 0]
+    remap = np.zeros(len(lut), np.int32)
     for new, old in enumerate(ids, start=1):
         remap[old] = new
     state = {int(remap[old]): seg.state[old] for old in ids if old in seg.state}
+    if lazy:
+        return _replace(seg, labels=labels.map_blocks(lambda x: remap[x], dtype=np.int32),
+                        grown=grown.map_blocks(lambda x: remap[x], dtype=np.int32),
+                        walls=walls & (seg.grown > 0), state=state), merged
     return _replace(seg, labels=remap[labels], grown=remap[grown], walls=walls & (seg.grown > 0),
                     state=state), merged
 

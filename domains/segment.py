@@ -856,14 +856,12 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
     for j, f in enumerate(fields):
         phi = np.angle(f)
         # (r, c) -> (r, c+1) -> (r+1, c+1) -> (r+1, c): +x, +y, -x, -y.
-        total = _wrap(phi[:-1, 1:] - phi[:-1, :-1]) + _wrap(phi[1:, 1:] - phi[:-1, 1:]) \
-            + _wrap(phi[1:, :-1] - phi[1:, 1:]) + _wrap(phi[:-1, :-1] - phi[1:, :-1])
-        plaquette = np.rint(np.nan_to_num(total) / (2 * np.pi)).astype(np.int8)
-        del total
+        plaquette = _plaquette_windings(phi)
         rows, cols = np.nonzero(plaquette)
         wind = plaquette[rows, cols]
         del plaquette
         good = np.isfinite(f) & ordered[j] & (np.abs(f) >= thresholds[j])
+        fraction = None
         if min_ordered_fraction is not None:
             fraction = _disc_fraction(ordered[j], max(1, int(round(radius_nm / min(dy, dx)))))
         accepted = []
@@ -875,29 +873,41 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
             lc = c[:, None] + offsets[:, 1]
             inside = np.all((lr >= 0) & (lr < n_rows) & (lc >= 0) & (lc < n_cols), axis=1)
             lr, lc, r, c, w = lr[inside], lc[inside], r[inside], c[inside], w[inside]
-            ok = np.all(good[lr, lc], axis=1)
-            if min_ordered_fraction is not None:
-                ok &= (fraction[r, c] >= min_ordered_fraction) & (fraction[r + 1, c + 1] >= min_ordered_fraction)
-            lr, lc, r, c, w = lr[ok], lc[ok], r[ok], c[ok], w[ok]
-            # Between two loop pixels the field runs along the straight segment joining their values (it is
-            # smooth on the scale sigma, many pixels): its smallest modulus there is the loop's between them.
-            # A wall where the order flips sign (a pi phase slip) crosses the loop through |field| = 0
-            # between pixels whose own amplitudes pass the threshold, and the noise then decides the sign of
-            # each pi step: a line of +-1 "windings" along every such wall unless this is checked.
-            z = f[lr, lc]
-            step = np.roll(z, -1, axis=1) - z
-            t = np.clip(-np.real(z * np.conj(step)) / np.maximum(np.abs(step) ** 2, np.finfo(float).tiny), 0.0, 1.0)
-            segment_min = np.abs(z + t * step).min(axis=1)
-            ok = segment_min >= thresholds[j]
-            lr, lc, r, c, w, segment_min = lr[ok], lc[ok], r[ok], c[ok], w[ok], segment_min[ok]
-            loop_phase = phi[lr, lc]
-            loop_wind = np.rint(_wrap(np.roll(loop_phase, -1, axis=1) - loop_phase).sum(axis=1) / (2 * np.pi))
-            loop_wind = loop_wind.astype(int)
-            keep = (loop_wind != 0) & (np.sign(loop_wind) == np.sign(w))
-            loop_min = segment_min[keep]
-            accepted.extend(zip(r[keep], c[keep], loop_wind[keep], loop_min))
+            accepted.extend(zip(*_loop_test(f, phi, good, fraction, lr, lc, r, c, w, min_ordered_fraction,
+                                             thresholds[j])))
         defects.extend(_merge_windings(accepted, j, radius_nm, dy, dx))
     return defects
+
+
+def _plaquette_windings(phi):
+    """The winding (int8) of every plaquette (r, c) -> (r, c+1) -> (r+1, c+1) -> (r+1, c) of a phase map."""
+    total = _wrap(phi[:-1, 1:] - phi[:-1, :-1]) + _wrap(phi[1:, 1:] - phi[:-1, 1:]) \
+        + _wrap(phi[1:, :-1] - phi[1:, 1:]) + _wrap(phi[:-1, :-1] - phi[1:, :-1])
+    return np.rint(np.nan_to_num(total) / (2 * np.pi)).astype(np.int8)
+
+
+def _loop_test(f, phi, good, fraction, lr, lc, r, c, w, min_ordered_fraction, threshold):
+    """The candidates of :func:`phase_defects` (plaquettes (r, c) of winding w, loop pixels lr, lc) whose loop
+    passes rules 1 and 2 there: (rows, cols, loop windings, smallest |field| along the loop)."""
+    ok = np.all(good[lr, lc], axis=1)
+    if min_ordered_fraction is not None:
+        ok &= (fraction[r, c] >= min_ordered_fraction) & (fraction[r + 1, c + 1] >= min_ordered_fraction)
+    lr, lc, r, c, w = lr[ok], lc[ok], r[ok], c[ok], w[ok]
+    # Between two loop pixels the field runs along the straight segment joining their values (it is
+    # smooth on the scale sigma, many pixels): its smallest modulus there is the loop's between them.
+    # A wall where the order flips sign (a pi phase slip) crosses the loop through |field| = 0
+    # between pixels whose own amplitudes pass the threshold, and the noise then decides the sign of
+    # each pi step: a line of +-1 "windings" along every such wall unless this is checked.
+    z = f[lr, lc]
+    step = np.roll(z, -1, axis=1) - z
+    t = np.clip(-np.real(z * np.conj(step)) / np.maximum(np.abs(step) ** 2, np.finfo(float).tiny), 0.0, 1.0)
+    segment_min = np.abs(z + t * step).min(axis=1)
+    ok = segment_min >= threshold
+    lr, lc, r, c, w, segment_min = lr[ok], lc[ok], r[ok], c[ok], w[ok], segment_min[ok]
+    loop_phase = phi[lr, lc]
+    loop_wind = np.rint(_wrap(np.roll(loop_phase, -1, axis=1) - loop_phase).sum(axis=1) / (2 * np.pi)).astype(int)
+    keep = (loop_wind != 0) & (np.sign(loop_wind) == np.sign(w))
+    return r[keep], c[keep], loop_wind[keep], segment_min[keep]
 
 
 def _loop_offsets(radius_rows, radius_cols):
