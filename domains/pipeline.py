@@ -667,7 +667,7 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
         if lazy:
             domain_rows, shown_labels, shown_walls = _refine.domain_table_chunked(
                 labels, walls, pixel_size_nm=pixel, state_names=state_names, amplitude=amp, fields=fields_used,
-                sample_labels=labels_c, every=_overview_factor(shape))
+                sample_labels=labels_c, every=report._block_factor(shape, report.FIGURE_MAX_PX))
         else:
             domain_rows = measure.domain_table(labels, pixel_size_nm=pixel, state_names=state_names, amplitude=amp,
                                                fields=fields_used, sample_labels=labels_c)
@@ -723,14 +723,10 @@ def _run(topography: Scan, maps, grid, config: Config, progress: bool) -> Analys
                     scratch=scratch)
 
 
-def _overview_factor(shape, max_px=report.FIGURE_MAX_PX):
-    """The stride that brings the longer side of ``shape`` to at most ``max_px`` pixels."""
-    return max(1, -(-max(shape) // max_px))
-
-
 def _overview(image, pixel):
-    """Every k-th pixel of a lazy image (k from :func:`_overview_factor`) in memory, and its pixel size."""
-    k = _overview_factor(image.shape)
+    """Every k-th pixel of a lazy image in memory (k brings the longer side to at most
+    :data:`domains.report.FIGURE_MAX_PX`), and its pixel size."""
+    k = report._block_factor(image.shape, report.FIGURE_MAX_PX)
     return np.asarray(image[::k, ::k].compute()), (pixel[0] * k, pixel[1] * k)
 
 

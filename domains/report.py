@@ -31,6 +31,7 @@ def _extent(shape, pixel_size_nm, factor=1):
 
 
 def _block_factor(shape, max_px):
+    """The block side (and stride) that brings the longer side of ``shape`` to at most ``max_px`` pixels."""
     return max(1, math.ceil(max(shape) / max_px)) if len(shape) and max(shape) else 1
 
 
