@@ -13,15 +13,13 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.signal import fftconvolve
 from skimage.measure import label as label_same_value
 from skimage.segmentation import watershed
 
-from ._checks import positive
 from ._errors import InputError
 from ._scan import pixel_size_pair
-from .segment import (Segmentation, _disc_dilation, _disc_erosion, _loop_offsets, _loop_test, _merge_windings,
-                      _plaquette_windings, thin_walls)
+from .segment import (Segmentation, _disc_dilation, _disc_erosion, _disc_fraction, _loop_geometry, _loop_test,
+                      _merge_windings, _plaquette_windings, thin_walls)
 
 __all__ = ["default_halo_px", "phase_defects_chunked", "segment_states_chunked"]
 
@@ -394,12 +392,8 @@ def _accepted_in_block(f, good, fraction, offsets, owned, origin, frame, min_ord
 
 def _defect_block(f, ordered, threshold, offsets, owned, origin, frame, min_ordered_fraction, disc_radius):
     good = np.isfinite(f) & ordered & (np.abs(f) >= threshold)
-    fraction = None
-    if min_ordered_fraction is not None:
-        # segment._disc_fraction of the block: exact integer counts within the overlap.
-        r = disc_radius
-        disc = (np.hypot(*np.mgrid[-r: r + 1, -r: r + 1]) <= r).astype(float)
-        fraction = np.rint(fftconvolve(ordered.astype(float), disc, mode="same")) / disc.sum()
+    # The disc fractions of the block: exact integer counts within the overlap (it holds the disc).
+    fraction = None if min_ordered_fraction is None else _disc_fraction(ordered, disc_radius)
     return _accepted_in_block(f, good, fraction, offsets, owned, origin, frame, min_ordered_fraction, threshold)
 
 
@@ -470,12 +464,7 @@ def phase_defects_chunked(fields, *, pixel_size_nm, ordered, sigma_nm, min_order
         per_component = True
     else:
         raise InputError(f"ordered shape {np.shape(ordered)} differs from the fields' {frame} (or {fields.shape})")
-    sigma_nm = positive(sigma_nm, "sigma_nm")
-    radius_nm = 2 * sigma_nm if loop_radius_nm is None else positive(loop_radius_nm, "loop_radius_nm")
-    radius_nm = max(radius_nm, 1.5 * max(dy, dx))
-    thresholds = np.broadcast_to(np.asarray(-np.inf if amplitude_threshold is None else amplitude_threshold,
-                                            dtype=float), (k,))
-    offsets = _loop_offsets(radius_nm / dy, radius_nm / dx)
+    radius_nm, thresholds, offsets = _loop_geometry(dy, dx, sigma_nm, loop_radius_nm, amplitude_threshold, k)
     disc_radius = max(1, int(round(radius_nm / min(dy, dx))))
     reach = int(np.abs(offsets).max())
     if min_ordered_fraction is not None:

@@ -845,12 +845,8 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
         ordered = np.broadcast_to(ordered, fields.shape)
     elif ordered.shape != fields.shape:
         raise InputError(f"ordered shape {ordered.shape} differs from the fields' {fields.shape[1:]} (or {fields.shape})")
-    sigma_nm = positive(sigma_nm, "sigma_nm")
-    radius_nm = 2 * sigma_nm if loop_radius_nm is None else positive(loop_radius_nm, "loop_radius_nm")
-    radius_nm = max(radius_nm, 1.5 * max(dy, dx))
-    thresholds = np.broadcast_to(np.asarray(-np.inf if amplitude_threshold is None else amplitude_threshold,
-                                            dtype=float), (len(fields),))
-    offsets = _loop_offsets(radius_nm / dy, radius_nm / dx)
+    radius_nm, thresholds, offsets = _loop_geometry(dy, dx, sigma_nm, loop_radius_nm, amplitude_threshold,
+                                                    len(fields))
     n_rows, n_cols = fields.shape[1:]
     defects = []
     for j, f in enumerate(fields):
@@ -877,6 +873,17 @@ def phase_defects(fields, *, pixel_size_nm, ordered, sigma_nm, min_ordered_fract
                                              thresholds[j])))
         defects.extend(_merge_windings(accepted, j, radius_nm, dy, dx))
     return defects
+
+
+def _loop_geometry(dy, dx, sigma_nm, loop_radius_nm, amplitude_threshold, k):
+    """The test loop of :func:`phase_defects`: its radius in nm (default 2 sigma, at least 1.5 pixels), the
+    amplitude threshold of each of the k components, and the loop's pixel offsets."""
+    sigma_nm = positive(sigma_nm, "sigma_nm")
+    radius_nm = 2 * sigma_nm if loop_radius_nm is None else positive(loop_radius_nm, "loop_radius_nm")
+    radius_nm = max(radius_nm, 1.5 * max(dy, dx))
+    thresholds = np.broadcast_to(np.asarray(-np.inf if amplitude_threshold is None else amplitude_threshold,
+                                            dtype=float), (k,))
+    return radius_nm, thresholds, _loop_offsets(radius_nm / dy, radius_nm / dx)
 
 
 def _plaquette_windings(phi):
